@@ -39,3 +39,7 @@ class PhysicsRangeError(EbullioError, ValueError):
 
 class ConfigError(EbullioError, ValueError):
     """A configuration, scenario or metadata value is missing or wrong."""
+
+
+class LogFormatError(EbullioError, ValueError):
+    """A log file cannot be read at all (bad header, unknown columns); names file and line."""

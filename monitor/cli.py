@@ -1,0 +1,214 @@
+"""The ``ebullio`` command line.
+
+Verbs so far: ``demo`` (the simulated rig, live in the terminal, recorded to a
+log) and ``simulate`` (write a synthetic log). Each has ``--help`` with an example.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import logging
+import sys
+from pathlib import Path
+
+from drivers.errors import EbullioError
+from drivers.simulator import (
+    PacedClock,
+    SimulatedRig,
+    SimulatedRigDriver,
+    scenario_by_name,
+    scenario_metadata,
+)
+from monitor import __version__
+from monitor.interchange import rows_from_samples, write_csv
+from monitor.water import boiling_point_c, pressure_at_altitude_kpa
+
+log = logging.getLogger("ebullio")
+
+SAFETY_NOTE = (
+    "Caution: ebullio monitors; it is not a safety device. Hot water and steam scald, heating "
+    "elements run on mains voltage, an element run dry can burn out or start a fire, and a "
+    "pressure vessel needs its own relief valve. Follow local codes and licensed practice."
+)
+
+#: Channels written to a simulated CSV log, in column order.
+SIM_CHANNELS = ["water", "element", "ambient", "power", "energy", "voltage", "current"]
+
+
+def _site_pressure_kpa(args: argparse.Namespace) -> float:
+    if args.pressure_kpa is not None:
+        return args.pressure_kpa
+    if args.altitude_m is not None:
+        return pressure_at_altitude_kpa(args.altitude_m)
+    return 101.325
+
+
+def _scenario_from(args: argparse.Namespace):
+    changes: dict[str, object] = {"pressure_kpa": _site_pressure_kpa(args)}
+    if args.altitude_m is not None:
+        changes["altitude_m"] = args.altitude_m
+    for name, attr in (
+        ("scale_mm", "scale_mm"),
+        ("duration_s", "duration_s"),
+        ("mass_kg", "water_mass_kg"),
+        ("vessel", "vessel"),
+    ):
+        value = getattr(args, name, None)
+        if value is not None:
+            changes[attr] = value
+    return scenario_by_name(args.scenario, **changes)
+
+
+def cmd_simulate(args: argparse.Namespace) -> int:
+    """Write a simulated run as a CSV interchange log."""
+    scenario = _scenario_from(args)
+    rig = SimulatedRig(scenario, seed=args.seed)
+    meta = {"ebullio_version": __version__, **scenario_metadata(scenario, args.seed)}
+    steps = round(scenario.duration_s / scenario.sample_interval_s)
+    out_path = Path(args.out)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+
+    def batches():
+        for i, batch in enumerate(rig.run()):
+            if steps >= 2000 and i % (steps // 10) == 0:
+                print(f"simulate: {100 * i // steps:3d} %", file=sys.stderr, flush=True)
+            yield batch
+
+    with open(out_path, "w", encoding="utf-8", newline="") as handle:
+        count = write_csv(
+            handle, rows_from_samples(batches(), scenario.start_epoch_s), meta, SIM_CHANNELS
+        )
+    print(f"wrote {count} rows of {scenario.name!r} (seed {args.seed}) to {out_path}")
+    return 0
+
+
+async def _demo(args: argparse.Namespace) -> int:
+    scenario = _scenario_from(args)
+    clock = PacedClock(args.speed)
+    url = f"sim://?scenario={scenario.name}&seed={args.seed}&speed={args.speed}"
+    driver = SimulatedRigDriver(url, clock=clock, scenario=scenario)
+    rig = driver.rig
+    print(SAFETY_NOTE)
+    print(
+        f"demo: simulated {scenario.name} {scenario.vessel!r}, {scenario.water_mass_kg} kg of "
+        f"water, boiling point {boiling_point_c(scenario.pressure_kpa):.2f} °C at "
+        f"{scenario.pressure_kpa:.2f} kPa, running at {args.speed:g}x real time"
+    )
+    print(f"{'time s':>8} {'water °C':>9} {'element °C':>10} {'room °C':>8} {'power W':>8}")
+    out_path = Path(args.out)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    latest: dict[str, float] = {}
+    batches: list[list] = []
+    current: list = []
+    last_print = -1e9
+    async with driver:
+        async for sample in driver.samples():
+            if current and sample.t != current[0].t:
+                batches.append(current)
+                current = []
+            current.append(sample)
+            latest[sample.channel] = sample.value
+            elapsed = sample.t - rig.scenario.start_epoch_s
+            if elapsed - last_print >= args.every_s and sample.channel == "energy":
+                last_print = elapsed
+                print(
+                    f"{elapsed:8.0f} {latest.get('water', float('nan')):9.2f} "
+                    f"{latest.get('element', float('nan')):10.2f} "
+                    f"{latest.get('ambient', float('nan')):8.2f} "
+                    f"{latest.get('power', float('nan')):8.0f}",
+                    flush=True,
+                )
+    if current:
+        batches.append(current)
+    meta = {"ebullio_version": __version__, **scenario_metadata(rig.scenario, args.seed)}
+    with open(out_path, "w", encoding="utf-8", newline="") as handle:
+        count = write_csv(
+            handle, rows_from_samples(batches, rig.scenario.start_epoch_s), meta, SIM_CHANNELS
+        )
+    print(f"demo: recorded {count} rows to {out_path}")
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    """Run the simulated rig in (accelerated) real time and show it live."""
+    return asyncio.run(_demo(args))
+
+
+def _add_site_options(p: argparse.ArgumentParser) -> None:
+    site = p.add_mutually_exclusive_group()
+    site.add_argument("--pressure-kpa", type=float, help="site pressure, kPa (default 101.325)")
+    site.add_argument(
+        "--altitude-m", type=float, help="site elevation, m; pressure from the ICAO atmosphere"
+    )
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """Return the argument parser of the ``ebullio`` command."""
+    parser = argparse.ArgumentParser(
+        prog="ebullio",
+        description="Sensor logging and live heat-balance monitoring for heated water vessels.",
+        epilog=SAFETY_NOTE,
+    )
+    parser.add_argument("--version", action="version", version=f"ebullio {__version__}")
+    parser.add_argument("-v", "--verbose", action="store_true", help="log more detail")
+    verbs = parser.add_subparsers(dest="verb", required=True, metavar="VERB")
+
+    sim = verbs.add_parser(
+        "simulate",
+        help="write a synthetic log from the simulated rig",
+        description="Run a simulated vessel flat out and write a CSV interchange log.",
+        epilog="example: ebullio simulate --scenario kettle --seed 7 --scale-mm 0.2 "
+        "--out kettle.csv",
+    )
+    sim.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
+    sim.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    sim.add_argument("--scale-mm", type=float, help="limescale on the element, mm (default 0)")
+    sim.add_argument("--duration-s", type=float, help="length of the run, s")
+    sim.add_argument("--mass-kg", type=float, help="water fill, kg")
+    sim.add_argument("--vessel", help="vessel id written to the log")
+    _add_site_options(sim)
+    sim.add_argument("--out", required=True, help="CSV file to write")
+    sim.set_defaults(func=cmd_simulate)
+
+    demo = verbs.add_parser(
+        "demo",
+        help="run the simulated rig live and record it",
+        description="The embedded default: a simulated kettle heated to the boil, shown live "
+        "in the terminal and recorded to a CSV log.",
+        epilog="example: ebullio demo --speed 20 --out out/demo.csv",
+    )
+    demo.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
+    demo.add_argument("--seed", type=int, default=7)
+    demo.add_argument("--speed", type=float, default=20.0, help="times real time (default 20)")
+    demo.add_argument("--duration-s", type=float, help="length of the run, s")
+    demo.add_argument("--scale-mm", type=float, help="limescale on the element, mm")
+    demo.add_argument("--mass-kg", type=float, help="water fill, kg")
+    demo.add_argument("--vessel", help="vessel id")
+    demo.add_argument("--every-s", type=float, default=10.0, help="print every N simulated s")
+    _add_site_options(demo)
+    demo.add_argument("--out", default="out/demo.csv", help="log file (default out/demo.csv)")
+    demo.set_defaults(func=cmd_demo)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; return the process exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(
+        level=logging.DEBUG if args.verbose else logging.INFO,
+        format="%(levelname)s %(name)s: %(message)s",
+    )
+    try:
+        return args.func(args)
+    except EbullioError as exc:
+        print(f"ebullio {args.verb}: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"ebullio {args.verb}: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

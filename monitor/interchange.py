@@ -1,0 +1,276 @@
+"""The CSV interchange format: read and write logs that people and other tools can open.
+
+Layout (see shared/DESIGN.md):
+
+* optional metadata lines before the header, ``# key: value``;
+* one header row: ``time_s`` (seconds from the start) or ``time`` (ISO 8601 with
+  a UTC offset) first, then any of the channel columns below, and optionally
+  ``vessel`` and ``run``;
+* one row per instant; a blank cell is a missing reading.
+
+Reading never drops input: a row that cannot be used is kept, with its line
+number and the reason, in :attr:`InterchangeLog.rejected` for quarantine, and
+the rest of the file is read on. A file whose header cannot be understood is
+refused as a whole with :class:`LogFormatError`.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import TextIO
+
+from drivers.errors import LogFormatError
+from drivers.sample import Sample
+
+#: CSV column for each channel role, with the unit in its name.
+CHANNEL_COLUMNS: dict[str, str] = {
+    "water": "water_c",
+    "water_top": "water_top_c",
+    "element": "element_c",
+    "ambient": "ambient_c",
+    "power": "power_w",
+    "energy": "energy_wh",
+    "voltage": "voltage_v",
+    "current": "current_a",
+    "pressure": "pressure_kpa",
+}
+COLUMN_CHANNELS = {column: channel for channel, column in CHANNEL_COLUMNS.items()}
+TIME_COLUMNS = ("time_s", "time")
+LABEL_COLUMNS = ("vessel", "run")
+
+
+@dataclass(frozen=True, slots=True)
+class LogRow:
+    """One instant: time in s from the start of the log, and the readings present."""
+
+    line: int
+    time_s: float
+    values: dict[str, float]
+    vessel: str | None = None
+    run: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Rejected:
+    """A line that could not be used, kept verbatim with where it was and why."""
+
+    line: int
+    raw: str
+    reason: str
+
+
+@dataclass
+class InterchangeLog:
+    """A read log: metadata, the channel columns present, usable rows and rejected lines."""
+
+    path: str
+    metadata: dict[str, str | float]
+    channels: list[str]
+    rows: list[LogRow] = field(default_factory=list)
+    rejected: list[Rejected] = field(default_factory=list)
+    start_epoch_s: float | None = None
+
+
+def _parse_meta_value(text: str) -> str | float:
+    try:
+        return float(text)
+    except ValueError:
+        return text
+
+
+def _format_number(value: float) -> str:
+    if value == int(value) and abs(value) < 1e15:
+        return str(int(value))
+    return format(value, ".10g")
+
+
+def _parse_iso(text: str) -> float:
+    stamp = datetime.fromisoformat(text)
+    if stamp.tzinfo is None:
+        raise ValueError(f"time {text!r} has no UTC offset")
+    return stamp.timestamp()
+
+
+def read_csv(path: str | Path) -> InterchangeLog:
+    """Return the log in a CSV interchange file; unusable rows go to ``rejected``.
+
+    Raises :class:`LogFormatError` (with file and line) when there is no header,
+    the first column is not a time column, or a column is unknown or repeated.
+    """
+    path = str(path)
+    with open(path, encoding="utf-8", newline="") as handle:
+        return read_csv_text(handle, path)
+
+
+def read_csv_text(handle: TextIO, name: str = "<text>") -> InterchangeLog:
+    """Return the log read from an open text stream; see :func:`read_csv`."""
+    metadata: dict[str, str | float] = {}
+    lines = iter(enumerate(handle, start=1))
+    header: list[str] | None = None
+    header_line = 0
+    rejected: list[Rejected] = []
+    for number, raw in lines:
+        text = raw.strip()
+        if not text:
+            continue
+        if text.startswith("#"):
+            body = text[1:].strip()
+            key, sep, value = body.partition(":")
+            if sep and key.strip():
+                metadata[key.strip()] = _parse_meta_value(value.strip())
+            elif body:
+                rejected.append(
+                    Rejected(number, raw.rstrip("\r\n"), "metadata line without 'key: value'")
+                )
+            continue
+        header = next(csv.reader([raw]))
+        header = [h.strip() for h in header]
+        header_line = number
+        break
+    if header is None:
+        raise LogFormatError(f"{name}: no header row found")
+    where = f"{name}, line {header_line}"
+    if not header or header[0] not in TIME_COLUMNS:
+        raise LogFormatError(
+            f"{where}: the first column must be 'time_s' or 'time', "
+            f"got {header[0] if header else ''!r}"
+        )
+    known = set(COLUMN_CHANNELS) | set(LABEL_COLUMNS)
+    for column in header[1:]:
+        if column not in known:
+            listing = ", ".join([*TIME_COLUMNS, *CHANNEL_COLUMNS.values(), *LABEL_COLUMNS])
+            raise LogFormatError(f"{where}: unknown column {column!r}; known columns: {listing}")
+    if len(set(header)) != len(header):
+        raise LogFormatError(f"{where}: a column is repeated in {header}")
+    log = InterchangeLog(
+        path=name,
+        metadata=metadata,
+        channels=[COLUMN_CHANNELS[c] for c in header[1:] if c in COLUMN_CHANNELS],
+        rejected=rejected,
+    )
+    iso = header[0] == "time"
+    first_epoch: float | None = None
+    for number, raw in lines:
+        if not raw.strip() or raw.lstrip().startswith("#"):
+            if raw.strip():
+                log.rejected.append(
+                    Rejected(number, raw.rstrip("\r\n"), "metadata line after the header")
+                )
+            continue
+        row, reason = _parse_row(number, raw, header, iso)
+        if row is None:
+            log.rejected.append(Rejected(number, raw.rstrip("\r\n"), reason))
+            continue
+        if iso:
+            if first_epoch is None:
+                first_epoch = row.time_s
+            row = LogRow(row.line, row.time_s - first_epoch, row.values, row.vessel, row.run)
+        log.rows.append(row)
+    if iso:
+        log.start_epoch_s = first_epoch
+    elif isinstance(metadata.get("start_time"), str):
+        try:
+            log.start_epoch_s = _parse_iso(str(metadata["start_time"]))
+        except ValueError:
+            log.rejected.append(
+                Rejected(
+                    0,
+                    f"# start_time: {metadata['start_time']}",
+                    "start_time is not ISO 8601 with a UTC offset",
+                )
+            )
+    return log
+
+
+def _parse_row(number: int, raw: str, header: list[str], iso: bool) -> tuple[LogRow | None, str]:
+    cells = next(csv.reader([raw]))
+    if len(cells) != len(header):
+        return None, f"line {number}: {len(cells)} cells where the header has {len(header)}"
+    time_text = cells[0].strip()
+    try:
+        time_s = _parse_iso(time_text) if iso else float(time_text)
+    except ValueError as exc:
+        return None, f"line {number}: bad time {time_text!r} ({exc})"
+    if not math.isfinite(time_s):
+        return None, f"line {number}: time is not finite"
+    values: dict[str, float] = {}
+    labels: dict[str, str | None] = {"vessel": None, "run": None}
+    for column, cell in zip(header[1:], cells[1:], strict=True):
+        text = cell.strip()
+        if column in LABEL_COLUMNS:
+            labels[column] = text or None
+            continue
+        if not text:
+            continue
+        try:
+            value = float(text)
+        except ValueError:
+            return None, f"line {number}: column {column!r} holds {text!r}, not a number"
+        if not math.isfinite(value):
+            return None, f"line {number}: column {column!r} is not finite"
+        values[COLUMN_CHANNELS[column]] = value
+    return LogRow(number, time_s, values, labels["vessel"], labels["run"]), ""
+
+
+def rows_from_samples(batches: Iterable[list[Sample]], start_epoch_s: float) -> Iterator[LogRow]:
+    """Yield one row per instant from batches of samples that share a time stamp.
+
+    Channels with no CSV column (raw ``*_emf`` readings, the wall) are left out.
+    """
+    for batch in batches:
+        if not batch:
+            continue
+        values = {s.channel: s.value for s in batch if s.channel in CHANNEL_COLUMNS}
+        yield LogRow(0, batch[0].t - start_epoch_s, values, batch[0].vessel)
+
+
+def write_csv(
+    out: TextIO,
+    rows: Iterable[LogRow],
+    metadata: dict[str, str | float],
+    channels: list[str],
+    with_vessel: bool = False,
+) -> int:
+    """Write a CSV interchange log to ``out``; return the number of data rows written.
+
+    ``channels`` fixes the column order (channel roles, see ``CHANNEL_COLUMNS``).
+    """
+    for key, value in metadata.items():
+        if "\n" in str(key) or "\n" in str(value) or ":" in str(key):
+            raise LogFormatError(f"metadata {key!r} cannot be written on one '# key: value' line")
+        text = _format_number(value) if isinstance(value, float) else str(value)
+        out.write(f"# {key}: {text}\n")
+    writer = csv.writer(out, lineterminator="\n")
+    columns = ["time_s", *(CHANNEL_COLUMNS[c] for c in channels)]
+    if with_vessel:
+        columns += ["vessel", "run"]
+    writer.writerow(columns)
+    count = 0
+    for row in rows:
+        cells = [_format_number(round(row.time_s, 3))]
+        for channel in channels:
+            value = row.values.get(channel)
+            cells.append("" if value is None else _format_number(value))
+        if with_vessel:
+            cells += [row.vessel or "", row.run or ""]
+        writer.writerow(cells)
+        count += 1
+    return count
+
+
+def iso_utc(epoch_s: float) -> str:
+    """Return an ISO 8601 UTC time stamp (with +00:00) for seconds since the epoch."""
+    return datetime.fromtimestamp(epoch_s, tz=UTC).isoformat()
+
+
+def to_text(rows: Iterable[LogRow], metadata: dict[str, str | float], channels: list[str]) -> str:
+    """Return a CSV interchange log as a string (for tests and small logs)."""
+    buffer = io.StringIO()
+    write_csv(buffer, rows, metadata, channels)
+    return buffer.getvalue()
