@@ -167,8 +167,8 @@ def steady_state(inputs: Inputs, params: VesselParams) -> tuple[float, ...]:
     Water: T_a + P/UA (infinite when UA = 0 and P > 0). Element: T_w + P/G.
     """
     if params.ua_w_per_k == 0.0:
-        water_c = inputs.ambient_c if inputs.power_w == 0.0 else math.copysign(
-            math.inf, inputs.power_w
+        water_c = (
+            inputs.ambient_c if inputs.power_w == 0.0 else math.copysign(math.inf, inputs.power_w)
         )
     else:
         water_c = inputs.ambient_c + inputs.power_w / params.ua_w_per_k
