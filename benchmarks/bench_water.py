@@ -32,8 +32,8 @@ from importlib.metadata import version
 
 import numpy as np
 
+from drivers.constants import KPA_PER_MPA, STANDARD_PRESSURE_KPA, ZERO_CELSIUS_K
 from monitor import water
-from monitor.constants import KPA_PER_MPA, STANDARD_PRESSURE_KPA, ZERO_CELSIUS_K
 
 T_GRID_C = np.round(np.arange(1.0, 100.0 + 1e-9, 0.05), 10)  # 1981 temperatures
 P_GRID_KPA = np.arange(50.0, 110.0 + 1e-9, 2.5)  # 25 pressures

@@ -47,11 +47,10 @@ from iapws.iapws97 import _Region1, _TSat_P
 from scipy.optimize import brentq
 
 from drivers import thermocouple
+from drivers.constants import STEFAN_BOLTZMANN_W_PER_M2_K4, ZERO_CELSIUS_K
 from drivers.errors import ConfigError, DriverError
 from drivers.sample import Quality, Sample
 
-ZERO_C_K = 273.15  # K at 0 °C, ITS-90 definition
-SIGMA_W_PER_M2_K4 = 5.670374419e-8  # Stefan-Boltzmann constant, CODATA 2018
 #: 2026-01-01T00:00:00Z, the default start of a simulated log (fixed so logs repeat).
 DEFAULT_START_EPOCH_S = 1767225600.0
 
@@ -70,23 +69,23 @@ def _liquid(t_centi_k: int, p_kpa: float) -> tuple[float, float]:
 
 def liquid_cp_j_per_kg_k(t_c: float, p_kpa: float) -> float:
     """Return c_p of liquid water in J/(kg·K), IF97 region 1 at the nearest 0.01 K."""
-    return _liquid(round((t_c + ZERO_C_K) * 100.0), p_kpa)[0]
+    return _liquid(round((t_c + ZERO_CELSIUS_K) * 100.0), p_kpa)[0]
 
 
 def liquid_h_j_per_kg(t_c: float, p_kpa: float) -> float:
     """Return the specific enthalpy of liquid water in J/kg, IF97 region 1 (exact T)."""
-    return float(_Region1(t_c + ZERO_C_K, p_kpa / 1000.0)["h"]) * 1000.0
+    return float(_Region1(t_c + ZERO_CELSIUS_K, p_kpa / 1000.0)["h"]) * 1000.0
 
 
 def _liquid_h_fast(t_c: float, p_kpa: float) -> float:
     """Return the enthalpy of liquid water in J/kg at the nearest 0.01 K (for draw-offs)."""
-    return _liquid(round((t_c + ZERO_C_K) * 100.0), p_kpa)[1]
+    return _liquid(round((t_c + ZERO_CELSIUS_K) * 100.0), p_kpa)[1]
 
 
 @lru_cache(maxsize=64)
 def saturation(p_kpa: float) -> tuple[float, float]:
     """Return (boiling point °C, latent heat J/kg) at p_kpa, from IAPWS-IF97."""
-    t_sat_c = float(_TSat_P(p_kpa / 1000.0)) - ZERO_C_K
+    t_sat_c = float(_TSat_P(p_kpa / 1000.0)) - ZERO_CELSIUS_K
     h_f = IAPWS97(P=p_kpa / 1000.0, x=0.0).h
     h_g = IAPWS97(P=p_kpa / 1000.0, x=1.0).h
     return t_sat_c, float(h_g - h_f) * 1000.0
@@ -399,9 +398,9 @@ def wall_loss_w(scenario: Scenario, wall_c: float, ambient_c: float) -> float:
     convection = h_conv * sh.outer_area_m2 * dt_k
     radiation = (
         sh.emissivity
-        * SIGMA_W_PER_M2_K4
+        * STEFAN_BOLTZMANN_W_PER_M2_K4
         * sh.outer_area_m2
-        * ((wall_c + ZERO_C_K) ** 4 - (ambient_c + ZERO_C_K) ** 4)
+        * ((wall_c + ZERO_CELSIUS_K) ** 4 - (ambient_c + ZERO_CELSIUS_K) ** 4)
     )
     return convection + radiation
 
@@ -424,6 +423,17 @@ def effective_ua_w_per_k(scenario: Scenario, water_c: float, ambient_c: float) -
     return wall_loss_w(scenario, wall_c, ambient_c) / (water_c - ambient_c)
 
 
+def sim_url(scenario: Scenario, seed: int) -> str:
+    """Return the ``sim://`` URL that rebuilds ``scenario``, with options that differ."""
+    base = scenario_by_name(scenario.name)
+    parts = [f"scenario={scenario.name}", f"seed={seed}"]
+    for option, attr in _URL_OPTIONS:
+        value = getattr(scenario, attr)
+        if value != getattr(base, attr):
+            parts.append(f"{option}={value}")
+    return "sim://?" + "&".join(parts)
+
+
 def scenario_metadata(scenario: Scenario, seed: int) -> dict[str, str | float]:
     """Return the ``key: value`` metadata that describes a simulated log.
 
@@ -433,7 +443,7 @@ def scenario_metadata(scenario: Scenario, seed: int) -> dict[str, str | float]:
     s = scenario
     t_sat_c, h_fg = saturation(s.pressure_kpa)
     meta: dict[str, str | float] = {
-        "source": f"sim://?scenario={s.name}&seed={seed}",
+        "source": sim_url(s, seed),
         "scenario": s.name,
         "seed": str(seed),
         "vessel": s.vessel,
@@ -859,6 +869,16 @@ class PacedClock:
         await asyncio.sleep(max(delay, 0.0))
 
 
+#: ``sim://`` URL options that change the scenario, and the Scenario field each sets.
+_URL_OPTIONS = (
+    ("vessel", "vessel"),
+    ("scale_mm", "scale_mm"),
+    ("duration_s", "duration_s"),
+    ("mass_kg", "water_mass_kg"),
+    ("pressure_kpa", "pressure_kpa"),
+)
+
+
 def parse_sim_url(url: str) -> tuple[Scenario, int, float | None]:
     """Return (scenario, seed, speed or None for fast) from a ``sim://`` URL.
 
@@ -872,31 +892,15 @@ def parse_sim_url(url: str) -> tuple[Scenario, int, float | None]:
     if parts.scheme != "sim":
         raise ConfigError(f"not a sim:// URL: {url!r}")
     query = {k: v[-1] for k, v in parse_qs(parts.query, strict_parsing=False).items()}
-    known = {
-        "scenario",
-        "seed",
-        "scale_mm",
-        "speed",
-        "vessel",
-        "duration_s",
-        "mass_kg",
-        "pressure_kpa",
-    }
+    known = {"scenario", "seed", "speed"} | {option for option, _ in _URL_OPTIONS}
     unknown = set(query) - known
     if unknown:
         raise ConfigError(f"{url!r}: unknown options {sorted(unknown)}; known: {sorted(known)}")
     try:
         changes: dict[str, object] = {}
-        for key, attr in (
-            ("scale_mm", "scale_mm"),
-            ("duration_s", "duration_s"),
-            ("mass_kg", "water_mass_kg"),
-            ("pressure_kpa", "pressure_kpa"),
-        ):
+        for key, attr in _URL_OPTIONS:
             if key in query:
-                changes[attr] = float(query[key])
-        if "vessel" in query:
-            changes["vessel"] = query["vessel"]
+                changes[attr] = query[key] if attr == "vessel" else float(query[key])
         seed = int(query.get("seed", "0"))
         speed = float(query["speed"]) if "speed" in query else None
     except ValueError as exc:

@@ -81,8 +81,7 @@ from typing import NamedTuple, TypeVar
 import numpy as np
 import numpy.typing as npt
 
-from drivers.errors import PhysicsRangeError
-from monitor.constants import (
+from drivers.constants import (
     ISA_AIR_GAS_CONSTANT_J_PER_KG_K,
     ISA_EARTH_RADIUS_M,
     ISA_LAPSE_RATE_K_PER_M,
@@ -95,6 +94,7 @@ from monitor.constants import (
     STANDARD_PRESSURE_KPA,
     ZERO_CELSIUS_K,
 )
+from drivers.errors import PhysicsRangeError
 
 __all__ = [
     "ALTITUDE_MAX_M",
@@ -132,7 +132,7 @@ ALTITUDE_MAX_M = 11000.0  # geometric, m (inside the ICAO troposphere)
 # Coefficients n1…n10 of the IF97 saturation equations 30 and 31: IAPWS R7-97(2012)
 # Table 34 (the table number from memory), values via REFERENCE §2.1. They are
 # equation coefficients, not physical constants, so they live beside the equation
-# rather than in monitor.constants.
+# rather than in drivers.constants.
 _N1, _N2, _N3, _N4, _N5, _N6, _N7, _N8, _N9, _N10 = (
     0.11670521452767e4,
     -0.72421316703206e6,

@@ -21,15 +21,15 @@ from hypothesis import strategies as st
 from iapws import IAPWS97
 from iapws.iapws97 import _PSat_T, _Region1, _Region2, _TSat_P
 
-from drivers.errors import PhysicsRangeError
-from monitor import water
-from monitor.constants import (
+from drivers.constants import (
     ISA_EARTH_RADIUS_M,
     KPA_PER_MPA,
     PA_PER_KPA,
     STANDARD_PRESSURE_KPA,
     ZERO_CELSIUS_K,
 )
+from drivers.errors import PhysicsRangeError
+from monitor import water
 
 P_ATM_MPA = STANDARD_PRESSURE_KPA / KPA_PER_MPA
 LIQUID_FUNCTIONS = [

@@ -1,7 +1,9 @@
 """Physical constants and unit factors used across ebullio, each with its unit and source.
 
 This is the only module that defines a physical constant; everything else imports
-from here, so a figure is written, sourced and checked once. Names end in their
+from here, so a figure is written, sourced and checked once. It sits in ``drivers/``,
+the bottom layer, so that the simulated rig and the thermocouple code may use it
+as well as ``monitor/`` (``drivers/`` imports nothing from ``monitor/``). Names end in their
 unit (``_K``, ``_KPA``, ``_J_PER_KG_K``...). A value marked "exact" is fixed by a
 definition rather than measured. Sources are the ones gathered in
 ``shared/reference/REFERENCE.md`` (§ numbers given beside each group).
