@@ -51,6 +51,8 @@ from drivers.constants import STEFAN_BOLTZMANN_W_PER_M2_K4, ZERO_CELSIUS_K
 from drivers.errors import ConfigError, DriverError
 from drivers.sample import Quality, Sample
 
+#: Kelvin below the boiling point at which nucleate boiling at the element starts.
+BOILING_ONSET_K = 5.0
 #: 2026-01-01T00:00:00Z, the default start of a simulated log (fixed so logs repeat).
 DEFAULT_START_EPOCH_S = 1767225600.0
 
@@ -457,6 +459,10 @@ def scenario_metadata(scenario: Scenario, seed: int) -> dict[str, str | float]:
         "rated_voltage_v": s.element.rated_voltage_v,
         "element_area_m2": s.element.area_m2,
     }
+    for role in ("water", "element"):
+        spec = s.sensors.get(role)
+        if spec is not None:
+            meta[f"{role}_sensor_tau_s"] = spec.tau_s  # the instrument's stated time constant
     if s.altitude_m is not None:
         meta["altitude_m"] = s.altitude_m
     if s.nominal_volume_l is not None:
@@ -537,15 +543,11 @@ class SimulatedRig:
         return self.scenario.element_conductance_w_per_k(self._boiling_fraction(self.state))
 
     def _boiling_fraction(self, st: RigState) -> float:
-        # nucleate boiling develops as the surface facing the water passes the boiling
-        # point. That surface sits one film drop above the water, q/(h·A), whatever
-        # scale lies beneath it; the clean-film G is used to keep this explicit.
-        s = self.scenario
-        g = s.element_conductance_w_per_k(0.0)
-        surface_c = (
-            st.water_c + g * (st.element_c - st.water_c) / s.clean_element_conductance_w_per_k()
-        )
-        return min(max((surface_c - self._t_sat_c) / 15.0, 0.0), 1.0)
+        # nucleate boiling at the element develops over the last few kelvin before the
+        # bulk boils (subcooled boiling), raising the film coefficient towards its
+        # boiling value; below that the element sees plain convection.
+        onset_c = self._t_sat_c - BOILING_ONSET_K
+        return min(max((st.water_c - onset_c) / BOILING_ONSET_K, 0.0), 1.0)
 
     def _power_w(self, st: RigState) -> float:
         if not st.heating:

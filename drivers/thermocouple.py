@@ -221,7 +221,11 @@ _R_INV_3 = (
     4.279433549e-01, -1.19157791e-02, 1.492290091e-04,
 )  # fmt: skip
 _R_INV_4 = (
-    3.406177836e04, -7.023729171e03, 5.582903813e02, -1.952394635e01, 2.560740231e-01,
+    3.406177836e04,
+    -7.023729171e03,
+    5.582903813e02,
+    -1.952394635e01,
+    2.560740231e-01,
 )
 
 # Type S
@@ -250,7 +254,11 @@ _S_INV_3 = (
     4.719686976e-01, -1.441693666e-02, 2.08161889e-04,
 )  # fmt: skip
 _S_INV_4 = (
-    5.333875126e04, -1.235892298e04, 1.092657613e03, -4.265693686e01, 6.24720542e-01,
+    5.333875126e04,
+    -1.235892298e04,
+    1.092657613e03,
+    -4.265693686e01,
+    6.24720542e-01,
 )
 
 # Type B
@@ -519,9 +527,7 @@ def _table(tc_type: str) -> ThermocoupleTable:
         return _TABLES[tc_type]
     except (KeyError, TypeError):
         known = ", ".join(TC_TYPES)
-        raise ConfigError(
-            f"unknown thermocouple type {tc_type!r}; known types: {known}"
-        ) from None
+        raise ConfigError(f"unknown thermocouple type {tc_type!r}; known types: {known}") from None
 
 
 def reference_table(tc_type: str) -> ThermocoupleTable:

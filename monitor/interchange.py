@@ -8,8 +8,9 @@ Layout (see shared/DESIGN.md):
   ``vessel`` and ``run``;
 * one row per instant; a blank cell is a missing reading.
 
-Reading never drops input: a row that cannot be used is kept, with its line
-number and the reason, in :attr:`InterchangeLog.rejected` for quarantine, and
+Reading never drops input: a row that cannot be used (a bad cell, the wrong
+number of cells, a time that does not move forward for its vessel) is kept, with
+its line number and the reason, in :attr:`InterchangeLog.rejected` for quarantine, and
 the rest of the file is read on. A file whose header cannot be understood is
 refused as a whole with :class:`LogFormatError`.
 """
@@ -156,6 +157,7 @@ def read_csv_text(handle: TextIO, name: str = "<text>") -> InterchangeLog:
     )
     iso = header[0] == "time"
     first_epoch: float | None = None
+    last_time: dict[str | None, float] = {}
     for number, raw in lines:
         if not raw.strip() or raw.lstrip().startswith("#"):
             if raw.strip():
@@ -167,6 +169,18 @@ def read_csv_text(handle: TextIO, name: str = "<text>") -> InterchangeLog:
         if row is None:
             log.rejected.append(Rejected(number, raw.rstrip("\r\n"), reason))
             continue
+        previous = last_time.get(row.vessel)
+        if previous is not None and row.time_s <= previous:
+            log.rejected.append(
+                Rejected(
+                    number,
+                    raw.rstrip("\r\n"),
+                    f"line {number}: time does not move forward "
+                    f"({cells_time(raw)} after an earlier row)",
+                )
+            )
+            continue
+        last_time[row.vessel] = row.time_s
         if iso:
             if first_epoch is None:
                 first_epoch = row.time_s
@@ -186,6 +200,11 @@ def read_csv_text(handle: TextIO, name: str = "<text>") -> InterchangeLog:
                 )
             )
     return log
+
+
+def cells_time(raw: str) -> str:
+    """Return the first cell of a raw CSV line (its time), for messages."""
+    return raw.split(",", 1)[0].strip()
 
 
 def _parse_row(number: int, raw: str, header: list[str], iso: bool) -> tuple[LogRow | None, str]:

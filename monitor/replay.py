@@ -1,0 +1,357 @@
+"""Replay recorded logs through the estimator: runs, per-step estimates and run summaries.
+
+A log is a CSV interchange file (shared/DESIGN.md). Each vessel's rows are split
+into runs:
+
+* at every change of the ``run`` column, when there is one;
+* otherwise at a cold start: a gap of more than :data:`RUN_GAP_S` between rows, or
+  the water falling by more than :data:`REFILL_DROP_K` within
+  :data:`REFILL_WINDOW_S` (the vessel was emptied and refilled);
+* and at every new file (several files are runs in order, per vessel).
+
+Each run gets a fresh filter, so its figures stand on that run alone.
+
+Which instant each run value is taken at
+    ``water_mass_kg`` and ``heat_capacity_j_per_k``: the end of the first heat-up
+    (the water reaching the target), where C is best known and nothing has boiled
+    away yet; at the end of the run if it never got there.
+    ``element_conductance_w_per_k``: when the first heat-up passed 80 % of its
+    rise, before boiling at the element changes the film; else as for the mass.
+    ``ua_w_per_k`` and the standing loss: the end of the run (cooling and standby
+    carry most of the information on losses).
+    ``efficiency``: heat taken up by water and vessel over the heat-up (C times
+    the rise of the filtered water temperature) over the electrical energy in it.
+    ``energy_wh``: the whole run. ``heat_up_s``: first heating to reaching the target.
+
+Rows that cannot be used are never dropped silently: each is reported with its
+file, line and reason under ``quarantined``, and counted per run.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TextIO
+
+from drivers.errors import LogFormatError
+from monitor import __version__
+from monitor.contracts import Estimate, Estimated, Level, finite_or_none
+from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.interchange import InterchangeLog, LogRow, read_csv
+
+RUN_GAP_S = 900.0
+REFILL_DROP_K = 10.0
+REFILL_WINDOW_S = 30.0
+#: Room temperature of the standing-loss figure, °C (common storage-heater test practice,
+#: from memory; see shared/reference/REFERENCE.md §6).
+STANDING_LOSS_ROOM_C = 20.0
+
+ESTIMATE_COLUMNS = [
+    "time_s", "vessel", "run", "phase", "water_c", "water_mass_kg", "water_mass_std",
+    "heat_capacity_j_per_k", "heat_capacity_std", "ua_w_per_k", "ua_std",
+    "element_conductance_w_per_k", "element_conductance_std", "target_c", "time_to_target_s",
+    "time_to_target_lo_s", "time_to_target_hi_s", "nis",
+]  # fmt: skip
+
+
+@dataclass
+class Quarantined:
+    """A row set aside: where it was, why, and the raw text."""
+
+    file: str
+    line: int
+    reason: str
+    raw: str
+
+    def as_dict(self) -> dict[str, object]:
+        """Return the row as a JSON-ready dict."""
+        return {"file": self.file, "line": self.line, "reason": self.reason, "raw": self.raw}
+
+
+@dataclass
+class Run:
+    """The rows of one run of one vessel, in time order, with its log's metadata."""
+
+    vessel: str
+    number: int
+    label: str
+    rows: list[LogRow]
+    log: InterchangeLog
+
+    @property
+    def quarantined(self) -> int:
+        """Return how many rejected lines of the log lie inside this run."""
+        if not self.rows:
+            return 0
+        lo, hi = self.rows[0].line, self.rows[-1].line
+        return sum(1 for r in self.log.rejected if lo <= r.line <= hi)
+
+
+@dataclass
+class RunResult:
+    """A replayed run: its summary (the JSON contract) and, if kept, every estimate."""
+
+    summary: dict[str, object]
+    estimates: list[Estimate] = field(default_factory=list)
+
+
+def _check_columns(log: InterchangeLog) -> None:
+    if "water" not in log.channels:
+        raise LogFormatError(f"{log.path}: the required column 'water_c' is missing")
+    if "power" not in log.channels and "energy" not in log.channels:
+        raise LogFormatError(f"{log.path}: a power column is required: 'power_w' or 'energy_wh'")
+
+
+def _starts_run(
+    row: LogRow, current: Run, previous: float | None, window: list[tuple[float, float]]
+) -> bool:
+    """Return True when ``row`` begins a new run after ``current`` (see the module docstring)."""
+    if row.run is not None:
+        return row.run != current.label
+    if previous is not None and row.time_s - previous > RUN_GAP_S:
+        return True
+    water_c = row.values.get("water")
+    return water_c is not None and any(w - water_c > REFILL_DROP_K for _, w in window)
+
+
+def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quarantined]]:
+    """Return the runs of every vessel across the logs, and the rows set aside.
+
+    Raises LogFormatError naming the file and column when a required column is missing.
+    """
+    runs: list[Run] = []
+    quarantined: list[Quarantined] = []
+    counters: dict[str, int] = {}
+    for log in logs:
+        _check_columns(log)
+        quarantined += [Quarantined(log.path, r.line, r.reason, r.raw) for r in log.rejected]
+        default_vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
+        open_runs: dict[str, Run] = {}
+        last_time: dict[str, float] = {}
+        recent: dict[str, list[tuple[float, float]]] = {}
+        for row in log.rows:
+            vessel = row.vessel or default_vessel
+            previous = last_time.get(vessel)
+            current = open_runs.get(vessel)
+            window = recent.setdefault(vessel, [])
+            if current is None or _starts_run(row, current, previous, window):
+                counters[vessel] = counters.get(vessel, 0) + 1
+                current = Run(vessel, counters[vessel], row.run or str(counters[vessel]), [], log)
+                open_runs[vessel] = current
+                runs.append(current)
+                window.clear()
+            current.rows.append(row)
+            last_time[vessel] = row.time_s
+            if "water" in row.values:
+                window.append((row.time_s, row.values["water"]))
+                while window and row.time_s - window[0][0] > REFILL_WINDOW_S:
+                    window.pop(0)
+    return runs, quarantined
+
+
+def _value(est: Estimated | None) -> dict[str, float] | None:
+    if est is None or not math.isfinite(est.value):
+        return None
+    return {"value": est.value, "std": est.std if math.isfinite(est.std) else None}
+
+
+def replay_run(
+    run: Run,
+    settings: EstimatorSettings | None = None,
+    keep_estimates: bool = False,
+    on_estimate: Callable[[Run, Estimate], None] | None = None,
+) -> RunResult:
+    """Return the summary of one run replayed through a fresh estimator."""
+    has_element = "element" in run.log.channels and any("element" in r.values for r in run.rows)
+    config = VesselConfig.from_metadata(run.vessel, run.log.metadata, has_element)
+    est = VesselEstimator(config, settings)
+    kept: list[Estimate] = []
+    last: Estimate | None = None
+    at_heat_up: Estimate | None = None
+    start_c: float | None = None
+    for row in run.rows:
+        e = est.step(row.time_s, row.values)
+        if e is None:
+            continue
+        last = e
+        if at_heat_up is None and est.totals.heat_up_done_s is not None:
+            at_heat_up = e
+        if start_c is None and est.totals.heat_up_start_c is not None:
+            start_c = est.totals.heat_up_start_c
+        if keep_estimates:
+            kept.append(e)
+        if on_estimate is not None:
+            on_estimate(run, e)
+    summary = _summary(run, est, last, at_heat_up, start_c)
+    return RunResult(summary, kept)
+
+
+def _summary(
+    run: Run,
+    est: VesselEstimator,
+    last: Estimate | None,
+    at_heat_up: Estimate | None,
+    start_c: float | None,
+) -> dict[str, object]:
+    tot, cfg = est.totals, est.config
+    base = {
+        "vessel": run.vessel,
+        "run": run.label,
+        "start_s": run.rows[0].time_s if run.rows else None,
+        "end_s": run.rows[-1].time_s if run.rows else None,
+        "file": run.log.path,
+        "steps": len(run.rows),
+        "quarantined_rows": run.quarantined,
+        "rejected_readings": tot.rejected_readings,
+        "boiling_point_c": est.boiling_point_c,
+        "target_c": est.target_c,
+        "pressure_kpa": cfg.pressure_kpa,
+        "model": "two-node" if cfg.has_element_sensor else "one-node",
+        "water_sensor_tau_s": cfg.water_sensor_tau_s,
+    }
+    if last is None:
+        return base | {
+            "water_mass_kg": None, "heat_capacity_j_per_k": None, "ua_w_per_k": None,
+            "element_conductance_w_per_k": None, "standing_loss_kwh_per_24h": None,
+            "standing_loss_at_c": None, "heat_up_s": None, "energy_wh": tot.energy_j / 3600.0,
+            "efficiency": None,
+            "flags": [{"name": "no_water_reading", "level": str(Level.WARNING),
+                       "message": "The run has no usable water temperature, so nothing "
+                       "could be estimated."}],
+        }  # fmt: skip
+    at = at_heat_up or last
+    heat_up_s = None
+    if tot.heat_up_done_s is not None and tot.heating_started_s is not None:
+        heat_up_s = tot.heat_up_done_s - tot.heating_started_s
+    efficiency = None
+    if at_heat_up is not None and start_c is not None and tot.heat_up_energy_j:
+        efficiency = at.heat_capacity_j_per_k.value * (at.water_c - start_c) / tot.heat_up_energy_j
+    conductance = None
+    if cfg.has_element_sensor:
+        conductance = est.conductance_at_80_percent or at.element_conductance_w_per_k
+    standing = None
+    standing_at = None
+    if cfg.target_c is not None and tot.holding_steps:
+        standing_at = cfg.target_c
+        scale = (standing_at - STANDING_LOSS_ROOM_C) * 24.0 / 1000.0  # W/K → kWh per 24 h
+        standing = Estimated(last.ua_w_per_k.value * scale, last.ua_w_per_k.std * abs(scale))
+    flags = [
+        {"name": f.name, "level": str(f.level), "message": f.message}
+        for f in tot.flags_raised.values()
+    ]
+    if run.quarantined:
+        flags.append({"name": "quarantined_rows", "level": str(Level.NOTICE),
+                      "message": f"{run.quarantined} rows of this run could not be used and "
+                      "were set aside (see 'quarantined')."})  # fmt: skip
+    return base | {
+        "water_mass_kg": _value(at.water_mass_kg),
+        "heat_capacity_j_per_k": _value(at.heat_capacity_j_per_k),
+        "ua_w_per_k": _value(last.ua_w_per_k),
+        "element_conductance_w_per_k": _value(conductance),
+        "standing_loss_kwh_per_24h": _value(standing),
+        "standing_loss_at_c": standing_at,
+        "heat_up_s": heat_up_s,
+        "energy_wh": tot.energy_j / 3600.0,
+        "efficiency": finite_or_none(efficiency),
+        "flags": flags,
+        "evaporated_kg": tot.evaporated_kg,
+        "phase_at_end": str(last.phase),
+    }
+
+
+def estimate_row(run: Run, e: Estimate) -> list[object]:
+    """Return one ``--estimates`` CSV row (columns :data:`ESTIMATE_COLUMNS`)."""
+
+    def num(value: float | None) -> str:
+        value = finite_or_none(value)
+        return "" if value is None else repr(round(value, 6))
+
+    g = e.element_conductance_w_per_k
+    m = e.water_mass_kg
+    t = e.target
+    return [
+        num(e.t_s), run.vessel, run.label, str(e.phase), num(e.water_c),
+        num(m.value if m else None), num(m.std if m else None),
+        num(e.heat_capacity_j_per_k.value), num(e.heat_capacity_j_per_k.std),
+        num(e.ua_w_per_k.value), num(e.ua_w_per_k.std),
+        num(g.value if g else None), num(g.std if g else None),
+        num(t.target_c if t else None), num(t.eta_s if t else None),
+        num(t.lo_s if t else None), num(t.hi_s if t else None), num(e.nis),
+    ]  # fmt: skip
+
+
+def replay(
+    paths: list[str],
+    settings: EstimatorSettings | None = None,
+    estimates_out: TextIO | None = None,
+    progress: TextIO | None = None,
+) -> dict[str, object]:
+    """Return the replay result of the logs at ``paths`` (the ``--json`` contract).
+
+    Writes per-step estimates to ``estimates_out`` when given, and progress lines to
+    ``progress`` for long logs.
+    """
+    logs = [read_csv(p) for p in paths]
+    runs, quarantined = split_runs(logs)
+    total = sum(len(r.rows) for r in runs)
+    writer = None
+    if estimates_out is not None:
+        writer = csv.writer(estimates_out, lineterminator="\n")
+        writer.writerow(ESTIMATE_COLUMNS)
+    done = 0
+    next_report = total // 10 if total >= 50_000 else None
+
+    def on_estimate(run: Run, e: Estimate) -> None:
+        nonlocal done, next_report
+        done += 1
+        if writer is not None:
+            writer.writerow(estimate_row(run, e))
+        if progress is not None and next_report is not None and done >= next_report:
+            print(f"replay: {100 * done // total:3d} % ({done} of {total} steps)",
+                  file=progress, flush=True)  # fmt: skip
+            next_report += total // 10
+
+    results = [replay_run(run, settings, on_estimate=on_estimate).summary for run in runs]
+    return {
+        "version": __version__,
+        "files": list(paths),
+        "runs": results,
+        "quarantined": [q.as_dict() for q in quarantined],
+    }
+
+
+def summary_table(result: dict[str, object]) -> str:
+    """Return a readable table of the runs in a replay result."""
+
+    def fmt(entry: object, digits: int) -> str:
+        if isinstance(entry, dict):
+            return f"{entry['value']:.{digits}f} ± {entry['std']:.{digits}f}"
+        if isinstance(entry, float):
+            return f"{entry:.{digits}f}"
+        return "-" if entry is None else str(entry)
+
+    lines = []
+    header = (f"{'vessel':<12} {'run':>4} {'heat-up s':>9} {'energy Wh':>9} {'water kg':>15} "
+              f"{'UA W/K':>15} {'G W/K':>13} {'loss kWh/24h':>15} {'eff.':>5}  flags")  # fmt: skip
+    lines.append(header)
+    lines.append("-" * len(header))
+    for run in result["runs"]:  # type: ignore[union-attr]
+        flags = ", ".join(f"{f['name']}({f['level']})" for f in run["flags"]) or "-"
+        lines.append(
+            f"{run['vessel']:<12} {run['run']:>4} {fmt(run['heat_up_s'], 0):>9} "
+            f"{fmt(run['energy_wh'], 1):>9} {fmt(run['water_mass_kg'], 3):>15} "
+            f"{fmt(run['ua_w_per_k'], 3):>15} {fmt(run['element_conductance_w_per_k'], 1):>13} "
+            f"{fmt(run['standing_loss_kwh_per_24h'], 2):>15} {fmt(run['efficiency'], 3):>5}  "
+            f"{flags}"
+        )
+    quarantined = result["quarantined"]
+    if quarantined:
+        lines.append(f"{len(quarantined)} rows set aside:")  # type: ignore[arg-type]
+        for q in quarantined[:20]:  # type: ignore[index]
+            lines.append(f"  {q['file']} line {q['line']}: {q['reason']}")
+        if len(quarantined) > 20:  # type: ignore[arg-type]
+            lines.append(f"  ... and {len(quarantined) - 20} more (see --json)")  # type: ignore[arg-type]
+    return "\n".join(lines)
