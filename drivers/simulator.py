@@ -51,6 +51,8 @@ from drivers.constants import STEFAN_BOLTZMANN_W_PER_M2_K4, ZERO_CELSIUS_K
 from drivers.errors import ConfigError, DriverError
 from drivers.sample import Quality, Sample
 
+#: Water left (kg) at which the simulated dry-boil cut-out switches the element off.
+DRY_CUTOUT_KG = 0.03
 #: Kelvin below the boiling point at which nucleate boiling at the element starts.
 BOILING_ONSET_K = 5.0
 #: 2026-01-01T00:00:00Z, the default start of a simulated log (fixed so logs repeat).
@@ -371,6 +373,7 @@ class RigState:
     ambient_c: float
     voltage_v: float
     heating: bool = False
+    cut_out: bool = False  # the dry-boil cut-out has tripped
     boiling_since_s: float | None = None
     bulb_c: float = 0.0
     # running totals, J (and kg) since the start
@@ -642,6 +645,11 @@ class SimulatedRig:
         st, s = self.state, self.scenario
         c = s.control
         t = self.elapsed_s
+        if st.water_mass_kg < DRY_CUTOUT_KG or st.cut_out:
+            # the dry-boil cut-out: once tripped the element stays off for the run
+            st.cut_out = True
+            st.heating = False
+            return
         if isinstance(c, KettleSwitch):
             if st.boiling_since_s is None and st.water_c >= self._t_sat_c - 1e-9:
                 st.boiling_since_s = t

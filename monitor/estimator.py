@@ -631,6 +631,20 @@ class VesselEstimator:
             for i in (lay.element, lay.element_lagged):
                 if i is not None:
                     q[i, i] += sd_c * sd_c
+        elif switched_w > 0.0:
+            # One node: the element is not modelled, yet after a switch it stores or gives
+            # back about C_e·ΔP/G before the water sees the change. Let the water state take
+            # that up (G unknown: a typical 40 K per rated kW-ish over-temperature, doubled).
+            _, c, _ = self._params(x)
+            rated = self.config.rated_power_w or 2000.0
+            over_k = switched_w * 40.0 / rated
+            sd_c = 2.0 * self.element_capacity_j_per_k * over_k / c
+            q = q.copy()
+            for i in (lay.water, lay.lagged):
+                if i is not None:
+                    q[i, i] += sd_c * sd_c
+            if lay.lagged is not None:
+                q[lay.water, lay.lagged] = q[lay.lagged, lay.water] = sd_c * sd_c
         core.predict(np.array(fx), f, q)
         self._boiling = clamped
         if clamped:
@@ -746,10 +760,17 @@ class VesselEstimator:
         for i in idx:
             for k in idx:
                 p[i, k] = 1.0
-        if name == "element" and lay.ln_g is not None:
-            # repeated disagreement at the element says G itself may be wrong: reopen it
-            prior = self.settings.conductance_prior_ln_sd**2
-            p[lay.ln_g, lay.ln_g] = max(p[lay.ln_g, lay.ln_g], prior / 4.0)
+        # Repeated disagreement says the parameters may be wrong, not just the
+        # temperatures: reopen them (G for the element; C and UA for the water).
+        reopen = [(lay.ln_g, self.settings.conductance_prior_ln_sd)] if name == "element" else [
+            (lay.ln_c, 0.1), (lay.ln_ua, self.settings.ua_prior_ln_sd / 2.0)]  # fmt: skip
+        for i, sd in reopen:
+            if i is not None and p[i, i] < sd * sd / 4.0:
+                scale = math.sqrt(sd * sd / 4.0 / p[i, i]) if p[i, i] > 0.0 else 0.0
+                p[i, :] *= scale
+                p[:, i] *= scale
+                if scale == 0.0:
+                    p[i, i] = sd * sd / 4.0
         core.predict(x, np.eye(lay.size), np.zeros((lay.size, lay.size)))
         core.P = p
 
@@ -943,7 +964,7 @@ def forecast_time_to_target(
         level_c = ambient_c + power_w / ua
         reason = (
             f"not reachable: at {power_w:.0f} W the losses (UA {ua:.2f} W/K) hold the water "
-            f"near {level_c:.1f} °C, below the {est.target_c:.1f} °C target"
+            f"near {level_c:.1f} °C, below the {est.target_c:.2f} °C target"
         )
         return TargetForecast(est.target_c, None, None, None, reason)
     n = len(mean)

@@ -267,7 +267,7 @@ def estimate_row(run: Run, e: Estimate) -> list[object]:
 
     def num(value: float | None) -> str:
         value = finite_or_none(value)
-        return "" if value is None else repr(round(value, 6))
+        return "" if value is None else repr(round(float(value), 6))
 
     g = e.element_conductance_w_per_k
     m = e.water_mass_kg

@@ -1,0 +1,169 @@
+"""The replay contract: JSON keys, estimate columns, runs, determinism and bad input."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from monitor.cli import main
+from monitor.interchange import read_csv_text
+from monitor.replay import ESTIMATE_COLUMNS, replay, split_runs
+
+LOGS = Path(__file__).resolve().parent.parent.parent / "replay_logs"
+KETTLE = str(LOGS / "kettle-clean.csv")
+
+RUN_KEYS = {
+    "vessel", "run", "start_s", "end_s", "water_mass_kg", "heat_capacity_j_per_k", "ua_w_per_k",
+    "element_conductance_w_per_k", "standing_loss_kwh_per_24h", "standing_loss_at_c",
+    "heat_up_s", "energy_wh", "efficiency", "flags",
+}  # fmt: skip
+ESTIMATE_KEYS = [
+    "time_s", "vessel", "run", "phase", "water_c", "water_mass_kg", "water_mass_std",
+    "heat_capacity_j_per_k", "heat_capacity_std", "ua_w_per_k", "ua_std",
+    "element_conductance_w_per_k", "element_conductance_std", "target_c", "time_to_target_s",
+    "time_to_target_lo_s", "time_to_target_hi_s", "nis",
+]  # fmt: skip
+
+
+def _json(argv, capsys):
+    assert main(["replay", *argv, "--json"]) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+def test_json_contract(capsys):
+    result = _json([KETTLE], capsys)
+    assert set(result) >= {"runs", "quarantined"}
+    (run,) = result["runs"]
+    assert set(run) >= RUN_KEYS
+    for key in ("water_mass_kg", "heat_capacity_j_per_k", "ua_w_per_k",
+                "element_conductance_w_per_k"):  # fmt: skip
+        assert set(run[key]) == {"value", "std"}
+    assert run["standing_loss_kwh_per_24h"] is None  # a kettle holds no temperature
+    assert run["vessel"] == "kettle-1"
+    assert (run["start_s"], run["end_s"]) == (0.0, 900.0)
+    # against the log's own truth_ metadata (simulated: 1.2 kg, G 54 W/K, UA 0.645 W/K)
+    assert run["water_mass_kg"]["value"] == pytest.approx(1.2, rel=0.04)
+    assert run["element_conductance_w_per_k"]["value"] == pytest.approx(54.0, rel=0.07)
+    assert run["ua_w_per_k"]["value"] == pytest.approx(0.645, rel=0.15)
+    assert 200.0 < run["heat_up_s"] < 240.0
+    assert 0.85 < run["efficiency"] < 1.0
+    for flag in run["flags"]:
+        assert set(flag) >= {"name", "level", "message"}
+
+
+def test_estimates_columns_and_rows(tmp_path, capsys):
+    out = tmp_path / "est.csv"
+    assert main(["replay", KETTLE, "--estimates", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "kettle-1" in text
+    assert "not a safety device" in text
+    with out.open(encoding="utf-8") as handle:
+        rows = list(csv.reader(handle))
+    assert rows[0] == ESTIMATE_KEYS == ESTIMATE_COLUMNS
+    assert len(rows) == 1 + 901
+    heating = [r for r in rows[1:] if r[3] == "heating" and r[14] and r[15] and r[16]]
+    assert len(heating) > 150, "time to target with its interval is given while heating"
+    for r in heating:
+        assert float(r[15]) <= float(r[14]) <= float(r[16])
+
+
+def test_same_log_same_figures_bit_for_bit(tmp_path):
+    outputs = []
+    for name in ("a", "b"):
+        est = tmp_path / f"{name}.csv"
+        proc = subprocess.run(
+            [sys.executable, "-m", "monitor.cli", "replay", KETTLE, "--json", "--estimates",
+             str(est)],
+            capture_output=True, text=True, timeout=120, check=True,
+        )  # fmt: skip
+        outputs.append((proc.stdout, est.read_bytes()))
+    assert outputs[0] == outputs[1]
+
+
+def test_several_files_are_runs_in_order_per_vessel(capsys):
+    result = _json([KETTLE, KETTLE, str(LOGS / "water-heater-12h.csv")], capsys)
+    runs = [(r["vessel"], r["run"]) for r in result["runs"]]
+    assert runs == [("kettle-1", "1"), ("kettle-1", "2"), ("heater-1", "1")]
+    heater = result["runs"][2]
+    assert heater["standing_loss_kwh_per_24h"] is not None
+    assert heater["standing_loss_at_c"] == 60.0
+    # truth_effective_ua 1.454 W/K at 60 °C: 1.454 · 40 K · 24 h = 1.40 kWh/24 h
+    assert heater["standing_loss_kwh_per_24h"]["value"] == pytest.approx(1.40, rel=0.2)
+
+
+def _log(text):
+    return read_csv_text(io.StringIO(text), "bench.csv")
+
+
+def test_runs_split_on_run_column_and_at_a_refill():
+    rows = ["time_s,water_c,power_w,run"]
+    rows += [f"{t},{20 + t / 10},2000,A" for t in range(60)]
+    rows += [f"{t},{30 + t / 10},2000,B" for t in range(60, 120)]
+    runs, _ = split_runs([_log("\n".join(rows) + "\n")])
+    assert [(r.label, len(r.rows)) for r in runs] == [("A", 60), ("B", 60)]
+    rows = ["time_s,water_c,power_w"]
+    rows += [f"{t},{20 + t / 2},2000" for t in range(100)]  # up to 69.5 °C
+    rows += [f"{t},{15 + (t - 100) / 2},2000" for t in range(100, 150)]  # emptied and refilled
+    runs, _ = split_runs([_log("\n".join(rows) + "\n")])
+    assert [len(r.rows) for r in runs] == [100, 50]
+
+
+def test_bad_rows_are_counted_and_reported(tmp_path, capsys):
+    lines = Path(KETTLE).read_text(encoding="utf-8").splitlines()
+    header_at = next(i for i, line in enumerate(lines) if line.startswith("time_s"))
+    lines[header_at + 50] = lines[header_at + 50].replace(",", ",oops,", 1)  # malformed
+    lines.insert(header_at + 100, lines[header_at + 20])  # time going backwards
+    bad = tmp_path / "bad.csv"
+    bad.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    result = _json([str(bad)], capsys)
+    reasons = [q["reason"] for q in result["quarantined"]]
+    assert len(reasons) == 2
+    assert any("cells where the header has" in r for r in reasons)
+    assert any("does not move forward" in r for r in reasons)
+    assert all(q["raw"] for q in result["quarantined"])
+    (run,) = result["runs"]
+    assert run["quarantined_rows"] == 2
+    assert any(f["name"] == "quarantined_rows" for f in run["flags"])
+    # and the figures are still there
+    assert run["water_mass_kg"]["value"] == pytest.approx(1.2, rel=0.04)
+
+
+@pytest.mark.parametrize(
+    ("header", "message"),
+    [
+        ("time_s,water_c,power_w,colour", "unknown column 'colour'"),
+        ("time_s,element_c,power_w", "required column 'water_c' is missing"),
+        ("time_s,water_c,ambient_c", "'power_w' or 'energy_wh'"),
+    ],
+)
+def test_bad_headers_give_a_clear_error_not_a_traceback(tmp_path, header, message):
+    path = tmp_path / "h.csv"
+    path.write_text(header + "\n0,20,0\n", encoding="utf-8")
+    proc = subprocess.run(
+        [sys.executable, "-m", "monitor.cli", "replay", str(path), "--json"],
+        capture_output=True, text=True, timeout=60, check=False,
+    )  # fmt: skip
+    assert proc.returncode == 2
+    assert message in proc.stderr
+    assert str(path) in proc.stderr
+    assert "Traceback" not in proc.stderr
+
+
+def test_missing_file_is_a_clear_error(tmp_path):
+    proc = subprocess.run(
+        [sys.executable, "-m", "monitor.cli", "replay", str(tmp_path / "nope.csv")],
+        capture_output=True, text=True, timeout=60, check=False,
+    )  # fmt: skip
+    assert proc.returncode == 2
+    assert "nope.csv" in proc.stderr
+    assert "Traceback" not in proc.stderr
+
+
+def test_replay_function_returns_the_same_as_the_cli(capsys):
+    assert replay([KETTLE])["runs"] == _json([KETTLE], capsys)["runs"]
