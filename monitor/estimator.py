@@ -214,9 +214,11 @@ class FastCore:
     Update of one reading z of state j (H = e_jᵀ, so scalar algebra):
         ν = z - x_j,   S = P_jj + r,   K = P[:, j] / S
         x⁺ = x + K ν
-        P⁺ = (I - K H) P (I - K H)ᵀ + K r Kᵀ        Joseph form: stays symmetric and
-                                                      positive for any gain, including
-                                                      the zeroed ones of a consider update
+        P⁺ = (I - K H) P (I - K H)ᵀ + K r Kᵀ        Joseph form, which filterpy uses
+           = P - K S Kᵀ                              equal for the optimal K: used here,
+                                                      then symmetrised
+    The Joseph form itself is kept for consider updates (some gains zeroed), where
+    the short form does not hold.
     """
 
     def __init__(self, x: np.ndarray, p: np.ndarray) -> None:
@@ -234,14 +236,24 @@ class FastCore:
 
     def update(self, j: int, z: float, r: float, frozen: tuple[int, ...] = ()) -> None:
         """Apply a reading z of state j; states in ``frozen`` get zero gain (consider update)."""
-        nu, s = self.innovation(j, z, r)
-        k = self.P[:, j] / s
-        if frozen:
-            k = k.copy()
-            k[list(frozen)] = 0.0
+        p = self.P
+        column = p[:, j]
+        s = column[j] + r
+        nu = z - self.x[j]
+        k = column / s
+        if not frozen:
+            # With the optimal gain the Joseph form reduces exactly to P - K S Kᵀ =
+            # P - P[:, j] P[j, :] / S: three array operations instead of seven. It is
+            # symmetrised so rounding cannot make P lose its symmetry over a long run.
+            self.x = self.x + k * nu
+            updated = p - np.multiply.outer(k, column)
+            self.P = 0.5 * (updated + updated.T)
+            return
+        k = k.copy()
+        k[list(frozen)] = 0.0
         self.x = self.x + k * nu
         kc = k[:, None]
-        a = self.P - kc * self.P[j, :]
+        a = p - kc * p[j, :]
         self.P = a - a[:, j : j + 1] * k + r * kc * k
 
 

@@ -119,25 +119,29 @@ def two_node_step(
     temps = [water_eq + m11 * dw + m12 * de, element_eq + m21 * dw + m22 * de]
     rows = [[m11, m12], [m21, m22]]
     # each lagged reading follows its node: node(s) - eq = Σ_i e^{μ_i s}·(row of P_i)·(x0 - x_eq)
-    lags = []
-    if lag_rate_per_s is not None and lagged_c is not None:
-        lags.append((lagged_c, lag_rate_per_s, water_eq, (p1[0], p1[1]), (p2[0], p2[1])))
-    if element_lag_rate_per_s is not None and element_lagged_c is not None:
-        lags.append(
-            (element_lagged_c, element_lag_rate_per_s, element_eq, (p1[2], p1[3]), (p2[2], p2[3]))
-        )
-    for row in rows:
-        row.extend([0.0] * len(lags))
-    for k, (y0, lam, eq, r1, r2) in enumerate(lags):
+    has_water_lag = lag_rate_per_s is not None and lagged_c is not None
+    has_element_lag = element_lag_rate_per_s is not None and element_lagged_c is not None
+    if not (has_water_lag or has_element_lag):
+        return tuple(temps), ((m11, m12), (m21, m22))
+    width = 2 + has_water_lag + has_element_lag
+    rows = [[m11, m12] + [0.0] * (width - 2), [m21, m22] + [0.0] * (width - 2)]
+    k = 2
+    terms = []
+    if has_water_lag:
+        terms.append((lagged_c, lag_rate_per_s, water_eq, p1[0], p1[1], p2[0], p2[1]))
+    if has_element_lag:
+        terms.append((element_lagged_c, element_lag_rate_per_s, element_eq, *p1[2:], *p2[2:]))
+    for y0, lam, eq, r1w, r1e, r2w, r2e in terms:
         e_lam = math.exp(-lam * dt_s)
         g1 = lam * _expm1_ratio(mu1, -lam, dt_s)
         g2 = lam * _expm1_ratio(mu2, -lam, dt_s)
-        d_w = g1 * r1[0] + g2 * r2[0]
-        d_e = g1 * r1[1] + g2 * r2[1]
+        d_w = g1 * r1w + g2 * r2w
+        d_e = g1 * r1e + g2 * r2e
         temps.append(eq + (y0 - eq) * e_lam + d_w * dw + d_e * de)
-        row = [d_w, d_e] + [0.0] * len(lags)
-        row[2 + k] = e_lam
+        row = [d_w, d_e] + [0.0] * (width - 2)
+        row[k] = e_lam
         rows.append(row)
+        k += 1
     return tuple(temps), tuple(tuple(r) for r in rows)
 
 
