@@ -15,6 +15,7 @@ import sys
 from pathlib import Path
 
 from drivers.errors import EbullioError
+from drivers.sample import Sample
 from drivers.simulator import (
     PacedClock,
     SimulatedRig,
@@ -23,6 +24,8 @@ from drivers.simulator import (
     scenario_metadata,
 )
 from monitor import __version__
+from monitor.contracts import Estimate
+from monitor.estimator import VesselConfig, VesselEstimator
 from monitor.interchange import rows_from_samples, write_csv
 from monitor.replay import replay, summary_table
 from monitor.water import boiling_point_c, pressure_at_altitude_kpa
@@ -86,50 +89,76 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _demo_line(elapsed_s: float, e: Estimate | None, readings: dict[str, float]) -> str:
+    """Return one live line of the demo: readings and the estimator's figures."""
+    if e is None:
+        return f"{elapsed_s:7.0f}  waiting for a water reading"
+    if e.target is None:
+        eta = "-"
+    elif not e.target.reachable:
+        eta = "not reachable"
+    else:
+        lo = f"{e.target.lo_s:.0f}" if e.target.lo_s is not None else "?"
+        hi = f"{e.target.hi_s:.0f}" if e.target.hi_s is not None else "?"
+        eta = f"{e.target.eta_s:.0f} s ({lo}-{hi})"
+    g = e.element_conductance_w_per_k
+    mass = e.water_mass_kg
+    return (
+        f"{elapsed_s:7.0f} {e.phase!s:>8} {e.water_c:8.2f} {readings.get('power', 0.0):7.0f} "
+        f"{eta:>20} {mass.value if mass else float('nan'):6.3f}±{mass.std if mass else 0:.3f} "
+        f"{e.ua_w_per_k.value:6.3f}±{e.ua_w_per_k.std:.3f} "
+        + (f"{g.value:6.1f}±{g.std:.1f}" if g else "     -")
+        + ("  " + "; ".join(f.message for f in e.flags if f.level != "notice") if e.flags else "")
+    )
+
+
 async def _demo(args: argparse.Namespace) -> int:
     scenario = _scenario_from(args)
     clock = PacedClock(args.speed)
     url = f"sim://?scenario={scenario.name}&seed={args.seed}&speed={args.speed}"
     driver = SimulatedRigDriver(url, clock=clock, scenario=scenario)
     rig = driver.rig
+    meta = {"ebullio_version": __version__, **scenario_metadata(rig.scenario, args.seed)}
+    estimator = VesselEstimator(VesselConfig.from_metadata(scenario.vessel, meta, True))
     print(SAFETY_NOTE)
     print(
         f"demo: simulated {scenario.name} {scenario.vessel!r}, {scenario.water_mass_kg} kg of "
         f"water, boiling point {boiling_point_c(scenario.pressure_kpa):.2f} °C at "
         f"{scenario.pressure_kpa:.2f} kPa, running at {args.speed:g}x real time"
     )
-    print(f"{'time s':>8} {'water °C':>9} {'element °C':>10} {'room °C':>8} {'power W':>8}")
+    print(
+        f"{'time s':>7} {'phase':>8} {'water °C':>8} {'power W':>7} "
+        f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>10}"
+    )
     out_path = Path(args.out)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    latest: dict[str, float] = {}
-    batches: list[list] = []
-    current: list = []
+    batches: list[list[Sample]] = []
+    current: list[Sample] = []
     last_print = -1e9
+
+    def instant(batch: list[Sample]) -> None:
+        nonlocal last_print
+        batches.append(batch)
+        readings = {s.channel: s.value for s in batch}
+        elapsed = batch[0].t - rig.scenario.start_epoch_s
+        e = estimator.step(elapsed, readings)
+        if elapsed - last_print >= args.every_s:
+            last_print = elapsed
+            print(_demo_line(elapsed, e, readings), flush=True)
+
     async with driver:
         async for sample in driver.samples():
             if current and sample.t != current[0].t:
-                batches.append(current)
+                instant(current)
                 current = []
             current.append(sample)
-            latest[sample.channel] = sample.value
-            elapsed = sample.t - rig.scenario.start_epoch_s
-            if elapsed - last_print >= args.every_s and sample.channel == "energy":
-                last_print = elapsed
-                print(
-                    f"{elapsed:8.0f} {latest.get('water', float('nan')):9.2f} "
-                    f"{latest.get('element', float('nan')):10.2f} "
-                    f"{latest.get('ambient', float('nan')):8.2f} "
-                    f"{latest.get('power', float('nan')):8.0f}",
-                    flush=True,
-                )
     if current:
-        batches.append(current)
-    meta = {"ebullio_version": __version__, **scenario_metadata(rig.scenario, args.seed)}
+        instant(current)
     with open(out_path, "w", encoding="utf-8", newline="") as handle:
         count = write_csv(
             handle, rows_from_samples(batches, rig.scenario.start_epoch_s), meta, SIM_CHANNELS
         )
-    print(f"demo: recorded {count} rows to {out_path}")
+    print(f"demo: recorded {count} rows to {out_path}; replay it with: ebullio replay {out_path}")
     return 0
 
 
@@ -196,8 +225,9 @@ def build_parser() -> argparse.ArgumentParser:
     demo = verbs.add_parser(
         "demo",
         help="run the simulated rig live and record it",
-        description="The embedded default: a simulated kettle heated to the boil, shown live "
-        "in the terminal and recorded to a CSV log.",
+        description="The embedded default: a simulated kettle heated to the boil, with the live "
+        "estimator's figures (phase, time to boil with its 90 %% interval, water mass, UA, "
+        "element conductance) shown in the terminal, and recorded to a CSV log.",
         epilog="example: ebullio demo --speed 20 --out out/demo.csv",
     )
     demo.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")

@@ -84,7 +84,7 @@ class EstimatorSettings:
     element_noise_sd_c: float = 0.3  # reading noise of the element thermocouple, K
     water_process_sd_c: float = 0.01  # model error in T_w, K per √s
     element_process_sd_c: float = 0.3  # model error in T_e, K per √s
-    ua_walk: float = 1.0e-3  # ln UA random walk, per √s (6 % an hour)
+    ua_walk: float = 3.0e-4  # ln UA random walk, per √s (1.8 % an hour)
     capacity_walk: float = 1.0e-4  # ln C random walk, per √s (0.6 % an hour)
     conductance_walk: float = 1.0e-3  # ln G random walk, per √s
     ua_prior_w_per_k: float = 1.0
