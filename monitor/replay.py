@@ -5,8 +5,9 @@ into runs:
 
 * at every change of the ``run`` column, when there is one;
 * otherwise at a cold start: a gap of more than :data:`RUN_GAP_S` between rows, or
-  the water falling by more than :data:`REFILL_DROP_K` within
-  :data:`REFILL_WINDOW_S` (the vessel was emptied and refilled);
+  two readings in a row more than :data:`REFILL_DROP_K` below the median of the
+  last :data:`REFILL_WINDOW_S` (the vessel was emptied and refilled; one spike
+  or the slow cooling of a draw-off does not split a run);
 * and at every new file (several files are runs in order, per vessel).
 
 Each run gets a fresh filter, so its figures stand on that run alone.
@@ -113,8 +114,14 @@ def _starts_run(
         return row.run != current.label
     if previous is not None and row.time_s - previous > RUN_GAP_S:
         return True
+    # a refill: the reading and the one before it both lie well below the recent median,
+    # so a single spike (either way) or a draw-off's gradual cooling does not split
     water_c = row.values.get("water")
-    return water_c is not None and any(w - water_c > REFILL_DROP_K for _, w in window)
+    if water_c is None or len(window) < 3:
+        return False
+    recent = sorted(w for _, w in window[:-1])
+    median = recent[len(recent) // 2]
+    return median - water_c > REFILL_DROP_K and median - window[-1][1] > REFILL_DROP_K
 
 
 def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quarantined]]:
@@ -138,8 +145,13 @@ def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quaranti
             current = open_runs.get(vessel)
             window = recent.setdefault(vessel, [])
             if current is None or _starts_run(row, current, previous, window):
+                refill = current is not None and row.run is None and (
+                    previous is not None and row.time_s - previous <= RUN_GAP_S
+                )
+                carried = [current.rows.pop()] if refill and current.rows else []
                 counters[vessel] = counters.get(vessel, 0) + 1
-                current = Run(vessel, counters[vessel], row.run or str(counters[vessel]), [], log)
+                label = row.run or str(counters[vessel])
+                current = Run(vessel, counters[vessel], label, carried, log)
                 open_runs[vessel] = current
                 runs.append(current)
                 window.clear()
