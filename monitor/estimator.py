@@ -102,6 +102,9 @@ class EstimatorSettings:
     hold_band_k: float = 8.0  # holding: within this of the setpoint once reached
     dry_mass_kg: float = 0.1  # below this while boiling: dry-firing alarm
     forecast: bool = True
+    # one node only: extra model error in T_w while the unmodelled element settles
+    settle_after_switch_s: float = 40.0
+    settle_water_sd_c: float = 0.05  # K per √s
     # 1σ model error of a time to target, as a fraction of it: the sigma points carry
     # only the parameters' uncertainty, not the model's own simplifications (the wall
     # and the element film are not what the lumped model says). 2.5 % was set so the
@@ -390,6 +393,7 @@ class VesselEstimator:
         self._watch = {"water": _SensorWatch(), "element": _SensorWatch()}
         self._last_power_w = 0.0
         self._previous_mean_power_w = 0.0
+        self._last_switch_s: float | None = None
         self._last_energy_wh: float | None = None
         self._last_ambient_c: float | None = None
         self._boiling = False
@@ -639,8 +643,14 @@ class VesselEstimator:
         self.totals.evaporated_kg += evaporated_j / self.latent_heat_j_per_kg
         clamped = m is None
         q = self._process_noise(dt_s, clamped)
+        s = self.settings
         switched_w = abs(power_w - self._previous_mean_power_w)
         self._previous_mean_power_w = power_w
+        if switched_w > 0.2 * (self.config.rated_power_w or 2000.0):
+            self._last_switch_s = self.t_s
+        t_since_switch = (
+            self.t_s - self._last_switch_s if self._last_switch_s is not None else math.inf
+        )
         if switched_w > 0.0 and lay.element is not None:
             # Only the mean power over the interval is known, not when inside it the
             # element switched: allow for half the step's energy change landing early
@@ -650,7 +660,7 @@ class VesselEstimator:
             for i in (lay.element, lay.element_lagged):
                 if i is not None:
                     q[i, i] += sd_c * sd_c
-        elif switched_w > 0.0:
+        elif switched_w > 0.0 or t_since_switch < s.settle_after_switch_s:
             # One node: the element is not modelled, yet after a switch it stores or gives
             # back about C_e·ΔP/G before the water sees the change. Let the water state take
             # that up (G unknown: a typical 40 K per rated kW-ish over-temperature, doubled).
@@ -658,12 +668,17 @@ class VesselEstimator:
             rated = self.config.rated_power_w or 2000.0
             over_k = switched_w * 40.0 / rated
             sd_c = 2.0 * self.element_capacity_j_per_k * over_k / c
+            # and while the element settles after a switch (a few of its C_e/G, longer
+            # with scale) the water does not yet follow the one-node model: more model error
+            var_c = sd_c * sd_c + (
+                s.settle_water_sd_c**2 * dt_s if t_since_switch < s.settle_after_switch_s else 0.0
+            )
             q = q.copy()
             for i in (lay.water, lay.lagged):
                 if i is not None:
-                    q[i, i] += sd_c * sd_c
+                    q[i, i] += var_c
             if lay.lagged is not None:
-                q[lay.water, lay.lagged] = q[lay.lagged, lay.water] = sd_c * sd_c
+                q[lay.water, lay.lagged] = q[lay.lagged, lay.water] = var_c
         core.predict(np.array(fx), f, q)
         self._boiling = clamped
         if clamped:
