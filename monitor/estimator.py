@@ -81,7 +81,7 @@ Z_90 = 1.6448536269514722
 class EstimatorSettings:
     """Tuning of the filter. Random-walk rates are fractions per √s of the parameter."""
 
-    water_noise_sd_c: float = 0.08  # reading noise of the water thermocouple, K
+    water_noise_sd_c: float = 0.05  # reading noise of the water thermocouple, K
     element_noise_sd_c: float = 0.3  # reading noise of the element thermocouple, K
     water_process_sd_c: float = 0.002  # model error in T_w, K per √s
     element_process_sd_c: float = 0.3  # model error in T_e, K per √s
@@ -107,10 +107,10 @@ class EstimatorSettings:
     settle_water_sd_c: float = 0.05  # K per √s
     # 1σ model error of a time to target, as a fraction of it: the sigma points carry
     # only the parameters' uncertainty, not the model's own simplifications (the wall
-    # and the element film are not what the lumped model says). 2.5 % was set so the
+    # and the element film are not what the lumped model says). 1.5 % was set so the
     # 90 % interval covers the simulated truth about 90 % of the time
     # (benchmarks/bench_estimator.py); revisit on real rig data.
-    forecast_model_error: float = 0.025
+    forecast_model_error: float = 0.015
 
 
 @dataclass(frozen=True)
