@@ -270,6 +270,10 @@ def two_node_time_to_target(
 
     lo = 0.0
     guess = math.log((target_c - water_eq) / c1) / mu1 if c1 < 0.0 else 1.0
+    if guess > 0.0 and abs(c2 * math.exp(mu2 * guess)) < 1e-10:
+        # the fast (element) mode has died away by then: the slow mode's closed form
+        # is the root to well under a microkelvin, so no iteration is needed
+        return guess
     hi = max(guess, 1e-3)
     while gap(hi) < 0.0:
         lo, hi = hi, hi * 2.0
