@@ -186,6 +186,17 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+def _add_scenario_options(p: argparse.ArgumentParser, seed: int) -> None:
+    """Add the simulated scenario's options (shared by ``simulate`` and ``demo``)."""
+    p.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
+    p.add_argument("--seed", type=int, default=seed, help=f"random seed (default {seed})")
+    p.add_argument("--scale-mm", type=float, help="limescale on the element, mm (default 0)")
+    p.add_argument("--duration-s", type=float, help="length of the run, s")
+    p.add_argument("--mass-kg", type=float, help="water fill, kg")
+    p.add_argument("--vessel", help="vessel id written to the log")
+    _add_site_options(p)
+
+
 def _add_site_options(p: argparse.ArgumentParser) -> None:
     site = p.add_mutually_exclusive_group()
     site.add_argument("--pressure-kpa", type=float, help="site pressure, kPa (default 101.325)")
@@ -212,13 +223,7 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="example: ebullio simulate --scenario kettle --seed 7 --scale-mm 0.2 "
         "--out kettle.csv",
     )
-    sim.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
-    sim.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
-    sim.add_argument("--scale-mm", type=float, help="limescale on the element, mm (default 0)")
-    sim.add_argument("--duration-s", type=float, help="length of the run, s")
-    sim.add_argument("--mass-kg", type=float, help="water fill, kg")
-    sim.add_argument("--vessel", help="vessel id written to the log")
-    _add_site_options(sim)
+    _add_scenario_options(sim, seed=0)
     sim.add_argument("--out", required=True, help="CSV file to write")
     sim.set_defaults(func=cmd_simulate)
 
@@ -230,15 +235,9 @@ def build_parser() -> argparse.ArgumentParser:
         "element conductance) shown in the terminal, and recorded to a CSV log.",
         epilog="example: ebullio demo --speed 20 --out out/demo.csv",
     )
-    demo.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
-    demo.add_argument("--seed", type=int, default=7)
+    _add_scenario_options(demo, seed=7)
     demo.add_argument("--speed", type=float, default=20.0, help="times real time (default 20)")
-    demo.add_argument("--duration-s", type=float, help="length of the run, s")
-    demo.add_argument("--scale-mm", type=float, help="limescale on the element, mm")
-    demo.add_argument("--mass-kg", type=float, help="water fill, kg")
-    demo.add_argument("--vessel", help="vessel id")
     demo.add_argument("--every-s", type=float, default=10.0, help="print every N simulated s")
-    _add_site_options(demo)
     demo.add_argument("--out", default="out/demo.csv", help="log file (default out/demo.csv)")
     demo.set_defaults(func=cmd_demo)
     rep = verbs.add_parser(

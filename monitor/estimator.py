@@ -335,7 +335,6 @@ class _SensorWatch:
     same_since_s: float | None = None
     model_at_same: float | None = None
     rejected_in_row: int = 0
-    predict_only: str = ""  # why, when the sensor is switched to predict-only
 
 
 @dataclass
@@ -348,7 +347,6 @@ class RunTotals:
     heat_up_start_c: float | None = None
     heat_up_start_energy_j: float = 0.0
     heat_up_energy_j: float | None = None
-    start_energy_j: float = 0.0
     evaporated_kg: float = 0.0
     rejected_readings: int = 0
     reached_target: bool = False
@@ -409,12 +407,9 @@ class VesselEstimator:
     # -- set-up -------------------------------------------------------------------------
 
     def _prior_capacity_j_per_k(self) -> float:
-        cfg = self.config
-        vessel_c = cfg.vessel_heat_capacity_j_per_k
-        if cfg.has_element_sensor:
-            vessel_c -= self.element_capacity_j_per_k
-        volume = cfg.nominal_volume_l if cfg.nominal_volume_l else 1.5
-        return max(vessel_c, 0.0) + 4186.0 * 0.7 * volume  # 70 % full, c_p of water (common)
+        volume = self.config.nominal_volume_l or 1.5
+        # 70 % full at c_p 4186 J/(kg·K) (common practice, no source)
+        return self._non_water_capacity() + 4186.0 * 0.7 * volume
 
     def _initialise(self, t_s: float, water_c: float, element_c: float | None) -> None:
         lay, s = self.layout, self.settings
@@ -443,7 +438,6 @@ class VesselEstimator:
             p[lay.ln_g, lay.ln_g] = s.conductance_prior_ln_sd**2
         self.core = self._core_type(x, p)
         self.t_s = t_s
-        self.totals.start_energy_j = self.totals.energy_j
 
     # -- the model ------------------------------------------------------------------------
 
@@ -707,7 +701,6 @@ class VesselEstimator:
             if value is None:
                 continue
             if not self._plausible(value):
-                watch.predict_only = f"reading {value:g} °C is outside the plausible range"
                 flags.append(
                     Flag(
                         f"{name}_sensor_fault",
@@ -730,7 +723,6 @@ class VesselEstimator:
                     )
                 )
                 continue
-            watch.predict_only = ""
             r = sd * sd
             nu, var = self.core.innovation(j, value, r)
             nis = nu * nu / var
@@ -945,8 +937,8 @@ class VesselEstimator:
         """Return G as estimated when the first heat-up passed 80 % of its rise, or None."""
         return self._g_at_80
 
-    def forecast_state(self) -> tuple[np.ndarray, np.ndarray, list[int]]:
-        """Return (mean, covariance, indices) of the states a forecast depends on."""
+    def forecast_state(self) -> tuple[np.ndarray, np.ndarray]:
+        """Return (mean, covariance) of the states a forecast depends on."""
         lay = self.layout
         idx = (
             [lay.water]
@@ -955,7 +947,7 @@ class VesselEstimator:
             + ([lay.ln_g] if lay.ln_g is not None else [])
         )
         x, p = self.core.x, self.core.P
-        return x[idx], p[np.ix_(idx, idx)], idx
+        return x[idx], p[np.ix_(idx, idx)]
 
 
 def _time_to_target(
@@ -992,7 +984,7 @@ def forecast_time_to_target(
     model-error allowance (``EstimatorSettings.forecast_model_error``). "Not reachable"
     when the mean point levels off below the target.
     """
-    mean, cov, _ = est.forecast_state()
+    mean, cov = est.forecast_state()
     eta = _time_to_target(est, mean, power_w, ambient_c)
     if eta is None:
         ua = math.exp(mean[-3] if est.layout.element is not None else mean[-2])

@@ -33,7 +33,7 @@ from __future__ import annotations
 import csv
 import math
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
 
@@ -91,14 +91,6 @@ class Run:
         return sum(1 for r in self.log.rejected if lo <= r.line <= hi)
 
 
-@dataclass
-class RunResult:
-    """A replayed run: its summary (the JSON contract) and, if kept, every estimate."""
-
-    summary: dict[str, object]
-    estimates: list[Estimate] = field(default_factory=list)
-
-
 def _check_columns(log: InterchangeLog) -> None:
     if "water" not in log.channels:
         raise LogFormatError(f"{log.path}: the required column 'water_c' is missing")
@@ -145,8 +137,10 @@ def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quaranti
             current = open_runs.get(vessel)
             window = recent.setdefault(vessel, [])
             if current is None or _starts_run(row, current, previous, window):
-                refill = current is not None and row.run is None and (
-                    previous is not None and row.time_s - previous <= RUN_GAP_S
+                refill = (
+                    current is not None
+                    and row.run is None
+                    and (previous is not None and row.time_s - previous <= RUN_GAP_S)
                 )
                 carried = [current.rows.pop()] if refill and current.rows else []
                 counters[vessel] = counters.get(vessel, 0) + 1
@@ -173,14 +167,12 @@ def _value(est: Estimated | None) -> dict[str, float] | None:
 def replay_run(
     run: Run,
     settings: EstimatorSettings | None = None,
-    keep_estimates: bool = False,
     on_estimate: Callable[[Run, Estimate], None] | None = None,
-) -> RunResult:
-    """Return the summary of one run replayed through a fresh estimator."""
+) -> dict[str, object]:
+    """Return the summary of one run (the JSON contract) replayed through a fresh estimator."""
     has_element = "element" in run.log.channels and any("element" in r.values for r in run.rows)
     config = VesselConfig.from_metadata(run.vessel, run.log.metadata, has_element)
     est = VesselEstimator(config, settings)
-    kept: list[Estimate] = []
     last: Estimate | None = None
     at_heat_up: Estimate | None = None
     start_c: float | None = None
@@ -193,12 +185,9 @@ def replay_run(
             at_heat_up = e
         if start_c is None and est.totals.heat_up_start_c is not None:
             start_c = est.totals.heat_up_start_c
-        if keep_estimates:
-            kept.append(e)
         if on_estimate is not None:
             on_estimate(run, e)
-    summary = _summary(run, est, last, at_heat_up, start_c)
-    return RunResult(summary, kept)
+    return _summary(run, est, last, at_heat_up, start_c)
 
 
 def _summary(
@@ -326,7 +315,7 @@ def replay(
                   file=progress, flush=True)  # fmt: skip
             next_report += total // 10
 
-    results = [replay_run(run, settings, on_estimate=on_estimate).summary for run in runs]
+    results = [replay_run(run, settings, on_estimate=on_estimate) for run in runs]
     return {
         "version": __version__,
         "files": list(paths),

@@ -40,6 +40,18 @@ def _expm1_ratio(a: float, b: float, t: float) -> float:
     return math.exp(b * t) * math.expm1(x) / d
 
 
+def _two_node_modes(
+    ua: float, c: float, g: float, ce: float
+) -> tuple[float, float, float, float, float, float]:
+    """Return (a11, a12, a21, a22, μ₁ slow, μ₂ fast) of the two-node matrix A, in 1/s."""
+    a11, a12 = -(g + ua) / c, g / c
+    a21, a22 = g / ce, -g / ce
+    half_trace = 0.5 * (a11 + a22)
+    det = ua * g / (c * ce)
+    mu2 = half_trace - math.sqrt(max(half_trace * half_trace - det, 0.0))  # no cancellation
+    return a11, a12, a21, a22, det / mu2, mu2  # μ₁ from the product of the roots
+
+
 def one_node_step(
     water_c: float,
     lagged_c: float | None,
@@ -96,14 +108,10 @@ def two_node_step(
     ``y_w`` and ``y_e`` are the water and element thermocouples' lagged readings,
     present when their lag rates are given. Requires UA > 0 and G > 0.
     """
-    ua, c, g, ce = ua_w_per_k, capacity_j_per_k, conductance_w_per_k, element_capacity_j_per_k
-    a11, a12 = -(g + ua) / c, g / c
-    a21, a22 = g / ce, -g / ce
-    half_trace = 0.5 * (a11 + a22)
-    det = ua * g / (c * ce)
-    disc = math.sqrt(max(half_trace * half_trace - det, 0.0))
-    mu2 = half_trace - disc  # fast, both terms negative: no cancellation
-    mu1 = det / mu2  # slow, from the product of the roots
+    ua, g = ua_w_per_k, conductance_w_per_k
+    a11, a12, a21, a22, mu1, mu2 = _two_node_modes(
+        ua, capacity_j_per_k, g, element_capacity_j_per_k
+    )
     span = mu1 - mu2
     e1, e2 = math.exp(mu1 * dt_s), math.exp(mu2 * dt_s)
     # projectors P1 = (A - μ2 I)/(μ1 - μ2), P2 = (A - μ1 I)/(μ2 - μ1); e^{At} = e1 P1 + e2 P2
@@ -244,18 +252,13 @@ def two_node_time_to_target(
     """
     if water_c >= target_c:
         return 0.0
-    ua, c, g, ce = ua_w_per_k, capacity_j_per_k, conductance_w_per_k, element_capacity_j_per_k
+    ua, g = ua_w_per_k, conductance_w_per_k
     if power_w <= 0.0:
         return None
     water_eq = ambient_c + power_w / ua
     if water_eq <= target_c:
         return None
-    a11, a12 = -(g + ua) / c, g / c
-    a22 = -g / ce
-    half_trace = 0.5 * (a11 + a22)
-    det = ua * g / (c * ce)
-    mu2 = half_trace - math.sqrt(max(half_trace * half_trace - det, 0.0))
-    mu1 = det / mu2
+    a11, a12, _, _, mu1, mu2 = _two_node_modes(ua, capacity_j_per_k, g, element_capacity_j_per_k)
     span = mu1 - mu2
     dw = water_c - water_eq
     de = element_c - (water_eq + power_w / g)
