@@ -170,7 +170,11 @@ def replay_run(
     on_estimate: Callable[[Run, Estimate], None] | None = None,
 ) -> dict[str, object]:
     """Return the summary of one run (the JSON contract) replayed through a fresh estimator."""
-    has_element = "element" in run.log.channels and any("element" in r.values for r in run.rows)
+    declared = run.log.metadata.get("element_sensor")
+    if declared in ("yes", "no"):  # a live log says what the live filter was built with
+        has_element = declared == "yes"
+    else:
+        has_element = "element" in run.log.channels and any("element" in r.values for r in run.rows)
     config = VesselConfig.from_metadata(run.vessel, run.log.metadata, has_element)
     est = VesselEstimator(config, settings)
     last: Estimate | None = None

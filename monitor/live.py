@@ -1,0 +1,265 @@
+"""From a stream of samples to filter steps, the same way live and in a replay of a recorded log.
+
+Instruments report channels at their own instants: a line logger gives water and
+element temperatures in one line, a power meter is polled on its own clock, an MQTT
+``reading`` message carries several channels at once. The filter wants one set of
+readings per step. :class:`InstantAssembler` makes those sets, per vessel, by a rule
+that depends only on the order and time stamps of the samples, so the recorder's
+samples give the same steps again when a log is replayed:
+
+* the samples of one vessel with the same time stamp form an *instant* (the fields
+  of one frame share their time stamp);
+* an instant closes when a sample of that vessel with another time stamp arrives,
+  or when the service has drained its queue (:meth:`InstantAssembler.flush`; the
+  frame's samples are all in the queue by then, because a driver yields a frame's
+  samples without pausing in between);
+* an instant with a water reading is a filter step. It also carries the latest
+  reading of every other channel the instant lacks, when that reading is at most
+  :data:`HOLD_S` old (power from a meter polled apart from the thermocouples, say).
+  An energy counter is never carried over: the filter turns energy differences into
+  mean power, and a stale counter would put energy in the wrong interval;
+* an instant without water only updates those latest readings;
+* a fault sample (NaN) is a missing reading that is known to be missing: it is
+  passed on as NaN, so the filter flags the sensor and predicts across.
+
+An instant whose time is not after the vessel's last step (two sources stamping the
+same second, a clock stepping back) is not stepped: its readings update the latest
+values and it is counted in :attr:`InstantAssembler.out_of_order`.
+
+:class:`LiveVessel` then splits the steps into runs as :mod:`monitor.replay` does
+(a fresh filter after a long gap or a refill) and steps the vessel's estimator.
+Live and replayed estimates agree step for step, with one exception: on a refill a
+replay moves the reading just before the split into the new run, while live it was
+already stepped in the old run (it is also stepped in the new one).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Iterator, Mapping
+from dataclasses import dataclass
+
+from drivers.sample import Quality, Sample
+from monitor.contracts import Estimate, finite_or_none
+from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
+from monitor.replay import Run, _starts_run
+
+#: How long (s) the latest reading of a channel may stand in for one an instant lacks.
+HOLD_S: dict[str, float] = {
+    "power": 5.0,
+    "voltage": 5.0,
+    "current": 5.0,
+    "element": 2.0,
+    "water_top": 2.0,
+    "wall": 10.0,
+    "ambient": 120.0,
+    "pressure": 120.0,
+}
+
+
+@dataclass(frozen=True, slots=True)
+class Step:
+    """One filter step of one vessel: Unix time (s), time from the vessel's first step (s)."""
+
+    vessel: str
+    t: float
+    time_s: float
+    values: dict[str, float]
+    line: int  # position of the closing sample in the stream (for quarantine references)
+
+
+class InstantAssembler:
+    """Turns one vessel's samples, in arrival order, into filter steps (module docstring)."""
+
+    def __init__(self, vessel: str) -> None:
+        self.vessel = vessel
+        self.t0: float | None = None
+        self.last_step_t: float | None = None
+        self.out_of_order = 0
+        self._group_t: float | None = None
+        self._group: dict[str, float] = {}
+        self._latest: dict[str, tuple[float, float]] = {}
+        self._position = 0
+
+    def feed(self, sample: Sample, position: int = 0) -> Step | None:
+        """Return the step closed by ``sample``'s arrival, if any, then take ``sample`` in."""
+        if sample.channel not in CHANNEL_COLUMNS:
+            return None  # raw EMF and cold-junction samples are converted before this
+        step = None
+        if self._group_t is not None and sample.t != self._group_t:
+            step = self.flush()
+        self._group_t = sample.t
+        self._position = position
+        value = sample.value if sample.quality != Quality.FAULT else math.nan
+        self._group[sample.channel] = value
+        return step
+
+    def flush(self) -> Step | None:
+        """Return the step of the open instant (if it has water) and close the instant."""
+        t, group = self._group_t, self._group
+        if t is None:
+            return None
+        self._group_t, self._group = None, {}
+        step = None
+        if "water" in group:
+            if self.last_step_t is not None and t <= self.last_step_t:
+                self.out_of_order += 1
+            else:
+                values = dict(group)
+                for channel, (seen_t, value) in self._latest.items():
+                    if channel not in values and t - seen_t <= HOLD_S.get(channel, 0.0):
+                        values[channel] = value
+                if self.t0 is None:
+                    self.t0 = t
+                self.last_step_t = t
+                step = Step(self.vessel, t, t - self.t0, values, self._position)
+        for channel, value in group.items():
+            if channel in HOLD_S and not math.isnan(value):
+                self._latest[channel] = (t, value)
+        return step
+
+
+def steps_from_samples(samples: Iterable[tuple[int, Sample]]) -> Iterator[Step]:
+    """Yield the filter steps of every vessel from (position, sample) pairs in arrival order.
+
+    The replay of a recorded log uses this; the live service feeds the same
+    assemblers and flushes them when its queue runs dry.
+    """
+    assemblers: dict[str, InstantAssembler] = {}
+    for position, sample in samples:
+        assembler = assemblers.get(sample.vessel)
+        if assembler is None:
+            assembler = assemblers[sample.vessel] = InstantAssembler(sample.vessel)
+        step = assembler.feed(sample, position)
+        if step is not None:
+            yield step
+    for assembler in assemblers.values():
+        step = assembler.flush()
+        if step is not None:
+            yield step
+
+
+def logs_from_steps(
+    steps: Iterable[Step], metadata: Mapping[str, Mapping[str, str | float]], path: str
+) -> list[InterchangeLog]:
+    """Return one :class:`InterchangeLog` per vessel (in order of first step) for replay."""
+    logs: dict[str, InterchangeLog] = {}
+    for step in steps:
+        log = logs.get(step.vessel)
+        if log is None:
+            meta = dict(metadata.get(step.vessel, {}))
+            meta["vessel"] = step.vessel
+            log = logs[step.vessel] = InterchangeLog(
+                f"{path}#{step.vessel}", meta, [], start_epoch_s=step.t - step.time_s
+            )
+        for channel in step.values:
+            if channel not in log.channels:
+                log.channels.append(channel)
+        log.rows.append(LogRow(step.line, step.time_s, step.values, step.vessel))
+    for log in logs.values():
+        order = list(CHANNEL_COLUMNS)
+        log.channels.sort(key=order.index)
+        if "power" not in log.channels and "energy" not in log.channels:
+            log.channels.append("power")  # no power seen at all: the heater was never on
+    return list(logs.values())
+
+
+class LiveVessel:
+    """One vessel's live filter: steps in, estimates out, a fresh filter at each new run."""
+
+    def __init__(
+        self,
+        vessel: str,
+        metadata: Mapping[str, str | float],
+        has_element_sensor: bool,
+        settings: EstimatorSettings | None = None,
+    ) -> None:
+        self.vessel = vessel
+        self.metadata = dict(metadata)
+        self.config = VesselConfig.from_metadata(vessel, self.metadata, has_element_sensor)
+        self.settings = settings
+        self.assembler = InstantAssembler(vessel)
+        self.estimator: VesselEstimator | None = None
+        self.run_number = 0
+        self.latest: Estimate | None = None
+        self.steps = 0
+        self._run: Run | None = None
+        self._previous_s: float | None = None
+        self._previous_row: LogRow | None = None
+        self._window: list[tuple[float, float]] = []
+
+    def step(self, step: Step) -> Estimate | None:
+        """Return the estimate after one step (None while the filter is not yet initialised)."""
+        row = LogRow(step.line, step.time_s, step.values, step.vessel)
+        carried: LogRow | None = None
+        if self._run is None or _starts_run(row, self._run, self._previous_s, self._window):
+            refill = self._run is not None and step.time_s - (self._previous_s or 0.0) <= 900.0
+            carried = self._previous_row if refill else None
+            self.run_number += 1
+            self._run = Run(self.vessel, self.run_number, str(self.run_number), [], None)  # type: ignore[arg-type]
+            self.estimator = VesselEstimator(self.config, self.settings)
+            self._window.clear()
+        assert self.estimator is not None
+        if carried is not None:
+            self.estimator.step(carried.time_s, carried.values)
+        estimate = self.estimator.step(row.time_s, row.values)
+        self.steps += 1
+        self._previous_s = row.time_s
+        self._previous_row = row
+        if "water" in row.values:
+            self._window.append((row.time_s, row.values["water"]))
+            while self._window and row.time_s - self._window[0][0] > 30.0:
+                self._window.pop(0)
+        if estimate is not None:
+            self.latest = estimate
+        return estimate
+
+
+def estimate_record(vessel: LiveVessel, e: Estimate, t: float) -> dict[str, object]:
+    """Return an estimate as a flat, JSON-ready record (Unix time ``t``; SI units in keys).
+
+    The recorder stores these, and the service publishes them on
+    ``<prefix>/<vessel>/estimate``.
+    """
+
+    def pair(est: object) -> tuple[float | None, float | None]:
+        if est is None:
+            return None, None
+        return finite_or_none(est.value), finite_or_none(est.std)  # type: ignore[attr-defined]
+
+    mass, mass_std = pair(e.water_mass_kg)
+    c, c_std = pair(e.heat_capacity_j_per_k)
+    ua, ua_std = pair(e.ua_w_per_k)
+    g, g_std = pair(e.element_conductance_w_per_k)
+    loss, loss_std = pair(e.standing_loss_w)
+    target = e.target
+    return {
+        "t": t,
+        "vessel": vessel.vessel,
+        "run": vessel.run_number,
+        "phase": str(e.phase),
+        "water_c": finite_or_none(e.water_c),
+        "water_std_c": finite_or_none(e.water_std_c),
+        "element_c": finite_or_none(e.element_c),
+        "ambient_c": finite_or_none(e.ambient_c),
+        "power_w": finite_or_none(e.power_w),
+        "water_mass_kg": mass,
+        "water_mass_std": mass_std,
+        "heat_capacity_j_per_k": c,
+        "heat_capacity_std": c_std,
+        "ua_w_per_k": ua,
+        "ua_std": ua_std,
+        "element_conductance_w_per_k": g,
+        "element_conductance_std": g_std,
+        "standing_loss_w": loss,
+        "standing_loss_std": loss_std,
+        "boiling_point_c": finite_or_none(e.boiling_point_c),
+        "target_c": finite_or_none(target.target_c) if target else None,
+        "time_to_target_s": finite_or_none(target.eta_s) if target else None,
+        "time_to_target_lo_s": finite_or_none(target.lo_s) if target else None,
+        "time_to_target_hi_s": finite_or_none(target.hi_s) if target else None,
+        "boil_off_to_dry_s": finite_or_none(e.boil_off_to_dry_s),
+        "nis": finite_or_none(e.nis),
+        "flags": [f.as_dict() for f in e.flags],
+    }
