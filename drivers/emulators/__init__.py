@@ -1,1 +1,1 @@
-"""Simulated instruments that speak the real protocols (serial lines, Modbus) for the demo and tests."""
+"""Simulated instruments speaking the real protocols (serial lines, Modbus), for demo and tests."""
