@@ -1,0 +1,1 @@
+"""Test support: real servers and peers that several test folders and benchmarks share."""
