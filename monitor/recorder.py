@@ -1,0 +1,999 @@
+"""The recorder: an SQLite log whose committed blocks are chained by SHA-256, and reading it back.
+
+One file per deployment holds everything a replay or an audit needs: the readings
+(``samples``), raw input that could not be used (``quarantine``), the estimator's
+output (``estimates``, ``flags``), what happened to the links (``events``: gaps,
+reconnects, back-pressure counts), each vessel's ``key: value`` metadata
+(``vessels``), run summaries (``runs``) and one ``sessions`` row per process that
+opened the log (start time, ebullio version, configuration text). Several sessions
+may append to one log, one after another.
+
+Writing
+    :class:`Recorder` keeps added rows in memory until :meth:`Recorder.commit`, which
+    writes all of them and one ``blocks`` row in a single transaction. Nothing is
+    written before that, so a crash loses at most the rows added since the last
+    commit. Choosing that window is the service's job: it commits about once a
+    second, so a crash costs at most about a second of readings.
+
+    The file is in WAL mode with ``synchronous=FULL``: every commit syncs the
+    write-ahead log to the disk before it returns, so a committed block survives a
+    power cut or an operating-system crash as well as a killed process.
+    ``synchronous=NORMAL`` would survive only the killed process (the last commits
+    may still sit in the OS cache at a power cut). One sync a second costs nothing
+    at the service's pace, and ``benchmarks/bench_recorder.py`` shows throughput
+    stays far above the target with it.
+
+    Each commit takes the write lock first (``BEGIN IMMEDIATE``) and reads the last
+    block and the last row ids inside the transaction, so even two processes
+    appending to one file at once produce a valid chain. The class itself is not
+    thread-safe: calls must not overlap, but they may come from different threads
+    one after another (``asyncio.to_thread`` uses a pool).
+
+The hash chain
+    Block ``k``'s ``hash`` is SHA-256 over, in order: the label :data:`HASH_LABEL`;
+    ``k``, its commit time and its row count; the previous block's hash (32 zero
+    bytes before block 1); then for each table in :data:`HASHED_TABLES` order its
+    name, its number of rows in the block, and those rows in id order, every column
+    (``id`` and ``block`` included) in :data:`TABLE_COLUMNS` order. Each value is
+    encoded by :func:`encode_value`: a type letter, then 8 bytes big-endian for an
+    integer (signed) or a float (IEEE 754, so exactly), or a 4-byte length and the
+    bytes for a text (UTF-8) or a blob. The length prefix already makes the encoding
+    unambiguous, so blobs are hashed as their bytes, not as hex (half the bytes to
+    hash). The block header is in the hash too, so a changed commit time or row
+    count is caught. The last block can be rewritten together with its hash without
+    breaking the chain: to guard against that, keep ``verify()``'s ``head_hash``
+    somewhere else (a report, a ticket).
+
+What SQLite stores, and so what reads back
+    SQLite cannot store NaN: a NaN value is stored as NULL and reads back as NaN
+    (fault samples carry NaN). It stores ``-0.0`` as ``0.0``, so the recorder writes
+    ``0.0`` for it (the sign of a zero reading carries no information). Infinities
+    are kept. JSON columns (``detail``, ``evidence``, ``metadata``, ``summary``) are
+    standard JSON with sorted keys; a non-finite number in them is written as
+    ``null``, because standard JSON has no NaN.
+
+Tables are ``STRICT`` (a value of the wrong type is refused, never converted). There
+is no index besides the ids: replay reads whole tables in id order, and every index
+would slow the writer and grow the file.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import math
+import numbers
+import os
+import sqlite3
+import struct
+import time
+import urllib.parse
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from pathlib import Path
+from types import TracebackType
+
+from drivers.channels import Quarantined
+from drivers.errors import EbullioError, LogFormatError
+from drivers.sample import Quality, Sample
+from monitor.contracts import Estimate, Flag, Level, Phase, finite_or_none
+
+LOG = logging.getLogger(__name__)
+
+#: What ``meta.format`` holds in every recorder log.
+LOG_FORMAT = "ebullio-recorder"
+#: Version of the table layout; a log with a newer one is refused.
+SCHEMA_VERSION = 1
+#: The first bytes of every SQLite 3 database file.
+SQLITE_MAGIC = b"SQLite format 3\x00"
+#: Label at the start of every block's hashed bytes (names the encoding's version).
+HASH_LABEL = b"ebullio-recorder block v1\n"
+#: ``prev_hash`` of block 1.
+GENESIS_HASH = "0" * 64
+
+#: Estimate columns besides t, vessel, phase and detail (replay's ESTIMATE_COLUMNS
+#: without time_s, vessel, run and phase), all REAL.
+ESTIMATE_VALUE_COLUMNS = (
+    "water_c", "water_mass_kg", "water_mass_std", "heat_capacity_j_per_k",
+    "heat_capacity_std", "ua_w_per_k", "ua_std", "element_conductance_w_per_k",
+    "element_conductance_std", "target_c", "time_to_target_s", "time_to_target_lo_s",
+    "time_to_target_hi_s", "nis",
+)  # fmt: skip
+
+#: Columns of each hashed table, in the order they are stored and hashed.
+TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
+    "sessions": ("id", "block", "started_t", "version", "config_text"),
+    "vessels": ("id", "block", "vessel", "metadata"),
+    "runs": ("id", "block", "vessel", "run", "start_t", "end_t", "summary"),
+    "samples": ("id", "block", "t", "vessel", "channel", "value", "quality", "source"),
+    "quarantine": ("id", "block", "t", "source", "location", "reason", "raw"),
+    "estimates": ("id", "block", "t", "vessel", "phase", *ESTIMATE_VALUE_COLUMNS, "detail"),
+    "flags": ("id", "block", "t", "vessel", "name", "level", "message", "evidence"),
+    "events": ("id", "block", "t", "kind", "source", "detail"),
+}
+#: The order in which a block's tables are hashed.
+HASHED_TABLES = tuple(TABLE_COLUMNS)
+
+_ESTIMATE_REALS = ",\n    ".join(f"{c} REAL" for c in ESTIMATE_VALUE_COLUMNS)
+SCHEMA = f"""
+CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL) STRICT;
+CREATE TABLE blocks (
+    block INTEGER PRIMARY KEY, committed_t REAL NOT NULL, rows INTEGER NOT NULL,
+    prev_hash TEXT NOT NULL, hash TEXT NOT NULL
+) STRICT;
+CREATE TABLE sessions (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, started_t REAL NOT NULL,
+    version TEXT NOT NULL, config_text TEXT
+) STRICT;
+CREATE TABLE vessels (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, vessel TEXT NOT NULL,
+    metadata TEXT NOT NULL
+) STRICT;
+CREATE TABLE runs (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, vessel TEXT NOT NULL, run TEXT NOT NULL,
+    start_t REAL NOT NULL, end_t REAL, summary TEXT NOT NULL
+) STRICT;
+CREATE TABLE samples (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, vessel TEXT NOT NULL,
+    channel TEXT NOT NULL, value REAL, quality TEXT NOT NULL, source TEXT NOT NULL
+) STRICT;
+CREATE TABLE quarantine (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, source TEXT NOT NULL,
+    location TEXT NOT NULL, reason TEXT NOT NULL, raw BLOB NOT NULL
+) STRICT;
+CREATE TABLE estimates (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, vessel TEXT NOT NULL,
+    phase TEXT NOT NULL,
+    {_ESTIMATE_REALS},
+    detail TEXT NOT NULL
+) STRICT;
+CREATE TABLE flags (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, vessel TEXT NOT NULL,
+    name TEXT NOT NULL, level TEXT NOT NULL, message TEXT NOT NULL, evidence TEXT NOT NULL
+) STRICT;
+CREATE TABLE events (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, kind TEXT NOT NULL,
+    source TEXT NOT NULL, detail TEXT NOT NULL
+) STRICT;
+"""
+
+_PACK_Q = struct.Struct(">q").pack
+_PACK_D = struct.Struct(">d").pack
+_PACK_I = struct.Struct(">I").pack
+_NAN_BYTES = b"f" + _PACK_D(math.nan)
+_QUALITIES = {str(q): q for q in Quality}
+
+Row = tuple[object, ...]
+
+
+# ---------------------------------------------------------------------------------------
+# Canonical bytes and the block hash (pure)
+
+
+def encode_value(value: object) -> bytes:
+    """Return the canonical bytes of one column value (see the module docstring).
+
+    ``None`` is ``n``; an int ``i`` + 8 bytes; a float ``f`` + 8 bytes (every NaN the
+    same); a str (as UTF-8) or bytes ``x`` + a 4-byte length + the bytes. Raises
+    TypeError for anything else (a bool included).
+    """
+    if value is None:
+        return b"n"
+    if isinstance(value, bool):
+        raise TypeError(f"cannot hash a bool column value ({value!r})")
+    if isinstance(value, float):
+        return _NAN_BYTES if value != value else b"f" + _PACK_D(value)
+    if isinstance(value, int):
+        return b"i" + _PACK_Q(value)
+    if isinstance(value, str):
+        value = value.encode("utf-8")
+    if isinstance(value, bytes | bytearray | memoryview):
+        return b"x" + _PACK_I(len(value)) + bytes(value)
+    raise TypeError(f"cannot hash a {type(value).__name__} column value ({value!r})")
+
+
+def _encode_rows(rows: Iterable[Row], out: list[bytes]) -> None:
+    # encode_value inlined, with repeated texts (vessel, channel, source) encoded once
+    texts: dict[object, bytes] = {}
+    for row in rows:
+        for value in row:
+            kind = type(value)
+            if kind is float:
+                out.append(_NAN_BYTES if value != value else b"f" + _PACK_D(value))
+            elif kind is int:
+                out.append(b"i" + _PACK_Q(value))
+            elif value is None:
+                out.append(b"n")
+            elif kind is str or kind is bytes:
+                encoded = texts.get(value)
+                if encoded is None:
+                    encoded = encode_value(value)
+                    if len(texts) < 4096:
+                        texts[value] = encoded
+                out.append(encoded)
+            else:
+                out.append(encode_value(value))
+
+
+def block_hash(
+    block: int,
+    committed_t: float,
+    rows: int,
+    prev_hash: str,
+    tables: Mapping[str, Sequence[Row]],
+) -> str:
+    """Return the SHA-256 (64 hex digits) of one block: header, previous hash, rows.
+
+    ``tables`` maps table names to that table's rows in the block, in id order, each a
+    tuple of every column in :data:`TABLE_COLUMNS` order; missing tables have no rows.
+    Raises ValueError when ``prev_hash`` is not 64 hex digits.
+    """
+    if len(prev_hash) != 64:
+        raise ValueError(f"previous hash {prev_hash!r} is not 64 hex digits")
+    digest = hashlib.sha256(HASH_LABEL)
+    digest.update(_PACK_Q(block) + _PACK_D(float(committed_t)) + _PACK_Q(rows))
+    digest.update(bytes.fromhex(prev_hash))
+    for name in HASHED_TABLES:
+        table_rows = tables.get(name, ())
+        parts = [encode_value(name), _PACK_Q(len(table_rows))]
+        _encode_rows(table_rows, parts)
+        digest.update(b"".join(parts))
+    return digest.hexdigest()
+
+
+# ---------------------------------------------------------------------------------------
+# Normalising values on the way in (pure)
+
+
+def _real(value: object, what: str) -> float | None:
+    """Return a float as SQLite will give it back: NaN -> None, -0.0 -> 0.0."""
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise ValueError(f"{what} must be a number or None, got {value!r}")
+    number = float(value)
+    if number != number:
+        return None
+    return 0.0 if number == 0.0 else number
+
+
+def _time(value: object, what: str) -> float:
+    number = _real(value, what)
+    if number is None or not math.isfinite(number):
+        raise ValueError(f"{what} must be a finite Unix time in s, got {value!r}")
+    return number
+
+
+def _text(value: object, what: str) -> str:
+    if not isinstance(value, str):
+        raise ValueError(f"{what} must be a str, got {value!r}")
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        raise ValueError(f"{what} cannot be written as UTF-8 ({exc})") from None
+    return value
+
+
+def _json_safe(value: object, what: str) -> object:
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if value is None or isinstance(value, str | bool | int):
+        return value
+    if isinstance(value, Mapping):
+        out = {}
+        for key, item in value.items():
+            if not isinstance(key, str):
+                raise ValueError(f"{what}: key {key!r} is not a str")
+            out[key] = _json_safe(item, what)
+        return out
+    if isinstance(value, list | tuple):
+        return [_json_safe(item, what) for item in value]
+    raise ValueError(f"{what}: {value!r} cannot be written as JSON")
+
+
+def json_text(value: object, what: str = "value") -> str:
+    """Return the canonical JSON text of ``value`` (sorted keys, non-finite numbers null).
+
+    Raises ValueError naming ``what`` when the value holds something JSON cannot carry.
+    """
+    return json.dumps(
+        _json_safe(value, what), sort_keys=True, separators=(",", ":"), ensure_ascii=False
+    )
+
+
+def estimate_record(
+    e: Estimate, *, t: float | None = None, detail: Mapping[str, object] | None = None
+) -> dict[str, object]:
+    """Return an :class:`Estimate` as a row mapping for :meth:`Recorder.add_estimates`.
+
+    ``t`` (Unix s) defaults to ``e.t_s``. The columns take replay's per-step figures;
+    ``detail`` gets the rest of the estimate (filtered water std, element, ambient,
+    power, boiling point, boil-off, evaporation, standing loss, the flags) plus any
+    ``detail`` given.
+    """
+    m, g, target = e.water_mass_kg, e.element_conductance_w_per_k, e.target
+    more: dict[str, object] = {
+        "water_std_c": e.water_std_c,
+        "element_c": e.element_c,
+        "ambient_c": e.ambient_c,
+        "power_w": e.power_w,
+        "boiling_point_c": e.boiling_point_c,
+        "boil_off_to_dry_s": e.boil_off_to_dry_s,
+        "evaporation_kg_per_s": e.evaporation_kg_per_s,
+        "standing_loss_w": e.standing_loss_w.as_dict() if e.standing_loss_w else None,
+        "target_reason": target.reason if target else "",
+        "flags": [f.as_dict() for f in e.flags],
+    }
+    more.update(detail or {})
+    return {
+        "t": e.t_s if t is None else t,
+        "vessel": e.vessel,
+        "phase": str(e.phase),
+        "water_c": e.water_c,
+        "water_mass_kg": m.value if m else None,
+        "water_mass_std": m.std if m else None,
+        "heat_capacity_j_per_k": e.heat_capacity_j_per_k.value,
+        "heat_capacity_std": e.heat_capacity_j_per_k.std,
+        "ua_w_per_k": e.ua_w_per_k.value,
+        "ua_std": e.ua_w_per_k.std,
+        "element_conductance_w_per_k": g.value if g else None,
+        "element_conductance_std": g.std if g else None,
+        "target_c": target.target_c if target else None,
+        "time_to_target_s": finite_or_none(target.eta_s) if target else None,
+        "time_to_target_lo_s": finite_or_none(target.lo_s) if target else None,
+        "time_to_target_hi_s": finite_or_none(target.hi_s) if target else None,
+        "nis": e.nis,
+        "detail": more,
+    }
+
+
+def flag_record(t: float, vessel: str, flag: Flag) -> dict[str, object]:
+    """Return a :class:`Flag` raised at ``t`` (Unix s) on ``vessel`` as a row mapping."""
+    return {"t": t, "vessel": vessel, **flag.as_dict()}
+
+
+def _estimate_row(record: Mapping[str, object]) -> Row:
+    known = {"t", "vessel", "phase", "detail", *ESTIMATE_VALUE_COLUMNS}
+    unknown = sorted(set(record) - known)
+    if unknown:
+        raise ValueError(f"estimate has unknown keys {unknown}; known keys: {sorted(known)}")
+    for key in ("t", "vessel", "phase"):
+        if key not in record:
+            raise ValueError(f"estimate has no {key!r}")
+    phase = _text(record["phase"], "estimate phase")
+    if phase not in {str(p) for p in Phase}:
+        raise ValueError(f"estimate phase {phase!r} is not one of {[str(p) for p in Phase]}")
+    return (
+        _time(record["t"], "estimate t"),
+        _text(record["vessel"], "estimate vessel"),
+        phase,
+        *(_real(record.get(c), f"estimate {c}") for c in ESTIMATE_VALUE_COLUMNS),
+        json_text(record.get("detail") or {}, "estimate detail"),
+    )
+
+
+def _flag_row(record: Mapping[str, object]) -> Row:
+    known = {"t", "vessel", "name", "level", "message", "evidence"}
+    unknown = sorted(set(record) - known)
+    missing = sorted(known - {"evidence"} - set(record))
+    if unknown or missing:
+        raise ValueError(f"flag keys wrong (unknown {unknown}, missing {missing})")
+    level = _text(str(record["level"]), "flag level")
+    if level not in {str(v) for v in Level}:
+        raise ValueError(f"flag level {level!r} is not one of {[str(v) for v in Level]}")
+    return (
+        _time(record["t"], "flag t"),
+        _text(record["vessel"], "flag vessel"),
+        _text(record["name"], "flag name"),
+        level,
+        _text(record["message"], "flag message"),
+        json_text(record.get("evidence") or {}, "flag evidence"),
+    )
+
+
+def _raw_bytes(raw: object) -> bytes:
+    if isinstance(raw, bytes | bytearray | memoryview):
+        return bytes(raw)
+    if isinstance(raw, str):
+        return raw.encode("utf-8", errors="surrogateescape")
+    raise ValueError(f"quarantined raw input must be bytes or str, got {type(raw).__name__}")
+
+
+# ---------------------------------------------------------------------------------------
+# The writer
+
+
+def _check_existing(path: Path) -> None:
+    """Raise LogFormatError unless ``path`` is missing, empty or SQLite."""
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(len(SQLITE_MAGIC))
+    except FileNotFoundError:
+        return
+    except OSError as exc:
+        raise LogFormatError(f"{path}: cannot be read ({exc})") from exc
+    if head and head != SQLITE_MAGIC:
+        raise LogFormatError(f"{path}: not an SQLite file, so not a recorder log; not touched")
+
+
+class Recorder:
+    """Writes one log: rows pile up in memory and :meth:`commit` writes them as one block.
+
+    Opening creates the file and its tables when new, and records this session
+    (start time, ``version``, ``config_text``) as a block of its own at once. Use it
+    as a context manager: leaving it commits what is pending and closes the file.
+    ``clock`` gives Unix time in s (session start and commit times; injected in tests).
+
+    Raises :class:`LogFormatError` when the file exists but is not a recorder log, or
+    has a newer schema; :class:`EbullioError` when SQLite cannot open or write it.
+    """
+
+    def __init__(
+        self,
+        path: str | os.PathLike[str],
+        *,
+        version: str,
+        config_text: str | None = None,
+        clock: Callable[[], float] = time.time,
+    ) -> None:
+        self.path = Path(path)
+        self._clock = clock
+        self._pending: dict[str, list[Row]] = {name: [] for name in HASHED_TABLES}
+        self._count = 0
+        self.last_block: int | None = None
+        _check_existing(self.path)
+        try:
+            self._conn = sqlite3.connect(
+                self.path, isolation_level=None, check_same_thread=False, timeout=10.0
+            )
+        except sqlite3.Error as exc:
+            raise EbullioError(f"{self.path}: cannot open the log ({exc})") from exc
+        try:
+            started_t = _time(self._clock(), "session start")
+            self._prepare(started_t)
+            self._pending["sessions"].append(
+                (
+                    started_t,
+                    _text(version, "version"),
+                    None if config_text is None else _text(config_text, "config text"),
+                )
+            )
+            self._count = 1
+            self.commit()
+        except BaseException:
+            self._conn.close()
+            raise
+        self.session_block = self.last_block
+
+    def _prepare(self, created_t: float) -> None:
+        conn = self._conn
+        try:
+            # a foreign SQLite file is refused before anything (WAL mode included) touches it
+            if conn.execute("SELECT count(*) FROM sqlite_schema").fetchone()[0]:
+                _check_meta(conn, str(self.path))
+            mode = conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+            if mode != "wal":
+                raise EbullioError(f"{self.path}: SQLite would not use WAL mode (got {mode!r})")
+            conn.execute("PRAGMA synchronous=FULL")  # why FULL: see the module docstring
+            conn.execute("BEGIN IMMEDIATE")
+            try:
+                # looked at again under the write lock: another process may have made it
+                if conn.execute("SELECT count(*) FROM sqlite_schema").fetchone()[0]:
+                    _check_meta(conn, str(self.path))
+                else:
+                    for statement in SCHEMA.split(";"):
+                        if statement.strip():
+                            conn.execute(statement)
+                    conn.executemany(
+                        "INSERT INTO meta (key, value) VALUES (?, ?)",
+                        [
+                            ("format", LOG_FORMAT),
+                            ("schema_version", str(SCHEMA_VERSION)),
+                            ("created_t", repr(created_t)),
+                        ],
+                    )
+                conn.execute("COMMIT")
+            except BaseException:
+                conn.execute("ROLLBACK")
+                raise
+        except sqlite3.Error as exc:
+            raise EbullioError(f"{self.path}: cannot prepare the log ({exc})") from exc
+
+    # -- adding rows (nothing is written until commit) --------------------------------
+
+    def _add(self, table: str, rows: list[Row]) -> int:
+        self._pending[table].extend(rows)
+        self._count += len(rows)
+        return len(rows)
+
+    def add_samples(self, samples: Iterable[Sample]) -> int:
+        """Return how many samples were added to the pending block.
+
+        The whole batch is checked first: a sample with a non-finite time or a
+        field of the wrong type raises ValueError and nothing of the batch is added.
+        """
+        rows = []
+        for s in samples:
+            t = s.t
+            if type(t) is not float or not math.isfinite(t) or t == 0.0:
+                t = _time(t, f"sample t ({s!r})")
+            value = s.value
+            if type(value) is not float or value != value or value == 0.0:
+                value = _real(value, f"sample value ({s!r})")
+            vessel, channel, source = s.vessel, s.channel, s.source
+            if not (type(vessel) is str and type(channel) is str and type(source) is str):
+                vessel = _text(vessel, f"sample vessel ({s!r})")
+                channel = _text(channel, f"sample channel ({s!r})")
+                source = _text(source, f"sample source ({s!r})")
+            quality = str(s.quality)
+            if quality not in _QUALITIES:
+                raise ValueError(f"sample quality {quality!r} is not one of {list(_QUALITIES)}")
+            rows.append((t, vessel, channel, value, quality, source))
+        return self._add("samples", rows)
+
+    def add_quarantined(self, items: Iterable[Quarantined]) -> int:
+        """Return how many quarantined inputs were added (raw kept byte for byte)."""
+        rows = [
+            (
+                _time(q.t, "quarantined t"),
+                _text(q.source, "quarantined source"),
+                _text(q.where, "quarantined where"),
+                _text(q.reason, "quarantined reason"),
+                _raw_bytes(q.raw),
+            )
+            for q in items
+        ]
+        return self._add("quarantine", rows)
+
+    def add_estimates(self, records: Iterable[Mapping[str, object]]) -> int:
+        """Return how many estimate rows were added.
+
+        Keys: ``t`` (Unix s), ``vessel``, ``phase``, any of
+        :data:`ESTIMATE_VALUE_COLUMNS` (missing ones are NULL) and ``detail`` (JSON).
+        An unknown key raises ValueError (see :func:`estimate_record`).
+        """
+        return self._add("estimates", [_estimate_row(r) for r in records])
+
+    def add_flags(self, records: Iterable[Mapping[str, object]]) -> int:
+        """Return how many flag rows were added.
+
+        Keys: ``t`` (Unix s), ``vessel``, ``name``, ``level``, ``message`` and
+        optionally ``evidence`` (JSON); see :func:`flag_record`.
+        """
+        return self._add("flags", [_flag_row(r) for r in records])
+
+    def add_event(
+        self, t: float, kind: str, source: str, detail: str | Mapping[str, object] = ""
+    ) -> int:
+        """Return 1 after adding an event (a gap, a reconnect, a back-pressure count).
+
+        ``detail`` is stored as JSON (a str becomes a JSON string).
+        """
+        row = (
+            _time(t, "event t"),
+            _text(kind, "event kind"),
+            _text(source, "event source"),
+            json_text(detail, "event detail"),
+        )
+        return self._add("events", [row])
+
+    def add_vessel(self, vessel: str, metadata: Mapping[str, str | float]) -> int:
+        """Return 1 after adding a vessel's ``key: value`` metadata (a later row replaces it).
+
+        Values must be str or finite numbers: they are what a replay configures from.
+        """
+        for key, value in metadata.items():
+            ok = isinstance(value, str) or (
+                isinstance(value, int | float)
+                and not isinstance(value, bool)
+                and math.isfinite(value)
+            )
+            if not isinstance(key, str) or not ok:
+                raise ValueError(f"vessel {vessel!r} metadata {key!r}: {value!r} is not usable")
+        row = (_text(vessel, "vessel"), json_text(dict(metadata), f"vessel {vessel!r} metadata"))
+        return self._add("vessels", [row])
+
+    def add_run(
+        self,
+        vessel: str,
+        run: str,
+        start_t: float,
+        end_t: float | None = None,
+        summary: Mapping[str, object] | None = None,
+    ) -> int:
+        """Return 1 after adding a run (times Unix s; ``end_t`` None while it is open)."""
+        row = (
+            _text(vessel, "run vessel"),
+            _text(run, "run label"),
+            _time(start_t, "run start_t"),
+            None if end_t is None else _time(end_t, "run end_t"),
+            json_text(summary or {}, "run summary"),
+        )
+        return self._add("runs", [row])
+
+    def pending(self) -> int:
+        """Return the number of rows added and not yet committed."""
+        return self._count
+
+    # -- committing -----------------------------------------------------------------
+
+    def commit(self) -> int | None:
+        """Return the number of the block just written, or None when nothing was pending.
+
+        All pending rows and the block row go in one transaction: after a crash the
+        block is either wholly there or not at all. On an SQLite error the
+        transaction is rolled back, the rows stay pending (a later commit may
+        succeed) and :class:`EbullioError` is raised.
+        """
+        if not self._count:
+            return None
+        conn = self._conn
+        committed_t = _time(self._clock(), "commit time")
+        try:
+            conn.execute("BEGIN IMMEDIATE")
+            try:
+                last = conn.execute(
+                    "SELECT block, hash FROM blocks ORDER BY block DESC LIMIT 1"
+                ).fetchone()
+                block, prev_hash = (1, GENESIS_HASH) if last is None else (last[0] + 1, last[1])
+                written: dict[str, list[Row]] = {}
+                for name in HASHED_TABLES:
+                    rows = self._pending[name]
+                    if not rows:
+                        continue
+                    base = conn.execute(f"SELECT coalesce(max(id), 0) FROM {name}").fetchone()[0]
+                    full = [(base + i, block, *row) for i, row in enumerate(rows, start=1)]
+                    columns = TABLE_COLUMNS[name]
+                    marks = ", ".join("?" * len(columns))
+                    conn.executemany(
+                        f"INSERT INTO {name} ({', '.join(columns)}) VALUES ({marks})", full
+                    )
+                    written[name] = full
+                digest = block_hash(block, committed_t, self._count, prev_hash, written)
+                conn.execute(
+                    "INSERT INTO blocks (block, committed_t, rows, prev_hash, hash) "
+                    "VALUES (?, ?, ?, ?, ?)",
+                    (block, committed_t, self._count, prev_hash, digest),
+                )
+                conn.execute("COMMIT")
+            except BaseException:
+                if conn.in_transaction:
+                    conn.execute("ROLLBACK")
+                raise
+        except sqlite3.Error as exc:
+            raise EbullioError(
+                f"{self.path}: commit failed ({exc}); {self._count} rows are still pending"
+            ) from exc
+        for rows in self._pending.values():
+            rows.clear()
+        self._count = 0
+        self.last_block = block
+        return block
+
+    def close(self) -> None:
+        """Commit what is pending, then close the file (closing twice does nothing)."""
+        if self._conn is None:
+            return
+        try:
+            self.commit()
+        finally:
+            self._conn.close()
+            self._conn = None  # type: ignore[assignment]
+
+    def __enter__(self) -> Recorder:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.close()
+
+
+# ---------------------------------------------------------------------------------------
+# Reading
+
+
+def _ro_uri(path: Path) -> str:
+    return "file:" + urllib.parse.quote(str(path.resolve())) + "?mode=ro"
+
+
+def _check_meta(conn: sqlite3.Connection, name: str) -> None:
+    try:
+        meta = dict(conn.execute("SELECT key, value FROM meta").fetchall())
+    except sqlite3.OperationalError as exc:
+        raise LogFormatError(f"{name}: an SQLite file but not a recorder log ({exc})") from exc
+    fmt = meta.get("format")
+    fmt = fmt.decode("utf-8", "replace") if isinstance(fmt, bytes) else fmt
+    if fmt != LOG_FORMAT:
+        raise LogFormatError(f"{name}: an SQLite file but not a recorder log (format {fmt!r})")
+    raw_version = meta.get("schema_version", b"")
+    if isinstance(raw_version, bytes):
+        raw_version = raw_version.decode("utf-8", "replace")
+    try:
+        version = int(raw_version)
+    except (TypeError, ValueError):
+        raise LogFormatError(f"{name}: schema version {raw_version!r} is not a number") from None
+    if version > SCHEMA_VERSION:
+        raise LogFormatError(
+            f"{name}: schema version {version} is newer than this ebullio's {SCHEMA_VERSION}"
+        )
+
+
+def _open_reader(path: str | os.PathLike[str]) -> sqlite3.Connection:
+    """Return a read-only connection to a recorder log; raise LogFormatError otherwise."""
+    path = Path(path)
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(len(SQLITE_MAGIC))
+    except OSError as exc:
+        raise LogFormatError(f"{path}: cannot be read ({exc})") from exc
+    if head != SQLITE_MAGIC:
+        raise LogFormatError(f"{path}: not an SQLite file, so not a recorder log")
+    try:
+        conn = sqlite3.connect(_ro_uri(path), uri=True, check_same_thread=False)
+    except sqlite3.Error as exc:
+        raise LogFormatError(f"{path}: SQLite cannot open it ({exc})") from exc
+    try:
+        _check_meta(conn, str(path))
+    except (LogFormatError, sqlite3.Error) as exc:
+        conn.close()
+        if isinstance(exc, LogFormatError):
+            raise
+        raise LogFormatError(f"{path}: SQLite cannot read it ({exc})") from exc
+    return conn
+
+
+def is_recorder_log(path: str | os.PathLike[str]) -> bool:
+    """Return True when ``path`` is an SQLite file with a recorder ``meta`` table."""
+    try:
+        _open_reader(path).close()
+    except LogFormatError:
+        return False
+    return True
+
+
+def _rows(path: str | os.PathLike[str], sql: str, params: Sequence[object] = ()) -> Iterator[tuple]:
+    """Yield the rows of a query over a log, mapping SQLite errors to LogFormatError."""
+    conn = _open_reader(path)
+    try:
+        cursor = conn.execute(sql, params)
+        while True:
+            chunk = cursor.fetchmany(4096)
+            if not chunk:
+                return
+            yield from chunk
+    except sqlite3.Error as exc:
+        raise LogFormatError(f"{path}: SQLite cannot read it ({exc})") from exc
+    finally:
+        conn.close()
+
+
+def _samples_from(path: str | os.PathLike[str], rows: Iterator[tuple]) -> Iterator[Sample]:
+    qualities, nan = _QUALITIES, math.nan
+    for row_id, t, vessel, channel, value, quality, source in rows:
+        q = qualities.get(quality)
+        if q is None:
+            raise LogFormatError(f"{path}: samples id {row_id}: unknown quality {quality!r}")
+        try:
+            yield Sample(t, vessel, channel, nan if value is None else value, q, source)
+        except ValueError as exc:
+            raise LogFormatError(f"{path}: samples id {row_id}: {exc}") from exc
+
+
+def read_samples(path: str | os.PathLike[str], vessel: str | None = None) -> Iterator[Sample]:
+    """Return an iterator of the log's samples in recorded (id) order, one vessel or all.
+
+    A NULL value reads back as NaN. Raises LogFormatError at once when the file is
+    not a recorder log, and while iterating when a row cannot be a Sample.
+    """
+    sql = "SELECT id, t, vessel, channel, value, quality, source FROM samples"
+    params: tuple[object, ...] = ()
+    if vessel is not None:
+        sql += " WHERE vessel = ?"
+        params = (vessel,)
+    _open_reader(path).close()  # refuse a wrong file now, not at the first next()
+    return _samples_from(path, _rows(path, sql + " ORDER BY id", params))
+
+
+def _load_json(path: object, table: str, row_id: int, text: str) -> object:
+    try:
+        return json.loads(text)
+    except (TypeError, ValueError) as exc:
+        raise LogFormatError(f"{path}: {table} id {row_id}: not JSON ({exc})") from exc
+
+
+def read_vessels(path: str | os.PathLike[str]) -> dict[str, dict[str, object]]:
+    """Return each vessel's metadata (the latest row per vessel), in first-seen order."""
+    out: dict[str, dict[str, object]] = {}
+    for row_id, vessel, text in _rows(path, "SELECT id, vessel, metadata FROM vessels ORDER BY id"):
+        metadata = _load_json(path, "vessels", row_id, text)
+        if not isinstance(metadata, dict):
+            raise LogFormatError(f"{path}: vessels id {row_id}: metadata is not an object")
+        out[vessel] = metadata
+    return out
+
+
+def _dicts(
+    path: str | os.PathLike[str],
+    table: str,
+    json_columns: Sequence[str],
+    vessel: str | None = None,
+) -> Iterator[dict]:
+    columns = TABLE_COLUMNS[table]
+    where = "" if vessel is None else " WHERE vessel = ?"
+    sql = f"SELECT {', '.join(columns)} FROM {table}{where} ORDER BY id"
+    for row in _rows(path, sql, () if vessel is None else (vessel,)):
+        record = dict(zip(columns, row, strict=True))
+        for column in json_columns:
+            record[column] = _load_json(path, table, record["id"], record[column])
+        yield record
+
+
+def read_quarantine(path: str | os.PathLike[str]) -> list[dict[str, object]]:
+    """Return the quarantined inputs in id order: id, block, t (Unix s), source, location,
+    reason and raw (bytes, as received)."""
+    return list(_dicts(path, "quarantine", ()))
+
+
+def read_estimates(
+    path: str | os.PathLike[str], vessel: str | None = None
+) -> Iterator[dict[str, object]]:
+    """Return an iterator of estimate rows in id order, one vessel or all (dicts keyed by
+    column, t in Unix s; ``detail`` parsed)."""
+    _open_reader(path).close()  # refuse a wrong file now, not at the first next()
+    return _dicts(path, "estimates", ("detail",), vessel)
+
+
+def read_flags(path: str | os.PathLike[str]) -> list[dict[str, object]]:
+    """Return the flags in id order (dicts keyed by column; ``evidence`` parsed)."""
+    return list(_dicts(path, "flags", ("evidence",)))
+
+
+def read_events(path: str | os.PathLike[str]) -> list[dict[str, object]]:
+    """Return the events in id order (dicts keyed by column; ``detail`` parsed)."""
+    return list(_dicts(path, "events", ("detail",)))
+
+
+def read_runs(path: str | os.PathLike[str]) -> list[dict[str, object]]:
+    """Return the runs in id order (times Unix s; ``summary`` parsed)."""
+    return list(_dicts(path, "runs", ("summary",)))
+
+
+def sessions(path: str | os.PathLike[str]) -> list[dict[str, object]]:
+    """Return the sessions that wrote the log, oldest first (started_t Unix s, version,
+    config_text)."""
+    return list(_dicts(path, "sessions", ()))
+
+
+# ---------------------------------------------------------------------------------------
+# Verifying
+
+
+class _Stream:
+    """One table's rows in id order, with the next row held back (``head``)."""
+
+    def __init__(self, conn: sqlite3.Connection, table: str) -> None:
+        self.table = table
+        columns = ", ".join(TABLE_COLUMNS[table])
+        self._rows = iter(conn.execute(f"SELECT {columns} FROM {table} ORDER BY id"))
+        self.head: Row | None = next(self._rows, None)
+
+    def take(self) -> Row:
+        row = self.head
+        self.head = next(self._rows, None)
+        return row  # type: ignore[return-value]
+
+
+_MAX_PROBLEMS = 20
+
+
+def _count(conn: sqlite3.Connection, table: str) -> int | None:
+    try:
+        return conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0]
+    except sqlite3.Error:
+        return None
+
+
+def _verify_chain(conn: sqlite3.Connection) -> tuple[list[tuple[int, str]], str | None]:
+    """Return (problems as (block, sentence), the last block's hash)."""
+    problems: list[tuple[int, str]] = []
+    streams = [_Stream(conn, name) for name in HASHED_TABLES]
+    blocks = conn.execute(
+        "SELECT block, committed_t, rows, prev_hash, hash FROM blocks ORDER BY block"
+    )
+    expected, prev_stored = 1, GENESIS_HASH
+    seen: set[object] = set()
+    head: str | None = None
+    for block, committed_t, rows, prev_hash, stored in blocks:
+        seen.add(block)
+        prev_hash = prev_hash.decode("ascii", "replace")
+        head = stored = stored.decode("ascii", "replace")
+        if block != expected:
+            problems.append((expected, f"block {expected} is missing (next is {block})"))
+        if prev_hash != prev_stored:
+            problems.append((block, f"block {block} does not chain to the block before it"))
+        tables: dict[str, list[Row]] = {}
+        for stream in streams:
+            while stream.head is not None and stream.head[1] < block:
+                row = stream.take()
+                problems.append(
+                    (row[1], f"{stream.table} id {row[0]} of block {row[1]} is out of order")
+                )
+            taken = tables[stream.table] = []
+            while stream.head is not None and stream.head[1] == block:
+                taken.append(stream.take())
+        total = sum(len(t) for t in tables.values())
+        if total != rows:
+            problems.append((block, f"block {block} has {total} rows where it recorded {rows}"))
+        try:
+            digest = block_hash(block, committed_t, rows, prev_hash, tables)
+        except (ValueError, TypeError, struct.error) as exc:
+            problems.append((block, f"block {block} cannot be hashed ({exc})"))
+        else:
+            if digest != stored:
+                problems.append((block, f"block {block}: its rows do not match its hash"))
+        prev_stored, expected = stored, block + 1
+    for stream in streams:
+        while stream.head is not None:
+            row = stream.take()
+            if row[1] in seen:
+                problems.append(
+                    (row[1], f"{stream.table} id {row[0]} of block {row[1]} is out of order")
+                )
+            else:
+                problems.append(
+                    (row[1], f"{stream.table} id {row[0]} names block {row[1]}, which is not there")
+                )
+    return problems, head
+
+
+def verify(path: str | os.PathLike[str]) -> dict[str, object]:
+    """Return the result of checking a log's hash chain; never raises for a bad file.
+
+    Keys: ``ok``; ``samples``, ``quarantined`` and ``blocks`` (row counts, None when
+    they cannot be read); ``first_bad_block`` (the lowest block with a problem, or
+    None); ``reason`` (the first problem in a sentence, None when ok); ``problems``
+    (up to 20 sentences, lowest block first); ``head_hash`` (the last block's hash,
+    to keep elsewhere against a rewritten last block). The file is opened read-only.
+    A file that is not SQLite, not a recorder log or that SQLite finds corrupt gives
+    ``ok`` False with the reason.
+    """
+    result: dict[str, object] = {
+        "ok": False, "samples": None, "quarantined": None, "blocks": None,
+        "first_bad_block": None, "reason": None, "problems": [], "head_hash": None,
+    }  # fmt: skip
+    try:
+        conn = _open_reader(path)
+    except LogFormatError as exc:
+        result["reason"] = str(exc)
+        result["problems"] = [str(exc)]
+        return result
+    try:
+        conn.text_factory = bytes  # hash text as its stored bytes; bad UTF-8 cannot raise
+        result["samples"] = _count(conn, "samples")
+        result["quarantined"] = _count(conn, "quarantine")
+        result["blocks"] = _count(conn, "blocks")
+        problems, head = _verify_chain(conn)
+    except sqlite3.Error as exc:
+        LOG.warning("verify %s: SQLite reports %s", path, exc)
+        result["reason"] = f"{path}: SQLite cannot read the log ({exc})"
+        result["problems"] = [result["reason"]]
+        return result
+    except (AttributeError, TypeError, ValueError) as exc:  # a row of the wrong shape
+        result["reason"] = f"{path}: a row does not have the recorder's layout ({exc})"
+        result["problems"] = [result["reason"]]
+        return result
+    finally:
+        conn.close()
+    result["head_hash"] = head
+    if problems:
+        problems.sort(key=lambda p: p[0])
+        result["first_bad_block"] = problems[0][0]
+        result["reason"] = problems[0][1]
+        result["problems"] = [p[1] for p in problems[:_MAX_PROBLEMS]]
+    else:
+        result["ok"] = True
+    return result
