@@ -5,22 +5,28 @@ handler is a class taking ``(url, **options)`` whose instances are async context
 managers with an ``async def samples()`` iterator of :class:`~drivers.sample.Sample`.
 Its docstring lists the URL's options.
 
-Known schemes so far: ``sim`` (the simulated rig). Serial, Modbus and MQTT
-handlers join here as they are written.
+Known schemes: ``sim`` (the simulated rig), ``serial`` (a line instrument),
+``modbus+tcp`` and ``modbus+rtu`` (a power meter), ``mqtt`` and ``mqtts`` (a broker).
+Handlers are imported when first used, so a missing optional transport costs
+nothing until a URL asks for it.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import importlib
 from typing import Any
 from urllib.parse import urlsplit
 
 from drivers.errors import ConfigError
-from drivers.simulator import SimulatedRigDriver
 
-#: URL scheme -> handler. A module-level constant: handlers are registered here, in code.
-HANDLERS: dict[str, Callable[..., Any]] = {
-    "sim": SimulatedRigDriver,
+#: URL scheme -> "module:class" of its handler. A constant: handlers are registered here.
+HANDLERS: dict[str, str] = {
+    "sim": "drivers.simulator:SimulatedRigDriver",
+    "serial": "drivers.serial_line:SerialLineDriver",
+    "modbus+tcp": "drivers.modbus:ModbusMeterDriver",
+    "modbus+rtu": "drivers.modbus:ModbusMeterDriver",
+    "mqtt": "drivers.mqtt:MqttDriver",
+    "mqtts": "drivers.mqtt:MqttDriver",
 }
 
 
@@ -35,4 +41,5 @@ def open_source(url: str, **options: Any) -> Any:
     except KeyError:
         known = ", ".join(f"{name}://" for name in sorted(HANDLERS))
         raise ConfigError(f"no driver for {url!r}; known schemes: {known}") from None
-    return handler(url, **options)
+    module, _, name = handler.partition(":")
+    return getattr(importlib.import_module(module), name)(url, **options)

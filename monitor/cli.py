@@ -1,8 +1,10 @@
 """The ``ebullio`` command line.
 
-Verbs so far: ``demo`` (the simulated rig, live in the terminal, recorded to a
-log), ``simulate`` (write a synthetic log) and ``replay`` (a recorded log through
-the estimator). Each has ``--help`` with an example.
+Verbs so far: ``demo`` (the simulated rig through the real drivers, live in the
+terminal, recorded to a log), ``run`` (live, from a TOML rig configuration),
+``simulate`` (write a synthetic log), ``replay`` (a recorded log through the
+estimator), ``verify`` (a recorder log's hash chain) and ``export`` (a recorder log
+to the CSV interchange format). Each has ``--help`` with an example.
 """
 
 from __future__ import annotations
@@ -15,17 +17,12 @@ import sys
 from pathlib import Path
 
 from drivers.errors import EbullioError
-from drivers.sample import Sample
 from drivers.simulator import (
-    PacedClock,
     SimulatedRig,
-    SimulatedRigDriver,
     scenario_by_name,
     scenario_metadata,
 )
 from monitor import __version__
-from monitor.contracts import Estimate
-from monitor.estimator import VesselConfig, VesselEstimator
 from monitor.interchange import rows_from_samples, write_csv
 from monitor.replay import replay, summary_table
 from monitor.water import boiling_point_c, pressure_at_altitude_kpa
@@ -89,76 +86,32 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
-def _demo_line(elapsed_s: float, e: Estimate | None, readings: dict[str, float]) -> str:
-    """Return one live line of the demo: readings and the estimator's figures."""
-    if e is None:
-        return f"{elapsed_s:7.0f}  waiting for a water reading"
-    if e.target is None:
-        eta = "-"
-    elif not e.target.reachable:
-        eta = "not reachable"
-    else:
-        lo = f"{e.target.lo_s:.0f}" if e.target.lo_s is not None else "?"
-        hi = f"{e.target.hi_s:.0f}" if e.target.hi_s is not None else "?"
-        eta = f"{e.target.eta_s:.0f} s ({lo}-{hi})"
-    g = e.element_conductance_w_per_k
-    mass = e.water_mass_kg
-    return (
-        f"{elapsed_s:7.0f} {e.phase!s:>8} {e.water_c:8.2f} {readings.get('power', 0.0):7.0f} "
-        f"{eta:>20} {mass.value if mass else float('nan'):6.3f}±{mass.std if mass else 0:.3f} "
-        f"{e.ua_w_per_k.value:6.3f}±{e.ua_w_per_k.std:.3f} "
-        + (f"{g.value:6.1f}±{g.std:.1f}" if g else "     -")
-        + ("  " + "; ".join(f.message for f in e.flags if f.level != "notice") if e.flags else "")
-    )
-
-
 async def _demo(args: argparse.Namespace) -> int:
+    from monitor.demo import run_demo
+
     scenario = _scenario_from(args)
-    clock = PacedClock(args.speed)
-    url = f"sim://?scenario={scenario.name}&seed={args.seed}&speed={args.speed}"
-    driver = SimulatedRigDriver(url, clock=clock, scenario=scenario)
-    rig = driver.rig
-    meta = {"ebullio_version": __version__, **scenario_metadata(rig.scenario, args.seed)}
-    estimator = VesselEstimator(VesselConfig.from_metadata(scenario.vessel, meta, True))
     print(SAFETY_NOTE)
     print(
         f"demo: simulated {scenario.name} {scenario.vessel!r}, {scenario.water_mass_kg} kg of "
         f"water, boiling point {boiling_point_c(scenario.pressure_kpa):.2f} °C at "
-        f"{scenario.pressure_kpa:.2f} kPa, running at {args.speed:g}x real time"
+        f"{scenario.pressure_kpa:.2f} kPa, {args.speed:g}x real time; a simulated thermocouple "
+        "logger on a pseudo-terminal and a simulated Modbus TCP meter on 127.0.0.1"
     )
     print(
         f"{'time s':>7} {'phase':>8} {'water °C':>8} {'power W':>7} "
-        f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>10}"
+        f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>12}"
     )
     out_path = Path(args.out)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    batches: list[list[Sample]] = []
-    current: list[Sample] = []
-    last_print = -1e9
-
-    def instant(batch: list[Sample]) -> None:
-        nonlocal last_print
-        batches.append(batch)
-        readings = {s.channel: s.value for s in batch}
-        elapsed = batch[0].t - rig.scenario.start_epoch_s
-        e = estimator.step(elapsed, readings)
-        if elapsed - last_print >= args.every_s:
-            last_print = elapsed
-            print(_demo_line(elapsed, e, readings), flush=True)
-
-    async with driver:
-        async for sample in driver.samples():
-            if current and sample.t != current[0].t:
-                instant(current)
-                current = []
-            current.append(sample)
-    if current:
-        instant(current)
-    with open(out_path, "w", encoding="utf-8", newline="") as handle:
-        count = write_csv(
-            handle, rows_from_samples(batches, rig.scenario.start_epoch_s), meta, SIM_CHANNELS
-        )
-    print(f"demo: recorded {count} rows to {out_path}; replay it with: ebullio replay {out_path}")
+    stats, _ = await run_demo(
+        scenario, args.seed, str(out_path), args.speed, args.every_s,
+        say=lambda line: print(line, flush=True),
+    )  # fmt: skip
+    print(
+        f"demo: recorded {stats.samples} samples and {stats.estimates} estimates "
+        f"({stats.quarantined} inputs quarantined) to {out_path}; "
+        f"check it with: ebullio verify {out_path}; replay it with: ebullio replay {out_path}"
+    )
     return 0
 
 
@@ -183,6 +136,68 @@ def cmd_replay(args: argparse.Namespace) -> int:
     else:
         print(summary_table(result))
         print(SAFETY_NOTE)
+    return 0
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    """Run the live service from a rig configuration until SIGINT or SIGTERM."""
+    from monitor.config import load_config
+
+    config = load_config(args.config)
+    Path(args.log).parent.mkdir(parents=True, exist_ok=True)
+    stats = asyncio.run(_run_service(config, args.log, args.for_s))
+    print(json.dumps({"log": args.log, **stats.as_dict()}))
+    print(SAFETY_NOTE, file=sys.stderr)
+    return 0
+
+
+async def _run_service(config, log_path: str, for_s: float | None):
+    """Run the service with signal handlers installed; return its counters."""
+    import signal
+
+    from monitor.service import Service
+
+    service = Service(config, log_path)
+    loop = asyncio.get_running_loop()
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        loop.add_signal_handler(signum, service.stop)
+    if for_s is not None:
+        loop.call_later(for_s, service.stop)
+    log.info("running %d instruments and %d vessels; log %s (stop with Ctrl-C)",
+             len(config.instruments), len(config.vessels), log_path)  # fmt: skip
+    try:
+        return await service.run()
+    finally:
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            loop.remove_signal_handler(signum)
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    """Check a recorder log's hash chain; exit 1 when it is broken."""
+    from monitor.recorder import verify
+
+    result = verify(args.log)
+    if args.json:
+        print(json.dumps(result, allow_nan=False))
+    else:
+        state = "intact" if result["ok"] else "BROKEN"
+        counts = f"{result['blocks']} blocks, {result['samples']} samples"
+        print(f"{args.log}: hash chain {state}: {counts}, {result['quarantined']} quarantined")
+        if not result["ok"]:
+            print(f"first bad block: {result['first_bad_block']}; "
+                  f"{result.get('reason', 'no reason given')}")  # fmt: skip
+    return 0 if result["ok"] else 1
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    """Write one vessel of a log as a CSV interchange file."""
+    from monitor.logs import export_csv
+
+    out_path = Path(args.csv)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    with open(out_path, "w", encoding="utf-8", newline="") as out:
+        rows = export_csv(args.log, out, args.vessel)
+    print(f"wrote {rows} rows to {out_path}", file=sys.stderr)
     return 0
 
 
@@ -230,15 +245,19 @@ def build_parser() -> argparse.ArgumentParser:
     demo = verbs.add_parser(
         "demo",
         help="run the simulated rig live and record it",
-        description="The embedded default: a simulated kettle heated to the boil, with the live "
-        "estimator's figures (phase, time to boil with its 90 %% interval, water mass, UA, "
-        "element conductance) shown in the terminal, and recorded to a CSV log.",
-        epilog="example: ebullio demo --speed 20 --out out/demo.csv",
+        description="The embedded default: a simulated kettle heated to the boil, read through "
+        "the real drivers (a thermocouple logger on a pseudo-terminal, a Modbus TCP power "
+        "meter on 127.0.0.1), with the live estimator's figures (phase, time to boil with its "
+        "90 %% interval, water mass, UA, element conductance) shown in the terminal, and "
+        "everything recorded to an SQLite log.",
+        epilog="example: ebullio demo --speed 20 --out out/demo.sqlite",
     )
     _add_scenario_options(demo, seed=7)
     demo.add_argument("--speed", type=float, default=20.0, help="times real time (default 20)")
     demo.add_argument("--every-s", type=float, default=10.0, help="print every N simulated s")
-    demo.add_argument("--out", default="out/demo.csv", help="log file (default out/demo.csv)")
+    demo.add_argument(
+        "--out", default="out/demo.sqlite", help="SQLite log (default out/demo.sqlite)"
+    )
     demo.set_defaults(func=cmd_demo)
     rep = verbs.add_parser(
         "replay",
@@ -250,10 +269,49 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="example: ebullio replay replay_logs/kettle-clean.csv --json "
         "--estimates out/kettle-estimates.csv",
     )
-    rep.add_argument("logs", nargs="+", metavar="LOG", help="CSV logs (several: runs in order)")
+    rep.add_argument(
+        "logs", nargs="+", metavar="LOG",
+        help="CSV interchange or recorder (SQLite) logs; several are runs in order",
+    )  # fmt: skip
     rep.add_argument("--json", action="store_true", help="print the summary as one JSON object")
     rep.add_argument("--estimates", metavar="FILE.csv", help="write every filter step here")
     rep.set_defaults(func=cmd_replay)
+
+    run = verbs.add_parser(
+        "run",
+        help="monitor live instruments from a rig configuration",
+        description="Read the instruments and broker named in a TOML rig configuration, run "
+        "one estimator per vessel, record everything to an SQLite log and publish estimates. "
+        "Stops cleanly on Ctrl-C or SIGTERM; see DEVELOPERS.md for the configuration keys.",
+        epilog="example: ebullio run --config rig.toml --log logs/lab.sqlite",
+    )
+    run.add_argument("--config", required=True, help="TOML rig configuration")
+    run.add_argument("--log", required=True, help="SQLite log to write (appended if it exists)")
+    run.add_argument("--for-s", type=float, help="stop by itself after this many seconds")
+    run.set_defaults(func=cmd_run)
+
+    ver = verbs.add_parser(
+        "verify",
+        help="check that a recorder log was not altered",
+        description="Recompute the SHA-256 chain over every committed block of a recorder log. "
+        "Exits 1 when a block does not match, naming the first bad block.",
+        epilog="example: ebullio verify logs/lab.sqlite --json",
+    )
+    ver.add_argument("log", metavar="LOG", help="recorder (SQLite) log")
+    ver.add_argument("--json", action="store_true", help="print one JSON object")
+    ver.set_defaults(func=cmd_verify)
+
+    exp = verbs.add_parser(
+        "export",
+        help="write a recorder log as a CSV interchange file",
+        description="Write the steps one vessel's filter took, with the vessel's metadata, in "
+        "the CSV interchange format (times rounded to 1 ms).",
+        epilog="example: ebullio export logs/lab.sqlite --vessel urn-3 --csv out/urn-3.csv",
+    )
+    exp.add_argument("log", metavar="LOG", help="recorder (SQLite) or CSV log")
+    exp.add_argument("--csv", required=True, metavar="FILE", help="CSV file to write")
+    exp.add_argument("--vessel", help="which vessel (needed when the log holds several)")
+    exp.set_defaults(func=cmd_export)
     return parser
 
 
@@ -265,6 +323,8 @@ def main(argv: list[str] | None = None) -> int:
         level=logging.DEBUG if args.verbose else logging.INFO,
         format="%(levelname)s %(name)s: %(message)s",
     )
+    if not args.verbose:
+        logging.getLogger("pymodbus").setLevel(logging.WARNING)  # it announces every start
     try:
         return args.func(args)
     except EbullioError as exc:

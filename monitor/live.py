@@ -181,6 +181,9 @@ class LiveVessel:
         self.settings = settings
         self.assembler = InstantAssembler(vessel)
         self.estimator: VesselEstimator | None = None
+        # Built now, not at the first reading: the first filter of a process builds the
+        # water-property tables (about half a second), which would stall a live loop.
+        self._fresh: VesselEstimator | None = VesselEstimator(self.config, settings)
         self.run_number = 0
         self.latest: Estimate | None = None
         self.steps = 0
@@ -198,7 +201,8 @@ class LiveVessel:
             carried = self._previous_row if refill else None
             self.run_number += 1
             self._run = Run(self.vessel, self.run_number, str(self.run_number), [], None)  # type: ignore[arg-type]
-            self.estimator = VesselEstimator(self.config, self.settings)
+            self.estimator = self._fresh or VesselEstimator(self.config, self.settings)
+            self._fresh = None
             self._window.clear()
         assert self.estimator is not None
         if carried is not None:
@@ -216,11 +220,11 @@ class LiveVessel:
         return estimate
 
 
-def estimate_record(vessel: LiveVessel, e: Estimate, t: float) -> dict[str, object]:
-    """Return an estimate as a flat, JSON-ready record (Unix time ``t``; SI units in keys).
+def estimate_message(vessel: LiveVessel, e: Estimate, t: float) -> dict[str, object]:
+    """Return an estimate as a flat, JSON-ready message (Unix time ``t``; SI units in keys).
 
-    The recorder stores these, and the service publishes them on
-    ``<prefix>/<vessel>/estimate``.
+    The service publishes these, retained, on ``<prefix>/<vessel>/estimate``; boards
+    and other systems read them. Values that are not finite are null.
     """
 
     def pair(est: object) -> tuple[float | None, float | None]:

@@ -41,7 +41,7 @@ from drivers.errors import LogFormatError
 from monitor import __version__
 from monitor.contracts import Estimate, Estimated, Level, finite_or_none
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
-from monitor.interchange import InterchangeLog, LogRow, read_csv
+from monitor.interchange import InterchangeLog, LogRow
 
 RUN_GAP_S = 900.0
 REFILL_DROP_K = 10.0
@@ -299,7 +299,9 @@ def replay(
     Writes per-step estimates to ``estimates_out`` when given, and progress lines to
     ``progress`` for long logs.
     """
-    logs = [read_csv(p) for p in paths]
+    from monitor.logs import read_log  # here: monitor.logs builds on this module
+
+    logs = [log for p in paths for log in read_log(p)]
     runs, quarantined = split_runs(logs)
     total = sum(len(r.rows) for r in runs)
     writer = None

@@ -23,5 +23,30 @@ def test_sim_url_opens_the_simulated_rig():
 
 
 def test_unknown_scheme_names_the_known_ones():
-    with pytest.raises(ConfigError, match=r"known schemes: sim://"):
+    with pytest.raises(ConfigError, match=r"known schemes: .*serial://, sim://"):
         open_source("telnet://rig:23")
+
+
+def test_every_registered_scheme_names_a_driver_class_that_exists():
+    import importlib
+
+    from drivers.sources import HANDLERS
+
+    for scheme, target in HANDLERS.items():
+        module, _, name = target.partition(":")
+        cls = getattr(importlib.import_module(module), name)
+        assert callable(cls), scheme
+        assert hasattr(cls, "samples"), scheme
+
+
+def test_a_modbus_url_opens_the_meter_driver_with_its_options():
+    from drivers.channels import ChannelBinding
+    from drivers.modbus import ModbusMeterDriver
+    from drivers.registers import RegisterSpec
+
+    driver = open_source(
+        "modbus+tcp://127.0.0.1:5020?unit=1",
+        registers=[RegisterSpec(name="power", address=0, type="float32", unit="W")],
+        bindings=[ChannelBinding("power", "k1", "power", "W")],
+    )
+    assert isinstance(driver, ModbusMeterDriver)

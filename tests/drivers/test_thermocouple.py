@@ -320,8 +320,10 @@ def test_cjc_type_k_100_c_with_cold_junction_at_25_c() -> None:
     assert -0.05 <= plain - 100.0 <= 0.04  # REF §1.2, K 0…500 °C band
 
 
-@pytest.mark.parametrize(("tc_type", "hot_c", "cj_c"), [("K", 100.0, 25.0), ("E", 900.0, 25.0),
-                                                         ("J", 700.0, 40.0), ("T", 350.0, 30.0)])
+@pytest.mark.parametrize(
+    ("tc_type", "hot_c", "cj_c"),
+    [("K", 100.0, 25.0), ("E", 900.0, 25.0), ("J", 700.0, 40.0), ("T", 350.0, 30.0)],
+)
 def test_adding_temperatures_would_be_wrong(tc_type: str, hot_c: float, cj_c: float) -> None:
     measured = emf_mv(tc_type, hot_c) - emf_mv(tc_type, cj_c)
     right = temperature_c(tc_type, measured, cold_junction_c=cj_c)
@@ -462,8 +464,10 @@ def test_bad_cold_junction_is_a_fault() -> None:
         assert "cold-junction" in reading.reason
 
 
-@pytest.mark.parametrize(("tc_type", "hot_c", "cj_c"), [("K", 100.0, 25.0), ("T", -40.0, 20.0),
-                                                         ("J", 20.0, 20.0), ("B", 1200.0, 30.0)])
+@pytest.mark.parametrize(
+    ("tc_type", "hot_c", "cj_c"),
+    [("K", 100.0, 25.0), ("T", -40.0, 20.0), ("J", 20.0, 20.0), ("B", 1200.0, 30.0)],
+)
 def test_in_range_reading_is_ok(tc_type: str, hot_c: float, cj_c: float) -> None:
     raw = emf_mv(tc_type, hot_c) - emf_mv(tc_type, cj_c)
     reading = classify_emf(tc_type, raw, cj_c)
@@ -496,8 +500,11 @@ SEEBECK = {
 
 @pytest.mark.parametrize(
     ("tc_type", "t_c", "expected"),
-    [(k, t, s) for k, vals in SEEBECK.items() for t, s in zip((0.0, 25.0, 100.0), vals,
-                                                                  strict=True)],
+    [
+        (k, t, s)
+        for k, vals in SEEBECK.items()
+        for t, s in zip((0.0, 25.0, 100.0), vals, strict=True)
+    ],
 )
 def test_seebeck_reference_values(tc_type: str, t_c: float, expected: float) -> None:
     assert seebeck_uv_per_k(tc_type, t_c) == pytest.approx(expected, abs=0.01)

@@ -1,0 +1,497 @@
+"""The rig configuration: a TOML file of the site, the broker, the instruments and the vessels.
+
+:func:`load_config` reads and checks the whole file before anything starts; every
+mistake is a :class:`~drivers.errors.ConfigError` naming the file, the key (as a
+dotted path such as ``vessels[2].channels[0].unit``) and the reason. Unknown keys
+are mistakes too, because a misspelt key silently ignored is a setting lost.
+
+An example, with every table::
+
+    [site]
+    altitude_m = 350                  # or pressure_kpa = 97.2
+
+    [mqtt]                            # optional: a broker for samples in and estimates out
+    url = "mqtt://127.0.0.1:1883"     # mqtt:// or mqtts://
+    prefix = "ebullio"                # topics <prefix>/<vessel>/<channel>
+    username_env = "EBULLIO_MQTT_USER"      # names of environment variables, never
+    password_env = "EBULLIO_MQTT_PASSWORD"  # the credentials themselves
+    client_id = "ebullio-lab-1"       # fixed id: a persistent session (QoS 1 kept while away)
+    publish = true                    # estimates and flags back, retained
+
+    [recorder]
+    commit_interval_s = 1.0           # a crash loses at most this window
+    queue_samples = 100000            # the bounded queue between sources and consumers
+
+    [[instruments]]                   # a serial line logger
+    url = "serial:///dev/ttyUSB0?baud=9600"
+    framing = "keyvalue"              # csv | keyvalue | regex
+    time_field = "t"                  # optional: the instrument's own time stamp
+
+    [[instruments]]                   # a Modbus power meter
+    url = "modbus+tcp://192.0.2.10:502?unit=1"
+    poll_s = 1.0
+    power_from_energy = "energy"      # optional: average power from an energy counter
+    registers = [
+      { name = "power", address = 0, type = "float32", unit = "W" },
+      { name = "energy", address = 2, type = "uint32", scale = 0.01, unit = "Wh" },
+    ]
+
+    [[vessels]]
+    id = "urn-3"
+    vessel_heat_capacity_j_per_k = 1800
+    target_c = 95                     # optional: a setpoint instead of the boiling point
+    rated_power_w = 3000
+
+    [[vessels.channels]]              # one table per channel
+    instrument = "serial:///dev/ttyUSB0?baud=9600"   # an [[instruments]] url
+    field = "ch1"                     # where the instrument reports it
+    role = "water"                    # water, element, ambient, power, energy, ...
+    unit = "mV"                       # the role's unit, or mV for a raw thermocouple
+    thermocouple = "K"
+    cold_junction = "cj"              # a field of the same frame, or a fixed °C
+    offset = -0.2                     # calibration, in °C for a thermocouple
+    gain = 1.0
+
+    [[vessels.channels]]
+    instrument = "modbus+tcp://192.0.2.10:502?unit=1"
+    field = "power"                   # a register name
+    role = "power"
+    unit = "W"
+
+    [[vessels]]
+    id = "heater-7"                   # no channels: it publishes on MQTT itself
+    vessel_heat_capacity_j_per_k = 9000
+    element_sensor = false            # whether its messages carry an element temperature
+
+    [vessels.metadata]                # optional: more `key: value` lines for the log
+    site_note = "plant room B"
+
+A vessel's metadata (what a replay needs: heat capacity, target, site pressure,
+sensor time constants) is recorded in the log with its samples.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tomllib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+from urllib.parse import urlsplit
+
+from drivers.channels import ChannelBinding
+from drivers.errors import ConfigError, EbullioError
+from monitor import water
+
+#: Vessel keys that go to the estimator and the log's metadata as numbers.
+VESSEL_NUMBERS = (
+    "vessel_heat_capacity_j_per_k",
+    "element_heat_capacity_j_per_k",
+    "rated_power_w",
+    "nominal_volume_l",
+    "target_c",
+    "water_sensor_tau_s",
+    "element_sensor_tau_s",
+)
+
+SERIAL_SCHEMES = ("serial",)
+MODBUS_SCHEMES = ("modbus+tcp", "modbus+rtu")
+
+
+@dataclass(frozen=True)
+class MqttSettings:
+    """The broker: where, the topic prefix, credentials (from the environment), session."""
+
+    url: str
+    prefix: str = "ebullio"
+    username: str | None = None
+    password: str | None = field(default=None, repr=False)
+    client_id: str | None = None
+    publish: bool = True
+    session_expiry_s: float = 3600.0
+
+
+@dataclass(frozen=True)
+class Instrument:
+    """One instrument: its URL, its kind, the driver options and the channels read from it."""
+
+    url: str
+    kind: str  # "serial" or "modbus"
+    options: dict[str, Any]
+    bindings: tuple[ChannelBinding, ...] = ()
+
+
+@dataclass(frozen=True)
+class VesselSpec:
+    """One vessel: id, the metadata its estimator and log need, and where its data comes from."""
+
+    id: str
+    metadata: dict[str, str | float]
+    has_element_sensor: bool
+    via_mqtt: bool
+
+
+@dataclass(frozen=True)
+class RigConfig:
+    """A checked rig configuration (see the module docstring)."""
+
+    path: str
+    text: str
+    pressure_kpa: float
+    mqtt: MqttSettings | None
+    instruments: tuple[Instrument, ...]
+    vessels: tuple[VesselSpec, ...]
+    commit_interval_s: float = 1.0
+    queue_samples: int = 100_000
+
+
+class _Table:
+    """A TOML table being read: knows its dotted path and which keys were used."""
+
+    def __init__(self, data: object, path: str, file: str) -> None:
+        if not isinstance(data, dict):
+            raise ConfigError(f"{file}: {path or 'the file'}: expected a table")
+        self.data: dict[str, Any] = data
+        self.path = path
+        self.file = file
+        self.used: set[str] = set()
+
+    def where(self, key: str) -> str:
+        return f"{self.path}.{key}" if self.path else key
+
+    def fail(self, key: str, reason: str) -> ConfigError:
+        return ConfigError(f"{self.file}: {self.where(key)}: {reason}")
+
+    def has(self, key: str) -> bool:
+        return key in self.data
+
+    def get(self, key: str, default: Any = None) -> Any:
+        self.used.add(key)
+        return self.data.get(key, default)
+
+    def string(self, key: str, default: str | None = None, *, required: bool = False) -> Any:
+        value = self.get(key, default)
+        if value is None:
+            if required:
+                raise self.fail(key, "is required")
+            return None
+        if not isinstance(value, str) or not value.strip():
+            raise self.fail(key, f"must be a non-empty string, not {value!r}")
+        return value
+
+    def number(
+        self,
+        key: str,
+        default: float | None = None,
+        *,
+        required: bool = False,
+        lo: float | None = None,
+        hi: float | None = None,
+        positive: bool = False,
+    ) -> Any:
+        value = self.get(key, default)
+        if value is None:
+            if required:
+                raise self.fail(key, "is required")
+            return None
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise self.fail(key, f"must be a number, not {value!r}")
+        value = float(value)
+        if not math.isfinite(value):
+            raise self.fail(key, "must be finite")
+        if positive and value <= 0.0:
+            raise self.fail(key, f"must be above zero, not {value:g}")
+        if (lo is not None and value < lo) or (hi is not None and value > hi):
+            raise self.fail(key, f"{value:g} is outside {lo:g} to {hi:g}")
+        return value
+
+    def boolean(self, key: str, default: bool) -> bool:
+        value = self.get(key, default)
+        if not isinstance(value, bool):
+            raise self.fail(key, f"must be true or false, not {value!r}")
+        return value
+
+    def tables(self, key: str) -> list[_Table]:
+        value = self.get(key, [])
+        if not isinstance(value, list):
+            raise self.fail(key, "must be a list of tables")
+        return [_Table(item, f"{self.where(key)}[{i}]", self.file) for i, item in enumerate(value)]
+
+    def table(self, key: str) -> _Table | None:
+        if key not in self.data:
+            return None
+        return _Table(self.get(key), self.where(key), self.file)
+
+    def done(self) -> None:
+        """Raise for keys that were never read (misspelt or unknown)."""
+        unknown = sorted(set(self.data) - self.used)
+        if unknown:
+            known = ", ".join(sorted(self.used)) or "none"
+            raise self.fail(unknown[0], f"unknown key (keys read here: {known})")
+
+
+def load_config(path: str | Path, environ: Mapping[str, str] | None = None) -> RigConfig:
+    """Return the checked configuration in the TOML file at ``path``.
+
+    ``environ`` (default ``os.environ``) supplies the MQTT credentials named in the
+    file. Raises :class:`ConfigError` naming the file, the key and the reason.
+    """
+    file = str(path)
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{file}: cannot read the configuration: {exc}") from None
+    return parse_config(text, file, os.environ if environ is None else environ)
+
+
+def parse_config(text: str, file: str, environ: Mapping[str, str]) -> RigConfig:
+    """Return the checked configuration in TOML ``text`` (``file`` names it in errors)."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{file}: not valid TOML: {exc}") from None
+    top = _Table(data, "", file)
+    pressure_kpa = _site(top.table("site"))
+    mqtt = _mqtt(top.table("mqtt"), environ)
+    recorder = top.table("recorder")
+    commit_interval_s, queue_samples = 1.0, 100_000
+    if recorder is not None:
+        commit_interval_s = recorder.number("commit_interval_s", 1.0, lo=0.05, hi=60.0)
+        queue_samples = int(recorder.number("queue_samples", 100_000, lo=100, hi=1e8))
+        recorder.done()
+    instruments = {}
+    for table in top.tables("instruments"):
+        inst = _instrument(table)
+        if inst.url in instruments:
+            raise table.fail("url", f"instrument {inst.url!r} is listed twice")
+        instruments[inst.url] = inst
+    vessels: list[VesselSpec] = []
+    bindings: dict[str, list[ChannelBinding]] = {url: [] for url in instruments}
+    for table in top.tables("vessels"):
+        spec, channels = _vessel(table, pressure_kpa, instruments, mqtt is not None)
+        if any(v.id == spec.id for v in vessels):
+            raise table.fail("id", f"vessel {spec.id!r} is listed twice")
+        vessels.append(spec)
+        for url, binding in channels:
+            bindings[url].append(binding)
+    top.done()
+    if not vessels:
+        raise ConfigError(f"{file}: vessels: at least one [[vessels]] table is needed")
+    unused = [url for url, b in bindings.items() if not b]
+    if unused:
+        raise ConfigError(f"{file}: instruments: {unused[0]!r} feeds no vessel channel")
+    built = tuple(
+        Instrument(i.url, i.kind, i.options, tuple(bindings[i.url])) for i in instruments.values()
+    )
+    for inst in built:
+        _check_driver_options(inst, file)
+    return RigConfig(
+        path=file,
+        text=text,
+        pressure_kpa=pressure_kpa,
+        mqtt=mqtt,
+        instruments=built,
+        vessels=tuple(vessels),
+        commit_interval_s=commit_interval_s,
+        queue_samples=queue_samples,
+    )
+
+
+def _site(site: _Table | None) -> float:
+    if site is None:
+        return 101.325
+    if site.has("pressure_kpa") and site.has("altitude_m"):
+        raise site.fail("altitude_m", "give pressure_kpa or altitude_m, not both")
+    pressure = site.number("pressure_kpa", lo=water.P_MIN_KPA, hi=water.P_MAX_KPA)
+    altitude = site.number("altitude_m", lo=-500.0, hi=8000.0)
+    site.done()
+    if pressure is not None:
+        return pressure
+    return water.pressure_at_altitude_kpa(altitude) if altitude is not None else 101.325
+
+
+def _mqtt(table: _Table | None, environ: Mapping[str, str]) -> MqttSettings | None:
+    if table is None:
+        return None
+    url = table.string("url", required=True)
+    parts = urlsplit(url)
+    if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
+        raise table.fail("url", f"{url!r} is not an mqtt:// or mqtts:// URL with a host")
+    if parts.username or parts.password:
+        raise table.fail("url", "put no credentials in the URL; name them with username_env")
+    prefix = table.string("prefix", "ebullio")
+    if "/" in prefix.strip("/") or any(c in prefix for c in "+#"):
+        raise table.fail("prefix", f"{prefix!r} must be one topic level without + or #")
+    credentials: dict[str, str | None] = {}
+    for key in ("username_env", "password_env"):
+        name = table.string(key)
+        if name is None:
+            credentials[key] = None
+            continue
+        if name not in environ:
+            raise table.fail(key, f"the environment variable {name!r} is not set")
+        credentials[key] = environ[name]
+    if credentials["password_env"] is not None and credentials["username_env"] is None:
+        raise table.fail("password_env", "a password needs username_env too")
+    settings = MqttSettings(
+        url=url,
+        prefix=prefix.strip("/"),
+        username=credentials["username_env"],
+        password=credentials["password_env"],
+        client_id=table.string("client_id"),
+        publish=table.boolean("publish", True),
+        session_expiry_s=table.number("session_expiry_s", 3600.0, lo=0.0, hi=4294967295.0),
+    )
+    table.done()
+    return settings
+
+
+def _instrument(table: _Table) -> Instrument:
+    url = table.string("url", required=True)
+    scheme = urlsplit(url).scheme
+    options: dict[str, Any] = {}
+    if scheme in SERIAL_SCHEMES:
+        kind = "serial"
+        framing = table.string("framing", required=True)
+        if framing not in ("csv", "keyvalue", "regex"):
+            raise table.fail("framing", f"{framing!r} is not one of csv, keyvalue, regex")
+        options["framing"] = framing
+        for key in ("pattern", "time_field", "delimiter", "pair_separator", "key_separator"):
+            if table.has(key):
+                options[key] = table.string(key)
+        if table.has("fields"):
+            fields = table.get("fields")
+            if not isinstance(fields, list) or not all(isinstance(f, str) for f in fields):
+                raise table.fail("fields", 'must be a list of field names ("" skips one)')
+            options["fields"] = tuple(fields)
+        options["max_line_bytes"] = int(table.number("max_line_bytes", 1024, lo=16, hi=65536))
+    elif scheme in MODBUS_SCHEMES:
+        kind = "modbus"
+        options["poll_s"] = table.number("poll_s", 1.0, lo=0.001, hi=3600.0)
+        options["timeout_s"] = table.number("timeout_s", 1.0, lo=0.01, hi=60.0)
+        options["power_from_energy"] = table.string("power_from_energy")
+        registers = table.get("registers")
+        if not isinstance(registers, list) or not registers:
+            raise table.fail("registers", "a Modbus instrument needs a list of registers")
+        options["registers"] = registers
+    else:
+        known = ", ".join(f"{s}://" for s in (*SERIAL_SCHEMES, *MODBUS_SCHEMES))
+        raise table.fail("url", f"no instrument driver for {url!r}; known schemes: {known} "
+                         "(MQTT sources go in [mqtt])")  # fmt: skip
+    table.done()
+    return Instrument(url, kind, options)
+
+
+def _vessel(
+    table: _Table, pressure_kpa: float, instruments: Mapping[str, Instrument], has_mqtt: bool
+) -> tuple[VesselSpec, list[tuple[str, ChannelBinding]]]:
+    vessel_id = table.string("id", required=True)
+    if any(c in vessel_id for c in "/+#") or vessel_id != vessel_id.strip():
+        raise table.fail("id", f"{vessel_id!r} may not hold '/', '+', '#' or outer spaces")
+    metadata: dict[str, str | float] = {"vessel": vessel_id, "pressure_kpa": pressure_kpa}
+    for key in VESSEL_NUMBERS:
+        bounds = {"lo": 0.0, "hi": 1e9}
+        if key == "target_c":
+            bounds = {"lo": 1.0, "hi": 200.0}
+        value = table.number(key, required=key == "vessel_heat_capacity_j_per_k", **bounds)
+        if value is not None:
+            metadata[key] = value
+    extra = table.table("metadata")
+    if extra is not None:
+        for key in list(extra.data):
+            value = extra.get(key)
+            if key in metadata or key in ("element_sensor", *VESSEL_NUMBERS):
+                raise extra.fail(key, "is set by the vessel's own keys; give it there")
+            if isinstance(value, bool) or not isinstance(value, str | int | float):
+                raise extra.fail(key, "must be a string or a number")
+            if isinstance(value, str) and "\n" in value:
+                raise extra.fail(key, "must fit on one line")
+            metadata[key] = float(value) if isinstance(value, int | float) else value
+    channels: list[tuple[str, ChannelBinding]] = []
+    for ch in table.tables("channels"):
+        url = ch.string("instrument", required=True)
+        if url not in instruments:
+            raise ch.fail("instrument", f"{url!r} is not one of the [[instruments]] urls")
+        cold = ch.get("cold_junction")
+        if cold is not None and (isinstance(cold, bool) or not isinstance(cold, str | int | float)):
+            raise ch.fail("cold_junction", "must be a field name or a fixed temperature in °C")
+        try:
+            binding = ChannelBinding(
+                field=ch.string("field", required=True),
+                vessel=vessel_id,
+                role=ch.string("role", required=True),
+                unit=ch.string("unit", required=True),
+                thermocouple=ch.string("thermocouple"),
+                cold_junction=float(cold) if isinstance(cold, int | float) else cold,
+                offset=ch.number("offset", 0.0),
+                gain=ch.number("gain", 1.0),
+            )
+        except ConfigError as exc:
+            raise ConfigError(f"{ch.file}: {ch.path}: {exc}") from None
+        ch.done()
+        channels.append((url, binding))
+    roles = {b.role for _, b in channels}
+    if channels:
+        if "water" not in roles:
+            raise table.fail("channels", "a vessel needs a channel with role 'water'")
+        if "power" not in roles and "energy" not in roles:
+            raise table.fail("channels", "a vessel needs a 'power' or 'energy' channel")
+        if table.has("element_sensor"):
+            raise table.fail("element_sensor", "only for vessels without channels (MQTT)")
+        has_element = "element" in roles
+    else:
+        if not has_mqtt:
+            raise table.fail("channels", "a vessel without channels needs an [mqtt] broker")
+        has_element = table.boolean("element_sensor", False)
+    metadata["element_sensor"] = "yes" if has_element else "no"
+    table.done()
+    return VesselSpec(vessel_id, metadata, has_element, not channels), channels
+
+
+def _check_driver_options(inst: Instrument, file: str) -> None:
+    """Build the instrument's driver settings once, so a bad option fails before the start."""
+    try:
+        driver_settings(inst)
+    except EbullioError as exc:
+        raise ConfigError(f"{file}: instrument {inst.url!r}: {exc}") from None
+
+
+def driver_settings(inst: Instrument) -> dict[str, Any]:
+    """Return the keyword arguments of the instrument's driver (besides url and clock)."""
+    if inst.kind == "serial":
+        from drivers.framing import LineSpec
+
+        o = dict(inst.options)
+        max_line = o.pop("max_line_bytes")
+        try:
+            spec = LineSpec(**o)
+        except TypeError as exc:
+            raise ConfigError(f"framing options: {exc}") from None
+        return {"spec": spec, "bindings": inst.bindings, "max_line_bytes": max_line}
+    from drivers.registers import RegisterSpec
+
+    registers = []
+    for i, reg in enumerate(inst.options["registers"]):
+        if not isinstance(reg, dict):
+            raise ConfigError(f"registers[{i}] must be a table")
+        try:
+            registers.append(RegisterSpec(**reg))
+        except TypeError as exc:
+            raise ConfigError(f"registers[{i}]: {exc}") from None
+    names = {r.name for r in registers}
+    for b in inst.bindings:
+        if b.field not in names:
+            raise ConfigError(f"channel {b.vessel}/{b.role} reads register {b.field!r}, "
+                              f"which is not in the register map")  # fmt: skip
+    power_from = inst.options["power_from_energy"]
+    if power_from is not None and power_from not in names:
+        raise ConfigError(f"power_from_energy names {power_from!r}, not a register")
+    return {
+        "registers": registers,
+        "bindings": inst.bindings,
+        "poll_s": inst.options["poll_s"],
+        "timeout_s": inst.options["timeout_s"],
+        "derive_power_from": power_from,
+    }

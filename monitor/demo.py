@@ -1,0 +1,222 @@
+"""``ebullio demo``: the live service over a simulated rig that speaks real instrument protocols.
+
+The rig is simulated (:mod:`drivers.simulator`), but nothing after it is: a
+simulated thermocouple logger prints its lines into a pseudo-terminal, which the
+serial line driver reads; a simulated power meter answers Modbus TCP on
+127.0.0.1, which the Modbus driver polls; the service records everything to an
+SQLite log and runs the estimator, exactly as ``ebullio run`` does with a rig
+configuration (the demo writes one and records it in the log).
+
+Time: the rig runs ``speed`` times faster than real time. The logger stamps its
+lines with the simulated clock and the drivers are handed the same clock, so the
+log reads as if the run had happened at real speed. The meter is polled four times
+per simulated sample interval and, like a real meter, shows the power flowing now:
+at each instant the logger's line goes out first, then the meter takes the power of
+the interval that starts. The filter takes the latest power reading at each water
+reading, so every step gets the power of its own interval.
+
+This alignment matters: the estimator is sensitive to power that lags the
+temperatures by one sample at a switch (see DEVELOPERS.md, known gaps).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import os
+import signal
+import time
+from collections.abc import Callable
+from dataclasses import replace
+
+from drivers.emulators.line_logger import LineLoggerEmulator, open_pty_pair, render_line
+from drivers.emulators.power_meter import PowerMeterEmulator
+from drivers.sample import Sample
+from drivers.simulator import PacedClock, Scenario, SimulatedRig, scenario_metadata
+from monitor.config import VESSEL_NUMBERS, RigConfig, parse_config
+from monitor.service import Service, Stats
+
+#: Channels the simulated logger prints; the rest of the rig's readings go to the meter.
+LOGGER_CHANNELS = ("water_emf", "element_emf", "cold_junction", "ambient")
+METER_KEYS = {"power": "power_w", "energy": "energy_wh", "voltage": "voltage_v",
+              "current": "current_a"}  # fmt: skip
+
+
+def demo_scenario(scenario: Scenario) -> Scenario:
+    """Return ``scenario`` with raw type K thermocouples on the water and the element."""
+    sensors = dict(scenario.sensors)
+    for role in ("water", "element"):
+        if role in sensors:
+            sensors[role] = replace(sensors[role], raw_tc_type="K")
+    return replace(scenario, sensors=sensors)
+
+
+def _toml_value(value: object) -> str:
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    return repr(float(value))  # type: ignore[arg-type]
+
+
+def demo_config_text(
+    scenario: Scenario, seed: int, serial_port: str, meter_url: str, poll_s: float
+) -> str:
+    """Return the TOML rig configuration of the demo (recorded in the log like any other)."""
+    meta = scenario_metadata(scenario, seed)
+    numbers = VESSEL_NUMBERS
+    serial_url = f"serial://{serial_port}?baud=115200"
+    lines = [
+        "# ebullio demo: a simulated rig behind a serial line logger and a Modbus meter",
+        "[site]",
+        f"pressure_kpa = {scenario.pressure_kpa!r}",
+        "",
+        "[recorder]",
+        "commit_interval_s = 1.0",
+        "",
+        "[[instruments]]",
+        f'url = "{serial_url}"',
+        'framing = "keyvalue"',
+        'time_field = "t"',
+        "",
+        "[[instruments]]",
+        f'url = "{meter_url}"',
+        f"poll_s = {poll_s!r}",
+        "registers = [",
+        '  { name = "power", address = 0, type = "float32", unit = "W" },',
+        '  { name = "energy", address = 2, type = "uint32", unit = "Wh", scale = 0.01 },',
+        '  { name = "voltage", address = 4, type = "uint16", unit = "V", scale = 0.1 },',
+        '  { name = "current", address = 5, type = "int32", unit = "A", scale = 0.001, '
+        'word_order = "little" },',
+        "]",
+        "",
+        "[[vessels]]",
+        f'id = "{scenario.vessel}"',
+    ]
+    lines += [f"{key} = {_toml_value(meta[key])}" for key in numbers if key in meta]
+    channels = [
+        (serial_url, "water_mv", "water", "mV", "K"),
+        (serial_url, "element_mv", "element", "mV", "K"),
+        (serial_url, "ambient_c", "ambient", "degC", None),
+        (meter_url, "power", "power", "W", None),
+        (meter_url, "energy", "energy", "Wh", None),
+        (meter_url, "voltage", "voltage", "V", None),
+        (meter_url, "current", "current", "A", None),
+    ]
+    for url, field, role, unit, tc in channels:
+        lines += ["", "[[vessels.channels]]", f'instrument = "{url}"', f'field = "{field}"']
+        lines += [f'role = "{role}"', f'unit = "{unit}"']
+        if tc:
+            lines += [f'thermocouple = "{tc}"', 'cold_junction = "cj_c"']
+    lines += ["", "[vessels.metadata]"]
+    own = {*numbers, "vessel", "pressure_kpa", "altitude_m"}
+    lines += [f"{k} = {_toml_value(v)}" for k, v in meta.items() if k not in own]
+    return "\n".join(lines) + "\n"
+
+
+def _line(elapsed_s: float, m: dict[str, object]) -> str:
+    """Return one live terminal line of the demo from an estimate message."""
+
+    def num(key: str, fmt: str) -> str:
+        value = m.get(key)
+        return format(value, fmt) if isinstance(value, float) else "-"
+
+    eta = m.get("time_to_target_s")
+    if m.get("target_c") is None:
+        eta_text = "-"
+    elif eta is None:
+        eta_text = "not reachable"
+    else:
+        eta_text = (
+            f"{eta:.0f} s ({num('time_to_target_lo_s', '.0f')}-{num('time_to_target_hi_s', '.0f')})"
+        )
+    raised = m.get("flags") or []
+    flags = [f["message"] for f in raised if f["level"] != "notice"]  # type: ignore[union-attr]
+    return (
+        f"{elapsed_s:7.0f} {m['phase']!s:>8} {num('water_c', '8.2f')} {num('power_w', '7.0f')} "
+        f"{eta_text:>20} {num('water_mass_kg', '6.3f')}±{num('water_mass_std', '.3f')} "
+        f"{num('ua_w_per_k', '6.3f')}±{num('ua_std', '.3f')} "
+        f"{num('element_conductance_w_per_k', '6.1f')}±{num('element_conductance_std', '.1f')}"
+        + ("  " + "; ".join(flags) if flags else "")
+    )
+
+
+async def run_demo(
+    scenario: Scenario,
+    seed: int,
+    log_path: str,
+    speed: float,
+    every_s: float = 10.0,
+    say: Callable[[str], None] = print,
+) -> tuple[Stats, RigConfig]:
+    """Run the demo to the end of the scenario (or SIGINT/SIGTERM); return counters and config."""
+    scenario = demo_scenario(scenario)
+    # simulated time starts when the rig does, once the service is listening; until
+    # then the clock is the wall clock (the meter reads zeros)
+    base = {"wall": time.time(), "mono": time.monotonic(), "speed": 1.0}
+
+    def sim_now() -> float:
+        return base["wall"] + (time.monotonic() - base["mono"]) * base["speed"]
+
+    rig = SimulatedRig(scenario, seed=seed, source="demo")
+    master_fd, slave_path = open_pty_pair()
+    # four polls per sample interval: one always lands well inside each interval, away
+    # from the instants where the line is written and the meter changes
+    poll_s = scenario.sample_interval_s / speed / 4.0
+    last_said = -1e18
+    try:
+        async with PowerMeterEmulator("modbus+tcp://127.0.0.1:0") as meter:
+            text = demo_config_text(scenario, seed, slave_path, meter.url, poll_s)
+            config = parse_config(text, "<demo configuration>", {})
+
+            def on_estimate(m: dict[str, object]) -> None:
+                nonlocal last_said
+                elapsed = float(m["t"]) - base["wall"]  # type: ignore[arg-type]
+                if elapsed - last_said >= every_s:
+                    last_said = elapsed
+                    say(_line(elapsed, m))
+
+            service = Service(config, log_path, clock=sim_now, on_estimate=on_estimate)
+            loop = asyncio.get_running_loop()
+            stopping = asyncio.Event()
+            for signum in (signal.SIGINT, signal.SIGTERM):
+                loop.add_signal_handler(signum, stopping.set)
+            task = asyncio.create_task(service.run(), name="service")
+            try:
+                await service.started.wait()
+                await asyncio.sleep(0.5)  # let the serial driver open the port first
+                clock = PacedClock(speed)
+                logger = LineLoggerEmulator(rig, master_fd, clock)
+                base.update(wall=sim_now(), mono=time.monotonic(), speed=speed)
+                logger.time_shift_s = base["wall"] - scenario.start_epoch_s
+                # The rig's power sample at an instant is the mean over the interval that
+                # ends there; a meter shows the power flowing now. So at each instant the
+                # meter is given the next instant's power (the interval now starting),
+                # and a poll inside an interval reads that interval's power.
+                instants = rig.run()
+                batch = next(instants)
+                for upcoming in (*instants, None):
+                    await clock.wait_until(batch[0].t - scenario.start_epoch_s if batch else 0.0)
+                    if stopping.is_set() or task.done():
+                        break
+                    line = [s for s in batch if s.channel in LOGGER_CHANNELS]
+                    if line:
+                        await logger.write(render_line(line, "keyvalue", logger.time_shift_s))
+                    if upcoming is not None:
+                        _feed(upcoming, meter)
+                    batch = upcoming
+                await asyncio.sleep(max(0.3, 3 * poll_s))  # the last line and poll get through
+            finally:
+                service.stop()
+                stats = await task
+                for signum in (signal.SIGINT, signal.SIGTERM):
+                    loop.remove_signal_handler(signum)
+    finally:
+        with contextlib.suppress(OSError):
+            os.close(master_fd)
+    return stats, config
+
+
+def _feed(batch: list[Sample], meter: PowerMeterEmulator) -> None:
+    """Hold the instant's power meter readings in the simulated meter's registers."""
+    values = {METER_KEYS[s.channel]: s.value for s in batch if s.channel in METER_KEYS}
+    if values:
+        meter.update(**values)

@@ -1,0 +1,94 @@
+"""Read any log ebullio writes, CSV interchange or the recorder's SQLite, and export to CSV.
+
+A recorder log holds samples in arrival order; :func:`read_log` turns them into
+one :class:`~monitor.interchange.InterchangeLog` per vessel with the very steps the
+live service took (:mod:`monitor.live`), the vessel's recorded metadata, and every
+quarantined input as a rejected line (``line`` 0: the SQLite row id is in the reason).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import TextIO
+
+from drivers.errors import LogFormatError
+from monitor.interchange import (
+    InterchangeLog,
+    LogRow,
+    Rejected,
+    iso_utc,
+    read_csv,
+    write_csv,
+)
+from monitor.live import logs_from_steps, steps_from_samples
+from monitor.recorder import is_recorder_log, read_quarantine, read_samples, read_vessels
+
+
+def _rejected(path: str) -> list[Rejected]:
+    out = []
+    for q in read_quarantine(path):
+        raw = q["raw"]
+        text = raw.decode("utf-8", "backslashreplace") if isinstance(raw, bytes) else str(raw)
+        where = f"quarantine id {q['id']}, {q['source']} {q['location']}"
+        out.append(Rejected(0, text, f"{where}: {q['reason']}"))
+    return out
+
+
+def read_log(path: str | Path) -> list[InterchangeLog]:
+    """Return the log at ``path`` as interchange logs: one per vessel for SQLite, one for CSV.
+
+    Raises LogFormatError when the file is neither.
+    """
+    path = str(path)
+    if not Path(path).exists():
+        raise LogFormatError(f"{path}: no such file")
+    if not is_recorder_log(path):
+        with open(path, "rb") as handle:
+            if handle.read(16).startswith(b"SQLite format 3"):
+                raise LogFormatError(f"{path}: an SQLite file, but not an ebullio recorder log")
+        return [read_csv(path)]
+    metadata = read_vessels(path)
+    logs = logs_from_steps(steps_from_samples(enumerate(read_samples(path))), metadata, path)
+    rejected = _rejected(path)
+    if logs:
+        logs[0].rejected.extend(rejected)
+    elif rejected:
+        logs.append(InterchangeLog(path, {}, ["water", "power"], [], rejected))
+    return logs
+
+
+def _csv_rows(rows: list[LogRow]) -> list[LogRow]:
+    """Return rows with NaN (a known fault) written as a blank cell, as the format wants."""
+    out = []
+    for r in rows:
+        if any(math.isnan(v) for v in r.values.values()):
+            values = {k: v for k, v in r.values.items() if not math.isnan(v)}
+            r = LogRow(r.line, r.time_s, values, r.vessel, r.run)
+        out.append(r)
+    return out
+
+
+def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> int:
+    """Write one vessel of a log as a CSV interchange file to ``out``; return rows written.
+
+    ``vessel`` may be left out when the log holds one vessel. Raises LogFormatError
+    naming the vessels when it is needed, or when the vessel is not in the log.
+    """
+    logs = [g for g in read_log(log_path) if g.rows]
+    names = [str(g.metadata.get("vessel", "")) for g in logs]
+    if vessel is None:
+        if len(logs) != 1:
+            raise LogFormatError(
+                f"{log_path}: holds vessels {', '.join(names) or '(none)'}; say which with --vessel"
+            )
+        chosen = logs[0]
+    else:
+        if vessel not in names:
+            raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(names)}")
+        chosen = logs[names.index(vessel)]
+    metadata = dict(chosen.metadata)
+    if chosen.start_epoch_s is not None:
+        metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
+    metadata["exported_from"] = Path(str(log_path)).name
+    return write_csv(out, _csv_rows(chosen.rows), metadata, chosen.channels)

@@ -1,0 +1,488 @@
+"""The live service behind ``ebullio run``: sources, one queue, the recorder, the estimators.
+
+Shape (all in one asyncio loop, except the recorder's SQLite writes)::
+
+    source tasks ──► bounded queue ──► consumer ──► LiveVessel per vessel ──► estimates
+     (supervised)                          │                                     │
+                                           └──► recorder thread (SQLite) ◄───────┤
+                                                                                 └──► MQTT publisher
+
+* **Sources.** Each instrument, and the MQTT broker when the configuration has one,
+  runs in its own named task under :func:`supervise`: it opens a fresh driver,
+  forwards what the driver yields, and when the driver raises
+  :class:`~drivers.errors.DriverError` it records a ``link_lost`` event, waits a
+  capped, jittered, exponential backoff (:class:`Backoff`) and opens a new driver.
+  When the link is back it records a ``gap`` event from the last item before the loss
+  to the first one after it, so the log shows the gap as a gap.
+* **Back-pressure.** The queue holds ``[recorder] queue_samples`` items. When it is
+  full a source waits (it does not drop): a serial port's or the broker's own buffer
+  then holds the data, and for MQTT at QoS 1 the broker keeps the unacknowledged
+  messages (see the broker notes in DEVELOPERS.md: raise Mosquitto's
+  ``max_queued_messages``). Every wait is counted (``backpressure_waits``, and the
+  seconds spent, ``backpressure_s``) and recorded as an event, so a slow consumer
+  never loses data silently.
+* **Consumer.** Takes everything queued at once, hands samples and quarantined input
+  to the recorder thread, feeds each vessel's :class:`~monitor.live.InstantAssembler`
+  and, when the queue is empty, closes the open instants and steps the filters.
+  Samples of vessels the configuration does not know are quarantined with that reason.
+* **Recorder thread.** Owns the SQLite connection. It commits one block every
+  ``[recorder] commit_interval_s`` (default 1 s), so a crash loses at most that window;
+  what was committed stays (WAL, see :mod:`monitor.recorder`).
+* **Publisher.** The latest estimate of each vessel, and its flags when they change,
+  are published retained on ``<prefix>/<vessel>/estimate`` and ``.../flags``. When the
+  broker is slower than the estimates, only the newest estimate per vessel is sent
+  (``estimates_coalesced`` counts the ones skipped); every estimate is still recorded.
+* **Stopping.** :meth:`Service.stop` (SIGINT or SIGTERM from ``ebullio run``) cancels
+  the sources (their drivers close), drains the queue, steps the last instants,
+  commits the last block and closes the log.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import logging
+import queue
+import random
+import threading
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+from urllib.parse import urlsplit, urlunsplit
+
+from drivers.channels import Quarantined
+from drivers.errors import DriverError, EbullioError
+from drivers.sample import Sample
+from monitor import __version__
+from monitor.config import Instrument, RigConfig, driver_settings
+from monitor.live import LiveVessel, estimate_message
+from monitor.recorder import Recorder, estimate_record
+
+log = logging.getLogger("ebullio.service")
+
+#: A driver factory: called for every (re)connection, returns an unentered driver.
+DriverFactory = Callable[[], Any]
+
+
+@dataclass
+class Backoff:
+    """Capped exponential backoff with jitter: ``next_s()`` returns the wait in seconds.
+
+    The n-th wait is ``min(cap_s, base_s·2ⁿ)`` times a factor drawn uniformly from
+    0.5-1.0, so many sources that lost the same link do not all retry at once.
+    ``reset()`` after a good connection.
+    """
+
+    base_s: float = 0.5
+    cap_s: float = 30.0
+    rng: random.Random = field(default_factory=lambda: random.Random(0))
+    attempts: int = 0
+
+    def next_s(self) -> float:
+        """Return the next wait in seconds."""
+        wait = min(self.cap_s, self.base_s * 2.0**self.attempts)
+        self.attempts += 1
+        return wait * self.rng.uniform(0.5, 1.0)
+
+    def reset(self) -> None:
+        """Start again from the shortest wait."""
+        self.attempts = 0
+
+
+@dataclass
+class Stats:
+    """What the service counted; printed at the end of ``ebullio run`` and kept in the log."""
+
+    samples: int = 0
+    quarantined: int = 0
+    steps: int = 0
+    estimates: int = 0
+    published: int = 0
+    estimates_coalesced: int = 0
+    reconnects: int = 0
+    link_losses: int = 0
+    backpressure_waits: int = 0
+    backpressure_s: float = 0.0
+    blocks: int = 0
+
+    def as_dict(self) -> dict[str, float]:
+        """Return the counters as a JSON-ready dict."""
+        return dict(self.__dict__)
+
+
+def public_url(url: str) -> str:
+    """Return ``url`` without a user name or password (for logs and sample sources)."""
+    parts = urlsplit(url)
+    if parts.username is None and parts.password is None:
+        return url
+    host = parts.hostname or ""
+    if parts.port:
+        host = f"{host}:{parts.port}"
+    return urlunsplit((parts.scheme, host, parts.path, parts.query, parts.fragment))
+
+
+def instrument_factory(inst: Instrument, clock: Callable[[], float]) -> DriverFactory:
+    """Return a factory of fresh drivers for a configured instrument."""
+    settings = driver_settings(inst)
+    if inst.kind == "serial":
+        from drivers.serial_line import SerialLineDriver
+
+        return lambda: SerialLineDriver(inst.url, clock=clock, **settings)
+    from drivers.modbus import ModbusMeterDriver
+
+    return lambda: ModbusMeterDriver(inst.url, clock=clock, **settings)
+
+
+async def supervise(
+    name: str,
+    factory: DriverFactory,
+    deliver: Callable[[Sample | Quarantined], Any],
+    event: Callable[[float, str, str, str], None],
+    stats: Stats,
+    clock: Callable[[], float] = time.time,
+    backoff: Backoff | None = None,
+) -> None:
+    """Run one source for ever: open, forward each item to ``deliver``, reconnect on loss.
+
+    ``deliver`` is awaited; ``event(t, kind, source, detail)`` records link events.
+    Returns only when cancelled.
+    """
+    backoff = backoff or Backoff(rng=random.Random(name))
+    lost_at: float | None = None
+    last_item_t: float | None = None
+    while True:
+        try:
+            async with factory() as driver:
+                if lost_at is not None:
+                    stats.reconnects += 1
+                    log.info("%s: connected again", name)
+                async for item in driver.samples():
+                    now = clock()
+                    if lost_at is not None:
+                        event(now, "gap", name, f"from {last_item_t or lost_at:.3f} to {now:.3f}")
+                        lost_at = None
+                        backoff.reset()
+                    last_item_t = now
+                    await deliver(item)
+                raise DriverError(f"{name}: the source ended")
+        except DriverError as exc:
+            stats.link_losses += 1
+            now = clock()
+            if lost_at is None:
+                lost_at = now
+            event(now, "link_lost", name, str(exc))
+            wait_s = backoff.next_s()
+            log.warning("%s: %s; retrying in %.1f s", name, exc, wait_s)
+            await asyncio.sleep(wait_s)
+
+
+class RecorderThread:
+    """The recorder in its own thread: rows go in through a queue, a block every interval."""
+
+    def __init__(
+        self, path: str, config_text: str | None, vessels: Mapping[str, Mapping[str, object]],
+        commit_interval_s: float, stats: Stats,
+    ) -> None:  # fmt: skip
+        self._queue: queue.SimpleQueue[tuple[str, Any] | None] = queue.SimpleQueue()
+        self._interval_s = commit_interval_s
+        self._stats = stats
+        self._error: BaseException | None = None
+        # open here so a bad path fails before the sources start; then hand it over
+        self._recorder = Recorder(path, version=__version__, config_text=config_text)
+        for vessel, metadata in vessels.items():
+            self._recorder.add_vessel(vessel, dict(metadata))
+        self._recorder.commit()
+        self._thread = threading.Thread(target=self._run, name="ebullio-recorder", daemon=True)
+
+    def start(self) -> None:
+        """Start the writer thread."""
+        self._thread.start()
+
+    def put(self, kind: str, rows: Any) -> None:
+        """Queue rows of one kind (samples, quarantined, estimates, flags, event) for writing."""
+        self._queue.put((kind, rows))
+
+    def _run(self) -> None:
+        rec = self._recorder
+        adders = {
+            "samples": rec.add_samples,
+            "quarantined": rec.add_quarantined,
+            "estimates": rec.add_estimates,
+            "flags": rec.add_flags,
+            "event": lambda e: rec.add_event(*e),
+        }
+        deadline = time.monotonic() + self._interval_s
+        try:
+            while True:
+                timeout = max(0.0, deadline - time.monotonic())
+                try:
+                    item = self._queue.get(timeout=timeout)
+                except queue.Empty:
+                    item = ("tick", None)
+                if item is None:
+                    break
+                kind, rows = item
+                if kind != "tick":
+                    adders[kind](rows)
+                if time.monotonic() >= deadline:
+                    if rec.commit() is not None:
+                        self._stats.blocks += 1
+                    deadline = time.monotonic() + self._interval_s
+            if rec.commit() is not None:
+                self._stats.blocks += 1
+        except BaseException as exc:  # kept and raised again in the loop by close()
+            self._error = exc
+            log.exception("recorder: writing the log failed")
+        finally:
+            rec.close()
+
+    def close(self) -> None:
+        """Write what is queued, commit the last block, close the log (blocks: call in a thread)."""
+        self._queue.put(None)
+        self._thread.join()
+        if self._error is not None:
+            raise EbullioError(f"the recorder failed: {self._error}") from self._error
+
+
+class Service:
+    """``ebullio run``: see the module docstring. ``await Service(...).run()`` until ``stop()``."""
+
+    def __init__(
+        self,
+        config: RigConfig,
+        log_path: str,
+        *,
+        clock: Callable[[], float] = time.time,
+        extra_sources: Mapping[str, DriverFactory] | None = None,
+        on_estimate: Callable[[dict[str, object]], None] | None = None,
+    ) -> None:
+        self.config = config
+        self.log_path = log_path
+        self.clock = clock
+        self.stats = Stats()
+        self.vessels = {
+            v.id: LiveVessel(v.id, v.metadata, v.has_element_sensor) for v in config.vessels
+        }
+        self.sources: dict[str, DriverFactory] = {
+            public_url(i.url): instrument_factory(i, clock) for i in config.instruments
+        }
+        mqtt = config.mqtt
+        if mqtt is not None and any(v.via_mqtt for v in config.vessels):
+            from drivers.mqtt import MqttDriver
+
+            mqtt_vessels = [v.id for v in config.vessels if v.via_mqtt]
+            client_id = f"{mqtt.client_id}-in" if mqtt.client_id else None
+            self.sources[public_url(mqtt.url)] = lambda: MqttDriver(
+                mqtt.url, prefix=mqtt.prefix, vessels=mqtt_vessels, client_id=client_id,
+                username=mqtt.username, password=mqtt.password,
+                session_expiry_s=mqtt.session_expiry_s, clock=clock,
+            )  # fmt: skip
+        self.sources.update(extra_sources or {})
+        self.on_estimate = on_estimate
+        self._queue: asyncio.Queue[Sample | Quarantined] = asyncio.Queue(config.queue_samples)
+        self._stop = asyncio.Event()
+        self._recorder: RecorderThread | None = None
+        self._to_publish: dict[str, dict[str, object]] = {}
+        self._flags_to_publish: dict[str, list[dict[str, object]]] = {}
+        self._flags_sent: dict[str, tuple[str, ...]] = {}
+        self._publish_ready = asyncio.Event()
+        self.started = asyncio.Event()
+
+    def stop(self) -> None:
+        """Ask the service to stop cleanly (safe to call from a signal handler)."""
+        self._stop.set()
+
+    def _event(self, t: float, kind: str, source: str, detail: str) -> None:
+        if self._recorder is not None:
+            self._recorder.put("event", (t, kind, source, detail))
+
+    async def _deliver(self, item: Sample | Quarantined) -> None:
+        try:
+            self._queue.put_nowait(item)
+            return
+        except asyncio.QueueFull:
+            pass
+        began = time.monotonic()
+        self.stats.backpressure_waits += 1
+        await self._queue.put(item)
+        waited = time.monotonic() - began
+        self.stats.backpressure_s += waited
+        source = item.source
+        self._event(self.clock(), "backpressure", source, f"waited {waited:.3f} s for queue space")
+
+    def _take(self, items: list[Sample | Quarantined]) -> None:
+        samples: list[Sample] = []
+        quarantined: list[Quarantined] = []
+        for item in items:
+            if isinstance(item, Quarantined):
+                quarantined.append(item)
+                continue
+            vessel = self.vessels.get(item.vessel)
+            if vessel is None:
+                quarantined.append(
+                    Quarantined(
+                        item.t,
+                        item.source,
+                        f"vessel {item.vessel!r}",
+                        f"vessel {item.vessel!r} is not in the configuration",
+                        repr(item).encode(),
+                    )
+                )
+                continue
+            samples.append(item)
+            step = vessel.assembler.feed(item, 0)
+            if step is not None:
+                self._step(vessel, step)
+        for vessel in self.vessels.values():
+            step = vessel.assembler.flush()
+            if step is not None:
+                self._step(vessel, step)
+        self.stats.samples += len(samples)
+        self.stats.quarantined += len(quarantined)
+        assert self._recorder is not None
+        if samples:
+            self._recorder.put("samples", samples)
+        if quarantined:
+            self._recorder.put("quarantined", quarantined)
+
+    def _step(self, vessel: LiveVessel, step: Any) -> None:
+        self.stats.steps += 1
+        e = vessel.step(step)
+        if e is None:
+            return
+        self.stats.estimates += 1
+        record = estimate_message(vessel, e, step.t)
+        assert self._recorder is not None
+        row = estimate_record(e, t=step.t, detail={"run": vessel.run_number})
+        self._recorder.put("estimates", [row])
+        names = tuple(sorted(f.name for f in e.flags))
+        if names != self._flags_sent.get(vessel.vessel):
+            self._flags_sent[vessel.vessel] = names
+            self._recorder.put(
+                "flags", [{"t": step.t, "vessel": vessel.vessel, **f.as_dict()} for f in e.flags]
+            )
+            self._flags_to_publish[vessel.vessel] = record["flags"]  # type: ignore[assignment]
+        if vessel.vessel in self._to_publish:
+            self.stats.estimates_coalesced += 1
+        self._to_publish[vessel.vessel] = record
+        self._publish_ready.set()
+        if self.on_estimate is not None:
+            self.on_estimate(record)
+
+    async def _consume(self) -> None:
+        while True:
+            items = [await self._queue.get()]
+            while True:
+                try:
+                    items.append(self._queue.get_nowait())
+                except asyncio.QueueEmpty:
+                    break
+            self._take(items)
+
+    async def _publish(self) -> None:
+        mqtt = self.config.mqtt
+        if mqtt is None or not mqtt.publish:
+            await asyncio.Event().wait()  # nothing to publish to: wait to be cancelled
+            return
+        from drivers.mqtt import MqttPublisher
+
+        backoff = Backoff(rng=random.Random("publisher"))
+        client_id = f"{mqtt.client_id}-out" if mqtt.client_id else None
+        while True:
+            try:
+                async with MqttPublisher(
+                    mqtt.url, prefix=mqtt.prefix, client_id=client_id,
+                    username=mqtt.username, password=mqtt.password,
+                ) as pub:  # fmt: skip
+                    backoff.reset()
+                    while True:
+                        await self._publish_ready.wait()
+                        self._publish_ready.clear()
+                        estimates, self._to_publish = self._to_publish, {}
+                        flags, self._flags_to_publish = self._flags_to_publish, {}
+                        try:
+                            # all at once: each publish waits for its own PUBACK
+                            await asyncio.gather(
+                                *(pub.publish_estimate(v, r) for v, r in estimates.items()),
+                                *(pub.publish_flags(v, f) for v, f in flags.items()),
+                            )
+                        except DriverError:
+                            for v, r in estimates.items():  # send again after reconnecting
+                                self._to_publish.setdefault(v, r)
+                            for v, f in flags.items():
+                                self._flags_to_publish.setdefault(v, f)
+                            raise
+                        self.stats.published += len(estimates)
+            except DriverError as exc:
+                self._publish_ready.set()  # what is pending goes out after the reconnect
+                wait_s = backoff.next_s()
+                log.warning("publisher: %s; retrying in %.1f s", exc, wait_s)
+                await asyncio.sleep(wait_s)
+
+    async def run(self) -> Stats:
+        """Run until :meth:`stop`; return the counters. The log is closed on return."""
+        vessels_meta = {v.id: v.metadata for v in self.config.vessels}
+        self._recorder = await asyncio.to_thread(
+            RecorderThread, self.log_path, self.config.text, vessels_meta,
+            self.config.commit_interval_s, self.stats,
+        )  # fmt: skip
+        self._recorder.start()
+        self._event(self.clock(), "start", "service", f"ebullio {__version__}")
+        try:
+            async with asyncio.TaskGroup() as group:
+                sources = [
+                    group.create_task(
+                        supervise(
+                            name, factory, self._deliver, self._event, self.stats, self.clock
+                        ),
+                        name=f"source {name}",
+                    )
+                    for name, factory in self.sources.items()
+                ]
+                consumer = group.create_task(self._consume(), name="consumer")
+                publisher = group.create_task(self._publish(), name="publisher")
+                self.started.set()
+                await self._stop.wait()
+                await _cancel_all(sources)
+                consumer.cancel()
+                with contextlib.suppress(asyncio.CancelledError):
+                    await consumer
+                leftovers: list[Sample | Quarantined] = []
+                while not self._queue.empty():
+                    leftovers.append(self._queue.get_nowait())
+                self._take(leftovers)
+                await self._flush_publish(publisher)
+        finally:
+            self._event(self.clock(), "stop", "service", repr(self.stats.as_dict()))
+            await asyncio.to_thread(self._recorder.close)
+        return self.stats
+
+    async def _flush_publish(self, publisher: asyncio.Task[None]) -> None:
+        """Give the publisher a moment to send the last estimates, then stop it."""
+        if self._to_publish and self.config.mqtt is not None and self.config.mqtt.publish:
+            with contextlib.suppress(TimeoutError):
+                async with asyncio.timeout(2.0):
+                    while self._to_publish:
+                        await asyncio.sleep(0.02)
+        publisher.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await publisher
+
+
+async def _cancel_all(tasks: list[asyncio.Task[None]], patience_s: float = 10.0) -> None:
+    """Cancel ``tasks`` and wait for them, cancelling again every 0.2 s.
+
+    A library that swallows a cancellation (pymodbus can, mid-request) would
+    otherwise keep a source running after the service was told to stop.
+    """
+    deadline = time.monotonic() + patience_s
+    pending = set(tasks)
+    while pending:
+        for task in pending:
+            task.cancel()
+        _, pending = await asyncio.wait(pending, timeout=0.2)
+        if pending and time.monotonic() > deadline:
+            names = ", ".join(t.get_name() for t in pending)
+            log.error("sources still running %.0f s after the stop: %s", patience_s, names)
+            deadline = time.monotonic() + patience_s
