@@ -187,6 +187,8 @@ class LiveVessel:
         self.run_number = 0
         self.latest: Estimate | None = None
         self.steps = 0
+        #: One entry per run so far: label, first and last step (Unix s).
+        self.runs: list[dict[str, object]] = []
         self._run: Run | None = None
         self._previous_s: float | None = None
         self._previous_row: LogRow | None = None
@@ -200,6 +202,7 @@ class LiveVessel:
             refill = self._run is not None and step.time_s - (self._previous_s or 0.0) <= 900.0
             carried = self._previous_row if refill else None
             self.run_number += 1
+            self.runs.append({"run": str(self.run_number), "start_t": step.t, "end_t": step.t})
             self._run = Run(self.vessel, self.run_number, str(self.run_number), [], None)  # type: ignore[arg-type]
             self.estimator = self._fresh or VesselEstimator(self.config, self.settings)
             self._fresh = None
@@ -209,6 +212,7 @@ class LiveVessel:
             self.estimator.step(carried.time_s, carried.values)
         estimate = self.estimator.step(row.time_s, row.values)
         self.steps += 1
+        self.runs[-1]["end_t"] = step.t
         self._previous_s = row.time_s
         self._previous_row = row
         if "water" in row.values:

@@ -352,8 +352,13 @@ def flag_record(t: float, vessel: str, flag: Flag) -> dict[str, object]:
     return {"t": t, "vessel": vessel, **flag.as_dict()}
 
 
+_ESTIMATE_KEYS = frozenset({"t", "vessel", "phase", "detail", *ESTIMATE_VALUE_COLUMNS})
+_PHASES = frozenset(str(p) for p in Phase)
+_ESTIMATE_WHAT = {c: f"estimate {c}" for c in ESTIMATE_VALUE_COLUMNS}
+
+
 def _estimate_row(record: Mapping[str, object]) -> Row:
-    known = {"t", "vessel", "phase", "detail", *ESTIMATE_VALUE_COLUMNS}
+    known = _ESTIMATE_KEYS
     unknown = sorted(set(record) - known)
     if unknown:
         raise ValueError(f"estimate has unknown keys {unknown}; known keys: {sorted(known)}")
@@ -361,13 +366,13 @@ def _estimate_row(record: Mapping[str, object]) -> Row:
         if key not in record:
             raise ValueError(f"estimate has no {key!r}")
     phase = _text(record["phase"], "estimate phase")
-    if phase not in {str(p) for p in Phase}:
-        raise ValueError(f"estimate phase {phase!r} is not one of {[str(p) for p in Phase]}")
+    if phase not in _PHASES:
+        raise ValueError(f"estimate phase {phase!r} is not one of {sorted(_PHASES)}")
     return (
         _time(record["t"], "estimate t"),
         _text(record["vessel"], "estimate vessel"),
         phase,
-        *(_real(record.get(c), f"estimate {c}") for c in ESTIMATE_VALUE_COLUMNS),
+        *(_real(record.get(c), _ESTIMATE_WHAT[c]) for c in ESTIMATE_VALUE_COLUMNS),
         json_text(record.get("detail") or {}, "estimate detail"),
     )
 

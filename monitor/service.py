@@ -211,6 +211,7 @@ class RecorderThread:
             "estimates": rec.add_estimates,
             "flags": rec.add_flags,
             "event": lambda e: rec.add_event(*e),
+            "runs": lambda runs: [rec.add_run(**r) for r in runs],
         }
         deadline = time.monotonic() + self._interval_s
         try:
@@ -285,6 +286,8 @@ class Service:
         self._recorder: RecorderThread | None = None
         self._to_publish: dict[str, dict[str, object]] = {}
         self._flags_to_publish: dict[str, list[dict[str, object]]] = {}
+        self._estimate_rows: list[dict[str, object]] = []
+        self._flag_rows: list[dict[str, object]] = []
         self._flags_sent: dict[str, tuple[str, ...]] = {}
         self._publish_ready = asyncio.Event()
         self.started = asyncio.Event()
@@ -314,6 +317,7 @@ class Service:
     def _take(self, items: list[Sample | Quarantined]) -> None:
         samples: list[Sample] = []
         quarantined: list[Quarantined] = []
+        touched: dict[str, LiveVessel] = {}
         for item in items:
             if isinstance(item, Quarantined):
                 quarantined.append(item)
@@ -331,10 +335,11 @@ class Service:
                 )
                 continue
             samples.append(item)
+            touched[item.vessel] = vessel
             step = vessel.assembler.feed(item, 0)
             if step is not None:
                 self._step(vessel, step)
-        for vessel in self.vessels.values():
+        for vessel in touched.values():  # only these can have an open instant
             step = vessel.assembler.flush()
             if step is not None:
                 self._step(vessel, step)
@@ -345,6 +350,12 @@ class Service:
             self._recorder.put("samples", samples)
         if quarantined:
             self._recorder.put("quarantined", quarantined)
+        if self._estimate_rows:  # one hand-over per batch, not one per estimate
+            self._recorder.put("estimates", self._estimate_rows)
+            self._estimate_rows = []
+        if self._flag_rows:
+            self._recorder.put("flags", self._flag_rows)
+            self._flag_rows = []
 
     def _step(self, vessel: LiveVessel, step: Any) -> None:
         self.stats.steps += 1
@@ -355,13 +366,13 @@ class Service:
         record = estimate_message(vessel, e, step.t)
         assert self._recorder is not None
         row = estimate_record(e, t=step.t, detail={"run": vessel.run_number})
-        self._recorder.put("estimates", [row])
+        self._estimate_rows.append(row)
         names = tuple(sorted(f.name for f in e.flags))
         if names != self._flags_sent.get(vessel.vessel):
             self._flags_sent[vessel.vessel] = names
-            self._recorder.put(
-                "flags", [{"t": step.t, "vessel": vessel.vessel, **f.as_dict()} for f in e.flags]
-            )
+            self._flag_rows += [
+                {"t": step.t, "vessel": vessel.vessel, **f.as_dict()} for f in e.flags
+            ]
             self._flags_to_publish[vessel.vessel] = record["flags"]  # type: ignore[assignment]
         if vessel.vessel in self._to_publish:
             self.stats.estimates_coalesced += 1
@@ -452,11 +463,26 @@ class Service:
                 while not self._queue.empty():
                     leftovers.append(self._queue.get_nowait())
                 self._take(leftovers)
+                self._record_runs()
                 await self._flush_publish(publisher)
         finally:
             self._event(self.clock(), "stop", "service", repr(self.stats.as_dict()))
             await asyncio.to_thread(self._recorder.close)
         return self.stats
+
+    def _record_runs(self) -> None:
+        """Record each vessel's runs of this session with the latest figures of the last."""
+        assert self._recorder is not None
+        rows = []
+        for vessel in self.vessels.values():
+            for i, run in enumerate(vessel.runs):
+                summary: dict[str, object] = {"live": True}
+                if i == len(vessel.runs) - 1 and vessel.latest is not None:
+                    message = estimate_message(vessel, vessel.latest, float(run["end_t"]))  # type: ignore[arg-type]
+                    summary["last_estimate"] = {k: v for k, v in message.items() if k != "flags"}
+                rows.append({"vessel": vessel.vessel, **run, "summary": summary})
+        if rows:
+            self._recorder.put("runs", rows)
 
     async def _flush_publish(self, publisher: asyncio.Task[None]) -> None:
         """Give the publisher a moment to send the last estimates, then stop it."""

@@ -92,6 +92,16 @@ def test_demo_runs_live_through_the_real_drivers_and_records(tmp_path):
     # the demo kettle holds 1.2 kg (the simulator's default kettle, our own scenario);
     # 5 % is looser than the estimator benchmark's 3 %, the meter being polled apart
     assert run["water_mass_kg"]["value"] == pytest.approx(1.2, rel=0.05)
+    exported = tmp_path / "demo.csv"
+    subprocess.run(
+        [sys.executable, "-m", "monitor.cli", "export", str(out), "--csv", str(exported)],
+        capture_output=True, text=True, timeout=60, check=True,
+    )  # fmt: skip
+    log = read_csv(exported)
+    assert log.rejected == []
+    assert len(log.rows) == 301  # one filter step per simulated second, 0-300 s
+    assert {"water", "element", "ambient", "power"} <= set(log.channels)
+    assert log.metadata["vessel"] == "kettle-1"
 
 
 def test_every_verb_has_help_with_an_example():

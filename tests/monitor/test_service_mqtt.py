@@ -148,3 +148,69 @@ def service_samples(log):
         return list(read_samples(log))
     except Exception:  # the log may be mid-commit; try again on the next poll
         return []
+
+
+def _run_and_signal(broker_url: str, tmp_path, signum) -> tuple[int, str, str, object]:
+    import subprocess
+    import sys
+    import time
+
+    cfg = tmp_path / "rig.toml"
+    cfg.write_text(rig_toml(broker_url), encoding="utf-8")
+    log = tmp_path / "run.sqlite"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "monitor.cli", "run", "--config", str(cfg), "--log", str(log)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    try:
+        deadline = time.monotonic() + 30
+        while not log.exists() and time.monotonic() < deadline:
+            time.sleep(0.05)
+        time.sleep(1.0)  # subscribed
+        t0 = time.time() - 30.0
+        asyncio.run(publish(broker_url, [("lab/urn-1/reading", reading(i, t0)) for i in range(10)]))
+        deadline = time.monotonic() + 15
+        while time.monotonic() < deadline and verify(log)["samples"] < 30:
+            time.sleep(0.2)
+        proc.send_signal(signum)
+        out, err = proc.communicate(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()
+    return proc.returncode, out, err, log
+
+
+def test_ebullio_run_stops_cleanly_on_sigterm_and_sigint(mosquitto, tmp_path) -> None:
+    import signal
+
+    for signum in (signal.SIGTERM, signal.SIGINT):
+        folder = tmp_path / signum.name
+        folder.mkdir()
+        code, out, err, log = _run_and_signal(mosquitto.url, folder, signum)
+        assert code == 0, err
+        stats = json.loads(out.strip().splitlines()[-1])
+        assert stats["samples"] == 30
+        assert "not a safety device" in err
+        result = verify(log)
+        assert result["ok"] is True
+        assert result["samples"] == 30
+
+
+def test_ebullio_run_refuses_a_bad_configuration_before_starting(tmp_path) -> None:
+    import subprocess
+    import sys
+
+    cfg = tmp_path / "rig.toml"
+    cfg.write_text('[[vessels]]\nid = "k1"\n', encoding="utf-8")
+    proc = subprocess.run(
+        [sys.executable, "-m", "monitor.cli", "run", "--config", str(cfg), "--log",
+         str(tmp_path / "x.sqlite")],
+        capture_output=True, text=True, timeout=60, check=False,
+    )  # fmt: skip
+    assert proc.returncode == 2
+    assert "rig.toml: vessels[0].vessel_heat_capacity_j_per_k: is required" in proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert not (tmp_path / "x.sqlite").exists()
