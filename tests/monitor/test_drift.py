@@ -1,0 +1,142 @@
+"""Drift detection: baselines, the CUSUM, the flags, and a simulated scale series."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from monitor.contracts import Level
+from monitor.drift import (
+    RULES,
+    Cusum,
+    VesselDrift,
+    drift_over_runs,
+    extra_over_temperature_k,
+    make_baseline,
+    scale_thickness_range_mm,
+)
+from monitor.interchange import InterchangeLog, rows_from_samples
+from monitor.replay import replay_run, split_runs
+
+SCALING = next(r for r in RULES if r.name == "scaling")
+
+
+def test_cusum_accumulates_past_the_reference_value_and_never_goes_below_zero() -> None:
+    c = Cusum(k=0.5, h=5.0)
+    assert [c.update(z) for z in (-3.0, 1.0, 2.0, 0.5, -10.0)] == [0.0, 0.5, 2.0, 2.0, 0.0]
+
+
+def test_baseline_spread_has_a_floor() -> None:
+    b = make_baseline([(50.0, 0.1)] * 5, SCALING)
+    assert (b.mean, b.runs) == (50.0, 5)
+    assert b.sd == pytest.approx(0.03 * 50.0)  # the rule's 3 % floor
+    wide = make_baseline([(40.0, 0.1), (60.0, 0.1)], SCALING)
+    assert wide.sd == pytest.approx(math.sqrt(200.0))  # sample sd of 40 and 60
+    with pytest.raises(ValueError, match="at least one run"):
+        make_baseline([], SCALING)
+
+
+def test_scale_thickness_follows_the_series_resistance() -> None:
+    # 1/G - 1/G0 = 1/40 - 1/50 = 0.005 K/W; δ = k·A·0.005 with A = 0.018 m²:
+    # k = 0.5 -> 0.045 mm, k = 2.9 -> 0.261 mm (arithmetic on REFERENCE.md §5.1's range)
+    lo, hi = scale_thickness_range_mm(40.0, 50.0, 0.018)  # type: ignore[misc]
+    assert lo == pytest.approx(0.045)
+    assert hi == pytest.approx(0.261)
+    assert scale_thickness_range_mm(55.0, 50.0, 0.018) is None
+    # P/G - P/G0 at 2000 W: 50 K - 40 K (arithmetic)
+    assert extra_over_temperature_k(2000.0, 40.0, 50.0) == pytest.approx(10.0)
+
+
+def synthetic_runs(g_ratios, seed: int, scatter: float = 0.02):
+    """Run summaries whose G is g0·ratio with run-to-run scatter (made-up demo numbers)."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for i, ratio in enumerate(g_ratios):
+        g = 54.0 * ratio * (1.0 + scatter * rng.standard_normal())
+        out.append({"vessel": "k1", "run": str(i + 1), "model": "two-node",
+                    "element_conductance_w_per_k": {"value": g, "std": 0.3},
+                    "ua_w_per_k": {"value": 0.7 * (1 + 0.04 * rng.standard_normal()),
+                                   "std": 0.05}})  # fmt: skip
+    return out
+
+
+def levels(flags_per_run, name: str) -> list[str | None]:
+    out = []
+    for flags in flags_per_run:
+        mine = [f for f in flags if f.name == name]
+        out.append(str(mine[0].level) if mine else None)
+    return out
+
+
+def test_clean_runs_raise_no_warning_in_a_thousand() -> None:
+    flags = drift_over_runs(synthetic_runs([1.0] * 1000, seed=11))
+    assert not any(f.level in (Level.WARNING, Level.ALARM) for run in flags for f in run)
+
+
+def test_a_quarter_down_is_caught_in_two_runs_and_ten_percent_stays_silent() -> None:
+    ratios = [1.0] * 5 + [0.93] * 20 + [0.75] * 5
+    got = levels(drift_over_runs(synthetic_runs(ratios, seed=3)), "scaling")
+    assert got[:25] == [None] * 25
+    assert got[26] in ("warning", "alarm")  # the second run at 25 % down
+
+
+def test_a_scaling_flag_carries_its_numbers_and_a_sentence() -> None:
+    drift = VesselDrift("k1", {"rated_power_w": 2200.0, "element_area_m2": 0.018})
+    runs = synthetic_runs([1.0] * 5 + [0.55] * 3, seed=5, scatter=0.0)
+    flags = [drift.observe(r) for r in runs][-1]
+    (flag,) = [f for f in flags if f.name == "scaling"]
+    assert flag.level == Level.ALARM  # 45 % down is past the rule's 40 % alarm size
+    ev = flag.evidence
+    assert ev["scaling_index"] == pytest.approx(0.45)
+    assert ev["baseline_runs"] == 5
+    assert ev["scale_mm_low"] < ev["scale_mm_high"]  # a range, never one number
+    assert ev["extra_over_temperature_k"] == pytest.approx(2200 / (54 * 0.55) - 2200 / 54)
+    assert "descale" in flag.message
+    assert "isolate the supply" in flag.message
+
+
+def test_one_node_runs_never_raise_scaling() -> None:
+    runs = synthetic_runs([1.0] * 5 + [0.5] * 5, seed=2)
+    for r in runs:
+        r["model"] = "one-node"
+    assert levels(drift_over_runs(runs), "scaling") == [None] * 10
+
+
+def test_rising_ua_raises_insulation() -> None:
+    runs = synthetic_runs([1.0] * 12, seed=4)
+    for r in runs[5:]:
+        r["ua_w_per_k"] = {"value": 0.7 * 1.6, "std": 0.05}  # a lid left open (made-up)
+    got = levels(drift_over_runs(runs), "insulation")
+    assert got[:5] == [None] * 5
+    assert "alarm" in got[6:]
+
+
+def simulated_run(seed: int, scale_mm: float) -> dict[str, object]:
+    """Replay one simulated kettle run of our own (fill, start and room drawn from seed)."""
+    rng = np.random.default_rng(seed)
+    scenario = kettle_scenario(
+        scale_mm=scale_mm,
+        water_mass_kg=float(rng.uniform(1.0, 1.7)),
+        start_water_c=float(rng.uniform(8.0, 20.0)),
+        ambient_c=float(rng.uniform(16.0, 26.0)),
+        duration_s=500.0,
+    )
+    rig = SimulatedRig(scenario, seed=seed)
+    meta = scenario_metadata(scenario, seed)
+    rows = list(rows_from_samples(rig.run(), scenario.start_epoch_s))
+    log = InterchangeLog(f"sim-{seed}", meta, ["water", "element", "ambient", "power"], rows)
+    (run,) = split_runs([log])[0]
+    return replay_run(run)
+
+
+def test_simulated_scale_series_silent_within_ten_percent_warned_at_a_quarter() -> None:
+    # clean runs, then 0.04 mm of scale (G about 9 % down), then 0.14 mm (about 25 % down)
+    # (scale figures from the simulator's own element model, our scenarios)
+    series = [0.0] * 5 + [0.04] * 4 + [0.14] * 3
+    runs = [simulated_run(100 + i, mm) for i, mm in enumerate(series)]
+    got = levels(drift_over_runs(runs), "scaling")
+    assert got[:9] == [None] * 9
+    assert {"warning", "alarm"} & set(got[9:])
