@@ -41,7 +41,7 @@ from drivers.errors import LogFormatError
 from monitor import __version__
 from monitor.contracts import Estimate, Estimated, Level, finite_or_none
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
-from monitor.interchange import InterchangeLog, LogRow
+from monitor.interchange import InterchangeLog, LogRow, iso_utc
 
 RUN_GAP_S = 900.0
 REFILL_DROP_K = 10.0
@@ -164,6 +164,57 @@ def _value(est: Estimated | None) -> dict[str, float] | None:
     return {"value": est.value, "std": est.std if math.isfinite(est.std) else None}
 
 
+def _mean_sd(values: list[float]) -> dict[str, float] | None:
+    """Return {"value": mean, "std": standard error} of ``values``, or None for none.
+
+    Readings one second apart are correlated, so the standard error is computed as if
+    only one in ten were independent: an honest, if rough, allowance.
+    """
+    if not values:
+        return None
+    mean = math.fsum(values) / len(values)
+    if len(values) < 2:
+        return {"value": mean, "std": 0.0}
+    var = math.fsum((v - mean) ** 2 for v in values) / (len(values) - 1)
+    return {"value": mean, "std": math.sqrt(var / max(1.0, len(values) / 10.0))}
+
+
+def electrical_figures(run: Run) -> dict[str, object]:
+    """Return the run's electrical figures from the rows where the element was on.
+
+    ``heating_power_w``: mean power (W) while on (above half the rating, or 100 W
+    without one). Where voltage is logged, ``element_resistance_ohm`` = V²/P (Ω),
+    and, with ``rated_voltage_v`` in the metadata, ``heating_power_at_rated_voltage_w``
+    = P·(V_rated/V)²: the power the element would give at its rated voltage, which
+    mains wander does not move (a resistive element; common practice, no source).
+    Each is {"value", "std"} or None.
+    """
+    meta = run.log.metadata
+
+    def number(key: str) -> float | None:
+        value = meta.get(key)
+        return float(value) if isinstance(value, int | float) and value > 0 else None
+
+    rated_w, rated_v = number("rated_power_w"), number("rated_voltage_v")
+    on_w = 0.5 * rated_w if rated_w else 100.0
+    powers, ohms, at_rated = [], [], []
+    for row in run.rows:
+        p = row.values.get("power")
+        if p is None or not math.isfinite(p) or p < on_w:
+            continue
+        powers.append(p)
+        v = row.values.get("voltage")
+        if v is not None and math.isfinite(v) and v > 0.0:
+            ohms.append(v * v / p)
+            if rated_v:
+                at_rated.append(p * (rated_v / v) ** 2)
+    return {
+        "heating_power_w": _mean_sd(powers),
+        "element_resistance_ohm": _mean_sd(ohms),
+        "heating_power_at_rated_voltage_w": _mean_sd(at_rated),
+    }
+
+
 def replay_run(
     run: Run,
     settings: EstimatorSettings | None = None,
@@ -251,7 +302,13 @@ def _summary(
         flags.append({"name": "quarantined_rows", "level": str(Level.NOTICE),
                       "message": f"{run.quarantined} rows of this run could not be used and "
                       "were set aside (see 'quarantined')."})  # fmt: skip
-    return base | {
+    ambient = [r.values["ambient"] for r in run.rows if "ambient" in r.values]
+    ambient = [a for a in ambient if math.isfinite(a)]
+    start_epoch = run.log.start_epoch_s
+    return base | electrical_figures(run) | {
+        "start_utc": iso_utc(start_epoch + run.rows[0].time_s) if start_epoch else None,
+        "start_water_c": finite_or_none(start_c),
+        "ambient_c": math.fsum(ambient) / len(ambient) if ambient else None,
         "water_mass_kg": _value(at.water_mass_kg),
         "heat_capacity_j_per_k": _value(at.heat_capacity_j_per_k),
         "ua_w_per_k": _value(last.ua_w_per_k),

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -114,22 +115,54 @@ def test_rising_ua_raises_insulation() -> None:
     assert "alarm" in got[6:]
 
 
-def simulated_run(seed: int, scale_mm: float) -> dict[str, object]:
-    """Replay one simulated kettle run of our own (fill, start and room drawn from seed)."""
+def simulated_run(
+    seed: int, scale_mm: float = 0.0, power_fraction: float = 1.0, duration_s: float = 500.0
+) -> dict[str, object]:
+    """Replay one simulated kettle run of our own (fill, start and room drawn from seed).
+
+    ``power_fraction`` < 1 is an element that lost part of its power (a broken coil),
+    while the vessel's metadata still gives the original rating.
+    """
     rng = np.random.default_rng(seed)
     scenario = kettle_scenario(
         scale_mm=scale_mm,
         water_mass_kg=float(rng.uniform(1.0, 1.7)),
         start_water_c=float(rng.uniform(8.0, 20.0)),
         ambient_c=float(rng.uniform(16.0, 26.0)),
-        duration_s=500.0,
+        duration_s=duration_s,
     )
-    rig = SimulatedRig(scenario, seed=seed)
     meta = scenario_metadata(scenario, seed)
+    if power_fraction != 1.0:
+        element = replace(
+            scenario.element, rated_power_w=scenario.element.rated_power_w * power_fraction
+        )
+        scenario = replace(scenario, element=element)
+    rig = SimulatedRig(scenario, seed=seed)
     rows = list(rows_from_samples(rig.run(), scenario.start_epoch_s))
-    log = InterchangeLog(f"sim-{seed}", meta, ["water", "element", "ambient", "power"], rows)
+    channels = ["water", "element", "ambient", "power", "voltage"]
+    log = InterchangeLog(f"sim-{seed}", meta, channels, rows, start_epoch_s=scenario.start_epoch_s)
     (run,) = split_runs([log])[0]
     return replay_run(run)
+
+
+def test_run_summary_has_the_electrical_figures() -> None:
+    run = simulated_run(7, duration_s=300.0)
+    # the simulated element: 2200 W at 230 V, so 24.05 Ω at 20 °C, and about 0.8 % more
+    # when hot (its 1e-4 /K temperature coefficient; our scenario's own figures)
+    assert run["element_resistance_ohm"]["value"] == pytest.approx(230.0**2 / 2200.0, rel=0.015)
+    assert run["heating_power_at_rated_voltage_w"]["value"] == pytest.approx(2200.0, rel=0.015)
+    assert run["heating_power_w"]["std"] > 0.0
+    assert run["start_utc"].startswith("2026-01-01T00:00")
+    assert 16.0 <= run["ambient_c"] <= 26.5
+    assert 8.0 <= run["start_water_c"] <= 20.5
+
+
+def test_an_element_losing_a_third_of_its_power_raises_element() -> None:
+    runs = [simulated_run(200 + i, duration_s=200.0) for i in range(5)]
+    runs += [simulated_run(210 + i, power_fraction=2.0 / 3.0, duration_s=200.0) for i in range(2)]
+    got = levels(drift_over_runs(runs), "element")
+    assert got[:5] == [None] * 5
+    assert got[5] == "alarm"  # 33 % down at once: far past the 20 % alarm size
 
 
 def test_simulated_scale_series_silent_within_ten_percent_warned_at_a_quarter() -> None:
