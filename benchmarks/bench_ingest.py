@@ -248,7 +248,9 @@ def main() -> None:
                 "results": results,
                 # held: nothing lost, an estimate back for (nearly) every reading as it
                 # comes, latency bounded (no growing backlog), within one core
-                "target_1000_vessels_on_one_core": None if target is None else bool(
+                "target_1000_vessels_on_one_core": None
+                if target is None
+                else bool(
                     target["lost"] == 0
                     and target["estimates_per_s"] >= 0.98 * 1000
                     and (target["latency_ms"]["p99"] or math.inf) < 2000.0

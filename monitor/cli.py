@@ -201,6 +201,19 @@ def cmd_export(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_fleet(args: argparse.Namespace) -> int:
+    """Print every vessel in the logs, worst first, with its drift status."""
+    from monitor.drift import fleet_rows, fleet_table
+
+    rows = fleet_rows(replay(args.logs, progress=sys.stderr))
+    if args.json:
+        print(json.dumps({"vessels": rows}, indent=2, allow_nan=False))
+    else:
+        print(fleet_table(rows))
+        print(SAFETY_NOTE)
+    return 0
+
+
 def _add_scenario_options(p: argparse.ArgumentParser, seed: int) -> None:
     """Add the simulated scenario's options (shared by ``simulate`` and ``demo``)."""
     p.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
@@ -300,6 +313,18 @@ def build_parser() -> argparse.ArgumentParser:
     ver.add_argument("log", metavar="LOG", help="recorder (SQLite) log")
     ver.add_argument("--json", action="store_true", help="print one JSON object")
     ver.set_defaults(func=cmd_verify)
+
+    fleet = verbs.add_parser(
+        "fleet",
+        help="every vessel in the logs, worst first",
+        description="Replay the logs and list every vessel with its status (the worst flag "
+        "of its last run, drift included), the flags, the scaling index against its "
+        "baseline, its last run, and the runs since the baseline.",
+        epilog="example: ebullio fleet logs/plant.sqlite",
+    )
+    fleet.add_argument("logs", nargs="+", metavar="LOG", help="recorder or CSV logs")
+    fleet.add_argument("--json", action="store_true", help="print one JSON object")
+    fleet.set_defaults(func=cmd_fleet)
 
     exp = verbs.add_parser(
         "export",

@@ -34,9 +34,11 @@ Levels
     size: a quarter of G gone, say). Each flag carries its numbers (the deviation,
     its σ, S, the baseline and the number of runs behind it) and one sentence.
 
-Rules so far: ``scaling`` (G falling), ``insulation`` (UA rising), ``element``
-(the power delivered at the rated voltage falling). Fill and sensor checks, which
-look at one run against the vessel's configuration, come with the run summaries.
+Rules: ``scaling`` (G falling), ``insulation`` (UA rising), ``element`` (the power
+delivered at the rated voltage falling). :func:`run_checks` adds the checks that
+look at one run on its own: ``fill`` (water mass against the configured fill) and
+``sensor`` (thermocouples that disagree at rest). ``dry_boil`` comes from the
+estimator's own flags.
 """
 
 from __future__ import annotations
@@ -303,5 +305,113 @@ def drift_over_runs(
         if vessel not in vessels:
             meta = (metadata or {}).get(vessel, {})
             vessels[vessel] = VesselDrift(vessel, meta, baseline_runs)
-        out.append(vessels[vessel].observe(run))
+        drift = vessels[vessel]
+        out.append(drift.observe(run) + run_checks(run, drift.metadata))
     return out
+
+
+#: Element and water readings at rest may differ by this much (K) before ``sensor`` is
+#: raised: two type K class 1 thermocouples may each be 1.5 K out (REFERENCE.md §8),
+#: but a pair in one vessel usually agrees far better; past 1.5 K one of them is suspect.
+SENSOR_DISAGREEMENT_K = 1.5
+#: Default fill tolerance as a fraction of the configured fill.
+FILL_TOLERANCE_FRACTION = 0.05
+
+
+def run_checks(run: Mapping[str, object], metadata: Mapping[str, object]) -> list[DriftFlag]:
+    """Return the flags one run raises on its own: ``fill`` and ``sensor``.
+
+    ``fill``: the water mass (at the end of the first heat-up) outside ``fill_kg`` ±
+    ``fill_tolerance_kg`` from the vessel's configuration (default 5 % of the fill),
+    beyond its own 2σ. ``sensor``: element and water thermocouples disagreeing by more
+    than :data:`SENSOR_DISAGREEMENT_K` at rest (``rest_element_minus_water_k``).
+    """
+    flags: list[DriftFlag] = []
+    fill = metadata.get("fill_kg")
+    mass = figure(run, "water_mass_kg")
+    if isinstance(fill, int | float) and fill > 0 and mass is not None:
+        tol = metadata.get("fill_tolerance_kg")
+        tol_kg = float(tol) if isinstance(tol, int | float) else FILL_TOLERANCE_FRACTION * fill
+        off = mass[0] - float(fill)
+        if abs(off) > tol_kg + 2.0 * mass[1]:
+            level = Level.ALARM if off < 0 and abs(off) > 3.0 * tol_kg else Level.WARNING
+            way = "less" if off < 0 else "more"
+            caution = (
+                " An underfilled vessel can leave the element dry: do not run it until it is "
+                "filled."
+                if off < 0
+                else ""
+            )
+            flags.append(DriftFlag(
+                "fill", level,
+                f"The vessel holds {mass[0]:.2f} kg of water, {abs(off):.2f} kg {way} than its "
+                f"{fill:.2f} kg fill (tolerance {tol_kg:.2f} kg).{caution}",
+                {"water_mass_kg": mass[0], "water_mass_std": mass[1], "fill_kg": float(fill),
+                 "fill_tolerance_kg": tol_kg, "difference_kg": off},
+            ))  # fmt: skip
+    rest = figure(run, "rest_element_minus_water_k")
+    if rest is not None and abs(rest[0]) > SENSOR_DISAGREEMENT_K:
+        flags.append(DriftFlag(
+            "sensor", Level.WARNING,
+            f"At rest the element thermocouple reads {rest[0]:+.1f} K against the water "
+            "thermocouple, where both should agree: check both sensors, their wiring and "
+            "the cold junction.",
+            {"element_minus_water_k": rest[0], "spread_k": rest[1],
+             "limit_k": SENSOR_DISAGREEMENT_K},
+        ))  # fmt: skip
+    return flags
+
+
+_LEVEL_RANK = {None: 0, "notice": 1, "warning": 2, "alarm": 3}
+
+
+def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
+    """Return one row per vessel from a replay result, worst first.
+
+    Each row: vessel, status (the worst level among its last run's flags and drift
+    flags, or ``ok``), the names of those flags, the latest scaling index (1 - G/G0)
+    where there is a baseline, the last run's label and start, the runs so far and
+    the runs since the baseline was complete.
+    """
+    by_vessel: dict[str, list[Mapping[str, object]]] = {}
+    for run in result.get("runs", []):  # type: ignore[union-attr]
+        by_vessel.setdefault(str(run["vessel"]), []).append(run)
+    rows = []
+    for vessel, runs in by_vessel.items():
+        last = runs[-1]
+        flags = [*last.get("flags", []), *last.get("drift", [])]  # type: ignore[misc]
+        worst = max((f.get("level") for f in flags), key=lambda lv: _LEVEL_RANK.get(lv, 0),
+                    default=None)  # fmt: skip
+        scaling = None
+        for run in runs:
+            for f in run.get("drift", []):  # type: ignore[union-attr]
+                if f["name"] == "scaling":
+                    scaling = f["evidence"].get("scaling_index")
+        rows.append({
+            "vessel": vessel,
+            "status": worst or "ok",
+            "flags": sorted({str(f["name"]) for f in flags}),
+            "scaling_index": scaling,
+            "last_run": last.get("run"),
+            "last_start_utc": last.get("start_utc"),
+            "runs": len(runs),
+            "runs_since_baseline": max(0, len(runs) - BASELINE_RUNS),
+        })  # fmt: skip
+    rows.sort(key=lambda r: (-_LEVEL_RANK.get(r["status"], 0), str(r["vessel"])))  # type: ignore[arg-type]
+    return rows
+
+
+def fleet_table(rows: Sequence[Mapping[str, object]]) -> str:
+    """Return the fleet rows as a plain text table."""
+    header = f"{'vessel':<14} {'status':<8} {'scaling':>8} {'runs':>5} {'since base':>10}  " \
+             f"{'last run':<26} flags"  # fmt: skip
+    lines = [header, "-" * len(header)]
+    for r in rows:
+        index = r["scaling_index"]
+        scaling = f"{index:8.2f}" if isinstance(index, float) else f"{'-':>8}"
+        last = f"{r['last_run']} {r['last_start_utc'] or ''}".strip()
+        lines.append(
+            f"{r['vessel']!s:<14} {r['status']!s:<8} {scaling} {r['runs']:>5} "
+            f"{r['runs_since_baseline']:>10}  {last:<26} {', '.join(r['flags']) or '-'}"  # type: ignore[arg-type]
+        )
+    return "\n".join(lines)

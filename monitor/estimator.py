@@ -582,8 +582,9 @@ class VesselEstimator:
             delta = energy - self._last_energy_wh
             if delta >= 0.0:
                 mean = delta * 3600.0 / dt_s
-        if energy is not None:
-            self._last_energy_wh = energy
+        # A step without the counter breaks the chain of differences: the next reading
+        # only re-baselines, instead of putting several intervals' energy in one.
+        self._last_energy_wh = energy
         if mean is None:
             mean = power if power is not None else self._last_power_w
         self._last_power_w = power if power is not None else mean

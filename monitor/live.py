@@ -19,6 +19,13 @@ samples give the same steps again when a log is replayed:
   An energy counter is never carried over: the filter turns energy differences into
   mean power, and a stale counter would put energy in the wrong interval;
 * an instant without water only updates those latest readings;
+* an energy counter read apart from the thermocouples (a power meter polled on its
+  own clock) gives the exact energy of each interval, whatever the phase of the
+  polls: once such a reading has been seen, an instant with water waits for the
+  next counter reading and takes the counter's value interpolated at its own time
+  (at most :data:`ENERGY_WAIT_S`; then it is stepped without one). The filter then
+  takes mean power from the energy difference and not from a power reading that
+  may lag by a poll;
 * a fault sample (NaN) is a missing reading that is known to be missing: it is
   passed on as NaN, so the filter flags the sensor and predicts across.
 
@@ -69,6 +76,11 @@ class Step:
     line: int  # position of the closing sample in the stream (for quarantine references)
 
 
+#: How long (s, on the samples' clock) an instant may wait for the energy reading that
+#: closes its interval before it is stepped without one.
+ENERGY_WAIT_S = 5.0
+
+
 class InstantAssembler:
     """Turns one vessel's samples, in arrival order, into filter steps (module docstring)."""
 
@@ -81,43 +93,76 @@ class InstantAssembler:
         self._group: dict[str, float] = {}
         self._latest: dict[str, tuple[float, float]] = {}
         self._position = 0
+        self._energy: tuple[float, float] | None = None  # last separate counter reading
+        self._pending: list[tuple[float, dict[str, float], int]] = []
 
-    def feed(self, sample: Sample, position: int = 0) -> Step | None:
-        """Return the step closed by ``sample``'s arrival, if any, then take ``sample`` in."""
+    def feed(self, sample: Sample, position: int = 0) -> list[Step]:
+        """Return the steps closed by ``sample``'s arrival, then take ``sample`` in."""
         if sample.channel not in CHANNEL_COLUMNS:
-            return None  # raw EMF and cold-junction samples are converted before this
-        step = None
+            return []  # raw EMF and cold-junction samples are converted before this
+        steps: list[Step] = []
         if self._group_t is not None and sample.t != self._group_t:
-            step = self.flush()
+            steps = self.flush()
         self._group_t = sample.t
         self._position = position
         value = sample.value if sample.quality != Quality.FAULT else math.nan
         self._group[sample.channel] = value
-        return step
+        return steps
 
-    def flush(self) -> Step | None:
-        """Return the step of the open instant (if it has water) and close the instant."""
+    def flush(self) -> list[Step]:
+        """Close the open instant; return the steps that are complete now (oldest first)."""
         t, group = self._group_t, self._group
         if t is None:
-            return None
+            return []
         self._group_t, self._group = None, {}
-        step = None
+        steps: list[Step] = []
         if "water" in group:
-            if self.last_step_t is not None and t <= self.last_step_t:
-                self.out_of_order += 1
+            values = dict(group)
+            for channel, (seen_t, value) in self._latest.items():
+                if channel not in values and t - seen_t <= HOLD_S.get(channel, 0.0):
+                    values[channel] = value
+            if self._energy is not None and "energy" not in values:
+                self._pending.append((t, values, self._position))  # wait for the counter
+                while self._pending and t - self._pending[0][0] > ENERGY_WAIT_S:
+                    steps += self._emit(*self._pending.pop(0))
             else:
-                values = dict(group)
-                for channel, (seen_t, value) in self._latest.items():
-                    if channel not in values and t - seen_t <= HOLD_S.get(channel, 0.0):
-                        values[channel] = value
-                if self.t0 is None:
-                    self.t0 = t
-                self.last_step_t = t
-                step = Step(self.vessel, t, t - self.t0, values, self._position)
+                steps += self.finish()
+                steps += self._emit(t, values, self._position)
+        elif "energy" in group and math.isfinite(group["energy"]):
+            steps += self._close_intervals(t, group["energy"])
         for channel, value in group.items():
             if channel in HOLD_S and not math.isnan(value):
                 self._latest[channel] = (t, value)
-        return step
+        return steps
+
+    def finish(self) -> list[Step]:
+        """Return the instants still waiting for an energy reading, stepped without one."""
+        steps: list[Step] = []
+        while self._pending:
+            steps += self._emit(*self._pending.pop(0))
+        return steps
+
+    def _close_intervals(self, t: float, energy_wh: float) -> list[Step]:
+        """Step the waiting instants up to ``t`` with the counter interpolated at each."""
+        previous, self._energy = self._energy, (t, energy_wh)
+        steps: list[Step] = []
+        while self._pending and self._pending[0][0] <= t:
+            at, values, position = self._pending.pop(0)
+            if previous is not None and previous[0] <= at and energy_wh >= previous[1]:
+                span = t - previous[0]
+                share = (at - previous[0]) / span if span > 0.0 else 1.0
+                values = {**values, "energy": previous[1] + share * (energy_wh - previous[1])}
+            steps += self._emit(at, values, position)
+        return steps
+
+    def _emit(self, t: float, values: dict[str, float], position: int) -> list[Step]:
+        if self.last_step_t is not None and t <= self.last_step_t:
+            self.out_of_order += 1
+            return []
+        if self.t0 is None:
+            self.t0 = t
+        self.last_step_t = t
+        return [Step(self.vessel, t, t - self.t0, values, position)]
 
 
 def steps_from_samples(samples: Iterable[tuple[int, Sample]]) -> Iterator[Step]:
@@ -131,13 +176,10 @@ def steps_from_samples(samples: Iterable[tuple[int, Sample]]) -> Iterator[Step]:
         assembler = assemblers.get(sample.vessel)
         if assembler is None:
             assembler = assemblers[sample.vessel] = InstantAssembler(sample.vessel)
-        step = assembler.feed(sample, position)
-        if step is not None:
-            yield step
+        yield from assembler.feed(sample, position)
     for assembler in assemblers.values():
-        step = assembler.flush()
-        if step is not None:
-            yield step
+        yield from assembler.flush()
+        yield from assembler.finish()
 
 
 def logs_from_steps(

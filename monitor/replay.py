@@ -179,6 +179,39 @@ def _mean_sd(values: list[float]) -> dict[str, float] | None:
     return {"value": mean, "std": math.sqrt(var / max(1.0, len(values) / 10.0))}
 
 
+#: How long (s) the element must have been off before element and water should agree.
+REST_AFTER_S = 300.0
+
+
+def _rest_disagreement(rows: list[LogRow], on_w: float) -> dict[str, float] | None:
+    """Return the median element minus water reading (K) at rest, with its spread, or None.
+
+    At rest (no power for :data:`REST_AFTER_S`) the element sits in still water, and
+    both thermocouples should read the same to well under a kelvin; a steady
+    difference is a sensor or cold-junction fault, not physics.
+    """
+    diffs: list[float] = []
+    off_since: float | None = None
+    for row in rows:
+        p = row.values.get("power")
+        if p is not None and math.isfinite(p) and p >= on_w * 0.1:
+            off_since = None
+            continue
+        if off_since is None:
+            off_since = row.time_s
+        e, w = row.values.get("element"), row.values.get("water")
+        if row.time_s - off_since < REST_AFTER_S or e is None or w is None:
+            continue
+        if math.isfinite(e) and math.isfinite(w):
+            diffs.append(e - w)
+    if len(diffs) < 30:
+        return None
+    diffs.sort()
+    median = diffs[len(diffs) // 2]
+    spread = diffs[(3 * len(diffs)) // 4] - diffs[len(diffs) // 4]
+    return {"value": median, "std": spread / 1.349, "n": float(len(diffs))}
+
+
 def electrical_figures(run: Run) -> dict[str, object]:
     """Return the run's electrical figures from the rows where the element was on.
 
@@ -209,6 +242,7 @@ def electrical_figures(run: Run) -> dict[str, object]:
             if rated_v:
                 at_rated.append(p * (rated_v / v) ** 2)
     return {
+        "rest_element_minus_water_k": _rest_disagreement(run.rows, on_w),
         "heating_power_w": _mean_sd(powers),
         "element_resistance_ohm": _mean_sd(ohms),
         "heating_power_at_rated_voltage_w": _mean_sd(at_rated),
@@ -305,23 +339,27 @@ def _summary(
     ambient = [r.values["ambient"] for r in run.rows if "ambient" in r.values]
     ambient = [a for a in ambient if math.isfinite(a)]
     start_epoch = run.log.start_epoch_s
-    return base | electrical_figures(run) | {
-        "start_utc": iso_utc(start_epoch + run.rows[0].time_s) if start_epoch else None,
-        "start_water_c": finite_or_none(start_c),
-        "ambient_c": math.fsum(ambient) / len(ambient) if ambient else None,
-        "water_mass_kg": _value(at.water_mass_kg),
-        "heat_capacity_j_per_k": _value(at.heat_capacity_j_per_k),
-        "ua_w_per_k": _value(last.ua_w_per_k),
-        "element_conductance_w_per_k": _value(conductance),
-        "standing_loss_kwh_per_24h": _value(standing),
-        "standing_loss_at_c": standing_at,
-        "heat_up_s": heat_up_s,
-        "energy_wh": tot.energy_j / 3600.0,
-        "efficiency": finite_or_none(efficiency),
-        "flags": flags,
-        "evaporated_kg": tot.evaporated_kg,
-        "phase_at_end": str(last.phase),
-    }
+    return (
+        base
+        | electrical_figures(run)
+        | {
+            "start_utc": iso_utc(start_epoch + run.rows[0].time_s) if start_epoch else None,
+            "start_water_c": finite_or_none(start_c),
+            "ambient_c": math.fsum(ambient) / len(ambient) if ambient else None,
+            "water_mass_kg": _value(at.water_mass_kg),
+            "heat_capacity_j_per_k": _value(at.heat_capacity_j_per_k),
+            "ua_w_per_k": _value(last.ua_w_per_k),
+            "element_conductance_w_per_k": _value(conductance),
+            "standing_loss_kwh_per_24h": _value(standing),
+            "standing_loss_at_c": standing_at,
+            "heat_up_s": heat_up_s,
+            "energy_wh": tot.energy_j / 3600.0,
+            "efficiency": finite_or_none(efficiency),
+            "flags": flags,
+            "evaporated_kg": tot.evaporated_kg,
+            "phase_at_end": str(last.phase),
+        }
+    )
 
 
 def estimate_row(run: Run, e: Estimate) -> list[object]:
@@ -379,6 +417,11 @@ def replay(
             next_report += total // 10
 
     results = [replay_run(run, settings, on_estimate=on_estimate) for run in runs]
+    from monitor.drift import drift_over_runs  # here: monitor.drift reads these summaries
+
+    metadata = {run.vessel: run.log.metadata for run in runs}
+    for result, flags in zip(results, drift_over_runs(results, metadata), strict=True):
+        result["drift"] = [f.as_dict() for f in flags]
     return {
         "version": __version__,
         "files": list(paths),

@@ -336,12 +336,10 @@ class Service:
                 continue
             samples.append(item)
             touched[item.vessel] = vessel
-            step = vessel.assembler.feed(item, 0)
-            if step is not None:
+            for step in vessel.assembler.feed(item, 0):
                 self._step(vessel, step)
         for vessel in touched.values():  # only these can have an open instant
-            step = vessel.assembler.flush()
-            if step is not None:
+            for step in vessel.assembler.flush():
                 self._step(vessel, step)
         self.stats.samples += len(samples)
         self.stats.quarantined += len(quarantined)
@@ -350,6 +348,11 @@ class Service:
             self._recorder.put("samples", samples)
         if quarantined:
             self._recorder.put("quarantined", quarantined)
+        self._flush_to_recorder()
+
+    def _flush_to_recorder(self) -> None:
+        """Hand the estimates and flags gathered so far to the recorder thread."""
+        assert self._recorder is not None
         if self._estimate_rows:  # one hand-over per batch, not one per estimate
             self._recorder.put("estimates", self._estimate_rows)
             self._estimate_rows = []
@@ -463,6 +466,10 @@ class Service:
                 while not self._queue.empty():
                     leftovers.append(self._queue.get_nowait())
                 self._take(leftovers)
+                for vessel in self.vessels.values():  # as a replay ends: nothing left waiting
+                    for step in vessel.assembler.finish():
+                        self._step(vessel, step)
+                self._flush_to_recorder()
                 self._record_runs()
                 await self._flush_publish(publisher)
         finally:

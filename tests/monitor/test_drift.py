@@ -116,7 +116,12 @@ def test_rising_ua_raises_insulation() -> None:
 
 
 def simulated_run(
-    seed: int, scale_mm: float = 0.0, power_fraction: float = 1.0, duration_s: float = 500.0
+    seed: int,
+    scale_mm: float = 0.0,
+    power_fraction: float = 1.0,
+    duration_s: float = 500.0,
+    element_offset_k: float = 0.0,
+    mass_kg: float | None = None,
 ) -> dict[str, object]:
     """Replay one simulated kettle run of our own (fill, start and room drawn from seed).
 
@@ -131,6 +136,12 @@ def simulated_run(
         ambient_c=float(rng.uniform(16.0, 26.0)),
         duration_s=duration_s,
     )
+    if mass_kg is not None:
+        scenario = replace(scenario, water_mass_kg=mass_kg)
+    if element_offset_k:
+        sensors = dict(scenario.sensors)
+        sensors["element"] = replace(sensors["element"], offset=element_offset_k)
+        scenario = replace(scenario, sensors=sensors)
     meta = scenario_metadata(scenario, seed)
     if power_fraction != 1.0:
         element = replace(
@@ -173,3 +184,51 @@ def test_simulated_scale_series_silent_within_ten_percent_warned_at_a_quarter() 
     got = levels(drift_over_runs(runs), "scaling")
     assert got[:9] == [None] * 9
     assert {"warning", "alarm"} & set(got[9:])
+
+
+def test_an_underfilled_vessel_raises_fill() -> None:
+    meta = {"kettle-1": {"fill_kg": 1.5}}  # the operator's fill for this test (made-up)
+    full = simulated_run(31, mass_kg=1.5, duration_s=300.0)
+    low = simulated_run(32, mass_kg=1.0, duration_s=300.0)
+    flags = drift_over_runs([full, low], meta)
+    assert [f.name for f in flags[0]] == []
+    (fill,) = [f for f in flags[1] if f.name == "fill"]
+    assert fill.level == Level.ALARM
+    assert fill.evidence["difference_kg"] == pytest.approx(-0.5, abs=0.05)
+    assert "element dry" in fill.message
+
+
+def test_a_thermocouple_three_kelvin_off_raises_sensor_and_a_good_one_does_not() -> None:
+    good = simulated_run(41, duration_s=900.0)
+    bad = simulated_run(42, duration_s=900.0, element_offset_k=3.0)
+    assert abs(good["rest_element_minus_water_k"]["value"]) < 0.5
+    flags = drift_over_runs([good, bad])
+    assert "sensor" not in [f.name for f in flags[0]]
+    (sensor,) = [f for f in flags[1] if f.name == "sensor"]
+    assert sensor.evidence["element_minus_water_k"] == pytest.approx(3.0, abs=0.3)
+
+
+def test_fleet_lists_the_scaled_vessel_first(tmp_path, capsys) -> None:
+    import json
+
+    from monitor.cli import main
+
+    logs = []
+    plan = [("urn-a", 0.0)] * 5 + [("urn-a", 0.2)] * 2 + [("urn-b", 0.0)] * 6
+    for i, (vessel, mm) in enumerate(plan):
+        out = tmp_path / f"{i:02d}-{vessel}.csv"
+        code = main(["simulate", "--seed", str(300 + i), "--vessel", vessel, "--scale-mm", str(mm),
+                     "--duration-s", "300", "--out", str(out)])  # fmt: skip
+        assert code == 0
+        logs.append(str(out))
+    capsys.readouterr()
+    assert main(["fleet", *logs, "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)["vessels"]
+    assert [r["vessel"] for r in rows] == ["urn-a", "urn-b"]
+    assert rows[0]["status"] in ("warning", "alarm")
+    assert "scaling" in rows[0]["flags"]
+    assert rows[0]["scaling_index"] == pytest.approx(1 - 2 / 3, abs=0.05)  # 0.2 mm: G x 0.667
+    assert rows[0]["runs_since_baseline"] == 2
+    assert "scaling" not in rows[1]["flags"]
+    assert main(["fleet", *logs]) == 0
+    assert "urn-a" in capsys.readouterr().out

@@ -5,6 +5,8 @@ from __future__ import annotations
 import math
 from dataclasses import replace
 
+import pytest
+
 from drivers.sample import Quality, Sample
 from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.live import InstantAssembler, LiveVessel, logs_from_steps, steps_from_samples
@@ -19,16 +21,14 @@ def s(t: float, channel: str, value: float, quality: Quality = Quality.OK) -> Sa
 
 def test_an_instant_closes_when_the_time_stamp_changes_and_carries_recent_power() -> None:
     a = InstantAssembler("k1")
-    assert a.feed(s(0.0, "power", 2000.0)) is None  # no water: only remembered
-    assert a.feed(s(0.5, "water", 20.0)) is None
-    assert a.feed(s(0.5, "element", 25.0)) is None
-    step = a.feed(s(1.0, "power", 2100.0))
-    assert step is not None
+    assert a.feed(s(0.0, "power", 2000.0)) == []  # no water: only remembered
+    assert a.feed(s(0.5, "water", 20.0)) == []
+    assert a.feed(s(0.5, "element", 25.0)) == []
+    (step,) = a.feed(s(1.0, "power", 2100.0))
     assert step.values == {"water": 20.0, "element": 25.0, "power": 2000.0}
     assert step.time_s == 0.0
     a.feed(s(7.0, "water", 21.0))
-    late = a.flush()
-    assert late is not None
+    (late,) = a.flush()
     # the power seen at 1.0 s is 6 s old at 7.0 s: older than HOLD_S["power"] (5 s)
     assert late.values == {"water": 21.0}
     assert late.time_s == 7.0 - 0.5
@@ -36,10 +36,8 @@ def test_an_instant_closes_when_the_time_stamp_changes_and_carries_recent_power(
 
 def test_energy_is_never_carried_and_faults_pass_as_nan() -> None:
     a = InstantAssembler("k1")
-    a.feed(s(0.0, "energy", 10.0))
     a.feed(s(0.5, "water", math.nan, Quality.FAULT))
-    step = a.flush()
-    assert step is not None
+    (step,) = a.feed(s(1.0, "energy", 10.0))  # the first counter reading: nothing waited
     assert set(step.values) == {"water"}
     assert math.isnan(step.values["water"])
 
@@ -47,10 +45,34 @@ def test_energy_is_never_carried_and_faults_pass_as_nan() -> None:
 def test_an_instant_not_after_the_last_step_is_counted_not_stepped() -> None:
     a = InstantAssembler("k1")
     a.feed(s(1.0, "water", 20.0))
-    assert a.flush() is not None
+    assert len(a.flush()) == 1
     a.feed(s(1.0, "water", 20.1))
-    assert a.flush() is None
+    assert a.flush() == []
     assert a.out_of_order == 1
+
+
+def test_a_separate_energy_counter_is_interpolated_at_each_water_reading() -> None:
+    a = InstantAssembler("k1")
+    a.feed(s(0.2, "energy", 100.0))  # meter polls at 0.2, 1.2, 2.2 ... (made-up numbers)
+    assert a.flush() == []
+    a.feed(s(1.0, "water", 20.0))
+    assert a.flush() == []  # waits for the counter reading after it
+    a.feed(s(1.2, "energy", 101.0))
+    (step,) = a.flush()
+    assert step.values["energy"] == pytest.approx(100.8)  # 0.8 of the way from 0.2 to 1.2
+    # a counter that went backwards (a reset) is not interpolated across
+    a.feed(s(2.0, "water", 20.5))
+    a.flush()
+    a.feed(s(2.2, "energy", 3.0))
+    (step,) = a.flush()
+    assert "energy" not in step.values
+    # a meter gone silent: the instant is stepped without it after ENERGY_WAIT_S
+    a.feed(s(3.0, "water", 21.0))
+    assert a.flush() == []
+    a.feed(s(9.0, "water", 22.0))
+    (old,) = a.flush()
+    assert (old.t, "energy" in old.values) == (T0 + 3.0, False)
+    assert [x.t for x in a.finish()] == [T0 + 9.0]
 
 
 def _kettle_samples(seed: int) -> tuple[list[Sample], dict]:
