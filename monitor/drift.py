@@ -251,18 +251,46 @@ class VesselDrift:
     metadata: Mapping[str, object] = field(default_factory=dict)
     baseline_runs: int = BASELINE_RUNS
     trackers: dict[str, RuleTracker] = field(default_factory=dict)
+    rebased_at: str | None = None
 
     def __post_init__(self) -> None:
         for rule in RULES:
             self.trackers.setdefault(rule.name, RuleTracker(rule, self.baseline_runs))
 
+    def _labels(self, key: str) -> list[str]:
+        text = self.metadata.get(key)
+        if text is None:
+            return []
+        return [part.strip() for part in str(text).split(",") if part.strip()]
+
     def observe(self, run: Mapping[str, object]) -> list[DriftFlag]:
-        """Return the drift flags after one run summary (oldest first)."""
+        """Return the drift flags after one run summary (oldest first).
+
+        The vessel's metadata may say which runs make the baseline
+        (``baseline_runs``: run labels, comma-separated, e.g. a commissioning series)
+        and where a new baseline starts after descaling or repair
+        (``rebaseline_from_run``: the first run label of the new one). Earlier flags
+        stay in the history; the trackers start again from that run.
+        """
         flags = []
         label = str(run.get("run", ""))
+        # a marked baseline holds until a rebaseline; after one, the next runs make it
+        chosen = self._labels("baseline_runs") if self.rebased_at is None else []
+        if label in self._labels("rebaseline_from_run"):
+            for name, tracker in self.trackers.items():
+                self.trackers[name] = RuleTracker(tracker.rule, self.baseline_runs)
+            self.rebased_at = label
+            chosen = []
         for tracker in self.trackers.values():
             got = figure(run, tracker.rule.key)
             if got is None:
+                continue
+            if chosen and tracker.baseline is None:
+                if label in chosen:
+                    tracker.pending.append(got)
+                    tracker.pending_labels.append(label)
+                    if len(tracker.pending) == len(chosen):
+                        tracker.rebase(tracker.pending, tracker.pending_labels)
                 continue
             if tracker.rule.name == "scaling" and run.get("model") == "one-node":
                 continue  # G is poorly observed without an element thermocouple

@@ -232,3 +232,17 @@ def test_fleet_lists_the_scaled_vessel_first(tmp_path, capsys) -> None:
     assert "scaling" not in rows[1]["flags"]
     assert main(["fleet", *logs]) == 0
     assert "urn-a" in capsys.readouterr().out
+
+
+def test_a_marked_commissioning_baseline_and_a_new_baseline_after_descaling() -> None:
+    # runs 1-2 are bad (a fouled element at hand-over), runs 3-7 the commissioning series
+    ratios = [0.6, 0.6] + [1.0] * 5 + [0.7] * 3 + [0.7] * 6 + [0.45] * 3
+    runs = synthetic_runs(ratios, seed=8)
+    meta = {"k1": {"baseline_runs": "3,4,5,6,7", "rebaseline_from_run": "11"}}
+    got = levels(drift_over_runs(runs, meta), "scaling")
+    assert got[:7] == [None] * 7  # nothing is judged before the marked baseline is complete
+    assert {"warning", "alarm"} & set(got[7:10])  # 30 % down on the commissioning baseline
+    # run 11 starts a new baseline (say a replacement element with 0.7 of the old G):
+    # silent while it is built and while G holds, flagged when G falls on the new one
+    assert got[10:16] == [None] * 6
+    assert {"warning", "alarm"} & set(got[16:])
