@@ -131,6 +131,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
     finally:
         if estimates is not None:
             estimates.close()
+    if args.record:
+        from monitor.logs import record_summaries
+
+        count = record_summaries(args.logs, result)
+        print(f"replay: recorded {count} run summaries in {', '.join(args.logs)}", file=sys.stderr)
     if args.json:
         print(json.dumps(result, indent=2, allow_nan=False))
     else:
@@ -288,6 +293,11 @@ def build_parser() -> argparse.ArgumentParser:
     )  # fmt: skip
     rep.add_argument("--json", action="store_true", help="print the summary as one JSON object")
     rep.add_argument("--estimates", metavar="FILE.csv", help="write every filter step here")
+    rep.add_argument(
+        "--record", action="store_true",
+        help="append the run summaries (drift flags included) to the recorder log, as new "
+        "blocks of its hash chain",
+    )  # fmt: skip
     rep.set_defaults(func=cmd_replay)
 
     run = verbs.add_parser(

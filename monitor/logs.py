@@ -9,6 +9,8 @@ quarantined input as a rejected line (``line`` 0: the SQLite row id is in the re
 from __future__ import annotations
 
 import math
+import time
+from datetime import datetime
 from pathlib import Path
 from typing import TextIO
 
@@ -92,3 +94,28 @@ def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> 
         metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
     metadata["exported_from"] = Path(str(log_path)).name
     return write_csv(out, _csv_rows(chosen.rows), metadata, chosen.channels)
+
+
+def record_summaries(paths: list[str], result: dict[str, object]) -> int:
+    """Append a replay's run summaries to the recorder log they came from; return how many.
+
+    The summaries go in the ``runs`` table as a new session of their own (new blocks
+    of the hash chain; nothing already recorded changes). Raises LogFormatError unless
+    there is exactly one log and it is a recorder log.
+    """
+    from monitor import __version__
+    from monitor.recorder import Recorder
+
+    if len(paths) != 1 or not is_recorder_log(paths[0]):
+        raise LogFormatError("--record needs exactly one recorder (SQLite) log")
+    runs = result["runs"]
+    assert isinstance(runs, list)
+    with Recorder(paths[0], version=__version__, config_text=None) as rec:
+        for run in runs:
+            start = run.get("start_utc")
+            start_t = datetime.fromisoformat(start).timestamp() if start else 0.0
+            length = (run.get("end_s") or 0.0) - (run.get("start_s") or 0.0)
+            rec.add_run(str(run["vessel"]), str(run["run"]), start_t, start_t + length,
+                        {"source": "replay", **run})  # fmt: skip
+        rec.add_event(time.time(), "summaries", "replay", f"{len(runs)} run summaries")
+    return len(runs)

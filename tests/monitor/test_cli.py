@@ -92,6 +92,16 @@ def test_demo_runs_live_through_the_real_drivers_and_records(tmp_path):
     # the demo kettle holds 1.2 kg (the simulator's default kettle, our own scenario);
     # 5 % is looser than the estimator benchmark's 3 %, the meter being polled apart
     assert run["water_mass_kg"]["value"] == pytest.approx(1.2, rel=0.05)
+    recorded = subprocess.run(
+        [sys.executable, "-m", "monitor.cli", "replay", str(out), "--record", "--json"],
+        capture_output=True, text=True, timeout=60, check=True,
+    )  # fmt: skip
+    assert json.loads(recorded.stdout)["runs"][0]["water_mass_kg"] == run["water_mass_kg"]
+    from monitor.recorder import read_runs, verify
+
+    summaries = [r for r in read_runs(out) if r["summary"].get("source") == "replay"]
+    assert [s["summary"]["water_mass_kg"] for s in summaries] == [run["water_mass_kg"]]
+    assert verify(out)["ok"] is True  # appended as new blocks: the chain still holds
     exported = tmp_path / "demo.csv"
     subprocess.run(
         [sys.executable, "-m", "monitor.cli", "export", str(out), "--csv", str(exported)],
