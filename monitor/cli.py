@@ -219,6 +219,24 @@ def cmd_fleet(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_report(args: argparse.Namespace) -> int:
+    """Write the audit report of one run as a self-contained HTML file."""
+    from monitor.report import build_report
+
+    page = build_report(args.log, args.vessel, args.run)
+    out = Path(args.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(page, encoding="utf-8")
+    print(f"wrote the report to {out} ({len(page) // 1024} KiB, opens offline)", file=sys.stderr)
+    if args.pdf:
+        from monitor.report import print_pdf
+
+        pdf = out.with_suffix(".pdf")
+        print_pdf(out, pdf)
+        print(f"printed it to {pdf}", file=sys.stderr)
+    return 0
+
+
 def _add_scenario_options(p: argparse.ArgumentParser, seed: int) -> None:
     """Add the simulated scenario's options (shared by ``simulate`` and ``demo``)."""
     p.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
@@ -335,6 +353,23 @@ def build_parser() -> argparse.ArgumentParser:
     fleet.add_argument("logs", nargs="+", metavar="LOG", help="recorder or CSV logs")
     fleet.add_argument("--json", action="store_true", help="print one JSON object")
     fleet.set_defaults(func=cmd_fleet)
+
+    rpt = verbs.add_parser(
+        "report",
+        help="write the audit report of a run (one HTML file)",
+        description="Replay a log and write one self-contained HTML file (it opens offline) "
+        "for one run of one vessel: the vessel and site, instruments and calibrations, test "
+        "conditions, results with uncertainties, drift against the baseline, the log's "
+        "integrity (hash chain, digests, versions), the estimator's settings, plots and the "
+        "safety cautions.",
+        epilog="example: ebullio report logs/lab.sqlite --vessel urn-3 --run 2 --out urn-3.html",
+    )
+    rpt.add_argument("log", metavar="LOG", help="recorder (SQLite) or CSV log")
+    rpt.add_argument("--vessel", help="which vessel (needed when the log holds several)")
+    rpt.add_argument("--run", help="which run, by its label (default: the last)")
+    rpt.add_argument("--out", required=True, metavar="FILE.html", help="where to write it")
+    rpt.add_argument("--pdf", action="store_true", help="also print it to FILE.pdf (Chromium)")
+    rpt.set_defaults(func=cmd_report)
 
     exp = verbs.add_parser(
         "export",

@@ -115,7 +115,7 @@ def test_demo_runs_live_through_the_real_drivers_and_records(tmp_path):
 
 
 def test_every_verb_has_help_with_an_example():
-    for verb in ("simulate", "demo", "replay", "run", "verify", "export", "fleet"):
+    for verb in ("simulate", "demo", "replay", "run", "verify", "export", "fleet", "report"):
         proc = subprocess.run(
             [sys.executable, "-m", "monitor.cli", verb, "--help"],
             capture_output=True,

@@ -1,0 +1,303 @@
+"""``ebullio report``: one self-contained HTML file describing a run, for the audit trail.
+
+The page opens offline: Plotly's JavaScript is written into it once, and nothing is
+fetched. It holds the vessel and site, the instruments and calibrations (the rig
+configuration the log recorded, with its digest), the test conditions, the results
+with their uncertainties, the drift status against the vessel's baseline, the log's
+integrity (the hash chain verified or not, the file's digest, the software
+versions), the estimator's settings, the plots, and the safety cautions.
+
+Building the page is pure apart from reading the log; :func:`build_report` returns
+the HTML text.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import html
+from collections.abc import Mapping, Sequence
+from datetime import UTC, datetime
+from pathlib import Path
+
+import plotly.graph_objects as go
+import plotly.io as pio
+from plotly.subplots import make_subplots
+
+from drivers.errors import LogFormatError
+from monitor import __version__
+from monitor.contracts import Estimate
+from monitor.drift import RULES, drift_over_runs, make_baseline
+from monitor.estimator import EstimatorSettings
+from monitor.logs import read_log
+from monitor.recorder import is_recorder_log, sessions, verify
+from monitor.replay import Run, replay_run, split_runs
+
+SAFETY_TEXT = (
+    "ebullio monitors; it is not a safety device. Hot water and steam scald. Heating "
+    "elements run on mains voltage: isolate and lock off the supply before opening a vessel, "
+    "a terminal box or a meter. An element run dry can burn out or start a fire. A closed "
+    "storage heater or boiler is a pressure vessel and needs its own relief valve. Follow "
+    "local codes and the maker's instructions, and leave installation and repair to "
+    "licensed practitioners."
+)
+
+#: Colours of our own for the plots (water, element, ambient, power, estimate bands).
+COLOURS = {"water": "#1f5fa8", "element": "#c2452d", "ambient": "#6b8e23",
+           "power": "#7a5195", "band": "rgba(31, 95, 168, 0.18)"}  # fmt: skip
+
+
+def file_sha256(path: str | Path) -> str:
+    """Return the SHA-256 (hex) of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _fmt(entry: object, digits: int = 3, unit: str = "") -> str:
+    if isinstance(entry, Mapping):
+        value, std = entry.get("value"), entry.get("std")
+        if isinstance(value, int | float):
+            text = f"{value:.{digits}f}"
+            if isinstance(std, int | float):
+                text += f" ± {std:.{digits}f}"
+            return f"{text} {unit}".strip()
+        return "-"
+    if isinstance(entry, float):
+        return f"{entry:.{digits}f} {unit}".strip()
+    return "-" if entry is None else html.escape(str(entry))
+
+
+def _table(rows: Sequence[tuple[str, str]]) -> str:
+    cells = "".join(f"<tr><th>{html.escape(k)}</th><td>{v}</td></tr>" for k, v in rows)
+    return f"<table>{cells}</table>"
+
+
+def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
+    """Return temperatures and power against time, and the estimates with their bands."""
+    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.06,
+                        subplot_titles=("Readings", "Water mass (±2σ)", "UA (±2σ)"),
+                        specs=[[{"secondary_y": True}], [{}], [{}]])  # fmt: skip
+    t0 = run.rows[0].time_s if run.rows else 0.0
+    t = [r.time_s - t0 for r in run.rows]
+    for channel in ("water", "element", "ambient"):
+        ys = [r.values.get(channel) for r in run.rows]
+        if any(y is not None for y in ys):
+            fig.add_trace(go.Scatter(x=t, y=ys, name=f"{channel} °C", mode="lines",
+                                     line={"color": COLOURS[channel]}), row=1, col=1)  # fmt: skip
+    power = [r.values.get("power") for r in run.rows]
+    if any(p is not None for p in power):
+        fig.add_trace(go.Scatter(x=t, y=power, name="power W", mode="lines",
+                                 line={"color": COLOURS["power"], "width": 1}),
+                      row=1, col=1, secondary_y=True)  # fmt: skip
+    te = [e.t_s - t0 for e in estimates]
+    for row, getter in ((2, lambda e: e.water_mass_kg), (3, lambda e: e.ua_w_per_k)):
+        pairs = [getter(e) for e in estimates]
+        mean = [p.value if p else None for p in pairs]
+        hi = [p.value + 2 * p.std if p else None for p in pairs]
+        lo = [p.value - 2 * p.std if p else None for p in pairs]
+        fig.add_trace(go.Scatter(x=te, y=hi, mode="lines", line={"width": 0},
+                                 showlegend=False, hoverinfo="skip"), row=row, col=1)  # fmt: skip
+        fig.add_trace(go.Scatter(x=te, y=lo, mode="lines", line={"width": 0}, fill="tonexty",
+                                 fillcolor=COLOURS["band"], showlegend=False,
+                                 hoverinfo="skip"), row=row, col=1)  # fmt: skip
+        fig.add_trace(go.Scatter(x=te, y=mean, mode="lines", showlegend=False,
+                                 line={"color": COLOURS["water"]}), row=row, col=1)  # fmt: skip
+    fig.update_xaxes(title_text="time from the start of the run, s", row=3, col=1)
+    fig.update_yaxes(title_text="°C", row=1, col=1, secondary_y=False)
+    fig.update_yaxes(title_text="W", row=1, col=1, secondary_y=True, showgrid=False)
+    fig.update_yaxes(title_text="kg", row=2, col=1)
+    fig.update_yaxes(title_text="W/K", row=3, col=1)
+    fig.update_layout(height=760, margin={"l": 60, "r": 40, "t": 40, "b": 40},
+                      template="plotly_white", uirevision="report")  # fmt: skip
+    return fig
+
+
+def _history_figure(results: Sequence[Mapping[str, object]]) -> go.Figure:
+    """Return each tracked figure across the vessel's runs, with the baseline band."""
+    fig = make_subplots(rows=len(RULES), cols=1, shared_xaxes=True, vertical_spacing=0.08,
+                        subplot_titles=[r.what for r in RULES])  # fmt: skip
+    labels = [str(r.get("run")) for r in results]
+    for i, rule in enumerate(RULES, start=1):
+        pts = [(lab, r.get(rule.key)) for lab, r in zip(labels, results, strict=True)]
+        pts = [(lab, e) for lab, e in pts if isinstance(e, Mapping) and e.get("value") is not None]
+        if not pts:
+            continue
+        fig.add_trace(go.Scatter(
+            x=[lab for lab, _ in pts], y=[e["value"] for _, e in pts], mode="markers+lines",
+            error_y={"type": "data", "array": [2 * (e.get("std") or 0.0) for _, e in pts]},
+            name=rule.key, line={"color": COLOURS["water"]}), row=i, col=1)  # fmt: skip
+        if len(pts) >= 2:
+            first = [(e["value"], e.get("std") or 0.0) for _, e in pts[:5]]
+            base = make_baseline(first, rule)
+            for edge in (base.mean - 2 * base.sd, base.mean + 2 * base.sd):
+                fig.add_hline(y=edge, line={"dash": "dot", "color": "#888"}, row=i, col=1)
+    fig.update_xaxes(title_text="run", type="category", row=len(RULES), col=1)
+    fig.update_layout(height=240 * len(RULES), showlegend=False, template="plotly_white",
+                      margin={"l": 60, "r": 40, "t": 40, "b": 40})  # fmt: skip
+    return fig
+
+
+def build_report(log_path: str, vessel: str | None = None, run_label: str | None = None) -> str:
+    """Return the audit report of one run of one vessel as a self-contained HTML page.
+
+    ``vessel`` may be left out when the log holds one; ``run_label`` defaults to the
+    last run. Raises LogFormatError naming the choices when a choice is needed or wrong.
+    """
+    logs = read_log(log_path)
+    runs, quarantined = split_runs(logs)
+    vessels = sorted({r.vessel for r in runs})
+    if vessel is None:
+        if len(vessels) != 1:
+            raise LogFormatError(f"{log_path}: holds vessels {', '.join(vessels) or '(none)'}; "
+                                 "say which with --vessel")  # fmt: skip
+        vessel = vessels[0]
+    mine = [r for r in runs if r.vessel == vessel]
+    if not mine:
+        raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(vessels)}")
+    labels = [r.label for r in mine]
+    chosen = mine[-1] if run_label is None else next((r for r in mine if r.label == run_label),
+                                                     None)  # fmt: skip
+    if chosen is None:
+        raise LogFormatError(f"{log_path}: vessel {vessel!r} has no run {run_label!r}; "
+                             f"its runs: {', '.join(labels)}")  # fmt: skip
+    estimates: list[Estimate] = []
+    results = []
+
+    def keep(_run: Run, e: Estimate) -> None:
+        estimates.append(e)
+
+    for run in mine:
+        results.append(replay_run(run, on_estimate=keep if run is chosen else None))
+    drift = drift_over_runs(results, {vessel: chosen.log.metadata})
+    index = mine.index(chosen)
+    result, flags = results[index], drift[index]
+    meta = chosen.log.metadata
+
+    integrity_rows: list[tuple[str, str]] = [("log file", html.escape(str(log_path))),
+                                             ("file SHA-256", file_sha256(log_path))]  # fmt: skip
+    config_text = None
+    if is_recorder_log(log_path):
+        check = verify(log_path)
+        state = (
+            "verified: every block matches"
+            if check["ok"]
+            else (f"FAILED at block {check['first_bad_block']}: {check.get('reason', '')}")
+        )
+        integrity_rows += [
+            ("hash chain", f"<b class='{'ok' if check['ok'] else 'bad'}'>"
+                           f"{html.escape(state)}</b>"),
+            ("blocks, samples, quarantined",
+             f"{check['blocks']}, {check['samples']}, {check['quarantined']}"),
+            ("head hash", html.escape(str(check.get("head_hash")))),
+        ]  # fmt: skip
+        recorded = sessions(log_path)
+        versions = sorted({str(s["version"]) for s in recorded})
+        integrity_rows.append(("software that wrote the log", html.escape(", ".join(versions))))
+        config_text = next((s["config_text"] for s in recorded if s.get("config_text")), None)
+    else:
+        no_chain = "none: a CSV log carries no hash chain, so it cannot be shown unaltered"
+        integrity_rows.append(("hash chain", f"<b class='bad'>{no_chain}</b>"))
+    if config_text:
+        digest = hashlib.sha256(str(config_text).encode()).hexdigest()
+        integrity_rows.append(("configuration SHA-256", digest))
+    integrity_rows.append(("this report made by", f"ebullio {html.escape(__version__)}"))
+
+    conditions = [
+        ("site pressure", _fmt(result.get("pressure_kpa"), 2, "kPa")),
+        ("boiling point", _fmt(result.get("boiling_point_c"), 2, "°C")),
+        ("target", _fmt(result.get("target_c"), 2, "°C")),
+        ("start (UTC)", _fmt(result.get("start_utc"))),
+        ("start water temperature", _fmt(result.get("start_water_c"), 2, "°C")),
+        ("mean room temperature", _fmt(result.get("ambient_c"), 2, "°C")),
+        ("model", _fmt(result.get("model"))),
+    ]
+    results_rows = [
+        ("water mass", _fmt(result.get("water_mass_kg"), 3, "kg")),
+        ("heat capacity", _fmt(result.get("heat_capacity_j_per_k"), 0, "J/K")),
+        ("UA (loss coefficient)", _fmt(result.get("ua_w_per_k"), 3, "W/K")),
+        (
+            "element-to-water conductance",
+            _fmt(result.get("element_conductance_w_per_k"), 2, "W/K"),
+        ),
+        ("standing loss", _fmt(result.get("standing_loss_kwh_per_24h"), 3, "kWh/24 h")),
+        ("heat-up time", _fmt(result.get("heat_up_s"), 0, "s")),
+        ("electrical energy", _fmt(result.get("energy_wh"), 1, "Wh")),
+        ("heat-up efficiency", _fmt(result.get("efficiency"), 3)),
+        ("heating power", _fmt(result.get("heating_power_w"), 0, "W")),
+        ("element resistance", _fmt(result.get("element_resistance_ohm"), 3, "Ω")),
+    ]
+    flag_items = [*result.get("flags", []), *(f.as_dict() for f in flags)]  # type: ignore[misc]
+    flag_html = (
+        "".join(
+            f"<li class='{html.escape(str(f['level']))}'><b>{html.escape(str(f['name']))}</b> "
+            f"({html.escape(str(f['level']))}): {html.escape(str(f['message']))}</li>"
+            for f in flag_items
+        )
+        or "<li>none</li>"
+    )
+    settings = dataclasses.asdict(EstimatorSettings())
+    settings_rows = [(k, html.escape(repr(v))) for k, v in settings.items()]
+    meta_rows = [
+        (str(k), html.escape(str(v))) for k, v in meta.items() if not k.startswith("truth_")
+    ]
+
+    run_fig = pio.to_html(_run_figure(chosen, estimates), include_plotlyjs=True, full_html=False,
+                          div_id="report-run-plot")  # fmt: skip
+    hist_fig = pio.to_html(_history_figure(results), include_plotlyjs=False, full_html=False,
+                           div_id="report-history-plot")  # fmt: skip
+    made = datetime.now(tz=UTC).isoformat(timespec="seconds")
+    title = f"ebullio report: {vessel}, run {chosen.label}"
+    config_html = (f"<pre>{html.escape(str(config_text))}</pre>" if config_text
+                   else "<p>No rig configuration is recorded in this log.</p>")  # fmt: skip
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title>
+<style>
+body {{ font-family: system-ui, sans-serif; margin: 2rem auto; max-width: 70rem; color: #222; }}
+h1 {{ font-size: 1.6rem; }} h2 {{ font-size: 1.2rem; border-bottom: 1px solid #ccc; }}
+table {{ border-collapse: collapse; margin: .5rem 0; }}
+th, td {{ text-align: left; padding: .2rem .8rem .2rem 0; vertical-align: top; }}
+th {{ font-weight: 600; color: #444; }}
+.ok {{ color: #1b7a3a; }} .bad {{ color: #b3261e; }}
+li.warning, li.alarm {{ color: #b3261e; }}
+.caution {{ border: 2px solid #b3261e; padding: .6rem 1rem; background: #fff6f5; }}
+pre {{ background: #f5f5f5; padding: .6rem; overflow-x: auto; }}
+</style></head><body>
+<h1>{html.escape(title)}</h1>
+<p>Made {made} from <code>{html.escape(Path(log_path).name)}</code>; runs of this vessel in
+the log: {html.escape(", ".join(labels))}.</p>
+<div class="caution"><b>Caution.</b> {html.escape(SAFETY_TEXT)}</div>
+<h2>Integrity</h2>{_table(integrity_rows)}
+<h2>Test conditions</h2>{_table(conditions)}
+<h2>Results (value ± one standard deviation)</h2>{_table(results_rows)}
+<h2>Flags and drift against the vessel's baseline</h2><ul id="report-flags">{flag_html}</ul>
+<h2>Plots of this run</h2>{run_fig}
+<h2>This vessel across its runs (dotted: baseline ± 2σ)</h2>{hist_fig}
+<h2>Vessel and site</h2>{_table(meta_rows)}
+<h2>Instruments and calibrations (the recorded rig configuration)</h2>{config_html}
+<h2>Estimator settings</h2>{_table(settings_rows)}
+<p>Rows set aside as unusable in these logs: {len(quarantined)}.
+Values that are missing or not finite are shown as "-".</p>
+</body></html>
+"""
+
+
+def print_pdf(html_path: Path, pdf_path: Path) -> None:
+    """Print the report to PDF with headless Chromium; raise EbullioError if it cannot."""
+    import shutil
+    import subprocess
+
+    from drivers.errors import EbullioError
+
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    if browser is None:
+        raise EbullioError("--pdf needs Chromium (Debian package 'chromium'); it is not installed")
+    done = subprocess.run(
+        [browser, "--headless=new", "--no-sandbox", "--disable-gpu", "--no-pdf-header-footer",
+         "--virtual-time-budget=8000", f"--print-to-pdf={pdf_path}", html_path.resolve().as_uri()],
+        capture_output=True, text=True, timeout=120, check=False,
+    )  # fmt: skip
+    if done.returncode != 0 or not pdf_path.exists():
+        raise EbullioError(f"Chromium could not print the PDF: {done.stderr.strip()[-300:]}")

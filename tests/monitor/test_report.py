@@ -1,0 +1,110 @@
+"""The audit report: what it holds, that it needs nothing online, and a tampered log."""
+
+from __future__ import annotations
+
+import sqlite3
+from dataclasses import replace
+
+import pytest
+
+from drivers.errors import LogFormatError
+from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from monitor.recorder import Recorder
+from monitor.report import build_report
+
+
+def recorded_kettle(path, runs: int = 2) -> None:
+    """Record simulated kettle runs of our own into a recorder log, as the service would."""
+    with Recorder(path, version="test", config_text="# rig for the report test\n") as rec:
+        meta = None
+        for i in range(runs):
+            scenario = replace(
+                kettle_scenario(duration_s=300.0),
+                start_epoch_s=1_767_225_600.0 + 3600.0 * i,  # an hour apart: separate runs
+            )
+            meta = scenario_metadata(scenario, seed=i)
+            for batch in SimulatedRig(scenario, seed=i).run():
+                rec.add_samples(batch)
+            rec.commit()
+        rec.add_vessel("kettle-1", {**meta, "element_sensor": "yes"})
+
+
+@pytest.fixture
+def log(tmp_path):
+    path = tmp_path / "rig.sqlite"
+    recorded_kettle(path)
+    return path
+
+
+def test_the_report_holds_the_figures_integrity_and_cautions(log) -> None:
+    page = build_report(str(log))
+    assert page.startswith("<!DOCTYPE html>")
+    assert "kettle-1, run 2" in page
+    assert "verified: every block matches" in page
+    assert "configuration SHA-256" in page
+    assert "water mass" in page
+    assert " kg" in page
+    assert "not a safety device" in page
+    assert 'id="report-run-plot"' in page
+    assert 'id="report-history-plot"' in page
+    # self-contained: Plotly's code is inside, and nothing is loaded from elsewhere
+    assert "plotly.js v" in page or "Plotly" in page
+    assert "<script src=" not in page
+    assert "truth_water_mass_kg" not in page  # the simulator's truth is not a reading
+
+
+def test_a_tampered_log_says_its_integrity_check_failed(log) -> None:
+    with sqlite3.connect(log) as conn:
+        conn.execute("UPDATE samples SET value = value + 1 WHERE id = 100")
+    page = build_report(str(log))
+    assert "FAILED at block" in page
+    assert "verified: every block matches" not in page
+
+
+def test_a_csv_log_is_reported_as_carrying_no_chain(tmp_path) -> None:
+    from monitor.cli import main
+
+    csv_log = tmp_path / "k.csv"
+    assert main(["simulate", "--duration-s", "200", "--out", str(csv_log)]) == 0
+    page = build_report(str(csv_log))
+    assert "a CSV log carries no hash chain" in page
+
+
+def test_wrong_choices_name_the_choices(log) -> None:
+    with pytest.raises(LogFormatError, match="has no run '9'; its runs: 1, 2"):
+        build_report(str(log), run_label="9")
+    with pytest.raises(LogFormatError, match="no vessel 'urn'"):
+        build_report(str(log), vessel="urn")
+
+
+def test_the_report_opens_in_headless_chromium_and_draws_its_plots(log, tmp_path) -> None:
+    """Chromium (Debian's, installed by the test command) runs the page's own scripts."""
+    import shutil
+    import subprocess
+    from pathlib import Path
+
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    assert browser, "chromium is not installed (scripts/test-all installs it)"
+    page = tmp_path / "report.html"
+    page.write_text(build_report(str(log)), encoding="utf-8")
+    common = [browser, "--headless=new", "--no-sandbox", "--disable-gpu",
+              "--virtual-time-budget=8000", "--window-size=1280,2400"]  # fmt: skip
+    dom = subprocess.run([*common, "--dump-dom", page.as_uri()],
+                         capture_output=True, text=True, timeout=90, check=True).stdout  # fmt: skip
+    assert dom.count('class="main-svg"') >= 2  # Plotly drew both figures offline
+    assert "verified: every block matches" in dom
+    artifacts = Path(__file__).resolve().parents[2] / "out" / "test-artifacts"
+    artifacts.mkdir(parents=True, exist_ok=True)
+    shot = artifacts / "report.png"
+    subprocess.run([*common, f"--screenshot={shot}", page.as_uri()],
+                   capture_output=True, timeout=90, check=True)  # fmt: skip
+    assert shot.stat().st_size > 20_000
+
+
+def test_report_cli_writes_html_and_pdf(log, tmp_path) -> None:
+    from monitor.cli import main
+
+    out = tmp_path / "r" / "report.html"
+    assert main(["report", str(log), "--run", "1", "--out", str(out), "--pdf"]) == 0
+    assert "kettle-1, run 1" in out.read_text(encoding="utf-8")
+    assert out.with_suffix(".pdf").read_bytes().startswith(b"%PDF")
