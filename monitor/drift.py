@@ -424,6 +424,9 @@ def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
             "last_start_utc": last.get("start_utc"),
             "runs": len(runs),
             "runs_since_baseline": max(0, len(runs) - BASELINE_RUNS),
+            "note": "no element thermocouple: scaling is not judged"
+            if last.get("model") == "one-node"
+            else "",
         })  # fmt: skip
     rows.sort(key=lambda r: (-_LEVEL_RANK.get(r["status"], 0), str(r["vessel"])))  # type: ignore[arg-type]
     return rows
@@ -441,5 +444,6 @@ def fleet_table(rows: Sequence[Mapping[str, object]]) -> str:
         lines.append(
             f"{r['vessel']!s:<14} {r['status']!s:<8} {scaling} {r['runs']:>5} "
             f"{r['runs_since_baseline']:>10}  {last:<26} {', '.join(r['flags']) or '-'}"  # type: ignore[arg-type]
+            + (f"  ({r['note']})" if r.get("note") else "")
         )
     return "\n".join(lines)

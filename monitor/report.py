@@ -230,6 +230,12 @@ def build_report(log_path: str, vessel: str | None = None, run_label: str | None
         ("element resistance", _fmt(result.get("element_resistance_ohm"), 3, "Ω")),
     ]
     flag_items = [*result.get("flags", []), *(f.as_dict() for f in flags)]  # type: ignore[misc]
+    if result.get("model") == "one-node":
+        unobserved = (
+            "Without an element thermocouple the element-to-water conductance is poorly "
+            "observed, so limescale is not judged."
+        )
+        flag_items.append({"name": "scaling", "level": "not judged", "message": unobserved})
     flag_html = (
         "".join(
             f"<li class='{html.escape(str(f['level']))}'><b>{html.escape(str(f['name']))}</b> "

@@ -122,6 +122,7 @@ def simulated_run(
     duration_s: float = 500.0,
     element_offset_k: float = 0.0,
     mass_kg: float | None = None,
+    lid_open: bool = False,
 ) -> dict[str, object]:
     """Replay one simulated kettle run of our own (fill, start and room drawn from seed).
 
@@ -138,6 +139,11 @@ def simulated_run(
     )
     if mass_kg is not None:
         scenario = replace(scenario, water_mass_kg=mass_kg)
+    if lid_open:  # an open lid: about twice the wetted and outer loss area (our own fault)
+        shell = scenario.shell
+        scenario = replace(scenario, shell=replace(
+            shell, outer_area_m2=2.0 * shell.outer_area_m2,
+            inner_conductance_w_per_k=2.0 * shell.inner_conductance_w_per_k))  # fmt: skip
     if element_offset_k:
         sensors = dict(scenario.sensors)
         sensors["element"] = replace(sensors["element"], offset=element_offset_k)
@@ -246,3 +252,17 @@ def test_a_marked_commissioning_baseline_and_a_new_baseline_after_descaling() ->
     # silent while it is built and while G holds, flagged when G falls on the new one
     assert got[10:16] == [None] * 6
     assert {"warning", "alarm"} & set(got[16:])
+
+
+def test_fifty_clean_simulated_runs_raise_no_warning() -> None:
+    runs = [simulated_run(600 + i, duration_s=400.0) for i in range(50)]
+    flags = drift_over_runs(runs)
+    assert not [f.name for run in flags for f in run if f.level in (Level.WARNING, Level.ALARM)]
+
+
+def test_a_lid_left_open_raises_insulation() -> None:
+    runs = [simulated_run(700 + i, duration_s=600.0) for i in range(5)]
+    runs += [simulated_run(710 + i, duration_s=600.0, lid_open=True) for i in range(3)]
+    got = levels(drift_over_runs(runs), "insulation")
+    assert got[:5] == [None] * 5
+    assert {"warning", "alarm"} & set(got[5:])

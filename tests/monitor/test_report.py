@@ -108,3 +108,22 @@ def test_report_cli_writes_html_and_pdf(log, tmp_path) -> None:
     assert main(["report", str(log), "--run", "1", "--out", str(out), "--pdf"]) == 0
     assert "kettle-1, run 1" in out.read_text(encoding="utf-8")
     assert out.with_suffix(".pdf").read_bytes().startswith(b"%PDF")
+
+
+def test_without_an_element_thermocouple_scaling_is_said_to_be_not_judged(tmp_path) -> None:
+    from monitor.drift import fleet_rows
+    from monitor.interchange import read_csv, write_csv
+    from monitor.replay import replay
+
+    full = tmp_path / "full.csv"
+    from monitor.cli import main
+
+    assert main(["simulate", "--duration-s", "200", "--out", str(full)]) == 0
+    log = read_csv(full)
+    bare = tmp_path / "bare.csv"
+    with open(bare, "w", encoding="utf-8", newline="") as out:
+        channels = [c for c in log.channels if c != "element"]
+        write_csv(out, log.rows, log.metadata, channels)
+    assert "limescale is not judged" in build_report(str(bare))
+    (row,) = fleet_rows(replay([str(bare)]))
+    assert row["note"] == "no element thermocouple: scaling is not judged"
