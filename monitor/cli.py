@@ -103,15 +103,19 @@ async def _demo(args: argparse.Namespace) -> int:
     )
     out_path = Path(args.out)
     out_path.parent.mkdir(parents=True, exist_ok=True)
+    on_started = getattr(args, "on_started", None)  # set by the board's command line
     stats, _ = await run_demo(
         scenario, args.seed, str(out_path), args.speed, args.every_s,
-        say=lambda line: print(line, flush=True),
+        say=lambda line: print(line, flush=True), on_started=on_started,
     )  # fmt: skip
     print(
         f"demo: recorded {stats.samples} samples and {stats.estimates} estimates "
         f"({stats.quarantined} inputs quarantined) to {out_path}; "
         f"check it with: ebullio verify {out_path}; replay it with: ebullio replay {out_path}"
     )
+    after = getattr(args, "after_demo", None)
+    if after is not None:
+        await after()
     return 0
 
 
@@ -256,8 +260,14 @@ def _add_site_options(p: argparse.ArgumentParser) -> None:
     )
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """Return the argument parser of the ``ebullio`` command."""
+def build_parser(extend=None) -> argparse.ArgumentParser:
+    """Return the argument parser of the ``ebullio`` command.
+
+    ``extend(verbs, parsers)``, when given, adds to it: ``verbs`` is the sub-command
+    action and ``parsers`` maps each verb to its parser. The board's package uses it
+    for ``board`` and the demo's board (``dashboard/cli.py``), because ``monitor``
+    may not import ``dashboard``.
+    """
     parser = argparse.ArgumentParser(
         prog="ebullio",
         description="Sensor logging and live heat-balance monitoring for heated water vessels.",
@@ -382,12 +392,14 @@ def build_parser() -> argparse.ArgumentParser:
     exp.add_argument("--csv", required=True, metavar="FILE", help="CSV file to write")
     exp.add_argument("--vessel", help="which vessel (needed when the log holds several)")
     exp.set_defaults(func=cmd_export)
+    if extend is not None:
+        extend(verbs, {"demo": demo, "run": run, "replay": rep, "report": rpt})
     return parser
 
 
-def main(argv: list[str] | None = None) -> int:
+def main(argv: list[str] | None = None, extend=None) -> int:
     """Run the command line; return the process exit code."""
-    parser = build_parser()
+    parser = build_parser(extend)
     args = parser.parse_args(argv)
     logging.basicConfig(
         level=logging.DEBUG if args.verbose else logging.INFO,

@@ -146,6 +146,7 @@ async def run_demo(
     speed: float,
     every_s: float = 10.0,
     say: Callable[[str], None] = print,
+    on_started: Callable[[], None] | None = None,
 ) -> tuple[Stats, RigConfig]:
     """Run the demo to the end of the scenario (or SIGINT/SIGTERM); return counters and config."""
     scenario = demo_scenario(scenario)
@@ -182,6 +183,8 @@ async def run_demo(
             task = asyncio.create_task(service.run(), name="service")
             try:
                 await service.started.wait()
+                if on_started is not None:
+                    on_started()  # the log exists now: the board can open it
                 await asyncio.sleep(0.5)  # let the serial driver open the port first
                 clock = PacedClock(speed)
                 logger = LineLoggerEmulator(rig, master_fd, clock)

@@ -1,0 +1,157 @@
+"""The ``ebullio`` command with the board: ``monitor``'s verbs plus ``board``, and the demo's board.
+
+This is the installed entry point. ``monitor/cli.py`` holds every other verb; it
+may not import the board (imports go dashboard -> monitor -> drivers), so the
+board's verb and the demo's board are added here through its ``extend`` hook.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import base64
+import hmac
+import os
+import sys
+import threading
+
+from drivers.errors import EbullioError
+from monitor import cli
+
+LOOPBACK = ("127.0.0.1", "localhost", "::1")
+
+
+def serve_board(log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None):
+    """Start the board over ``log_path`` in a thread; return the (werkzeug) server.
+
+    ``auth`` is (user, password) for basic auth, or None. Raises EbullioError when the
+    port cannot be had.
+    """
+    from werkzeug.serving import make_server
+
+    from dashboard.app import create_app
+
+    app = create_app(log_path, poll_ms=poll_ms)
+    if auth is not None:
+        _require_login(app, *auth)
+    try:
+        server = make_server(host, port, app.server, threaded=True)
+    except OSError as exc:
+        raise EbullioError(
+            f"the board cannot use {host}:{port} ({exc}); pick another port"
+        ) from exc
+    threading.Thread(target=server.serve_forever, name="ebullio-board", daemon=True).start()
+    return server
+
+
+def _require_login(app, user: str, password: str) -> None:
+    """Refuse every request without the right basic-auth header."""
+    from flask import Response, request
+
+    expected = "Basic " + base64.b64encode(f"{user}:{password}".encode()).decode()
+
+    @app.server.before_request
+    def _check() -> Response | None:
+        if hmac.compare_digest(request.headers.get("Authorization", ""), expected):
+            return None
+        return Response("login needed", 401, {"WWW-Authenticate": 'Basic realm="ebullio"'})
+
+
+def _login_for(host: str, no_auth: bool) -> tuple[str, str] | None:
+    """Return the login a host needs (None on loopback or with --no-auth); warn beyond it."""
+    if host in LOOPBACK:
+        return None
+    print(f"ebullio board: warning: serving on {host} makes the board reachable from other "
+          "machines", file=sys.stderr)  # fmt: skip
+    if no_auth:
+        return None
+    user, password = os.environ.get("EBULLIO_BOARD_USER"), os.environ.get("EBULLIO_BOARD_PASSWORD")
+    if not (user and password):
+        raise EbullioError(
+            "for a host other than loopback, set EBULLIO_BOARD_USER and "
+            "EBULLIO_BOARD_PASSWORD (basic auth), or pass --no-auth on purpose"
+        )
+    return user, password
+
+
+def cmd_board(args: argparse.Namespace) -> int:
+    """Serve the board over a log (read-only) until Ctrl-C or SIGTERM."""
+    auth = _login_for(args.host, args.no_auth)
+    server = serve_board(args.log, args.host, args.port, int(args.poll_s * 1000), auth)
+    print(f"ebullio board: http://{args.host}:{server.server_port}/ over {args.log} "
+          "(Ctrl-C stops it)", file=sys.stderr, flush=True)  # fmt: skip
+    try:
+        asyncio.run(until_signalled())
+    finally:
+        server.shutdown()
+    return 0
+
+
+async def until_signalled() -> None:
+    """Return on SIGINT or SIGTERM."""
+    import signal
+
+    loop = asyncio.get_running_loop()
+    stop = asyncio.Event()
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        loop.add_signal_handler(signum, stop.set)
+    try:
+        await stop.wait()
+    finally:
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            loop.remove_signal_handler(signum)
+
+
+def cmd_demo_with_board(args: argparse.Namespace) -> int:
+    """Run the demo with the board over its log; the board stays up until Ctrl-C."""
+    if args.no_board:
+        return cli.cmd_demo(args)
+    servers: list = []
+
+    def start() -> None:
+        servers.append(serve_board(args.out, "127.0.0.1", args.board_port))
+        print(f"demo: the board is at http://127.0.0.1:{servers[0].server_port}/", flush=True)
+
+    async def after() -> None:
+        print(f"demo: the board stays up at http://127.0.0.1:{servers[0].server_port}/; "
+              "Ctrl-C stops it", flush=True)  # fmt: skip
+        await until_signalled()
+
+    args.on_started, args.after_demo = start, after
+    try:
+        return cli.cmd_demo(args)
+    finally:
+        for server in servers:
+            server.shutdown()
+
+
+def extend(verbs, parsers) -> None:
+    """Add ``board`` and the demo's board options to the ``ebullio`` parser."""
+    demo = parsers["demo"]
+    demo.add_argument("--board-port", type=int, default=8050, help="board port (default 8050)")
+    demo.add_argument("--no-board", action="store_true", help="run without the web board")
+    demo.set_defaults(func=cmd_demo_with_board)
+    brd = verbs.add_parser(
+        "board",
+        help="serve the web board over a log",
+        description="Serve the board over a recorder log that 'ebullio run' may still be "
+        "writing (read-only; new data appears by itself), or over a recorded SQLite or CSV "
+        "log. It binds to 127.0.0.1 by default. Another host needs EBULLIO_BOARD_USER and "
+        "EBULLIO_BOARD_PASSWORD (basic auth), or --no-auth on purpose.",
+        epilog="example: ebullio board out/demo.sqlite --port 8050",
+    )
+    brd.add_argument("log", metavar="LOG", help="recorder (SQLite) or CSV log")
+    brd.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1)")
+    brd.add_argument("--port", type=int, default=8050, help="port (default 8050)")
+    brd.add_argument("--poll-s", type=float, default=2.0, help="refresh every N s (default 2)")
+    brd.add_argument("--no-auth", action="store_true", help="no login even beyond loopback")
+    brd.set_defaults(func=cmd_board)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the ``ebullio`` command, board included; return the exit code."""
+    return cli.main(argv, extend=extend)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

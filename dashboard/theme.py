@@ -1,0 +1,42 @@
+"""The board's colours and wording helpers: colour-blind-safe (Okabe and Ito's palette)."""
+
+from __future__ import annotations
+
+#: Okabe-Ito colours (a published colour-blind-safe set; from memory).
+COLOURS = {
+    "water": "#0072B2",
+    "element": "#D55E00",
+    "ambient": "#009E73",
+    "power": "#CC79A7",
+    "forecast": "#E69F00",
+    "band": "rgba(0, 114, 178, 0.18)",
+    "forecast_band": "rgba(230, 159, 0, 0.22)",
+}
+LEVEL_RANK = {"alarm": 3, "warning": 2, "notice": 1}
+#: Level shown with a word and a shape, never by colour alone.
+LEVEL_MARK = {"alarm": "▲ alarm", "warning": "● warning", "notice": "○ notice", "ok": "ok"}
+
+SAFETY_TEXT = (
+    "ebullio monitors; it is not a safety device. Hot water and steam scald; heating "
+    "elements run on mains voltage (isolate before opening anything); an element run dry can "
+    "burn out or start a fire; pressure vessels need their own relief valve. Follow local "
+    "codes and licensed practice."
+)
+
+
+def duration_text(seconds: float | None) -> str:
+    """Return a duration as '12 min 05 s' (or '-' for none)."""
+    if seconds is None:
+        return "-"
+    seconds = max(0.0, float(seconds))
+    minutes, secs = divmod(round(seconds), 60)
+    hours, minutes = divmod(minutes, 60)
+    if hours:
+        return f"{hours} h {minutes:02d} min"
+    return f"{minutes} min {secs:02d} s" if minutes else f"{secs} s"
+
+
+def worst_level(flags: list[dict] | None) -> str:
+    """Return the worst level among flags ('ok' when none is above nothing)."""
+    best = max((LEVEL_RANK.get(str(f.get("level")), 0) for f in flags or []), default=0)
+    return {3: "alarm", 2: "warning", 1: "notice"}.get(best, "ok")

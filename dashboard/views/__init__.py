@@ -1,0 +1,1 @@
+"""The board's views; each owns its layout and callbacks."""

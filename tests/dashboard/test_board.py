@@ -1,0 +1,181 @@
+"""The board: data loading, the views' callbacks called directly, and a headless browser."""
+
+from __future__ import annotations
+
+import asyncio
+import shutil
+import subprocess
+import sys
+import threading
+from dataclasses import replace
+from pathlib import Path
+
+import plotly.graph_objects as go
+import pytest
+from werkzeug.serving import make_server
+
+from dashboard.app import create_app
+from dashboard.data import envelope, load_snapshot
+from dashboard.views.fleet import fleet_rows, render_fleet
+from dashboard.views.vessel import figures, render_vessel, vessel_options
+from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from monitor.config import RigConfig, VesselSpec
+from monitor.service import Service
+from tests.monitor.test_service import ListDriver, run_until
+
+
+def test_envelope_keeps_the_extremes_of_every_bucket() -> None:
+    t = list(range(10_000))
+    y = [0.0] * 10_000
+    y[4321] = 50.0  # one spike
+    y[8000] = -7.0
+    t2, y2 = envelope(t, y, max_points=200)
+    assert len(t2) <= 200
+    assert 50.0 in y2
+    assert -7.0 in y2
+    assert t2 == sorted(t2)
+    assert envelope([1, 2], [3.0, None]) == ([1, 2], [3.0, None])
+
+
+@pytest.fixture(scope="module")
+def live_log(tmp_path_factory) -> Path:
+    """A recorder log written by the live service from two simulated kettles (ours)."""
+    path = tmp_path_factory.mktemp("board") / "live.sqlite"
+    items = []
+    specs = []
+    for i, (name, mm) in enumerate((("kettle-a", 0.0), ("kettle-b", 0.0))):
+        scenario = replace(kettle_scenario(duration_s=300.0), vessel=name, scale_mm=mm)
+        items += [s for batch in SimulatedRig(scenario, seed=i).run() for s in batch]
+        meta = {**scenario_metadata(scenario, i), "element_sensor": "yes"}
+        specs.append(VesselSpec(name, meta, True, False))
+    items.sort(key=lambda s: s.t)
+    config = RigConfig("board-test", "# two kettles\n", 101.325, None, (), tuple(specs), 0.05)
+    service = Service(config, str(path), extra_sources={"rig": lambda: ListDriver(items, False)})
+    asyncio.run(run_until(service, lambda: service.stats.samples >= len(items)))
+    return path
+
+
+def test_snapshot_of_a_recorder_log(live_log) -> None:
+    snap = load_snapshot(str(live_log), "kettle-b")
+    assert snap["vessels"] == ["kettle-a", "kettle-b"]
+    assert snap["chosen"] == "kettle-b"
+    assert set(snap["latest"]) == {"kettle-a", "kettle-b"}
+    detail = snap["detail"]
+    assert len(detail["series"]["water"]["t"]) == 301
+    assert detail["latest"]["water_mass_kg"] == pytest.approx(1.2, rel=0.05)  # the sim's 1.2 kg
+
+
+def test_vessel_callbacks_are_pure_functions_of_the_store(live_log) -> None:
+    snap = load_snapshot(str(live_log))
+    cards, flags, readings, estimates = render_vessel(snap)
+    assert flags.children  # a list of sentences, or the one saying nothing needs attention
+    text = " ".join(str(c.children) for c in cards)
+    assert "°C" in text
+    assert " kg" in text
+    assert "W/K" in text
+    assert isinstance(readings, go.Figure)
+    assert readings.layout.uirevision == estimates.layout.uirevision
+    assert readings.layout.xaxis.title.text == "minutes from the latest reading"
+    assert vessel_options(snap) == [{"label": v, "value": v} for v in ("kettle-a", "kettle-b")]
+    assert render_vessel(None)[2].layout.title.text == "no readings yet"
+
+
+def test_the_countdown_says_not_reachable_and_why() -> None:
+    cards = figures({"target_c": 99.9, "time_to_target_s": None,
+                     "target_reason": "not reachable: losses exceed power"})  # fmt: skip
+    assert "not reachable: losses exceed power" in str([c.children for c in cards])
+    cards = figures({"target_c": 99.9, "time_to_target_s": 125.0,
+                     "time_to_target_lo_s": 110.0, "time_to_target_hi_s": 140.0})  # fmt: skip
+    assert "2 min 05 s (90 %: 1 min 50 s to 2 min 20 s)" in str([c.children for c in cards])
+
+
+def test_fleet_puts_the_vessels_that_need_attention_first() -> None:
+    snap = {"latest": {
+        "a": {"flags": [{"level": "notice", "message": "n"}], "phase": "idle"},
+        "b": {"flags": [{"level": "alarm", "message": "dry boil"}], "phase": "boiling"},
+        "c": {"flags": [], "phase": "heating", "time_to_target_s": 61.0},
+        "d": {"flags": [{"level": "warning", "message": "scaling"}], "phase": "idle"},
+    }}  # fmt: skip
+    rows = fleet_rows(snap)
+    assert [r["vessel"] for r in rows] == ["b", "d", "a", "c"]
+    assert rows[0]["flags"] == ["dry boil"]
+    assert rows[-1]["time_to_target"] == "1 min 01 s"
+    assert "▲ alarm" in str(render_fleet(snap))
+
+
+def test_the_board_renders_in_headless_chromium(live_log) -> None:
+    browser = shutil.which("chromium")
+    assert browser, "chromium is not installed (scripts/test-all installs it)"
+    app = create_app(str(live_log), poll_ms=60_000)
+    server = make_server("127.0.0.1", 0, app.server, threaded=True)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    url = f"http://127.0.0.1:{server.server_port}/"
+    try:
+        common = [browser, "--headless=new", "--no-sandbox", "--disable-gpu",
+                  "--virtual-time-budget=10000", "--window-size=1280,800"]  # fmt: skip
+        dom = subprocess.run([*common, "--dump-dom", url], capture_output=True, text=True,
+                             timeout=90, check=True).stdout  # fmt: skip
+        artifacts = Path(__file__).resolve().parents[2] / "out" / "test-artifacts"
+        artifacts.mkdir(parents=True, exist_ok=True)
+        subprocess.run([*common, f"--screenshot={artifacts / 'board.png'}", url],
+                       capture_output=True, timeout=90, check=True)  # fmt: skip
+    finally:
+        server.shutdown()
+        thread.join(timeout=10)
+    assert dom.count('class="main-svg"') >= 2  # both charts drawn
+    assert "kettle-a" in dom
+    assert "kettle-b" in dom
+    assert "water mass" in dom
+    assert "not a safety device" in dom
+
+
+def test_demo_serves_the_board_and_stops_on_sigint(tmp_path) -> None:
+    import re
+    import signal
+    import time
+    import urllib.request
+
+    out = tmp_path / "demo.sqlite"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "dashboard.cli", "demo", "--speed", "60", "--duration-s", "60",
+         "--board-port", "0", "--out", str(out)],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+    )  # fmt: skip
+    try:
+        url = None
+        deadline = time.monotonic() + 60
+        lines = []
+        while time.monotonic() < deadline:
+            line = proc.stdout.readline()
+            lines.append(line)
+            found = re.search(r"the board is at (http://127\.0\.0\.1:\d+/)", line)
+            if found:
+                url = found.group(1)
+            if "stays up" in line:
+                break
+        assert url, "".join(lines)
+        page = urllib.request.urlopen(url, timeout=10).read().decode()  # loopback only
+        assert "<title>ebullio board</title>" in page
+        proc.send_signal(signal.SIGINT)
+        assert proc.wait(timeout=30) == 0
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        proc.communicate()
+
+
+def test_board_help_and_refusing_an_open_host_without_a_login(live_log) -> None:
+    import os
+
+    proc = subprocess.run([sys.executable, "-m", "dashboard.cli", "board", "--help"],
+                          capture_output=True, text=True, timeout=60, check=True)  # fmt: skip
+    assert "example: ebullio board" in proc.stdout
+    env = {k: v for k, v in os.environ.items() if not k.startswith("EBULLIO_BOARD_")}
+    proc = subprocess.run(
+        [sys.executable, "-m", "dashboard.cli", "board", str(live_log), "--host", "0.0.0.0"],
+        capture_output=True, text=True, timeout=60, check=False, env=env,
+    )  # fmt: skip
+    assert proc.returncode == 2
+    assert "reachable from other machines" in proc.stderr
+    assert "EBULLIO_BOARD_USER" in proc.stderr
