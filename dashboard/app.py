@@ -11,9 +11,9 @@ from __future__ import annotations
 from dash import Dash, Input, Output, dcc, html
 
 from dashboard import ids
-from dashboard.data import load_snapshot
+from dashboard.data import load_snapshot, run_history
 from dashboard.theme import SAFETY_TEXT
-from dashboard.views import fleet, vessel
+from dashboard.views import fleet, maintenance, vessel
 
 STYLE = """
 body { font-family: system-ui, sans-serif; margin: 0; color: #1d1d1d; background: #fbfbfa; }
@@ -41,7 +41,8 @@ def create_app(log_path: str, poll_ms: int = 2000) -> Dash:
     app.layout = html.Div([
         html.Header([html.H1("ebullio board"), html.Span(f"log: {first['log']}",
                                                          id=ids.LOG_NAME)]),
-        html.Main([fleet.layout(), vessel.layout(first)]),
+        html.Main([fleet.layout(), vessel.layout(first),
+                   maintenance.layout(list(first.get("vessels") or []))]),
         html.Footer([html.B("Caution. "), SAFETY_TEXT]),
         dcc.Store(id=ids.STORE, data=first),
         dcc.Interval(id=ids.POLL, interval=poll_ms),
@@ -55,4 +56,19 @@ def create_app(log_path: str, poll_ms: int = 2000) -> Dash:
 
     fleet.register(app)
     vessel.register(app)
+    maintenance.register(app, lambda chosen: run_history(log_path, chosen))
+
+    @app.server.route("/report")
+    def report_page():  # the audit report of one run, made on demand (read-only)
+        from flask import Response, request
+
+        from drivers.errors import EbullioError
+        from monitor.report import build_report
+
+        try:
+            page = build_report(log_path, request.args.get("vessel"), request.args.get("run"))
+        except EbullioError as exc:
+            return Response(f"no report: {exc}", 404, mimetype="text/plain")
+        return Response(page, mimetype="text/html")
+
     return app

@@ -164,3 +164,28 @@ def _csv_snapshot(path: str, vessel: str | None) -> dict[str, object]:
     return {"log": Path(path).name, "kind": "csv", "last_t": None, "vessels": names,
             "latest": {v: d["latest"] for v, d in vessels.items()}, "chosen": chosen,
             "detail": vessels.get(chosen, {}) if chosen else {}}  # fmt: skip
+
+
+def run_history(path: str, vessel: str | None = None) -> dict[str, object]:
+    """Return a vessel's run summaries with their drift flags, and each rule's baseline.
+
+    Replays the whole log (the figures come from the full data), so the maintenance
+    view calls it when asked, not on every poll.
+    """
+    from monitor.drift import BASELINE_RUNS, RULES, figure, make_baseline
+    from monitor.replay import replay
+
+    result = replay([path])
+    runs = [r for r in result["runs"] if isinstance(r, dict)]
+    names = sorted({str(r["vessel"]) for r in runs})
+    chosen = vessel if vessel in names else (names[0] if names else None)
+    mine = [r for r in runs if r["vessel"] == chosen]
+    keep = ("run", "start_utc", "model", "drift", *(rule.key for rule in RULES))
+    baselines = {}
+    for rule in RULES:
+        values = [got for r in mine if (got := figure(r, rule.key)) is not None][:BASELINE_RUNS]
+        if values:
+            b = make_baseline(values, rule)
+            baselines[rule.key] = {"mean": b.mean, "sd": b.sd, "runs": b.runs}
+    return {"vessels": names, "chosen": chosen, "baselines": baselines,
+            "runs": [{k: r.get(k) for k in keep} for r in mine]}  # fmt: skip

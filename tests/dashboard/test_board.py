@@ -179,3 +179,37 @@ def test_board_help_and_refusing_an_open_host_without_a_login(live_log) -> None:
     assert proc.returncode == 2
     assert "reachable from other machines" in proc.stderr
     assert "EBULLIO_BOARD_USER" in proc.stderr
+
+
+def test_maintenance_history_figure_and_report_links() -> None:
+    from dashboard.views.maintenance import history_figure, report_links
+
+    runs = [
+        {"run": str(i), "start_utc": None,
+         "element_conductance_w_per_k": {"value": g, "std": 0.3},
+         "drift": [{"name": "scaling", "level": "warning"}] if g < 45 else []}
+        for i, g in enumerate([54, 54, 53.8, 54.2, 54, 40, 39], start=1)
+    ]  # fmt: skip
+    history = {
+        "chosen": "k1",
+        "runs": runs,
+        "baselines": {"element_conductance_w_per_k": {"mean": 54.0, "sd": 1.6, "runs": 5}},
+    }
+    fig = history_figure(history)
+    flags = [t for t in fig.data if t.name == "scaling flag"]
+    assert len(flags) == 1
+    assert list(flags[0].x) == ["6", "7"]  # the runs where the warning was raised
+    assert any(s.type == "rect" for s in fig.layout.shapes)  # the baseline band
+    links = str(report_links(history))
+    assert "/report?vessel=k1&run=7" in links
+
+
+def test_the_board_serves_the_audit_report_of_a_run(live_log) -> None:
+    app = create_app(str(live_log), poll_ms=60_000)
+    client = app.server.test_client()
+    page = client.get("/report?vessel=kettle-a&run=1")
+    assert page.status_code == 200
+    assert "ebullio report: kettle-a, run 1" in page.get_data(as_text=True)
+    missing = client.get("/report?vessel=kettle-a&run=9")
+    assert missing.status_code == 404
+    assert "has no run '9'" in missing.get_data(as_text=True)
