@@ -172,7 +172,7 @@ def run_history(path: str, vessel: str | None = None) -> dict[str, object]:
     Replays the whole log (the figures come from the full data), so the maintenance
     view calls it when asked, not on every poll.
     """
-    from monitor.drift import BASELINE_RUNS, RULES, figure, make_baseline
+    from monitor.drift import RULES, baselines_of
     from monitor.replay import replay
 
     result = replay([path])
@@ -181,11 +181,6 @@ def run_history(path: str, vessel: str | None = None) -> dict[str, object]:
     chosen = vessel if vessel in names else (names[0] if names else None)
     mine = [r for r in runs if r["vessel"] == chosen]
     keep = ("run", "start_utc", "model", "drift", *(rule.key for rule in RULES))
-    baselines = {}
-    for rule in RULES:
-        values = [got for r in mine if (got := figure(r, rule.key)) is not None][:BASELINE_RUNS]
-        if values:
-            b = make_baseline(values, rule)
-            baselines[rule.key] = {"mean": b.mean, "sd": b.sd, "runs": b.runs}
+    baselines = baselines_of(mine)
     return {"vessels": names, "chosen": chosen, "baselines": baselines,
             "runs": [{k: r.get(k) for k in keep} for r in mine]}  # fmt: skip

@@ -2,16 +2,10 @@
 
 from __future__ import annotations
 
-#: Okabe-Ito colours (a published colour-blind-safe set; from memory).
-COLOURS = {
-    "water": "#0072B2",
-    "element": "#D55E00",
-    "ambient": "#009E73",
-    "power": "#CC79A7",
-    "forecast": "#E69F00",
-    "band": "rgba(0, 114, 178, 0.18)",
-    "forecast_band": "rgba(230, 159, 0, 0.22)",
-}
+from monitor.plots import PALETTE
+
+#: The shared colour-blind-safe palette (Okabe and Ito), so board and report agree.
+COLOURS = PALETTE
 LEVEL_RANK = {"alarm": 3, "warning": 2, "notice": 1}
 #: Level shown with a word and a shape, never by colour alone.
 LEVEL_MARK = {"alarm": "▲ alarm", "warning": "● warning", "notice": "○ notice", "ok": "ok"}

@@ -447,3 +447,16 @@ def fleet_table(rows: Sequence[Mapping[str, object]]) -> str:
             + (f"  ({r['note']})" if r.get("note") else "")
         )
     return "\n".join(lines)
+
+
+def baselines_of(
+    runs: Sequence[Mapping[str, object]], baseline_runs: int = BASELINE_RUNS
+) -> dict[str, dict[str, float]]:
+    """Return each rule's default baseline (mean, sd, runs) from a vessel's first runs."""
+    out: dict[str, dict[str, float]] = {}
+    for rule in RULES:
+        values = [got for r in runs if (got := figure(r, rule.key)) is not None][:baseline_runs]
+        if values:
+            b = make_baseline(values, rule)
+            out[rule.key] = {"mean": b.mean, "sd": b.sd, "runs": float(b.runs)}
+    return out

@@ -27,9 +27,10 @@ from plotly.subplots import make_subplots
 from drivers.errors import LogFormatError
 from monitor import __version__
 from monitor.contracts import Estimate
-from monitor.drift import RULES, drift_over_runs, make_baseline
+from monitor.drift import baselines_of, drift_over_runs
 from monitor.estimator import EstimatorSettings
 from monitor.logs import read_log
+from monitor.plots import PALETTE, add_band, history_figure
 from monitor.recorder import is_recorder_log, sessions, verify
 from monitor.replay import Run, replay_run, split_runs
 
@@ -42,9 +43,7 @@ SAFETY_TEXT = (
     "licensed practitioners."
 )
 
-#: Colours of our own for the plots (water, element, ambient, power, estimate bands).
-COLOURS = {"water": "#1f5fa8", "element": "#c2452d", "ambient": "#6b8e23",
-           "power": "#7a5195", "band": "rgba(31, 95, 168, 0.18)"}  # fmt: skip
+COLOURS = PALETTE
 
 
 def file_sha256(path: str | Path) -> str:
@@ -95,16 +94,8 @@ def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
     te = [e.t_s - t0 for e in estimates]
     for row, getter in ((2, lambda e: e.water_mass_kg), (3, lambda e: e.ua_w_per_k)):
         pairs = [getter(e) for e in estimates]
-        mean = [p.value if p else None for p in pairs]
-        hi = [p.value + 2 * p.std if p else None for p in pairs]
-        lo = [p.value - 2 * p.std if p else None for p in pairs]
-        fig.add_trace(go.Scatter(x=te, y=hi, mode="lines", line={"width": 0},
-                                 showlegend=False, hoverinfo="skip"), row=row, col=1)  # fmt: skip
-        fig.add_trace(go.Scatter(x=te, y=lo, mode="lines", line={"width": 0}, fill="tonexty",
-                                 fillcolor=COLOURS["band"], showlegend=False,
-                                 hoverinfo="skip"), row=row, col=1)  # fmt: skip
-        fig.add_trace(go.Scatter(x=te, y=mean, mode="lines", showlegend=False,
-                                 line={"color": COLOURS["water"]}), row=row, col=1)  # fmt: skip
+        add_band(fig, te, [p.value if p else None for p in pairs],
+                 [p.std if p else None for p in pairs], row=row)  # fmt: skip
     fig.update_xaxes(title_text="time from the start of the run, s", row=3, col=1)
     fig.update_yaxes(title_text="°C", row=1, col=1, secondary_y=False)
     fig.update_yaxes(title_text="W", row=1, col=1, secondary_y=True, showgrid=False)
@@ -112,31 +103,6 @@ def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
     fig.update_yaxes(title_text="W/K", row=3, col=1)
     fig.update_layout(height=760, margin={"l": 60, "r": 40, "t": 40, "b": 40},
                       template="plotly_white", uirevision="report")  # fmt: skip
-    return fig
-
-
-def _history_figure(results: Sequence[Mapping[str, object]]) -> go.Figure:
-    """Return each tracked figure across the vessel's runs, with the baseline band."""
-    fig = make_subplots(rows=len(RULES), cols=1, shared_xaxes=True, vertical_spacing=0.08,
-                        subplot_titles=[r.what for r in RULES])  # fmt: skip
-    labels = [str(r.get("run")) for r in results]
-    for i, rule in enumerate(RULES, start=1):
-        pts = [(lab, r.get(rule.key)) for lab, r in zip(labels, results, strict=True)]
-        pts = [(lab, e) for lab, e in pts if isinstance(e, Mapping) and e.get("value") is not None]
-        if not pts:
-            continue
-        fig.add_trace(go.Scatter(
-            x=[lab for lab, _ in pts], y=[e["value"] for _, e in pts], mode="markers+lines",
-            error_y={"type": "data", "array": [2 * (e.get("std") or 0.0) for _, e in pts]},
-            name=rule.key, line={"color": COLOURS["water"]}), row=i, col=1)  # fmt: skip
-        if len(pts) >= 2:
-            first = [(e["value"], e.get("std") or 0.0) for _, e in pts[:5]]
-            base = make_baseline(first, rule)
-            for edge in (base.mean - 2 * base.sd, base.mean + 2 * base.sd):
-                fig.add_hline(y=edge, line={"dash": "dot", "color": "#888"}, row=i, col=1)
-    fig.update_xaxes(title_text="run", type="category", row=len(RULES), col=1)
-    fig.update_layout(height=240 * len(RULES), showlegend=False, template="plotly_white",
-                      margin={"l": 60, "r": 40, "t": 40, "b": 40})  # fmt: skip
     return fig
 
 
@@ -252,7 +218,8 @@ def build_report(log_path: str, vessel: str | None = None, run_label: str | None
 
     run_fig = pio.to_html(_run_figure(chosen, estimates), include_plotlyjs=True, full_html=False,
                           div_id="report-run-plot")  # fmt: skip
-    hist_fig = pio.to_html(_history_figure(results), include_plotlyjs=False, full_html=False,
+    history = history_figure(results, baselines_of(results), uirevision="report")
+    hist_fig = pio.to_html(history, include_plotlyjs=False, full_html=False,
                            div_id="report-history-plot")  # fmt: skip
     made = datetime.now(tz=UTC).isoformat(timespec="seconds")
     title = f"ebullio report: {vessel}, run {chosen.label}"

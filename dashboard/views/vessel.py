@@ -8,6 +8,7 @@ from plotly.subplots import make_subplots
 
 from dashboard import ids
 from dashboard.theme import COLOURS, LEVEL_MARK, duration_text
+from monitor import plots
 
 UIREVISION = "vessel-view"  # constant: the user's zoom survives updates
 
@@ -117,24 +118,8 @@ def estimates_figure(detail: dict | None) -> go.Figure:
                                           ("element_conductance_w_per_k",
                                            "element_conductance_std")), start=1):  # fmt: skip
             ys, sds = est.get(key) or [], est.get(sd) or []
-            if not any(v is not None for v in ys):
-                continue
-            hi = [
-                v + 2 * s if v is not None and s is not None else None
-                for v, s in zip(ys, sds, strict=True)
-            ]
-            lo = [
-                v - 2 * s if v is not None and s is not None else None
-                for v, s in zip(ys, sds, strict=True)
-            ]
-            edge = go.Scatter(x=x, y=hi, mode="lines", line={"width": 0}, showlegend=False,
-                              hoverinfo="skip")  # fmt: skip
-            fig.add_trace(edge, row=row, col=1)
-            fig.add_trace(go.Scatter(x=x, y=lo, mode="lines", line={"width": 0}, fill="tonexty",
-                                     fillcolor=COLOURS["band"], showlegend=False,
-                                     hoverinfo="skip"), row=row, col=1)  # fmt: skip
-            fig.add_trace(go.Scatter(x=x, y=ys, mode="lines", showlegend=False,
-                                     line={"color": COLOURS["water"]}), row=row, col=1)  # fmt: skip
+            if any(v is not None for v in ys):
+                plots.add_band(fig, x, ys, sds, row=row)
     fig.update_xaxes(title_text="minutes from the latest estimate", row=3, col=1)
     fig.update_layout(uirevision=UIREVISION, template="plotly_white", height=520,
                       margin={"l": 60, "r": 30, "t": 40, "b": 50})  # fmt: skip

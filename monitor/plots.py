@@ -1,0 +1,84 @@
+"""Plot pieces shared by the audit report and the board (pure: data in, Plotly figures out)."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import plotly.graph_objects as go
+from plotly.subplots import make_subplots
+
+from monitor.drift import RULES
+
+#: Okabe and Ito's colour-blind-safe colours (a published set; from memory).
+PALETTE = {
+    "water": "#0072B2",
+    "element": "#D55E00",
+    "ambient": "#009E73",
+    "power": "#CC79A7",
+    "forecast": "#E69F00",
+    "band": "rgba(0, 114, 178, 0.18)",
+    "forecast_band": "rgba(230, 159, 0, 0.22)",
+}
+#: Unit of each tracked figure, for axis titles.
+UNITS = {"element_conductance_w_per_k": "W/K", "ua_w_per_k": "W/K",
+         "heating_power_at_rated_voltage_w": "W"}  # fmt: skip
+
+
+def add_band(
+    fig: go.Figure,
+    x: Sequence[float],
+    mean: Sequence[float | None],
+    std: Sequence[float | None],
+    row: int,
+    col: int = 1,
+) -> None:
+    """Add a mean line with its ±2σ band (σ per point; None leaves a gap) to a subplot."""
+    pairs = list(zip(mean, std, strict=True))
+    hi = [m + 2 * s if m is not None and s is not None else None for m, s in pairs]
+    lo = [m - 2 * s if m is not None and s is not None else None for m, s in pairs]
+    edge = {"mode": "lines", "line": {"width": 0}, "showlegend": False, "hoverinfo": "skip"}
+    fig.add_trace(go.Scatter(x=x, y=hi, **edge), row=row, col=col)
+    fig.add_trace(go.Scatter(x=x, y=lo, fill="tonexty", fillcolor=PALETTE["band"], **edge),
+                  row=row, col=col)  # fmt: skip
+    fig.add_trace(go.Scatter(x=x, y=list(mean), mode="lines", showlegend=False,
+                             line={"color": PALETTE["water"]}), row=row, col=col)  # fmt: skip
+
+
+def history_figure(
+    runs: Sequence[Mapping[str, object]],
+    baselines: Mapping[str, Mapping[str, float]],
+    uirevision: str = "history",
+) -> go.Figure:
+    """Return each tracked figure across runs (±2σ bars), the baseline ±2σ band, and a
+    triangle at every run whose drift flag for that figure was a warning or an alarm."""
+    fig = make_subplots(rows=len(RULES), cols=1, shared_xaxes=True, vertical_spacing=0.09,
+                        subplot_titles=[f"{r.what} ({UNITS[r.key]})" for r in RULES])  # fmt: skip
+    labels = [str(r.get("run")) for r in runs]
+    for row, rule in enumerate(RULES, start=1):
+        pts = [(lab, r.get(rule.key), r) for lab, r in zip(labels, runs, strict=True)]
+        pts = [p for p in pts if isinstance(p[1], Mapping) and p[1].get("value") is not None]
+        if not pts:
+            continue
+        fig.add_trace(go.Scatter(
+            x=[lab for lab, _, _ in pts], y=[e["value"] for _, e, _ in pts],
+            mode="markers+lines", name=rule.name, line={"color": PALETTE["water"]},
+            error_y={"type": "data", "array": [2 * (e.get("std") or 0.0) for _, e, _ in pts]},
+        ), row=row, col=1)  # fmt: skip
+        base = baselines.get(rule.key)
+        if base:
+            fig.add_hrect(y0=base["mean"] - 2 * base["sd"], y1=base["mean"] + 2 * base["sd"],
+                          fillcolor=PALETTE["band"], line_width=0, row=row, col=1)  # fmt: skip
+        flagged = [(lab, e) for lab, e, r in pts
+                   if any(f.get("name") == rule.name and f.get("level") in ("warning", "alarm")
+                          for f in r.get("drift") or [])]  # type: ignore[union-attr]  # fmt: skip
+        if flagged:
+            fig.add_trace(go.Scatter(
+                x=[lab for lab, _ in flagged], y=[e["value"] for _, e in flagged],
+                mode="markers", name=f"{rule.name} flag",
+                marker={"symbol": "triangle-up", "size": 13, "color": PALETTE["element"]},
+            ), row=row, col=1)  # fmt: skip
+    fig.update_xaxes(title_text="run", type="category", row=len(RULES), col=1)
+    margin = {"l": 60, "r": 30, "t": 40, "b": 50}
+    fig.update_layout(height=250 * len(RULES), template="plotly_white", showlegend=False,
+                      uirevision=uirevision, margin=margin)  # fmt: skip
+    return fig
