@@ -12,8 +12,8 @@ from dash import Dash, Input, Output, dcc, html
 
 from dashboard import ids
 from dashboard.data import load_snapshot, run_history
-from dashboard.theme import SAFETY_TEXT
 from dashboard.views import fleet, maintenance, vessel
+from monitor.safety import SAFETY_TEXT
 
 STYLE = """
 body { font-family: system-ui, sans-serif; margin: 0; color: #1d1d1d; background: #fbfbfa; }
@@ -45,7 +45,8 @@ def create_app(log_path: str, poll_ms: int = 2000) -> Dash:
                    maintenance.layout(list(first.get("vessels") or []))]),
         html.Footer([html.B("Caution. "), SAFETY_TEXT]),
         dcc.Store(id=ids.STORE, data=first),
-        dcc.Interval(id=ids.POLL, interval=poll_ms),
+        # a CSV log does not change: read once (each read replays it), poll only a live log
+        dcc.Interval(id=ids.POLL, interval=poll_ms, disabled=first["kind"] == "csv"),
     ])  # fmt: skip
 
     @app.callback(

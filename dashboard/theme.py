@@ -1,21 +1,10 @@
-"""The board's colours and wording helpers: colour-blind-safe (Okabe and Ito's palette)."""
+"""The board's wording helpers: levels as words and shapes, durations (colours: monitor.plots)."""
 
 from __future__ import annotations
 
-from monitor.plots import PALETTE
-
-#: The shared colour-blind-safe palette (Okabe and Ito), so board and report agree.
-COLOURS = PALETTE
 LEVEL_RANK = {"alarm": 3, "warning": 2, "notice": 1}
 #: Level shown with a word and a shape, never by colour alone.
 LEVEL_MARK = {"alarm": "▲ alarm", "warning": "● warning", "notice": "○ notice", "ok": "ok"}
-
-SAFETY_TEXT = (
-    "ebullio monitors; it is not a safety device. Hot water and steam scald; heating "
-    "elements run on mains voltage (isolate before opening anything); an element run dry can "
-    "burn out or start a fire; pressure vessels need their own relief valve. Follow local "
-    "codes and licensed practice."
-)
 
 
 def duration_text(seconds: float | None) -> str:

@@ -25,15 +25,11 @@ from drivers.simulator import (
 from monitor import __version__
 from monitor.interchange import rows_from_samples, write_csv
 from monitor.replay import replay, summary_table
+from monitor.safety import SAFETY_NOTE
 from monitor.water import boiling_point_c, pressure_at_altitude_kpa
 
 log = logging.getLogger("ebullio")
 
-SAFETY_NOTE = (
-    "Caution: ebullio monitors; it is not a safety device. Hot water and steam scald, heating "
-    "elements run on mains voltage, an element run dry can burn out or start a fire, and a "
-    "pressure vessel needs its own relief valve. Follow local codes and licensed practice."
-)
 
 #: Channels written to a simulated CSV log, in column order.
 SIM_CHANNELS = ["water", "element", "ambient", "power", "energy", "voltage", "current"]

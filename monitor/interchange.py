@@ -27,20 +27,14 @@ from pathlib import Path
 from typing import TextIO
 
 from drivers.errors import LogFormatError
+from drivers.payloads import CHANNEL_COLUMNS as ROLE_COLUMNS
 from drivers.sample import Sample
 
-#: CSV column for each channel role, with the unit in its name.
-CHANNEL_COLUMNS: dict[str, str] = {
-    "water": "water_c",
-    "water_top": "water_top_c",
-    "element": "element_c",
-    "ambient": "ambient_c",
-    "power": "power_w",
-    "energy": "energy_wh",
-    "voltage": "voltage_v",
-    "current": "current_a",
-    "pressure": "pressure_kpa",
-}
+#: Channel roles the CSV interchange format carries (shared/DESIGN.md), in column order.
+INTERCHANGE_ROLES = ("water", "water_top", "element", "ambient", "power", "energy", "voltage",
+                     "current", "pressure")  # fmt: skip
+#: CSV column for each channel role, with the unit in its name (the MQTT keys' naming).
+CHANNEL_COLUMNS: dict[str, str] = {role: ROLE_COLUMNS[role] for role in INTERCHANGE_ROLES}
 COLUMN_CHANNELS = {column: channel for channel, column in CHANNEL_COLUMNS.items()}
 TIME_COLUMNS = ("time_s", "time")
 LABEL_COLUMNS = ("vessel", "run")

@@ -50,7 +50,7 @@ from drivers.sample import Quality, Sample
 from monitor.contracts import Estimate, finite_or_none
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
-from monitor.replay import Run, _starts_run
+from monitor.replay import REFILL_WINDOW_S, RUN_GAP_S, Run, _starts_run
 
 #: How long (s) the latest reading of a channel may stand in for one an instant lacks.
 HOLD_S: dict[str, float] = {
@@ -241,7 +241,7 @@ class LiveVessel:
         row = LogRow(step.line, step.time_s, step.values, step.vessel)
         carried: LogRow | None = None
         if self._run is None or _starts_run(row, self._run, self._previous_s, self._window):
-            refill = self._run is not None and step.time_s - (self._previous_s or 0.0) <= 900.0
+            refill = self._run is not None and step.time_s - (self._previous_s or 0.0) <= RUN_GAP_S
             carried = self._previous_row if refill else None
             self.run_number += 1
             self.runs.append({"run": str(self.run_number), "start_t": step.t, "end_t": step.t})
@@ -259,7 +259,7 @@ class LiveVessel:
         self._previous_row = row
         if "water" in row.values:
             self._window.append((row.time_s, row.values["water"]))
-            while self._window and row.time_s - self._window[0][0] > 30.0:
+            while self._window and row.time_s - self._window[0][0] > REFILL_WINDOW_S:
                 self._window.pop(0)
         if estimate is not None:
             self.latest = estimate

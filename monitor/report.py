@@ -33,17 +33,7 @@ from monitor.logs import read_log
 from monitor.plots import PALETTE, add_band, history_figure
 from monitor.recorder import is_recorder_log, sessions, verify
 from monitor.replay import Run, replay_run, split_runs
-
-SAFETY_TEXT = (
-    "ebullio monitors; it is not a safety device. Hot water and steam scald. Heating "
-    "elements run on mains voltage: isolate and lock off the supply before opening a vessel, "
-    "a terminal box or a meter. An element run dry can burn out or start a fire. A closed "
-    "storage heater or boiler is a pressure vessel and needs its own relief valve. Follow "
-    "local codes and the maker's instructions, and leave installation and repair to "
-    "licensed practitioners."
-)
-
-COLOURS = PALETTE
+from monitor.safety import SAFETY_TEXT
 
 
 def file_sha256(path: str | Path) -> str:
@@ -85,11 +75,11 @@ def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
         ys = [r.values.get(channel) for r in run.rows]
         if any(y is not None for y in ys):
             fig.add_trace(go.Scatter(x=t, y=ys, name=f"{channel} °C", mode="lines",
-                                     line={"color": COLOURS[channel]}), row=1, col=1)  # fmt: skip
+                                     line={"color": PALETTE[channel]}), row=1, col=1)  # fmt: skip
     power = [r.values.get("power") for r in run.rows]
     if any(p is not None for p in power):
         fig.add_trace(go.Scatter(x=t, y=power, name="power W", mode="lines",
-                                 line={"color": COLOURS["power"], "width": 1}),
+                                 line={"color": PALETTE["power"], "width": 1}),
                       row=1, col=1, secondary_y=True)  # fmt: skip
     te = [e.t_s - t0 for e in estimates]
     for row, getter in ((2, lambda e: e.water_mass_kg), (3, lambda e: e.ua_w_per_k)):

@@ -7,8 +7,9 @@ from dash import Dash, Input, Output, dcc, html
 from plotly.subplots import make_subplots
 
 from dashboard import ids
-from dashboard.theme import COLOURS, LEVEL_MARK, duration_text
+from dashboard.theme import LEVEL_MARK, duration_text
 from monitor import plots
+from monitor.plots import PALETTE as COLOURS
 
 UIREVISION = "vessel-view"  # constant: the user's zoom survives updates
 
