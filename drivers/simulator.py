@@ -831,6 +831,23 @@ class SimulatedRig:
         }
 
 
+def run_series(
+    scenario: Scenario, scale_mm: list[float], gap_s: float = 3600.0, seed: int = 0
+) -> Iterator[list[Sample]]:
+    """Yield the instants of successive runs of one vessel, its element scaling run by run.
+
+    Run ``i`` is ``scenario`` with ``scale_mm[i]`` mm of scale on the element (seed
+    ``seed + i``), starting ``gap_s`` seconds after run ``i - 1`` ended, long enough
+    for any reader to see a new run. A series of our own for demos, tests and
+    benchmarks of the drift checks.
+    """
+    start = scenario.start_epoch_s
+    for i, mm in enumerate(scale_mm):
+        run = replace(scenario, scale_mm=mm, start_epoch_s=start)
+        yield from SimulatedRig(run, seed=seed + i).run()
+        start += scenario.duration_s + gap_s
+
+
 # ---------------------------------------------------------------------------
 # Clocks and the driver face
 # ---------------------------------------------------------------------------

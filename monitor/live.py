@@ -50,7 +50,7 @@ from drivers.sample import Quality, Sample
 from monitor.contracts import Estimate, finite_or_none
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
-from monitor.replay import REFILL_WINDOW_S, RUN_GAP_S, Run, _starts_run
+from monitor.replay import REFILL_WINDOW_S, RUN_GAP_S, Run, _starts_run, estimator_figures
 
 #: How long (s) the latest reading of a channel may stand in for one an instant lacks.
 HOLD_S: dict[str, float] = {
@@ -235,6 +235,51 @@ class LiveVessel:
         self._previous_s: float | None = None
         self._previous_row: LogRow | None = None
         self._window: list[tuple[float, float]] = []
+        from monitor.drift import VesselDrift  # here: monitor.drift builds on the replay
+
+        #: The vessel's drift trackers, fed each run's summary as the run ends.
+        self.drift = VesselDrift(vessel, self.metadata)
+        #: Summaries of the runs that have ended, until the service takes them.
+        self.ended: list[dict[str, object]] = []
+        self._at_heat_up: Estimate | None = None
+        self._start_c: float | None = None
+        self._run_steps = 0
+
+    def resume(self, earlier: list[Mapping[str, object]]) -> None:
+        """Carry on from runs an earlier session recorded (their summaries, oldest first).
+
+        Their figures feed the drift trackers, so the baseline survives a restart, and
+        run labels go on from the highest numbered one.
+        """
+        for summary in earlier:
+            self.drift.observe(summary)
+            label = str(summary.get("run", ""))
+            if label.isdigit():
+                self.run_number = max(self.run_number, int(label))
+
+    def end_run(self) -> dict[str, object] | None:
+        """Return the summary of the current run as it ends (None before any estimate).
+
+        Its figures are :func:`monitor.replay.estimator_figures` of the live filter; its
+        ``drift`` flags compare them with the vessel's earlier runs.
+        """
+        if self.estimator is None or self.latest is None or not self.runs:
+            return None
+        from monitor.drift import run_checks
+
+        run = self.runs[-1]
+        cfg = self.estimator.config
+        summary: dict[str, object] = {
+            "source": "live", "vessel": self.vessel, "run": run["run"],
+            "start_t": run["start_t"], "end_t": run["end_t"], "steps": self._run_steps,
+            "model": "two-node" if cfg.has_element_sensor else "one-node",
+            "target_c": self.estimator.target_c,
+            "start_water_c": finite_or_none(self._start_c),
+        }  # fmt: skip
+        summary |= estimator_figures(self.estimator, self.latest, self._at_heat_up, self._start_c)
+        flags = self.drift.observe(summary) + run_checks(summary, self.metadata)
+        summary["drift"] = [f.as_dict() for f in flags]
+        return summary
 
     def step(self, step: Step) -> Estimate | None:
         """Return the estimate after one step (None while the filter is not yet initialised)."""
@@ -244,6 +289,13 @@ class LiveVessel:
             refill = self._run is not None and step.time_s - (self._previous_s or 0.0) <= RUN_GAP_S
             carried = self._previous_row if refill else None
             self.run_number += 1
+            ended = self.end_run() if self._run is not None else None
+            if ended is not None:
+                self.ended.append(ended)
+            self.latest = None
+            self._at_heat_up = None
+            self._start_c = None
+            self._run_steps = 0
             self.runs.append({"run": str(self.run_number), "start_t": step.t, "end_t": step.t})
             self._run = Run(self.vessel, self.run_number, str(self.run_number), [], None)  # type: ignore[arg-type]
             self.estimator = self._fresh or VesselEstimator(self.config, self.settings)
@@ -254,6 +306,7 @@ class LiveVessel:
             self.estimator.step(carried.time_s, carried.values)
         estimate = self.estimator.step(row.time_s, row.values)
         self.steps += 1
+        self._run_steps += 1
         self.runs[-1]["end_t"] = step.t
         self._previous_s = row.time_s
         self._previous_row = row
@@ -263,6 +316,11 @@ class LiveVessel:
                 self._window.pop(0)
         if estimate is not None:
             self.latest = estimate
+            totals = self.estimator.totals
+            if self._at_heat_up is None and totals.heat_up_done_s is not None:
+                self._at_heat_up = estimate
+            if self._start_c is None and totals.heat_up_start_c is not None:
+                self._start_c = totals.heat_up_start_c
         return estimate
 
 

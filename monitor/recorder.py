@@ -156,6 +156,13 @@ CREATE TABLE events (
     source TEXT NOT NULL, detail TEXT NOT NULL
 ) STRICT;
 """
+#: Indices for readers (the board asks for one vessel's channel over a time window).
+#: They are not hashed and hold nothing of their own, so a writer adds any that an
+#: older log lacks.
+INDICES = """
+CREATE INDEX IF NOT EXISTS samples_by_vessel ON samples (vessel, channel, t);
+CREATE INDEX IF NOT EXISTS estimates_by_vessel ON estimates (vessel, t);
+"""
 
 _PACK_Q = struct.Struct(">q").pack
 _PACK_D = struct.Struct(">d").pack
@@ -497,6 +504,9 @@ class Recorder:
                             ("created_t", repr(created_t)),
                         ],
                     )
+                for statement in INDICES.split(";"):
+                    if statement.strip():
+                        conn.execute(statement)
                 conn.execute("COMMIT")
             except BaseException:
                 conn.execute("ROLLBACK")

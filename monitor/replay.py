@@ -312,6 +312,36 @@ def _summary(
                        "message": "The run has no usable water temperature, so nothing "
                        "could be estimated."}],
         }  # fmt: skip
+    ambient = [r.values["ambient"] for r in run.rows if "ambient" in r.values]
+    ambient = [a for a in ambient if math.isfinite(a)]
+    start_epoch = run.log.start_epoch_s
+    figures = estimator_figures(est, last, at_heat_up, start_c)
+    if run.quarantined:
+        figures["flags"].append({"name": "quarantined_rows", "level": str(Level.NOTICE),  # type: ignore[attr-defined]
+                                 "message": f"{run.quarantined} rows of this run could not be "
+                                 "used and were set aside (see 'quarantined')."})  # fmt: skip
+    return (
+        base
+        | electrical_figures(run)
+        | {
+            "start_utc": iso_utc(start_epoch + run.rows[0].time_s) if start_epoch else None,
+            "start_water_c": finite_or_none(start_c),
+            "ambient_c": math.fsum(ambient) / len(ambient) if ambient else None,
+        }
+        | figures
+    )
+
+
+def estimator_figures(
+    est: VesselEstimator, last: Estimate, at_heat_up: Estimate | None, start_c: float | None
+) -> dict[str, object]:
+    """Return a run's figures from its filter at the end (the summary's estimator part).
+
+    ``last`` is the run's last estimate, ``at_heat_up`` the one where the heat-up
+    ended (None if it did not) and ``start_c`` the water temperature it started at.
+    Used by the replay and, as each run ends, by the live service.
+    """
+    tot, cfg = est.totals, est.config
     at = at_heat_up or last
     heat_up_s = None
     if tot.heat_up_done_s is not None and tot.heating_started_s is not None:
@@ -332,34 +362,20 @@ def _summary(
         {"name": f.name, "level": str(f.level), "message": f.message}
         for f in tot.flags_raised.values()
     ]
-    if run.quarantined:
-        flags.append({"name": "quarantined_rows", "level": str(Level.NOTICE),
-                      "message": f"{run.quarantined} rows of this run could not be used and "
-                      "were set aside (see 'quarantined')."})  # fmt: skip
-    ambient = [r.values["ambient"] for r in run.rows if "ambient" in r.values]
-    ambient = [a for a in ambient if math.isfinite(a)]
-    start_epoch = run.log.start_epoch_s
-    return (
-        base
-        | electrical_figures(run)
-        | {
-            "start_utc": iso_utc(start_epoch + run.rows[0].time_s) if start_epoch else None,
-            "start_water_c": finite_or_none(start_c),
-            "ambient_c": math.fsum(ambient) / len(ambient) if ambient else None,
-            "water_mass_kg": _value(at.water_mass_kg),
-            "heat_capacity_j_per_k": _value(at.heat_capacity_j_per_k),
-            "ua_w_per_k": _value(last.ua_w_per_k),
-            "element_conductance_w_per_k": _value(conductance),
-            "standing_loss_kwh_per_24h": _value(standing),
-            "standing_loss_at_c": standing_at,
-            "heat_up_s": heat_up_s,
-            "energy_wh": tot.energy_j / 3600.0,
-            "efficiency": finite_or_none(efficiency),
-            "flags": flags,
-            "evaporated_kg": tot.evaporated_kg,
-            "phase_at_end": str(last.phase),
-        }
-    )
+    return {
+        "water_mass_kg": _value(at.water_mass_kg),
+        "heat_capacity_j_per_k": _value(at.heat_capacity_j_per_k),
+        "ua_w_per_k": _value(last.ua_w_per_k),
+        "element_conductance_w_per_k": _value(conductance),
+        "standing_loss_kwh_per_24h": _value(standing),
+        "standing_loss_at_c": standing_at,
+        "heat_up_s": heat_up_s,
+        "energy_wh": tot.energy_j / 3600.0,
+        "efficiency": finite_or_none(efficiency),
+        "flags": flags,
+        "evaporated_kg": tot.evaporated_kg,
+        "phase_at_end": str(last.phase),
+    }
 
 
 def estimate_row(run: Run, e: Estimate) -> list[object]:

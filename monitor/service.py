@@ -42,6 +42,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import os
 import queue
 import random
 import threading
@@ -363,6 +364,10 @@ class Service:
     def _step(self, vessel: LiveVessel, step: Any) -> None:
         self.stats.steps += 1
         e = vessel.step(step)
+        if vessel.ended:  # a run ended: its summary and drift flags go in the log now
+            assert self._recorder is not None
+            self._recorder.put("runs", [_run_row(r) for r in vessel.ended])
+            vessel.ended = []
         if e is None:
             return
         self.stats.estimates += 1
@@ -437,6 +442,9 @@ class Service:
     async def run(self) -> Stats:
         """Run until :meth:`stop`; return the counters. The log is closed on return."""
         vessels_meta = {v.id: v.metadata for v in self.config.vessels}
+        earlier = await asyncio.to_thread(_earlier_runs, self.log_path)
+        for name, vessel in self.vessels.items():
+            vessel.resume(earlier.get(name, []))
         self._recorder = await asyncio.to_thread(
             RecorderThread, self.log_path, self.config.text, vessels_meta,
             self.config.commit_interval_s, self.stats,
@@ -478,16 +486,13 @@ class Service:
         return self.stats
 
     def _record_runs(self) -> None:
-        """Record each vessel's runs of this session with the latest figures of the last."""
+        """Record the run each vessel is in as the service stops (ended runs are in already)."""
         assert self._recorder is not None
         rows = []
         for vessel in self.vessels.values():
-            for i, run in enumerate(vessel.runs):
-                summary: dict[str, object] = {"live": True}
-                if i == len(vessel.runs) - 1 and vessel.latest is not None:
-                    message = estimate_message(vessel, vessel.latest, float(run["end_t"]))  # type: ignore[arg-type]
-                    summary["last_estimate"] = {k: v for k, v in message.items() if k != "flags"}
-                rows.append({"vessel": vessel.vessel, **run, "summary": summary})
+            summary = vessel.end_run()
+            if summary is not None:
+                rows.append(_run_row(summary | {"ended_by": "stop"}))
         if rows:
             self._recorder.put("runs", rows)
 
@@ -519,3 +524,23 @@ async def _cancel_all(tasks: list[asyncio.Task[None]], patience_s: float = 10.0)
             names = ", ".join(t.get_name() for t in pending)
             log.error("sources still running %.0f s after the stop: %s", patience_s, names)
             deadline = time.monotonic() + patience_s
+
+
+def _run_row(summary: dict[str, object]) -> dict[str, object]:
+    """Return the recorder's ``runs`` row of a live run summary."""
+    return {"vessel": summary["vessel"], "run": summary["run"], "start_t": summary["start_t"],
+            "end_t": summary["end_t"], "summary": summary}  # fmt: skip
+
+
+def _earlier_runs(path: str) -> dict[str, list[dict[str, object]]]:
+    """Return the run summaries an existing log holds, by vessel (none for a new log)."""
+    from monitor.recorder import is_recorder_log, read_runs
+
+    if not os.path.exists(path) or not is_recorder_log(path):
+        return {}
+    out: dict[str, list[dict[str, object]]] = {}
+    for row in read_runs(path):
+        summary = row.get("summary")
+        if isinstance(summary, dict) and summary.get("source") == "live":
+            out.setdefault(str(row["vessel"]), []).append(summary)
+    return out

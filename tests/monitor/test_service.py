@@ -205,4 +205,40 @@ def test_runs_are_recorded_when_the_service_stops(tmp_path) -> None:
     assert (run["vessel"], run["run"]) == (vessel, "1")
     assert run["start_t"] == samples[0].t
     assert run["end_t"] == samples[-1].t
-    assert run["summary"]["last_estimate"]["vessel"] == vessel
+    assert run["summary"]["vessel"] == vessel
+    assert run["summary"]["ended_by"] == "stop"
+    mass = run["summary"]["water_mass_kg"]["value"]
+    assert mass == pytest.approx(1.2, rel=0.05)  # the simulated fill (our scenario)
+
+
+def test_each_run_is_recorded_as_it_ends_with_drift_against_the_earlier_runs(tmp_path) -> None:
+    from drivers.simulator import kettle_scenario, run_series, scenario_metadata
+    from monitor.recorder import read_runs
+
+    # five clean runs, then two with 0.14 mm of scale (G about 25 % down in the
+    # simulator's own element model; our scenario)
+    scenario = replace(kettle_scenario(), duration_s=240.0)
+    meta = {**scenario_metadata(scenario, 0), "element_sensor": "yes"}
+    samples = [s for batch in run_series(scenario, [0.0] * 5 + [0.14] * 2) for s in batch]
+    log = tmp_path / "series.sqlite"
+
+    def serve(items):
+        service = Service(config_for(scenario.vessel, meta), str(log),
+                          extra_sources={"rig": lambda: ListDriver(items, False)})  # fmt: skip
+        asyncio.run(run_until(service, lambda: service.stats.samples >= len(items)))
+
+    cut = next(i for i, s in enumerate(samples) if s.t >= samples[-1].t - 240.0)
+    serve(samples[:cut])  # the first six runs, then a restart before the seventh
+    runs = read_runs(log)
+    assert [r["run"] for r in runs] == ["1", "2", "3", "4", "5", "6"]
+    assert runs[0]["summary"]["source"] == "live"
+    assert runs[-1]["summary"]["ended_by"] == "stop"
+    assert all(not r["summary"]["drift"] for r in runs[:5])
+    g = [r["summary"]["element_conductance_w_per_k"]["value"] for r in runs]
+    assert g[5] < 0.85 * min(g[:5])
+    assert [f["name"] for f in runs[5]["summary"]["drift"]] == ["scaling"]
+    serve(samples[cut:])  # the new session goes on from the recorded baseline
+    last = read_runs(log)[-1]
+    assert last["run"] == "7"
+    assert "scaling" in [f["name"] for f in last["summary"]["drift"]]
+    assert last["summary"]["drift"][0]["evidence"]["scaling_index"] > 0.15
