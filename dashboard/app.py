@@ -1,24 +1,35 @@
-"""The board: composes the views over one log. ``create_app(log_path)`` returns the Dash app.
+"""The board: composes the views over logs. ``create_app(log_path)`` returns the Dash app.
 
-The only callback that reads the file is :func:`poll` (through
-:func:`dashboard.data.load_snapshot`, read-only); it fills the store, and every view
-is a pure function of the store. The log path lives in the app factory's closure,
-not in module state. The board never writes to the log.
+Reading the files happens in three places only, each through :mod:`dashboard.data`
+(read-only): the poll callback fills the store with a small snapshot (fleet and
+figures), the vessel charts read what is new since they were last drawn, and the
+maintenance and replay views read a run history or a replayed run when one is
+picked. Everything else is a pure function of the store. Slow answers (a CSV
+replay, a run replayed) are kept in a :class:`Memo` that lives in the app factory's
+closure, not in module state, and is keyed by the file's version. The board never
+writes to a log.
 """
 
 from __future__ import annotations
 
+import io
+import os
+import threading
+from collections import OrderedDict
+from collections.abc import Callable
+from pathlib import Path
+
 from dash import Dash, Input, Output, dcc, html
 
-from dashboard import ids
-from dashboard.data import load_snapshot, run_history
-from dashboard.views import fleet, maintenance, vessel
+from dashboard import data, ids
+from dashboard.views import fleet, maintenance, replay, vessel
 from monitor.safety import SAFETY_TEXT
 
 STYLE = """
 body { font-family: system-ui, sans-serif; margin: 0; color: #1d1d1d; background: #fbfbfa; }
 header, footer, main { padding: .6rem 1.2rem; }
-header { background: #123; color: #fff; display: flex; gap: 1rem; align-items: baseline; }
+header { background: #123; color: #fff; display: flex; gap: 1rem; align-items: baseline;
+  flex-wrap: wrap; }
 header h1 { font-size: 1.3rem; margin: 0; }
 footer { font-size: .85rem; border-top: 2px solid #D55E00; background: #fff7f0; }
 .view { margin-bottom: 1.5rem; }
@@ -29,23 +40,81 @@ table.fleet { border-collapse: collapse; width: 100%; background: #fff; }
 table.fleet th, table.fleet td { border-bottom: 1px solid #e3e3e3; padding: .3rem .5rem;
   text-align: left; }
 .level-alarm { color: #a11; font-weight: 700; } .level-warning { color: #8a4b00; }
-@media (max-width: 900px) { .figure { min-width: 42%; } }
+.pickers { display: grid; grid-template-columns: 1fr 2fr; gap: .6rem; }
+.scrubber { margin: 1rem 0 .4rem; }
+a.button { display: inline-block; padding: .3rem .6rem; border: 1px solid #0072B2;
+  color: #0072B2; text-decoration: none; margin: .2rem 0; }
+@media (max-width: 900px) {
+  .figure { min-width: 42%; }
+  .pickers { grid-template-columns: 1fr; }
+  table.fleet { font-size: .85rem; }
+}
 """
 
 
-def create_app(log_path: str, poll_ms: int = 2000) -> Dash:
-    """Return the board over the log at ``log_path``, refreshing every ``poll_ms`` ms."""
-    first = load_snapshot(log_path)  # fails early, with a clear error, on a file that is no log
-    app = Dash(__name__, title="ebullio board", update_title=None)
+class Memo:
+    """Answers of slow reads, kept per (what, arguments, file version); the oldest go first.
+
+    A file's version is its size and modification time, and those of its SQLite WAL,
+    so a log that is still being written is read again when it has changed.
+    """
+
+    def __init__(self, size: int = 16) -> None:
+        self.size = size
+        self._answers: OrderedDict[tuple, object] = OrderedDict()
+        self._lock = threading.Lock()  # the server answers requests on several threads
+
+    @staticmethod
+    def version(path: str) -> tuple:
+        stamp = []
+        for p in (path, path + "-wal"):
+            try:
+                st = os.stat(p)
+                stamp.append((st.st_size, st.st_mtime_ns))
+            except FileNotFoundError:
+                stamp.append(None)
+        return tuple(stamp)
+
+    def get(self, fn: Callable[..., object], path: str, *args: object) -> object:
+        key = (fn.__name__, path, args, self.version(path))
+        with self._lock:
+            if key in self._answers:
+                self._answers.move_to_end(key)
+                return self._answers[key]
+        answer = fn(path, *args)
+        with self._lock:
+            self._answers[key] = answer
+            while len(self._answers) > self.size:
+                self._answers.popitem(last=False)
+        return answer
+
+
+def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = ()) -> Dash:
+    """Return the board over the log at ``log_path``, refreshing every ``poll_ms`` ms.
+
+    ``more_logs`` are further logs offered in the replay view (the first is always
+    ``log_path``).
+    """
+    logs = [log_path, *more_logs]
+    memo = Memo()
+
+    def csv_replay(path: str) -> dict:
+        return memo.get(data.replay_csv, path)  # type: ignore[return-value]
+
+    first = data.load_snapshot(log_path, csv_replay=csv_replay)  # a file that is no log fails now
+    for extra in more_logs:
+        data.load_snapshot(extra, csv_replay=csv_replay)
+    app = Dash(__name__, title="ebullio board", update_title=None, compress=True)
     app.index_string = app.index_string.replace("{%css%}", "{%css%}<style>" + STYLE + "</style>")
     app.layout = html.Div([
         html.Header([html.H1("ebullio board"), html.Span(f"log: {first['log']}",
                                                          id=ids.LOG_NAME)]),
         html.Main([fleet.layout(), vessel.layout(first),
-                   maintenance.layout(list(first.get("vessels") or []))]),
+                   maintenance.layout(list(first.get("vessels") or [])),
+                   replay.layout([Path(p).name for p in logs])]),
         html.Footer([html.B("Caution. "), SAFETY_TEXT]),
         dcc.Store(id=ids.STORE, data=first),
-        # a CSV log does not change: read once (each read replays it), poll only a live log
+        # a CSV log does not change: read once, poll only a live log
         dcc.Interval(id=ids.POLL, interval=poll_ms, disabled=first["kind"] == "csv"),
     ])  # fmt: skip
 
@@ -53,11 +122,26 @@ def create_app(log_path: str, poll_ms: int = 2000) -> Dash:
         Output(ids.STORE, "data"), Input(ids.POLL, "n_intervals"), Input(ids.VESSEL_PICK, "value")
     )
     def poll(_n: int | None, chosen: str | None) -> dict:
-        return load_snapshot(log_path, chosen)
+        return data.load_snapshot(log_path, chosen, csv_replay=csv_replay)
 
     fleet.register(app)
-    vessel.register(app)
-    maintenance.register(app, lambda chosen: run_history(log_path, chosen))
+    vessel.register(
+        app, lambda v, after: data.chart_data(log_path, v, after, csv_replay=csv_replay)
+    )
+    maintenance.register(app, lambda chosen: memo.get(data.run_history, log_path, chosen))  # type: ignore[arg-type,return-value]
+    replay.register(
+        app,
+        lambda i: memo.get(data.list_runs, logs[i]),  # type: ignore[arg-type,return-value]
+        lambda i, v, r: memo.get(data.replay_detail, logs[i], v, r),  # type: ignore[arg-type,return-value]
+    )
+
+    def pick_log() -> str:
+        from flask import request
+
+        try:
+            return logs[int(request.args.get("log", "0"))]
+        except (ValueError, IndexError):
+            return log_path
 
     @app.server.route("/report")
     def report_page():  # the audit report of one run, made on demand (read-only)
@@ -67,9 +151,26 @@ def create_app(log_path: str, poll_ms: int = 2000) -> Dash:
         from monitor.report import build_report
 
         try:
-            page = build_report(log_path, request.args.get("vessel"), request.args.get("run"))
+            page = build_report(pick_log(), request.args.get("vessel"), request.args.get("run"))
         except EbullioError as exc:
             return Response(f"no report: {exc}", 404, mimetype="text/plain")
         return Response(page, mimetype="text/html")
+
+    @app.server.route("/export.csv")
+    def export_page():  # one run as a CSV interchange file, made on demand (read-only)
+        from flask import Response, request
+
+        from drivers.errors import EbullioError
+        from monitor.logs import export_run_csv
+
+        vessel_id, run = request.args.get("vessel", ""), request.args.get("run", "")
+        out = io.StringIO()
+        try:
+            export_run_csv(pick_log(), out, vessel_id, run)
+        except EbullioError as exc:
+            return Response(f"no export: {exc}", 404, mimetype="text/plain")
+        name = f"{Path(pick_log()).stem}-{vessel_id}-run{run}.csv".replace("/", "_")
+        disposition = {"Content-Disposition": f'attachment; filename="{name}"'}
+        return Response(out.getvalue(), mimetype="text/csv", headers=disposition)
 
     return app

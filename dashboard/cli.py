@@ -21,17 +21,19 @@ from monitor import cli
 LOOPBACK = ("127.0.0.1", "localhost", "::1")
 
 
-def serve_board(log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None):
+def serve_board(
+    log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None, more_logs=()
+):
     """Start the board over ``log_path`` in a thread; return the (werkzeug) server.
 
-    ``auth`` is (user, password) for basic auth, or None. Raises EbullioError when the
-    port cannot be had.
+    ``auth`` is (user, password) for basic auth, or None; ``more_logs`` are offered in
+    the replay view too. Raises EbullioError when the port cannot be had.
     """
     from werkzeug.serving import make_server
 
     from dashboard.app import create_app
 
-    app = create_app(log_path, poll_ms=poll_ms)
+    app = create_app(log_path, poll_ms=poll_ms, more_logs=tuple(more_logs))
     if auth is not None:
         _require_login(app, *auth)
     try:
@@ -77,7 +79,8 @@ def _login_for(host: str, no_auth: bool) -> tuple[str, str] | None:
 def cmd_board(args: argparse.Namespace) -> int:
     """Serve the board over a log (read-only) until Ctrl-C or SIGTERM."""
     auth = _login_for(args.host, args.no_auth)
-    server = serve_board(args.log, args.host, args.port, int(args.poll_s * 1000), auth)
+    server = serve_board(args.log, args.host, args.port, int(args.poll_s * 1000), auth,
+                         more_logs=args.more)  # fmt: skip
     print(f"ebullio board: http://{args.host}:{server.server_port}/ over {args.log} "
           "(Ctrl-C stops it)", file=sys.stderr, flush=True)  # fmt: skip
     try:
@@ -141,6 +144,8 @@ def extend(verbs, parsers) -> None:
         epilog="example: ebullio board out/demo.sqlite --port 8050",
     )
     brd.add_argument("log", metavar="LOG", help="recorder (SQLite) or CSV log")
+    brd.add_argument("more", metavar="MORE", nargs="*",
+                     help="further logs to offer in the replay view")  # fmt: skip
     brd.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1)")
     brd.add_argument("--port", type=int, default=8050, help="port (default 8050)")
     brd.add_argument("--poll-s", type=float, default=2.0, help="refresh every N s (default 2)")

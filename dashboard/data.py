@@ -14,7 +14,7 @@ from __future__ import annotations
 import json
 import math
 import sqlite3
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from monitor.recorder import is_recorder_log
@@ -56,7 +56,54 @@ def _connect(path: str) -> sqlite3.Connection:
     return sqlite3.connect(uri, uri=True, timeout=5.0)
 
 
-def _sqlite_snapshot(path: str, vessel: str | None, window_s: float) -> dict[str, object]:
+_EST_KEYS = ("t", "phase", "water_c", "water_mass_kg", "water_mass_std", "ua_w_per_k", "ua_std",
+             "element_conductance_w_per_k", "element_conductance_std", "target_c",
+             "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s")  # fmt: skip
+
+
+def _latest(row: tuple | None) -> dict[str, object] | None:
+    """Return an estimate row (columns _EST_KEYS then detail) as the board's latest figures."""
+    if row is None:
+        return None
+    latest = dict(zip(_EST_KEYS, row[:-1], strict=True))
+    detail = json.loads(row[-1]) if row[-1] else {}
+    latest["flags"] = detail.get("flags", [])
+    latest["power_w"] = detail.get("power_w")
+    latest["target_reason"] = detail.get("target_reason", "")
+    return latest
+
+
+def _columns(rows: list[tuple], thin: bool = True) -> dict[str, list]:
+    """Return estimate rows as columns (every n-th row when ``thin`` and there are many)."""
+    step = max(1, math.ceil(len(rows) / MAX_POINTS)) if thin else 1
+    picked = rows[::step]
+    return {k: [r[i] for r in picked] for i, k in enumerate(_EST_KEYS) if k != "phase"}
+
+
+def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
+    """Return, per vessel, its last recorded run and the state of its drift checks.
+
+    ``runs`` are the log's run rows in order (summaries parsed). Each vessel gets its
+    last run's label and times, that run's drift flags, and the scaling index
+    (1 - G/G0) of the latest scaling flag among all its runs, if any.
+    """
+    out: dict[str, dict[str, object]] = {}
+    for row in runs:
+        summary = row.get("summary") if isinstance(row.get("summary"), dict) else {}
+        assert isinstance(summary, dict)
+        vessel = str(row["vessel"])
+        state = out.setdefault(vessel, {"scaling_index": None, "runs": 0})
+        state["runs"] = int(state["runs"]) + 1  # type: ignore[call-overload]
+        drift = [f for f in summary.get("drift") or [] if isinstance(f, dict)]
+        for f in drift:
+            if f.get("name") == "scaling":
+                state["scaling_index"] = (f.get("evidence") or {}).get("scaling_index")
+        state.update(run=row["run"], start_t=row["start_t"], end_t=row.get("end_t"),
+                     drift=drift)  # fmt: skip
+    return out
+
+
+def _sqlite_snapshot(path: str, vessel: str | None) -> dict[str, object]:
     conn = _connect(path)
     try:
         names = [v for (v,) in conn.execute("SELECT DISTINCT vessel FROM samples ORDER BY vessel")]
@@ -65,118 +112,206 @@ def _sqlite_snapshot(path: str, vessel: str | None, window_s: float) -> dict[str
             f"SELECT {', '.join(_EST_KEYS)}, detail, vessel FROM estimates WHERE id IN "
             "(SELECT max(id) FROM estimates GROUP BY vessel)"
         ):  # fmt: skip
-            latest[row[-1]] = _estimates([row[:-1]])["latest"]
-        chosen = vessel if vessel in names else (names[0] if names else None)
+            latest[row[-1]] = _latest(row[:-1])
+        sql = "SELECT vessel, run, start_t, end_t, summary FROM runs ORDER BY id"
+        runs = [{"vessel": v, "run": r, "start_t": s, "end_t": e, "summary": json.loads(j)}
+                for v, r, s, e, j in conn.execute(sql)]  # fmt: skip
         (last_t,) = conn.execute("SELECT max(t) FROM samples").fetchone()
-        detail: dict[str, object] = {}
-        if chosen is not None:
-            (vessel_last,) = conn.execute(
-                "SELECT max(t) FROM samples WHERE vessel = ?", (chosen,)
-            ).fetchone()
-            since = (vessel_last or 0.0) - window_s
-            series: dict[str, object] = {}
-            for channel in CHANNELS:
-                rows = conn.execute(
-                    "SELECT t, value FROM samples WHERE vessel = ? AND channel = ? AND t >= ?"
-                    " ORDER BY id", (chosen, channel, since),
-                ).fetchall()  # fmt: skip
-                t, y = envelope([r[0] for r in rows], [r[1] for r in rows])
-                series[channel] = {"t": t, "y": y}
-            est_rows = conn.execute(
-                f"SELECT {', '.join(_EST_KEYS)}, detail FROM estimates WHERE vessel = ? AND t >= ?"
-                " ORDER BY id", (chosen, since),
-            ).fetchall()  # fmt: skip
-            detail = {"series": series, **_estimates(est_rows)}
-        return {"log": Path(path).name, "kind": "recorder", "last_t": last_t, "vessels": names,
-                "latest": latest, "chosen": chosen, "detail": detail}  # fmt: skip
     finally:
         conn.close()
-
-
-_EST_KEYS = ("t", "phase", "water_c", "water_mass_kg", "water_mass_std", "ua_w_per_k", "ua_std",
-             "element_conductance_w_per_k", "element_conductance_std", "target_c",
-             "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s")  # fmt: skip
-
-
-def _estimates(rows: list[tuple]) -> dict[str, object]:
-    """Return the estimate series (downsampled by taking every n-th row) and the latest."""
-    latest = None
-    if rows:
-        last = rows[-1]
-        latest = dict(zip(_EST_KEYS, last[:-1], strict=True))
-        detail = json.loads(last[-1]) if last[-1] else {}
-        latest["flags"] = detail.get("flags", [])
-        latest["power_w"] = detail.get("power_w")
-        latest["target_reason"] = detail.get("target_reason", "")
-    step = max(1, math.ceil(len(rows) / MAX_POINTS))
-    picked = rows[::step]
-    columns = {k: [r[i] for r in picked] for i, k in enumerate(_EST_KEYS) if k != "phase"}
-    return {"estimates": columns, "latest": latest}
+    chosen = vessel if vessel in names else (names[0] if names else None)
+    return {"log": Path(path).name, "kind": "recorder", "last_t": last_t, "vessels": names,
+            "latest": latest, "runs": run_state(runs), "chosen": chosen}  # fmt: skip
 
 
 def load_snapshot(
-    path: str, vessel: str | None = None, window_s: float = 3 * 3600.0
+    path: str, vessel: str | None = None, csv_replay: Callable[[str], dict] | None = None
 ) -> dict[str, object]:
-    """Return what the board shows of the log at ``path``.
+    """Return what the fleet and the vessel figures show of the log at ``path``.
 
-    ``vessels`` (names), ``latest`` (each vessel's newest estimate, for the fleet) and,
-    for the ``chosen`` vessel (``vessel``, or the first), ``detail``: its readings and
-    estimates over the last ``window_s`` seconds. Raises LogFormatError (from the
-    readers) when the file is not a log.
+    ``vessels`` (names), ``latest`` (each vessel's newest estimate), ``runs`` (each
+    vessel's last run and drift state, :func:`run_state`) and ``chosen`` (``vessel``,
+    or the first). Small: the charts' data comes from :func:`chart_data`. A CSV log
+    is replayed by ``csv_replay`` (default :func:`replay_csv`; the board passes one that
+    remembers). Raises LogFormatError (from the readers) when the file is not a log.
     """
     if is_recorder_log(path):
-        return _sqlite_snapshot(path, vessel, window_s)
-    return _csv_snapshot(path, vessel)
+        return _sqlite_snapshot(path, vessel)
+    csv = (csv_replay or replay_csv)(path)
+    names = sorted(csv["vessels"])
+    chosen = vessel if vessel in names else (names[0] if names else None)
+    return {"log": Path(path).name, "kind": "csv", "last_t": None, "vessels": names,
+            "latest": {v: d["latest"] for v, d in csv["vessels"].items()},
+            "runs": csv["runs"], "chosen": chosen}  # fmt: skip
 
 
-def _csv_snapshot(path: str, vessel: str | None) -> dict[str, object]:
+def chart_data(
+    path: str,
+    vessel: str | None,
+    after: dict | None = None,
+    window_s: float = 3 * 3600.0,
+    csv_replay: Callable[[str], dict] | None = None,
+) -> dict[str, object]:
+    """Return a vessel's readings and estimates for the live charts.
+
+    Without ``after``: the last ``window_s`` seconds, downsampled (:func:`envelope`).
+    With ``after`` (``{"t": .., "est_t": ..}``, the newest sample and estimate times
+    already shown): only what is newer, whole, for appending. ``cursor`` in the result
+    is the new ``after``. A CSV log has no live end: its whole replay comes back.
+    """
+    if vessel is None:
+        return {"vessel": None, "series": {}, "estimates": {}, "latest": None, "cursor": None}
+    if not is_recorder_log(path):
+        detail = (csv_replay or replay_csv)(path)["vessels"].get(vessel) or {}
+        return {"vessel": vessel, **detail, "cursor": None}
+    conn = _connect(path)
+    try:
+        if after is None:
+            (last,) = conn.execute("SELECT max(t) FROM samples WHERE vessel = ?",
+                                   (vessel,)).fetchone()  # fmt: skip
+            since = since_est = (last or 0.0) - window_s
+            op = ">="
+        else:
+            since, since_est, op = float(after["t"]), float(after["est_t"]), ">"
+        series: dict[str, object] = {}
+        newest = since
+        for channel in CHANNELS:
+            rows = conn.execute(
+                f"SELECT t, value FROM samples WHERE vessel = ? AND channel = ? AND t {op} ?"
+                " ORDER BY t", (vessel, channel, since),
+            ).fetchall()  # fmt: skip
+            t, y = [r[0] for r in rows], [r[1] for r in rows]
+            if after is None:
+                t, y = envelope(t, y)
+            series[channel] = {"t": t, "y": y}
+            if t:
+                newest = max(newest, t[-1])
+        est_rows = conn.execute(
+            f"SELECT {', '.join(_EST_KEYS)}, detail FROM estimates WHERE vessel = ? AND t {op} ?"
+            " ORDER BY t", (vessel, since_est),
+        ).fetchall()  # fmt: skip
+    finally:
+        conn.close()
+    latest = _latest(est_rows[-1]) if est_rows else None
+    est_t = est_rows[-1][0] if est_rows else since_est
+    return {"vessel": vessel, "series": series, "estimates": _columns(est_rows, after is None),
+            "latest": latest, "cursor": {"t": newest, "est_t": est_t}}  # fmt: skip
+
+
+def _estimate_row(start: float, e) -> tuple:
+    """Return one replayed estimate as a row of _EST_KEYS then the detail JSON."""
+    target = e.target
+    m, g = e.water_mass_kg, e.element_conductance_w_per_k
+    detail = {"flags": [f.as_dict() for f in e.flags], "power_w": e.power_w,
+              "target_reason": target.reason if target else ""}  # fmt: skip
+    return (start + e.t_s, str(e.phase), e.water_c, m.value if m else None,
+            m.std if m else None, e.ua_w_per_k.value, e.ua_w_per_k.std,
+            g.value if g else None, g.std if g else None,
+            target.target_c if target else None,
+            target.eta_s if target else None, target.lo_s if target else None,
+            target.hi_s if target else None, json.dumps(detail))  # fmt: skip
+
+
+def replay_csv(path: str) -> dict[str, object]:
+    """Replay a CSV log: per vessel its last run's series, estimates and latest; run state.
+
+    A CSV log does not change, so the board asks for this once per file (see
+    :class:`dashboard.app.Memo`).
+    """
+    from monitor.drift import drift_over_runs
     from monitor.interchange import read_csv
-    from monitor.replay import replay_run, split_runs
+    from monitor.replay import split_runs
 
     log = read_csv(path)
     runs, _ = split_runs([log])
-    start = log.start_epoch_s or 0.0
     vessels: dict[str, dict[str, object]] = {}
+    summaries = []
     for run in runs:
-        rows: list[tuple] = []
+        detail = replay_one(run)
+        summaries.append(detail.pop("summary"))
+        vessels[run.vessel] = detail
+    flags = drift_over_runs(summaries, {r.vessel: r.log.metadata for r in runs})
+    start = log.start_epoch_s or 0.0
+    rows = [{"vessel": s["vessel"], "run": s["run"], "start_t": start + (s["start_s"] or 0.0),
+             "end_t": start + (s["end_s"] or 0.0),
+             "summary": {**s, "drift": [f.as_dict() for f in f_]}}
+            for s, f_ in zip(summaries, flags, strict=True)]  # fmt: skip
+    return {"vessels": vessels, "runs": run_state(rows)}
 
-        def keep(_run, e, rows=rows) -> None:
-            target = e.target
-            m, g = e.water_mass_kg, e.element_conductance_w_per_k
-            detail = {"flags": [f.as_dict() for f in e.flags], "power_w": e.power_w,
-                      "target_reason": target.reason if target else ""}  # fmt: skip
-            rows.append((start + e.t_s, str(e.phase), e.water_c, m.value if m else None,
-                         m.std if m else None, e.ua_w_per_k.value, e.ua_w_per_k.std,
-                         g.value if g else None, g.std if g else None,
-                         target.target_c if target else None,
-                         target.eta_s if target else None, target.lo_s if target else None,
-                         target.hi_s if target else None, json.dumps(detail)))  # fmt: skip
 
-        replay_run(run, on_estimate=keep)
-        series = {}
-        for channel in CHANNELS:
-            pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]
-            t, y = envelope([p[0] for p in pts], [p[1] for p in pts])
-            series[channel] = {"t": t, "y": y}
-        vessels[run.vessel] = {"series": series, **_estimates(rows)}
-    names = sorted(vessels)
-    chosen = vessel if vessel in vessels else (names[0] if names else None)
-    return {"log": Path(path).name, "kind": "csv", "last_t": None, "vessels": names,
-            "latest": {v: d["latest"] for v, d in vessels.items()}, "chosen": chosen,
-            "detail": vessels.get(chosen, {}) if chosen else {}}  # fmt: skip
+def replay_one(run) -> dict[str, object]:
+    """Replay one run (monitor.replay.Run): its series, estimates, latest, and summary."""
+    from monitor.replay import replay_run
+
+    start = run.log.start_epoch_s or 0.0
+    rows: list[tuple] = []
+    summary = replay_run(run, on_estimate=lambda _r, e: rows.append(_estimate_row(start, e)))
+    series = {}
+    for channel in CHANNELS:
+        pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]
+        pts = [p for p in pts if p[1] is not None]
+        t, y = envelope([p[0] for p in pts], [p[1] for p in pts])
+        series[channel] = {"t": t, "y": y}
+    return {"series": series, "estimates": _columns(rows),
+            "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
+
+
+def list_runs(path: str) -> list[dict[str, object]]:
+    """Return the runs of a log as the replay splits them: vessel, label, start and end (Unix s).
+
+    Reads the whole log (the same path as ``ebullio replay``); the board keeps the
+    answer per file version.
+    """
+    from monitor.logs import read_log
+    from monitor.replay import split_runs
+
+    runs, _ = split_runs(read_log(path))
+    out = []
+    for run in runs:
+        start = run.log.start_epoch_s or 0.0
+        if run.rows:
+            out.append({"vessel": run.vessel, "run": run.label,
+                        "start_t": start + run.rows[0].time_s,
+                        "end_t": start + run.rows[-1].time_s, "steps": len(run.rows)})  # fmt: skip
+    return out
+
+
+def replay_detail(path: str, vessel: str, label: str) -> dict[str, object]:
+    """Return one run of a log replayed through a fresh estimator, for the replay view.
+
+    The figures are the replay's (as ``ebullio replay`` gives them), not the ones the
+    live service recorded. Raises LogFormatError when the log has no such run.
+    """
+    from drivers.errors import LogFormatError
+    from monitor.logs import read_log
+    from monitor.replay import split_runs
+
+    runs, _ = split_runs(read_log(path))
+    run = next((r for r in runs if r.vessel == vessel and r.label == label), None)
+    if run is None:
+        raise LogFormatError(f"{path}: vessel {vessel!r} has no run {label!r}")
+    detail = replay_one(run)
+    summary = detail.pop("summary")
+    return {"vessel": vessel, "run": label, **detail,
+            "summary": {k: summary.get(k) for k in ("start_utc", "heat_up_s", "energy_wh",
+                                                     "phase_at_end", "model")}}  # fmt: skip
 
 
 def run_history(path: str, vessel: str | None = None) -> dict[str, object]:
     """Return a vessel's run summaries with their drift flags, and each rule's baseline.
 
-    Replays the whole log (the figures come from the full data), so the maintenance
-    view calls it when asked, not on every poll.
+    A recorder log carries them in its ``runs`` table (the live service writes one as
+    each run ends; ``ebullio replay --record`` adds the replay's, which are preferred
+    when there). Otherwise, or when the table holds none with figures, the whole log is
+    replayed (the figures come from the full data).
     """
     from monitor.drift import RULES, baselines_of
-    from monitor.replay import replay
 
-    result = replay([path])
-    runs = [r for r in result["runs"] if isinstance(r, dict)]
+    runs = _recorded_summaries(path) if is_recorder_log(path) else []
+    if not runs:
+        from monitor.replay import replay
+
+        runs = [r for r in replay([path])["runs"] if isinstance(r, dict)]  # type: ignore[union-attr]
     names = sorted({str(r["vessel"]) for r in runs})
     chosen = vessel if vessel in names else (names[0] if names else None)
     mine = [r for r in runs if r["vessel"] == chosen]
@@ -184,3 +319,17 @@ def run_history(path: str, vessel: str | None = None) -> dict[str, object]:
     baselines = baselines_of(mine)
     return {"vessels": names, "chosen": chosen, "baselines": baselines,
             "runs": [{k: r.get(k) for k in keep} for r in mine]}  # fmt: skip
+
+
+def _recorded_summaries(path: str) -> list[dict[str, object]]:
+    from monitor.interchange import iso_utc
+    from monitor.recorder import read_runs
+
+    found: dict[str, list[dict[str, object]]] = {"replay": [], "live": []}
+    for row in read_runs(path):
+        summary = row.get("summary")
+        if isinstance(summary, dict) and "drift" in summary:
+            source = "replay" if summary.get("source") == "replay" else "live"
+            start = summary.get("start_utc") or iso_utc(float(row["start_t"]))  # type: ignore[arg-type]
+            found[source].append({**summary, "vessel": row["vessel"], "start_utc": start})
+    return found["replay"] or found["live"]

@@ -23,3 +23,12 @@ def worst_level(flags: list[dict] | None) -> str:
     """Return the worst level among flags ('ok' when none is above nothing)."""
     best = max((LEVEL_RANK.get(str(f.get("level")), 0) for f in flags or []), default=0)
     return {3: "alarm", 2: "warning", 1: "notice"}.get(best, "ok")
+
+
+def iso_minutes(epoch_s: float | None) -> str:
+    """Return a Unix time as ISO 8601 UTC to the minute ('2026-12-02 09:15'), or '-'."""
+    if not isinstance(epoch_s, int | float):
+        return "-"
+    from datetime import UTC, datetime
+
+    return datetime.fromtimestamp(epoch_s, UTC).strftime("%Y-%m-%d %H:%M")

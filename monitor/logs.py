@@ -25,6 +25,7 @@ from monitor.interchange import (
 )
 from monitor.live import logs_from_steps, steps_from_samples
 from monitor.recorder import is_recorder_log, read_quarantine, read_samples, read_vessels
+from monitor.replay import split_runs
 
 
 def _rejected(path: str) -> list[Rejected]:
@@ -94,6 +95,26 @@ def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> 
         metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
     metadata["exported_from"] = Path(str(log_path)).name
     return write_csv(out, _csv_rows(chosen.rows), metadata, chosen.channels)
+
+
+def export_run_csv(log_path: str | Path, out: TextIO, vessel: str, run_label: str) -> int:
+    """Write one run of one vessel, as the replay splits the log, as a CSV interchange file.
+
+    Returns the rows written. Raises LogFormatError naming the runs when there is no
+    such run.
+    """
+    runs, _ = split_runs(read_log(log_path))
+    mine = [r for r in runs if r.vessel == vessel]
+    run = next((r for r in mine if r.label == run_label), None)
+    if run is None:
+        labels = ", ".join(r.label for r in mine) or "(none)"
+        raise LogFormatError(f"{log_path}: vessel {vessel!r} has no run {run_label!r}; "
+                             f"its runs: {labels}")  # fmt: skip
+    metadata = dict(run.log.metadata)
+    if run.log.start_epoch_s is not None:
+        metadata["start_utc"] = iso_utc(run.log.start_epoch_s)
+    metadata["exported_from"] = f"{Path(str(log_path)).name}, run {run_label}"
+    return write_csv(out, _csv_rows(run.rows), metadata, run.log.channels)
 
 
 def record_summaries(paths: list[str], result: dict[str, object]) -> int:

@@ -24,6 +24,16 @@ UNITS = {"element_conductance_w_per_k": "W/K", "ua_w_per_k": "W/K",
          "heating_power_at_rated_voltage_w": "W"}  # fmt: skip
 
 
+def band_edges(
+    mean: Sequence[float | None], std: Sequence[float | None]
+) -> tuple[list[float | None], list[float | None]]:
+    """Return the upper and lower edges of a ±2σ band (None where either is missing)."""
+    pairs = list(zip(mean, std, strict=True))
+    hi = [m + 2 * s if m is not None and s is not None else None for m, s in pairs]
+    lo = [m - 2 * s if m is not None and s is not None else None for m, s in pairs]
+    return hi, lo
+
+
 def add_band(
     fig: go.Figure,
     x: Sequence[float],
@@ -32,10 +42,11 @@ def add_band(
     row: int,
     col: int = 1,
 ) -> None:
-    """Add a mean line with its ±2σ band (σ per point; None leaves a gap) to a subplot."""
-    pairs = list(zip(mean, std, strict=True))
-    hi = [m + 2 * s if m is not None and s is not None else None for m, s in pairs]
-    lo = [m - 2 * s if m is not None and s is not None else None for m, s in pairs]
+    """Add a mean line with its ±2σ band (σ per point; None leaves a gap) to a subplot.
+
+    Three traces, in this order: the band's upper edge, its lower edge, the mean.
+    """
+    hi, lo = band_edges(mean, std)
     edge = {"mode": "lines", "line": {"width": 0}, "showlegend": False, "hoverinfo": "skip"}
     fig.add_trace(go.Scatter(x=x, y=hi, **edge), row=row, col=col)
     fig.add_trace(go.Scatter(x=x, y=lo, fill="tonexty", fillcolor=PALETTE["band"], **edge),

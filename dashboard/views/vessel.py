@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import plotly.graph_objects as go
-from dash import Dash, Input, Output, dcc, html
+from dash import Dash, Input, Output, Patch, State, dcc, html, no_update
 from plotly.subplots import make_subplots
 
 from dashboard import ids
@@ -54,84 +56,162 @@ def figures(latest: dict | None) -> list[html.Div]:
                      className="figure") for k, v in items]  # fmt: skip
 
 
-def flag_list(latest: dict | None) -> html.Ul:
-    """Return the active flags of the latest estimate as plain sentences."""
-    flags = (latest or {}).get("flags") or []
+def flag_list(latest: dict | None, drift: list[dict] | None = None) -> html.Ul:
+    """Return the active flags as plain sentences: the latest estimate's, then those the
+    vessel's last ended run raised against its earlier runs (scaling and the like)."""
+    flags = [*((latest or {}).get("flags") or []),
+             *({**f, "message": f"Last run: {f['message']}"} for f in drift or [])]  # fmt: skip
     if not flags:
         return html.Ul([html.Li("No flags: nothing needs attention.")])
     return html.Ul([html.Li(f"{LEVEL_MARK.get(str(f['level']), f['level'])}: {f['message']}",
                             className=f"level-{f['level']}") for f in flags])  # fmt: skip
 
 
-def readings_figure(detail: dict | None) -> go.Figure:
-    """Return temperatures and power against time, with the forecast to the target ahead."""
+#: Points appended to the live charts before they are drawn afresh (re-downsampled).
+MAX_APPENDED = 1800
+
+
+def _ms(ts: list[float]) -> list[float]:
+    """Unix seconds to the milliseconds a Plotly date axis reads (UTC)."""
+    return [x * 1000.0 for x in ts]
+
+
+def _forecast(latest: dict | None) -> tuple[dict, list[dict]]:
+    """Return the forecast trace's x/y (empty when there is none) and its interval shape."""
+    e = latest or {}
+    eta, lo, hi, target, water, now = (e.get(k) for k in (
+        "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s", "target_c",
+        "water_c", "t"))  # fmt: skip
+    if not all(isinstance(v, int | float) for v in (eta, lo, hi, target, water, now)):
+        return {"x": [], "y": []}, []
+    shape = {"type": "rect", "xref": "x", "yref": "paper", "x0": (now + lo) * 1000.0,
+             "x1": (now + hi) * 1000.0, "y0": 0, "y1": 1, "line": {"width": 0},
+             "fillcolor": COLOURS["forecast_band"], "layer": "below"}  # fmt: skip
+    return {"x": [now * 1000.0, (now + eta) * 1000.0], "y": [water, target]}, [shape]
+
+
+def readings_figure(detail: dict | None) -> tuple[go.Figure, dict[str, int]]:
+    """Return temperatures and power against time (UTC) with the forecast to the target
+    ahead of now and its 90 % interval as a band; and which trace holds which series."""
     detail = detail or {}
     series = detail.get("series") or {}
     fig = make_subplots(specs=[[{"secondary_y": True}]])
-    now = max((t[-1] for s in series.values() if (t := s.get("t"))), default=None)
-    if now is None:
-        fig.update_layout(uirevision=UIREVISION, title="no readings yet")
-        return fig
-
-    def minutes(ts: list[float]) -> list[float]:
-        return [(x - now) / 60.0 for x in ts]
-
+    traces: dict[str, int] = {}
     for channel in ("water", "element", "ambient"):
         s = series.get(channel) or {}
         if s.get("t"):
-            fig.add_trace(go.Scatter(x=minutes(s["t"]), y=s["y"], name=f"{channel} (°C)",
+            traces[channel] = len(fig.data)
+            fig.add_trace(go.Scatter(x=_ms(s["t"]), y=s["y"], name=f"{channel} (°C)",
                                      mode="lines", line={"color": COLOURS[channel]}))  # fmt: skip
     p = series.get("power") or {}
     if p.get("t"):
-        fig.add_trace(go.Scatter(x=minutes(p["t"]), y=p["y"], name="power (W)", mode="lines",
+        traces["power"] = len(fig.data)
+        fig.add_trace(go.Scatter(x=_ms(p["t"]), y=p["y"], name="power (W)", mode="lines",
                                  line={"color": COLOURS["power"], "width": 1, "dash": "dot"}),
                       secondary_y=True)  # fmt: skip
-    e = detail.get("latest") or {}
-    eta, lo, hi, target = (e.get(k) for k in ("time_to_target_s", "time_to_target_lo_s",
-                                              "time_to_target_hi_s", "target_c"))  # fmt: skip
-    if all(isinstance(v, int | float) for v in (eta, lo, hi, target, e.get("water_c"))):
-        fig.add_trace(go.Scatter(x=[0.0, eta / 60.0], y=[e["water_c"], target],
-                                 name="forecast to target", mode="lines",
-                                 line={"color": COLOURS["forecast"], "dash": "dash"}))  # fmt: skip
-        fig.add_vrect(x0=lo / 60.0, x1=hi / 60.0, fillcolor=COLOURS["forecast_band"],
-                      line_width=0, annotation_text="90 % interval")  # fmt: skip
-    fig.update_xaxes(title_text="minutes from the latest reading")
+    if not traces:
+        fig.update_layout(uirevision=UIREVISION, title="no readings yet")
+        return fig, traces
+    line, shapes = _forecast(detail.get("latest"))
+    traces["forecast"] = len(fig.data)
+    fig.add_trace(go.Scatter(**line, name="forecast to target (90 % band)", mode="lines",
+                             line={"color": COLOURS["forecast"], "dash": "dash"}))  # fmt: skip
+    fig.update_xaxes(title_text="time (UTC)", type="date")
     fig.update_yaxes(title_text="temperature (°C)", secondary_y=False)
     fig.update_yaxes(title_text="power (W)", secondary_y=True, showgrid=False)
     margin = {"l": 60, "r": 60, "t": 30, "b": 50}
-    fig.update_layout(uirevision=UIREVISION, template="plotly_white", height=380,
+    fig.update_layout(uirevision=UIREVISION, template="plotly_white", height=380, shapes=shapes,
                       margin=margin, legend={"orientation": "h"})  # fmt: skip
-    return fig
+    return fig, traces
+
+
+#: The estimates chart's rows: the figure, its σ, and the row's title.
+ESTIMATE_ROWS = (("water_mass_kg", "water_mass_std", "water mass (kg)"),
+                 ("ua_w_per_k", "ua_std", "UA (W/K)"),
+                 ("element_conductance_w_per_k", "element_conductance_std",
+                  "element conductance (W/K)"))  # fmt: skip
+
+
+def _band_columns(est: dict, key: str, sd: str) -> tuple[list, list, list]:
+    """Return the upper edge, lower edge and mean of a figure's ±2σ band."""
+    ys = est.get(key) or [None] * len(est.get("t") or [])
+    sds = est.get(sd) or [None] * len(ys)
+    hi, lo = plots.band_edges(ys, sds)
+    return hi, lo, list(ys)
 
 
 def estimates_figure(detail: dict | None) -> go.Figure:
-    """Return the estimates converging over time, each with its ±2σ band."""
+    """Return the estimates converging over time, each with its ±2σ band.
+
+    Each row holds three traces (upper edge, lower edge, mean) in that order, present
+    even when empty, so that updates can append to them by position.
+    """
     est = (detail or {}).get("estimates") or {}
     fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.08,
-                        subplot_titles=("water mass (kg)", "UA (W/K)",
-                                        "element conductance (W/K)"))  # fmt: skip
-    t = est.get("t") or []
-    if t:
-        now = t[-1]
-        x = [(v - now) / 60.0 for v in t]
-        for row, (key, sd) in enumerate((("water_mass_kg", "water_mass_std"),
-                                          ("ua_w_per_k", "ua_std"),
-                                          ("element_conductance_w_per_k",
-                                           "element_conductance_std")), start=1):  # fmt: skip
-            ys, sds = est.get(key) or [], est.get(sd) or []
-            if any(v is not None for v in ys):
-                plots.add_band(fig, x, ys, sds, row=row)
-    fig.update_xaxes(title_text="minutes from the latest estimate", row=3, col=1)
+                        subplot_titles=[title for *_, title in ESTIMATE_ROWS])  # fmt: skip
+    x = _ms(est.get("t") or [])
+    for row, (key, sd, _title) in enumerate(ESTIMATE_ROWS, start=1):
+        ys = est.get(key) or [None] * len(x)
+        sds = est.get(sd) or [None] * len(x)
+        plots.add_band(fig, x, ys, sds, row=row)
+    fig.update_xaxes(type="date")
+    fig.update_xaxes(title_text="time (UTC)", row=3, col=1)
     fig.update_layout(uirevision=UIREVISION, template="plotly_white", height=520,
                       margin={"l": 60, "r": 30, "t": 40, "b": 50})  # fmt: skip
     return fig
 
 
-def render_vessel(snapshot: dict | None) -> tuple[list, html.Ul, go.Figure, go.Figure]:
-    """Return the figures, flags and both charts of the snapshot's chosen vessel."""
-    detail = (snapshot or {}).get("detail") or {}
-    latest = detail.get("latest")
-    return figures(latest), flag_list(latest), readings_figure(detail), estimates_figure(detail)
+def chart_update(data: dict, cursor: dict | None) -> tuple[object, object, dict]:
+    """Return the readings and estimates figures (or patches to them) and the new cursor.
+
+    ``data`` is :func:`dashboard.data.chart_data`: a whole window when ``cursor`` is None,
+    else only what is newer than the cursor. Whole data draws both charts afresh;
+    newer data is appended with ``Patch`` (a few hundred bytes a second of readings)
+    and the forecast redrawn, until :data:`MAX_APPENDED` points have been appended,
+    when the next poll draws afresh so that the browser never holds more than that
+    beyond the downsampled window.
+    """
+    if cursor is None:
+        readings, traces = readings_figure(data)
+        new = {"vessel": data.get("vessel"), "after": data.get("cursor"), "traces": traces,
+               "appended": 0}  # fmt: skip
+        return readings, estimates_figure(data), new
+    series = data.get("series") or {}
+    est = data.get("estimates") or {}
+    count = sum(len((series.get(c) or {}).get("t") or []) for c in cursor["traces"])
+    if not count and not est.get("t"):
+        return no_update, no_update, cursor
+    readings = Patch()
+    for channel, index in cursor["traces"].items():
+        s = series.get(channel) or {}
+        if channel != "forecast" and s.get("t"):
+            readings["data"][index]["x"].extend(_ms(s["t"]))
+            readings["data"][index]["y"].extend(s["y"])
+    if "forecast" in cursor["traces"] and data.get("latest"):
+        line, shapes = _forecast(data.get("latest"))
+        readings["data"][cursor["traces"]["forecast"]]["x"] = line["x"]
+        readings["data"][cursor["traces"]["forecast"]]["y"] = line["y"]
+        readings["layout"]["shapes"] = shapes
+    estimates: object = no_update
+    if est.get("t"):
+        estimates = Patch()
+        x = _ms(est["t"])
+        for row, (key, sd, _title) in enumerate(ESTIMATE_ROWS):
+            for offset, ys in enumerate(_band_columns(est, key, sd)):
+                estimates["data"][3 * row + offset]["x"].extend(x)  # type: ignore[index]
+                estimates["data"][3 * row + offset]["y"].extend(ys)  # type: ignore[index]
+    new = {**cursor, "after": data.get("cursor") or cursor["after"],
+           "appended": cursor["appended"] + count}  # fmt: skip
+    return readings, estimates, new
+
+
+def render_vessel(snapshot: dict | None) -> tuple[list, html.Ul]:
+    """Return the figures and flags of the snapshot's chosen vessel."""
+    snapshot = snapshot or {}
+    chosen = snapshot.get("chosen")
+    latest = (snapshot.get("latest") or {}).get(chosen) if chosen else None
+    drift = ((snapshot.get("runs") or {}).get(chosen) or {}).get("drift") or []
+    return figures(latest), flag_list(latest, drift)
 
 
 def vessel_options(snapshot: dict | None) -> list[dict[str, str]]:
@@ -149,16 +229,30 @@ def layout(first: dict | None = None) -> html.Section:
         html.Div(id=ids.VESSEL_FLAGS, className="flags"),
         dcc.Graph(id=ids.VESSEL_READINGS, config={"displaylogo": False}),
         dcc.Graph(id=ids.VESSEL_ESTIMATES, config={"displaylogo": False}),
+        dcc.Store(id=ids.VESSEL_CURSOR),
     ], className="view")  # fmt: skip
 
 
-def register(app: Dash) -> None:
-    """Attach the vessel view's callbacks to ``app``."""
+def register(app: Dash, load: Callable[[str | None, dict | None], dict]) -> None:
+    """Attach the vessel view's callbacks; ``load(vessel, after)`` reads the charts' data."""
     app.callback(
         Output(ids.VESSEL_FIGURES, "children"),
         Output(ids.VESSEL_FLAGS, "children"),
-        Output(ids.VESSEL_READINGS, "figure"),
-        Output(ids.VESSEL_ESTIMATES, "figure"),
         Input(ids.STORE, "data"),
     )(render_vessel)
     app.callback(Output(ids.VESSEL_PICK, "options"), Input(ids.STORE, "data"))(vessel_options)
+
+    @app.callback(
+        Output(ids.VESSEL_READINGS, "figure"),
+        Output(ids.VESSEL_ESTIMATES, "figure"),
+        Output(ids.VESSEL_CURSOR, "data"),
+        Input(ids.POLL, "n_intervals"),
+        Input(ids.VESSEL_PICK, "value"),
+        State(ids.VESSEL_CURSOR, "data"),
+    )
+    def charts(_n: int | None, vessel: str | None, cursor: dict | None):
+        same = cursor is not None and cursor.get("vessel") == vessel and cursor.get("after")
+        if same and cursor["appended"] >= MAX_APPENDED:
+            same = False
+        keep = cursor if same else None
+        return chart_update(load(vessel, keep["after"] if keep else None), keep)

@@ -15,9 +15,9 @@ import pytest
 from werkzeug.serving import make_server
 
 from dashboard.app import create_app
-from dashboard.data import envelope, load_snapshot
+from dashboard.data import chart_data, envelope, load_snapshot
 from dashboard.views.fleet import fleet_rows, render_fleet
-from dashboard.views.vessel import figures, render_vessel, vessel_options
+from dashboard.views.vessel import chart_update, figures, render_vessel, vessel_options
 from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.config import RigConfig, VesselSpec
 from monitor.service import Service
@@ -60,24 +60,58 @@ def test_snapshot_of_a_recorder_log(live_log) -> None:
     assert snap["vessels"] == ["kettle-a", "kettle-b"]
     assert snap["chosen"] == "kettle-b"
     assert set(snap["latest"]) == {"kettle-a", "kettle-b"}
-    detail = snap["detail"]
-    assert len(detail["series"]["water"]["t"]) == 301
-    assert detail["latest"]["water_mass_kg"] == pytest.approx(1.2, rel=0.05)  # the sim's 1.2 kg
+    assert snap["latest"]["kettle-b"]["water_mass_kg"] == pytest.approx(1.2, rel=0.05)  # the sim's
+    assert snap["runs"]["kettle-a"]["run"] == "1"  # recorded as the service stopped
+    data = chart_data(str(live_log), "kettle-b")
+    assert len(data["series"]["water"]["t"]) == 301
+    assert data["cursor"]["t"] == data["series"]["water"]["t"][-1]
+    newer = chart_data(str(live_log), "kettle-b", after={"t": data["cursor"]["t"] - 10.0,
+                                                         "est_t": data["cursor"]["est_t"]})
+    assert len(newer["series"]["water"]["t"]) == 10  # only what is newer than the cursor
+    assert newer["estimates"]["t"] == []
 
 
 def test_vessel_callbacks_are_pure_functions_of_the_store(live_log) -> None:
     snap = load_snapshot(str(live_log))
-    cards, flags, readings, estimates = render_vessel(snap)
+    cards, flags = render_vessel(snap)
     assert flags.children  # a list of sentences, or the one saying nothing needs attention
     text = " ".join(str(c.children) for c in cards)
     assert "°C" in text
     assert " kg" in text
     assert "W/K" in text
+    readings, estimates, cursor = chart_update(chart_data(str(live_log), "kettle-a"), None)
     assert isinstance(readings, go.Figure)
     assert readings.layout.uirevision == estimates.layout.uirevision
-    assert readings.layout.xaxis.title.text == "minutes from the latest reading"
+    assert readings.layout.xaxis.title.text == "time (UTC)"
+    assert cursor["traces"]["water"] == 0
+    assert len(estimates.data) == 9  # three rows of upper edge, lower edge, mean
     assert vessel_options(snap) == [{"label": v, "value": v} for v in ("kettle-a", "kettle-b")]
-    assert render_vessel(None)[2].layout.title.text == "no readings yet"
+    assert chart_update({}, None)[0].layout.title.text == "no readings yet"
+
+
+def test_new_readings_are_appended_with_a_patch_until_a_redraw_is_due(live_log) -> None:
+    from dash import Patch, no_update
+
+    from dashboard.views.vessel import MAX_APPENDED
+
+    whole = chart_data(str(live_log), "kettle-a")
+    _, _, cursor = chart_update(whole, None)
+    nothing_new = chart_data(str(live_log), "kettle-a", after=cursor["after"])
+    assert chart_update(nothing_new, cursor) == (no_update, no_update, cursor)
+    back = {"t": cursor["after"]["t"] - 5.0, "est_t": cursor["after"]["est_t"] - 5.0}
+    readings, estimates, after = chart_update(chart_data(str(live_log), "kettle-a", back), cursor)
+    assert isinstance(readings, Patch)
+    assert isinstance(estimates, Patch)
+    ops = readings.to_plotly_json()["operations"]
+    extended = [op for op in ops if op["operation"] == "Extend"]
+    assert {tuple(op["location"]) for op in extended} >= {("data", 0, "x"), ("data", 0, "y")}
+    water_x = next(op for op in extended if op["location"] == ["data", 0, "x"])["params"]["value"]
+    assert len(water_x) == 5
+    assert after["appended"] == cursor["appended"] + sum(
+        len(v["t"]) for k, v in chart_data(str(live_log), "kettle-a", back)["series"].items()
+        if k in cursor["traces"]
+    )  # fmt: skip
+    assert MAX_APPENDED > 0
 
 
 def test_the_countdown_says_not_reachable_and_why() -> None:
@@ -94,13 +128,19 @@ def test_fleet_puts_the_vessels_that_need_attention_first() -> None:
         "a": {"flags": [{"level": "notice", "message": "n"}], "phase": "idle"},
         "b": {"flags": [{"level": "alarm", "message": "dry boil"}], "phase": "boiling"},
         "c": {"flags": [], "phase": "heating", "time_to_target_s": 61.0},
-        "d": {"flags": [{"level": "warning", "message": "scaling"}], "phase": "idle"},
+        "d": {"flags": [], "phase": "idle"},
+    }, "runs": {
+        "d": {"run": "9", "start_t": 1.7e9, "scaling_index": 0.27,
+              "drift": [{"name": "scaling", "level": "warning", "message": "scaling"}]},
     }}  # fmt: skip
     rows = fleet_rows(snap)
-    assert [r["vessel"] for r in rows] == ["b", "d", "a", "c"]
+    assert [r["vessel"] for r in rows] == ["b", "d", "a", "c"]  # d: its last run's drift
     assert rows[0]["flags"] == ["dry boil"]
     assert rows[-1]["time_to_target"] == "1 min 01 s"
-    assert "▲ alarm" in str(render_fleet(snap))
+    assert rows[1]["last_run"] == "9 (2023-11-14 22:13)"
+    table = str(render_fleet(snap))
+    assert "▲ alarm" in table
+    assert "27%" in table
 
 
 def test_the_board_renders_in_headless_chromium(live_log) -> None:
