@@ -253,3 +253,39 @@ def test_the_board_serves_the_audit_report_of_a_run(live_log) -> None:
     missing = client.get("/report?vessel=kettle-a&run=9")
     assert missing.status_code == 404
     assert "has no run '9'" in missing.get_data(as_text=True)
+
+
+def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) -> None:
+    from dash import Patch
+
+    from dashboard.data import list_runs, replay_detail
+    from dashboard.views.replay import latest_at, run_options, scrub, show_run
+
+    runs = list_runs(str(live_log))
+    assert [(r["vessel"], r["run"]) for r in runs] == [("kettle-a", "1"), ("kettle-b", "1")]
+    options = run_options(runs)
+    assert options[0]["value"] == "kettle-a|1"
+    detail = replay_detail(str(live_log), "kettle-a", "1")
+    readings, _estimates, length, value, _marks, cards = show_run(detail)
+    assert length == 300  # the simulated 300 s run (our scenario)
+    assert value == 0
+    assert readings.layout.shapes[0].x0 == detail["series"]["water"]["t"][0] * 1000.0
+    moved, _, cards_later = scrub(detail, 200.0)
+    assert isinstance(moved, Patch)
+    start = detail["series"]["water"]["t"][0]
+    shapes = moved.to_plotly_json()["operations"][0]["params"]["value"]
+    assert shapes[0]["x0"] == (start + 200.0) * 1000.0
+    early, late = latest_at(detail, start + 20.0), latest_at(detail, start + 200.0)
+    assert late["water_c"] > early["water_c"] + 10.0  # the kettle heats (our scenario)
+    assert str(cards) != str(cards_later)
+
+
+def test_the_board_exports_one_run_as_csv(live_log) -> None:
+    app = create_app(str(live_log), poll_ms=60_000)
+    client = app.server.test_client()
+    page = client.get("/export.csv?log=0&vessel=kettle-b&run=1")
+    assert page.status_code == 200
+    text = page.get_data(as_text=True)
+    assert "kettle-b" in text
+    assert len(text.splitlines()) > 300  # a header, then one row a second of the 300 s run
+    assert client.get("/export.csv?vessel=kettle-b&run=7").status_code == 404

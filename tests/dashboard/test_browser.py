@@ -1,0 +1,189 @@
+"""The board in a real headless Chromium driven by selenium (Debian's chromium and driver).
+
+The live log is written by the service while the page is open, so these tests see
+the board update as a rig runs; screenshots go to out/test-artifacts/.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import shutil
+import threading
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import pytest
+from werkzeug.serving import make_server
+
+from dashboard.app import create_app
+from drivers.simulator import kettle_scenario, run_series, scenario_metadata
+from monitor.config import RigConfig, VesselSpec
+from monitor.service import Service
+from tests.monitor.test_service import ListDriver, run_until
+
+ARTIFACTS = Path(__file__).resolve().parents[2] / "out" / "test-artifacts"
+
+
+class PacedDriver(ListDriver):
+    """Yields its samples at ``rate`` instants per wall second (a rig run sped up)."""
+
+    def __init__(self, items, rate: float) -> None:
+        super().__init__(items, fail=False)
+        self.rate = rate
+
+    async def samples(self):
+        last_t = None
+        for item in self.items:
+            if item.t != last_t:
+                last_t = item.t
+                await asyncio.sleep(1.0 / self.rate)
+            yield item
+        await asyncio.Event().wait()
+
+
+@pytest.fixture
+def browser():
+    from selenium import webdriver
+    from selenium.webdriver.chrome.service import Service as DriverService
+
+    chromium, driver = shutil.which("chromium"), shutil.which("chromedriver")
+    assert chromium, "chromium is not installed (scripts/test-all installs it)"
+    assert driver, "chromedriver is not installed (Debian's chromium-driver)"
+    options = webdriver.ChromeOptions()
+    options.binary_location = chromium
+    for arg in ("--headless=new", "--no-sandbox", "--disable-gpu", "--window-size=1280,800"):
+        options.add_argument(arg)
+    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
+    web = webdriver.Chrome(options=options, service=DriverService(executable_path=driver))
+    yield web
+    web.quit()
+
+
+def serve(app):
+    server = make_server("127.0.0.1", 0, app.server, threaded=True)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    return server, thread, f"http://127.0.0.1:{server.server_port}/"
+
+
+def wait_for(check, timeout_s: float = 60.0, what: str = "") -> None:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        if check():
+            return
+        time.sleep(0.25)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+def severe(web) -> list[str]:
+    return [e["message"] for e in web.get_log("browser") if e["level"] == "SEVERE"]
+
+
+def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser) -> None:
+    from selenium.webdriver.common.by import By
+
+    # five clean kettle runs, then two with 0.14 mm of scale (our own scenario)
+    scenario = replace(kettle_scenario(), duration_s=240.0)
+    meta = {**scenario_metadata(scenario, 0), "element_sensor": "yes"}
+    samples = [s for b in run_series(scenario, [0.0] * 5 + [0.14] * 2, gap_s=1000.0) for s in b]
+    cut = next(i for i, s in enumerate(samples) if s.t >= samples[-1].t - 240.0)
+    log = tmp_path / "live.sqlite"
+    config = RigConfig("browser-test", "# one kettle\n", 101.325, None, (),
+                       (VesselSpec(scenario.vessel, meta, True, False),), 0.05)  # fmt: skip
+    first = samples[:cut]
+    service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(first, False)})
+    asyncio.run(run_until(service, lambda: service.stats.samples >= len(first)))
+    server, thread, url = serve(create_app(str(log), poll_ms=500))
+    try:
+        browser.get(url)
+        def fleet() -> str:
+            return browser.find_element(By.ID, "fleet-table").text
+
+        # after the first scaled run: the scaling index shows, the drift check is unsure yet
+        wait_for(lambda: "%" in fleet(), what="the scaling index in the fleet view")
+        assert "scale" in browser.find_element(By.ID, "vessel-flags").text
+        assert "● warning" not in fleet()
+
+        # the seventh run is played live, paced, while the page is open
+        def water_points() -> int:
+            return browser.execute_script(
+                "const g = document.getElementById('vessel-readings-chart')"
+                ".querySelector('.js-plotly-plot');"
+                "return g && g.data && g.data.length ? g.data[0].x.length : 0;")
+
+        wait_for(lambda: water_points() > 0, what="the readings chart")
+        before = water_points()
+        last = samples[cut:]
+        service2 = Service(config, str(log),
+                           extra_sources={"rig": lambda: PacedDriver(last, 40.0)})
+        loop = asyncio.new_event_loop()
+        runner2 = threading.Thread(target=loop.run_until_complete, args=(service2.run(),),
+                                   daemon=True)  # fmt: skip
+        runner2.start()
+        figures = browser.find_element(By.ID, "vessel-figures").text
+        wait_for(lambda: water_points() > before + 40, what="new readings appended live")
+        wait_for(lambda: browser.find_element(By.ID, "vessel-figures").text != figures,
+                 what="the figures to change")  # fmt: skip
+        ARTIFACTS.mkdir(parents=True, exist_ok=True)
+        browser.save_screenshot(str(ARTIFACTS / "board-live.png"))
+        browser.set_window_size(820, 1180)  # tablet width
+        time.sleep(1.0)
+        browser.save_screenshot(str(ARTIFACTS / "board-tablet.png"))
+        width = browser.execute_script("return document.documentElement.scrollWidth")
+        assert width <= 820  # nothing sticks out sideways at tablet width
+        loop.call_soon_threadsafe(service2.stop)
+        runner2.join(timeout=30)
+        loop.close()
+        # the second scaled run has ended: now it is a warning (or worse) on the board
+        wait_for(lambda: "● warning" in fleet() or "▲ alarm" in fleet(),
+                 what="the scaling warning in the fleet view")  # fmt: skip
+        assert "scal" in fleet().split("\n")[1]
+        ARTIFACTS.mkdir(parents=True, exist_ok=True)
+        browser.save_screenshot(str(ARTIFACTS / "board-scaling-flag.png"))
+        assert severe(browser) == []
+    finally:
+        server.shutdown()
+        thread.join(timeout=10)
+
+
+def test_replay_scrubbing_moves_the_cursor_on_both_charts(tmp_path, browser) -> None:
+    from selenium.webdriver.common.action_chains import ActionChains
+    from selenium.webdriver.common.by import By
+
+    scenario = replace(kettle_scenario(), duration_s=300.0)
+    meta = {**scenario_metadata(scenario, 1), "element_sensor": "yes"}
+    samples = [s for b in run_series(scenario, [0.0]) for s in b]
+    log = tmp_path / "replay.sqlite"
+    config = RigConfig("browser-test", "# one kettle\n", 101.325, None, (),
+                       (VesselSpec(scenario.vessel, meta, True, False),), 0.05)  # fmt: skip
+    service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(samples, False)})
+    asyncio.run(run_until(service, lambda: service.stats.samples >= len(samples)))
+    server, thread, url = serve(create_app(str(log), poll_ms=60_000))
+    try:
+        browser.get(url)
+
+        def cursor_x(chart: str) -> str | None:
+            return browser.execute_script(
+                f"const g = document.getElementById('{chart}').querySelector('.js-plotly-plot');"
+                "return g && g.layout && g.layout.shapes && g.layout.shapes.length ?"
+                " String(g.layout.shapes[0].x0) : null;")
+
+        wait_for(lambda: cursor_x("replay-readings-chart") is not None, what="the replay charts")
+        start = cursor_x("replay-readings-chart")
+        rail = browser.find_element(By.CSS_SELECTOR, ".scrubber")
+        offset = int(rail.size["width"] * 0.2)  # from the centre: to about 70 % of the run
+        ActionChains(browser).move_to_element_with_offset(rail, offset, 0).click().perform()
+        wait_for(lambda: cursor_x("replay-readings-chart") != start, what="the cursor to move")
+        wait_for(lambda: cursor_x("replay-estimates-chart") == cursor_x("replay-readings-chart"),
+                 what="both charts' cursors together")  # fmt: skip
+        assert float(cursor_x("replay-readings-chart")) > float(start)
+        links = browser.find_element(By.ID, "replay-links").text
+        assert "CSV" in links
+        assert "report" in links
+        ARTIFACTS.mkdir(parents=True, exist_ok=True)
+        browser.save_screenshot(str(ARTIFACTS / "board-replay.png"))
+        assert severe(browser) == []
+    finally:
+        server.shutdown()
+        thread.join(timeout=10)
