@@ -68,10 +68,16 @@ def serve(app):
 
 
 def wait_for(check, timeout_s: float = 60.0, what: str = "") -> None:
+    """Wait until ``check()`` is true; an element not there yet counts as not yet."""
+    from selenium.common.exceptions import WebDriverException
+
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
-        if check():
-            return
+        try:
+            if check():
+                return
+        except WebDriverException:
+            pass  # the page is still loading (Dash renders the layout after its scripts)
         time.sleep(0.25)
     raise AssertionError(f"timed out waiting for {what}")
 
