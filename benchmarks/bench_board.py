@@ -58,7 +58,7 @@ def make_log(path: str, days: float) -> int:
             ambient = 20.0 + 2.0 * math.sin(2 * math.pi * i / 86400.0)
             element = water + (50.0 if heating else 0.5)
             power = 3000.0 if heating else 0.0
-            rec.add_samples([Sample(t, "heater-1", ch, v, Quality.GOOD, "bench")
+            rec.add_samples([Sample(t, "heater-1", ch, v, Quality.OK, "bench")
                              for ch, v in (("water", water), ("element", element),
                                            ("ambient", ambient), ("power", power))])  # fmt: skip
             count += 4

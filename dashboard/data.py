@@ -106,7 +106,10 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
 def _sqlite_snapshot(path: str, vessel: str | None) -> dict[str, object]:
     conn = _connect(path)
     try:
-        names = [v for (v,) in conn.execute("SELECT DISTINCT vessel FROM samples ORDER BY vessel")]
+        # the vessels the service declared (cheap), else those with samples (a scan)
+        names = [v for (v,) in conn.execute("SELECT DISTINCT vessel FROM vessels ORDER BY vessel")]
+        if not names:
+            names = [v for (v,) in conn.execute("SELECT DISTINCT vessel FROM samples ORDER BY 1")]
         latest: dict[str, object] = {}
         for row in conn.execute(
             f"SELECT {', '.join(_EST_KEYS)}, detail, vessel FROM estimates WHERE id IN "
@@ -116,7 +119,8 @@ def _sqlite_snapshot(path: str, vessel: str | None) -> dict[str, object]:
         sql = "SELECT vessel, run, start_t, end_t, summary FROM runs ORDER BY id"
         runs = [{"vessel": v, "run": r, "start_t": s, "end_t": e, "summary": json.loads(j)}
                 for v, r, s, e, j in conn.execute(sql)]  # fmt: skip
-        (last_t,) = conn.execute("SELECT max(t) FROM samples").fetchone()
+        last = conn.execute("SELECT t FROM samples ORDER BY id DESC LIMIT 1").fetchone()
+        last_t = last[0] if last else None
     finally:
         conn.close()
     chosen = vessel if vessel in names else (names[0] if names else None)
