@@ -129,10 +129,16 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         app, lambda v, after: data.chart_data(log_path, v, after, csv_replay=csv_replay)
     )
     maintenance.register(app, lambda chosen: memo.get(data.run_history, log_path, chosen))  # type: ignore[arg-type,return-value]
+    def runs_of(path: str) -> list:  # each log is read and split once per file version
+        return memo.get(data.split_log, path)  # type: ignore[return-value]
+
+    def replayed(path: str, vessel_id: str, run: str) -> dict:
+        return data.replay_detail(path, vessel_id, run, runs_of(path))
+
     replay.register(
         app,
-        lambda i: memo.get(data.list_runs, logs[i]),  # type: ignore[arg-type,return-value]
-        lambda i, v, r: memo.get(data.replay_detail, logs[i], v, r),  # type: ignore[arg-type,return-value]
+        lambda i: data.list_runs(logs[i], runs_of(logs[i])),
+        lambda i, v, r: memo.get(replayed, logs[i], v, r),  # type: ignore[return-value]
     )
 
     def pick_log() -> str:

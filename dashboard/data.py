@@ -260,18 +260,25 @@ def replay_one(run) -> dict[str, object]:
             "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
 
 
-def list_runs(path: str) -> list[dict[str, object]]:
-    """Return the runs of a log as the replay splits them: vessel, label, start and end (Unix s).
+def split_log(path: str) -> list:
+    """Return the runs of a log as the replay splits them (monitor.replay.Run objects).
 
     Reads the whole log (the same path as ``ebullio replay``); the board keeps the
-    answer per file version.
+    answer per file version and hands it to :func:`list_runs` and :func:`replay_detail`.
     """
     from monitor.logs import read_log
     from monitor.replay import split_runs
 
-    runs, _ = split_runs(read_log(path))
+    return split_runs(read_log(path))[0]
+
+
+def list_runs(path: str, runs: list | None = None) -> list[dict[str, object]]:
+    """Return the runs of a log: vessel, label, start and end (Unix s), steps.
+
+    ``runs`` is :func:`split_log` of the log when the caller has it already.
+    """
     out = []
-    for run in runs:
+    for run in split_log(path) if runs is None else runs:
         start = run.log.start_epoch_s or 0.0
         if run.rows:
             out.append({"vessel": run.vessel, "run": run.label,
@@ -280,17 +287,18 @@ def list_runs(path: str) -> list[dict[str, object]]:
     return out
 
 
-def replay_detail(path: str, vessel: str, label: str) -> dict[str, object]:
+def replay_detail(
+    path: str, vessel: str, label: str, runs: list | None = None
+) -> dict[str, object]:
     """Return one run of a log replayed through a fresh estimator, for the replay view.
 
     The figures are the replay's (as ``ebullio replay`` gives them), not the ones the
-    live service recorded. Raises LogFormatError when the log has no such run.
+    live service recorded. ``runs`` is :func:`split_log` of the log when the caller has
+    it already. Raises LogFormatError when the log has no such run.
     """
     from drivers.errors import LogFormatError
-    from monitor.logs import read_log
-    from monitor.replay import split_runs
 
-    runs, _ = split_runs(read_log(path))
+    runs = split_log(path) if runs is None else runs
     run = next((r for r in runs if r.vessel == vessel and r.label == label), None)
     if run is None:
         raise LogFormatError(f"{path}: vessel {vessel!r} has no run {label!r}")

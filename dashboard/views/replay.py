@@ -50,8 +50,8 @@ def latest_at(detail: dict, t_s: float) -> dict | None:
     if i < 0:
         return None
     out = {k: v[i] for k, v in est.items() if isinstance(v, list) and len(v) == len(times)}
-    water = (detail.get("series") or {}).get("power") or {}
-    pt, py = water.get("t") or [], water.get("y") or []
+    power = (detail.get("series") or {}).get("power") or {}
+    pt, py = power.get("t") or [], power.get("y") or []
     j = bisect_right(pt, t_s) - 1
     out["power_w"] = py[j] if j >= 0 else None
     return out

@@ -82,6 +82,12 @@ def wait_for(check, timeout_s: float = 60.0, what: str = "") -> None:
     raise AssertionError(f"timed out waiting for {what}")
 
 
+def one_kettle(vessel: str, meta: dict) -> RigConfig:
+    """A rig configuration of one kettle with an element thermocouple (our own)."""
+    return RigConfig("browser-test", "# one kettle\n", 101.325, None, (),
+                     (VesselSpec(vessel, meta, True, False),), 0.05)  # fmt: skip
+
+
 def severe(web) -> list[str]:
     return [e["message"] for e in web.get_log("browser") if e["level"] == "SEVERE"]
 
@@ -95,8 +101,7 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
     samples = [s for b in run_series(scenario, [0.0] * 5 + [0.14] * 2, gap_s=1000.0) for s in b]
     cut = next(i for i, s in enumerate(samples) if s.t >= samples[-1].t - 240.0)
     log = tmp_path / "live.sqlite"
-    config = RigConfig("browser-test", "# one kettle\n", 101.325, None, (),
-                       (VesselSpec(scenario.vessel, meta, True, False),), 0.05)  # fmt: skip
+    config = one_kettle(scenario.vessel, meta)
     first = samples[:cut]
     service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(first, False)})
     asyncio.run(run_until(service, lambda: service.stats.samples >= len(first)))
@@ -133,7 +138,7 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
                  what="the figures to change")  # fmt: skip
         ARTIFACTS.mkdir(parents=True, exist_ok=True)
         browser.save_screenshot(str(ARTIFACTS / "board-live.png"))
-        browser.set_window_size(820, 1180)  # tablet width
+        browser.set_window_size(820, 1180)  # a tablet in portrait (common practice, no source)
         time.sleep(1.0)
         browser.save_screenshot(str(ARTIFACTS / "board-tablet.png"))
         width = browser.execute_script("return document.documentElement.scrollWidth")
@@ -161,8 +166,7 @@ def test_replay_scrubbing_moves_the_cursor_on_both_charts(tmp_path, browser) -> 
     meta = {**scenario_metadata(scenario, 1), "element_sensor": "yes"}
     samples = [s for b in run_series(scenario, [0.0]) for s in b]
     log = tmp_path / "replay.sqlite"
-    config = RigConfig("browser-test", "# one kettle\n", 101.325, None, (),
-                       (VesselSpec(scenario.vessel, meta, True, False),), 0.05)  # fmt: skip
+    config = one_kettle(scenario.vessel, meta)
     service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(samples, False)})
     asyncio.run(run_until(service, lambda: service.stats.samples >= len(samples)))
     server, thread, url = serve(create_app(str(log), poll_ms=60_000))
