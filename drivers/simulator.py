@@ -895,6 +895,18 @@ class PacedClock:
         delay = self._t0_mono + elapsed_s / self.speed - time.monotonic()
         await asyncio.sleep(max(delay, 0.0))
 
+    def slip(self, elapsed_s: float) -> float:
+        """Move the clock's start on by however late it is for ``elapsed_s``; return that (s).
+
+        Called after :meth:`wait_until`, a stalled run then goes on at pace from where
+        it stalled, instead of catching up in a burst of back-to-back instants.
+        """
+        late_s = time.monotonic() - (self._t0_mono + elapsed_s / self.speed)
+        if late_s > 0.0:
+            self._t0_mono += late_s
+            return late_s
+        return 0.0
+
 
 #: ``sim://`` URL options that change the scenario, and the Scenario field each sets.
 _URL_OPTIONS = (

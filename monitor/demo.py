@@ -9,11 +9,17 @@ configuration (the demo writes one and records it in the log).
 
 Time: the rig runs ``speed`` times faster than real time. The logger stamps its
 lines with the simulated clock and the drivers are handed the same clock, so the
-log reads as if the run had happened at real speed. The meter is polled four times
-per simulated sample interval and, like a real meter, shows the power flowing now:
-at each instant the logger's line goes out first, then the meter takes the power of
-the interval that starts. The filter takes the latest power reading at each water
-reading, so every step gets the power of its own interval.
+log reads as if the run had happened at real speed. The clock follows the logger:
+it is the time of the line last written plus the real time since at speed, never
+past the next line. When the machine is busy and the logger is late, the rig
+pauses (:meth:`PacedClock.slip`) instead of catching up in a burst of lines, so a
+meter reading is never stamped several lines after it was answered.
+
+The meter is polled four times per simulated sample interval and, like a real
+meter, shows the power flowing now, and an energy counter that climbs through each
+interval (it is set at each read from the interval's mean power). The service
+interpolates the counter at each water reading, so every filter step gets the
+energy of its own interval whatever the phase of the polls.
 
 This alignment matters: the estimator is sensitive to power that lags the
 temperatures by one sample at a switch (see DEVELOPERS.md, known gaps).
@@ -153,9 +159,27 @@ async def run_demo(
     # simulated time starts when the rig does, once the service is listening; until
     # then the clock is the wall clock (the meter reads zeros)
     base = {"wall": time.time(), "mono": time.monotonic(), "speed": 1.0}
+    # Once the rig runs, the clock follows the logger: it is the simulated time of the
+    # instant last written plus the real time since then at speed, but never past the
+    # next instant. A busy machine that makes the logger late makes the clock late
+    # too, so the meter's readings keep their place between the logger's lines.
+    written: dict[str, float] = {}
+    step_s = scenario.sample_interval_s
 
     def sim_now() -> float:
+        if "t" in written:
+            ahead = (time.monotonic() - written["mono"]) * speed
+            return written["t"] + min(ahead, 0.999 * step_s)
         return base["wall"] + (time.monotonic() - base["mono"]) * base["speed"]
+
+    # A real meter's energy counter climbs through an interval, so the counter is
+    # set at each read from the power of the interval under way (not held as a step).
+    ramp: dict[str, float] = {}
+
+    def energy_now(meter: PowerMeterEmulator) -> None:
+        if "end_t" in ramp:
+            to_go_s = min(max(ramp["end_t"] - sim_now(), 0.0), step_s)
+            meter.update(energy_wh=ramp["end_wh"] - ramp["power_w"] * to_go_s / 3600.0)
 
     rig = SimulatedRig(scenario, seed=seed, source="demo")
     master_fd, slave_path = open_pty_pair()
@@ -164,7 +188,7 @@ async def run_demo(
     poll_s = scenario.sample_interval_s / speed / 4.0
     last_said = -1e18
     try:
-        async with PowerMeterEmulator("modbus+tcp://127.0.0.1:0") as meter:
+        async with PowerMeterEmulator("modbus+tcp://127.0.0.1:0", on_read=energy_now) as meter:
             text = demo_config_text(scenario, seed, slave_path, meter.url, poll_s)
             config = parse_config(text, "<demo configuration>", {})
 
@@ -197,14 +221,18 @@ async def run_demo(
                 instants = rig.run()
                 batch = next(instants)
                 for upcoming in (*instants, None):
-                    await clock.wait_until(batch[0].t - scenario.start_epoch_s if batch else 0.0)
+                    at_s = batch[0].t - scenario.start_epoch_s if batch else 0.0
+                    await clock.wait_until(at_s)
+                    clock.slip(at_s)  # a stall pauses the rig rather than bunching its lines
                     if stopping.is_set() or task.done():
                         break
                     line = [s for s in batch if s.channel in LOGGER_CHANNELS]
                     if line:
                         await logger.write(render_line(line, "keyvalue", logger.time_shift_s))
+                    if batch:
+                        written.update(t=batch[0].t + logger.time_shift_s, mono=time.monotonic())
                     if upcoming is not None:
-                        _feed(upcoming, meter)
+                        _feed(upcoming, meter, ramp, logger.time_shift_s)
                     batch = upcoming
                 await asyncio.sleep(max(0.3, 3 * poll_s))  # the last line and poll get through
             finally:
@@ -218,8 +246,17 @@ async def run_demo(
     return stats, config
 
 
-def _feed(batch: list[Sample], meter: PowerMeterEmulator) -> None:
-    """Hold the instant's power meter readings in the simulated meter's registers."""
+def _feed(
+    batch: list[Sample], meter: PowerMeterEmulator, ramp: dict[str, float], shift_s: float
+) -> None:
+    """Hold the instant's power meter readings in the simulated meter's registers.
+
+    The energy counter's value at the instant and the interval's mean power go to
+    ``ramp`` (the counter is set from them at each read); the rest is held as is.
+    """
     values = {METER_KEYS[s.channel]: s.value for s in batch if s.channel in METER_KEYS}
+    if "energy_wh" in values and "power_w" in values and batch:
+        ramp.update(end_t=batch[0].t + shift_s, end_wh=values.pop("energy_wh"),
+                    power_w=values["power_w"])  # fmt: skip
     if values:
         meter.update(**values)

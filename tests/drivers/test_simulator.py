@@ -225,6 +225,16 @@ def test_driver_face_matches_run_and_paces_in_real_time():
     assert abs(paced[0].t - time.time()) < 60.0  # stamped with the wall clock
 
 
+def test_a_paced_clock_that_slips_goes_on_at_pace_instead_of_catching_up():
+    clock = PacedClock(speed=100.0)
+    time.sleep(0.05)  # a stall: 5 simulated s late for the instant at 0 s
+    assert clock.slip(0.0) == pytest.approx(0.05, abs=0.03)
+    assert clock.slip(0.0) < 0.01  # on time now (bar the microseconds since)
+    started = time.monotonic()
+    asyncio.run(clock.wait_until(2.0))  # 2 simulated s from the slipped start: 20 ms
+    assert time.monotonic() - started > 0.015  # waited, not returned at once to catch up
+
+
 def test_driver_outside_context_raises():
     drv = SimulatedRigDriver("sim://?seed=1")
 
