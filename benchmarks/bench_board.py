@@ -150,8 +150,11 @@ def main() -> int:
             return vessel.chart_update(data.chart_data(path, "heater-1", after), cursor)
 
         ms, patch = timed(charts_patch)
-        record("vessel charts, 2 s update (Patch)", ms,
-               [p.to_plotly_json() if hasattr(p, "to_plotly_json") else None for p in patch[:2]])
+        record(
+            "vessel charts, 2 s update (Patch)",
+            ms,
+            [p.to_plotly_json() if hasattr(p, "to_plotly_json") else None for p in patch[:2]],
+        )
         ms, history = timed(data.run_history, path, "heater-1")
         record("maintenance history", ms, maintenance.history_figure(history))
         if not args.no_replay:

@@ -129,6 +129,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         app, lambda v, after: data.chart_data(log_path, v, after, csv_replay=csv_replay)
     )
     maintenance.register(app, lambda chosen: memo.get(data.run_history, log_path, chosen))  # type: ignore[arg-type,return-value]
+
     def runs_of(path: str) -> list:  # each log is read and split once per file version
         return memo.get(data.split_log, path)  # type: ignore[return-value]
 

@@ -21,9 +21,7 @@ from monitor import cli
 LOOPBACK = ("127.0.0.1", "localhost", "::1")
 
 
-def serve_board(
-    log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None, more_logs=()
-):
+def serve_board(log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None, more_logs=()):
     """Start the board over ``log_path`` in a thread; return the (werkzeug) server.
 
     ``auth`` is (user, password) for basic auth, or None; ``more_logs`` are offered in

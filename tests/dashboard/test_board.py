@@ -65,8 +65,11 @@ def test_snapshot_of_a_recorder_log(live_log) -> None:
     data = chart_data(str(live_log), "kettle-b")
     assert len(data["series"]["water"]["t"]) == 301
     assert data["cursor"]["t"] == data["series"]["water"]["t"][-1]
-    newer = chart_data(str(live_log), "kettle-b", after={"t": data["cursor"]["t"] - 10.0,
-                                                         "est_t": data["cursor"]["est_t"]})
+    newer = chart_data(
+        str(live_log),
+        "kettle-b",
+        after={"t": data["cursor"]["t"] - 10.0, "est_t": data["cursor"]["est_t"]},
+    )
     assert len(newer["series"]["water"]["t"]) == 10  # only what is newer than the cursor
     assert newer["estimates"]["t"] == []
 

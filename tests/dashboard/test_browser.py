@@ -108,6 +108,7 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
     server, thread, url = serve(create_app(str(log), poll_ms=500))
     try:
         browser.get(url)
+
         def fleet() -> str:
             return browser.find_element(By.ID, "fleet-table").text
 
@@ -121,13 +122,13 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
             return browser.execute_script(
                 "const g = document.getElementById('vessel-readings-chart')"
                 ".querySelector('.js-plotly-plot');"
-                "return g && g.data && g.data.length ? g.data[0].x.length : 0;")
+                "return g && g.data && g.data.length ? g.data[0].x.length : 0;"
+            )
 
         wait_for(lambda: water_points() > 0, what="the readings chart")
         before = water_points()
         last = samples[cut:]
-        service2 = Service(config, str(log),
-                           extra_sources={"rig": lambda: PacedDriver(last, 40.0)})
+        service2 = Service(config, str(log), extra_sources={"rig": lambda: PacedDriver(last, 40.0)})
         loop = asyncio.new_event_loop()
         runner2 = threading.Thread(target=loop.run_until_complete, args=(service2.run(),),
                                    daemon=True)  # fmt: skip
@@ -177,7 +178,8 @@ def test_replay_scrubbing_moves_the_cursor_on_both_charts(tmp_path, browser) -> 
             return browser.execute_script(
                 f"const g = document.getElementById('{chart}').querySelector('.js-plotly-plot');"
                 "return g && g.layout && g.layout.shapes && g.layout.shapes.length ?"
-                " String(g.layout.shapes[0].x0) : null;")
+                " String(g.layout.shapes[0].x0) : null;"
+            )
 
         wait_for(lambda: cursor_x("replay-readings-chart") is not None, what="the replay charts")
         start = cursor_x("replay-readings-chart")
