@@ -2,7 +2,7 @@
 
 Run from the repository root:
 
-    .venv/bin/python benchmarks/bench_board.py [--days 7] [--no-replay]
+    .venv/bin/python benchmarks/bench_board.py [--days 7] [--no-replay] [--log PATH]
 
 The log is made here: one storage water heater (our own invented demo data, not a
 simulation: a thermostat saw-tooth on the water, the element above it while on, a
@@ -99,12 +99,18 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--days", type=float, default=7.0)
     parser.add_argument("--no-replay", action="store_true", help="skip the replay view")
+    parser.add_argument(
+        "--log", help="keep the invented log at this path and reuse it when it exists"
+    )
     args = parser.parse_args()
     out: dict[str, object] = {"days": args.days}
     with tempfile.TemporaryDirectory() as tmp:
-        path = str(Path(tmp) / "week.sqlite")
+        path = args.log or str(Path(tmp) / "week.sqlite")
         t0 = time.perf_counter()
-        out["samples"] = make_log(path, args.days)
+        if args.log and Path(path).exists():
+            out["samples"] = "reused"
+        else:
+            out["samples"] = make_log(path, args.days)
         out["make_log_s"] = round(time.perf_counter() - t0, 1)
         out["log_mib"] = round(Path(path).stat().st_size / 2**20, 1)
 

@@ -17,6 +17,8 @@ import sqlite3
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
+import numpy as np
+
 from monitor.recorder import is_recorder_log
 
 #: Points per series sent to the browser at most (about two per horizontal pixel).
@@ -35,20 +37,19 @@ def envelope(
     """
     if len(t) <= max_points:
         return list(t), list(y)
-    buckets = max_points // 2
-    size = math.ceil(len(t) / buckets)
-    out_t: list[float] = []
-    out_y: list[float | None] = []
-    for start in range(0, len(t), size):
-        idx = [i for i in range(start, min(start + size, len(t))) if y[i] is not None]
-        if not idx:
-            continue
-        lo = min(idx, key=lambda i: y[i])  # type: ignore[arg-type,return-value]
-        hi = max(idx, key=lambda i: y[i])  # type: ignore[arg-type,return-value]
-        for i in sorted({lo, hi}):
-            out_t.append(t[i])
-            out_y.append(y[i])
-    return out_t, out_y
+    ys = np.array(y, dtype=float)  # None becomes NaN
+    keep = ~np.isnan(ys)
+    ts, ys = np.asarray(t, dtype=float)[keep], ys[keep]
+    if len(ys) <= max_points:
+        return ts.tolist(), ys.tolist()
+    size = math.ceil(len(ys) / (max_points // 2))
+    buckets = math.ceil(len(ys) / size)
+    pad = buckets * size - len(ys)
+    base = np.arange(buckets) * size
+    lo = np.concatenate([ys, np.full(pad, np.inf)]).reshape(buckets, size).argmin(axis=1)
+    hi = np.concatenate([ys, np.full(pad, -np.inf)]).reshape(buckets, size).argmax(axis=1)
+    picked = np.unique(np.concatenate([base + lo, base + hi]))  # sorted: time order
+    return ts[picked].tolist(), ys[picked].tolist()
 
 
 def _connect(path: str) -> sqlite3.Connection:
@@ -171,8 +172,11 @@ def chart_data(
     conn = _connect(path)
     try:
         if after is None:
-            (last,) = conn.execute("SELECT max(t) FROM samples WHERE vessel = ?",
-                                   (vessel,)).fetchone()  # fmt: skip
+            # the newest sample of any channel: max(t) per channel is one index probe
+            # each, where max(t) over the vessel would read all its index entries
+            sql = "SELECT max(t) FROM samples WHERE vessel = ? AND channel = ?"
+            ends = [conn.execute(sql, (vessel, ch)).fetchone()[0] for ch in CHANNELS]
+            last = max((e for e in ends if e is not None), default=None)
             since = since_est = (last or 0.0) - window_s
             op = ">="
         else:

@@ -3,6 +3,21 @@
 from __future__ import annotations
 
 LEVEL_RANK = {"alarm": 3, "warning": 2, "notice": 1}
+
+#: The live charts' look (our own: white ground, light grid, plain axis lines).
+CHART_GROUND = {
+    "paper_bgcolor": "#FFFFFF",
+    "plot_bgcolor": "#FFFFFF",
+    "font": {"family": "system-ui, sans-serif", "size": 12, "color": "#222222"},
+}
+
+
+def chart_axis(**extra: object) -> dict[str, object]:
+    """Return one axis of the board's charts in its look, with ``extra`` settings on top."""
+    return {"gridcolor": "#E3E3E3", "zerolinecolor": "#C4C4C4", "linecolor": "#8A8A8A",
+            "showline": True, "ticks": "outside", "automargin": True, **extra}  # fmt: skip
+
+
 #: Level shown with a word and a shape, never by colour alone.
 LEVEL_MARK = {"alarm": "▲ alarm", "warning": "● warning", "notice": "○ notice", "ok": "ok"}
 

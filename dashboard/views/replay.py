@@ -61,9 +61,9 @@ def show_run(detail: dict) -> tuple:
     """Return the charts at the start of a run, the scrubber's range and the figures."""
     start, end = _span(detail)
     readings, _ = readings_figure({"series": detail.get("series")})
-    readings.update_layout(uirevision=UIREVISION, shapes=[cursor_shape(start)])
     estimates = estimates_figure(detail)
-    estimates.update_layout(uirevision=UIREVISION, shapes=[cursor_shape(start)])
+    for fig in (readings, estimates):
+        fig["layout"].update(uirevision=UIREVISION, shapes=[cursor_shape(start)])
     length = max(1.0, end - start)
     marks = {round(length * f): f"{length * f / 60.0:.0f} min" for f in (0, 0.25, 0.5, 0.75, 1)}
     return readings, estimates, round(length), 0, marks, figures(latest_at(detail, start))

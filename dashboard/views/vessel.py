@@ -4,12 +4,10 @@ from __future__ import annotations
 
 from collections.abc import Callable
 
-import plotly.graph_objects as go
 from dash import Dash, Input, Output, Patch, State, dcc, html, no_update
-from plotly.subplots import make_subplots
 
 from dashboard import ids
-from dashboard.theme import LEVEL_MARK, duration_text
+from dashboard.theme import CHART_GROUND, LEVEL_MARK, chart_axis, duration_text
 from monitor import plots
 from monitor.plots import PALETTE as COLOURS
 
@@ -90,39 +88,49 @@ def _forecast(latest: dict | None) -> tuple[dict, list[dict]]:
     return {"x": [now * 1000.0, (now + eta) * 1000.0], "y": [water, target]}, [shape]
 
 
-def readings_figure(detail: dict | None) -> tuple[go.Figure, dict[str, int]]:
+def _line(x: list, y: list, **style: object) -> dict[str, object]:
+    return {"type": "scatter", "mode": "lines", "x": x, "y": y, **style}
+
+
+def readings_figure(detail: dict | None) -> tuple[dict, dict[str, int]]:
     """Return temperatures and power against time (UTC) with the forecast to the target
-    ahead of now and its 90 % interval as a band; and which trace holds which series."""
+    ahead of now and its 90 % interval as a band; and which trace holds which series.
+
+    The figure is a plain Plotly figure dict (what Dash sends): building ``go.Figure``
+    objects validated every point and cost most of a first draw on a long log.
+    """
     detail = detail or {}
     series = detail.get("series") or {}
-    fig = make_subplots(specs=[[{"secondary_y": True}]])
+    data: list[dict[str, object]] = []
     traces: dict[str, int] = {}
     for channel in ("water", "element", "ambient"):
         s = series.get(channel) or {}
         if s.get("t"):
-            traces[channel] = len(fig.data)
-            fig.add_trace(go.Scatter(x=_ms(s["t"]), y=s["y"], name=f"{channel} (°C)",
-                                     mode="lines", line={"color": COLOURS[channel]}))  # fmt: skip
+            traces[channel] = len(data)
+            data.append(_line(_ms(s["t"]), list(s["y"]), name=f"{channel} (°C)",
+                              line={"color": COLOURS[channel]}))  # fmt: skip
     p = series.get("power") or {}
     if p.get("t"):
-        traces["power"] = len(fig.data)
-        fig.add_trace(go.Scatter(x=_ms(p["t"]), y=p["y"], name="power (W)", mode="lines",
-                                 line={"color": COLOURS["power"], "width": 1, "dash": "dot"}),
-                      secondary_y=True)  # fmt: skip
+        traces["power"] = len(data)
+        data.append(_line(_ms(p["t"]), list(p["y"]), name="power (W)", yaxis="y2",
+                          line={"color": COLOURS["power"], "width": 1, "dash": "dot"}))  # fmt: skip
     if not traces:
-        fig.update_layout(uirevision=UIREVISION, title="no readings yet")
-        return fig, traces
+        layout = {**CHART_GROUND, "uirevision": UIREVISION, "title": {"text": "no readings yet"}}
+        return {"data": [], "layout": layout}, traces
     line, shapes = _forecast(detail.get("latest"))
-    traces["forecast"] = len(fig.data)
-    fig.add_trace(go.Scatter(**line, name="forecast to target (90 % band)", mode="lines",
-                             line={"color": COLOURS["forecast"], "dash": "dash"}))  # fmt: skip
-    fig.update_xaxes(title_text="time (UTC)", type="date")
-    fig.update_yaxes(title_text="temperature (°C)", secondary_y=False)
-    fig.update_yaxes(title_text="power (W)", secondary_y=True, showgrid=False)
-    margin = {"l": 60, "r": 60, "t": 30, "b": 50}
-    fig.update_layout(uirevision=UIREVISION, template="plotly_white", height=380, shapes=shapes,
-                      margin=margin, legend={"orientation": "h"})  # fmt: skip
-    return fig, traces
+    traces["forecast"] = len(data)
+    data.append(_line(line["x"], line["y"], name="forecast to target (90 % band)",
+                      line={"color": COLOURS["forecast"], "dash": "dash"}))  # fmt: skip
+    layout = {
+        **CHART_GROUND, "uirevision": UIREVISION, "height": 380, "shapes": shapes,
+        "margin": {"l": 60, "r": 60, "t": 40, "b": 50},
+        "legend": {"orientation": "h", "x": 0.0, "y": 1.02, "yanchor": "bottom"},
+        "xaxis": chart_axis(type="date", title={"text": "time (UTC)"}),
+        "yaxis": chart_axis(title={"text": "temperature (°C)"}),
+        "yaxis2": chart_axis(title={"text": "power (W)"}, overlaying="y", side="right",
+                             showgrid=False, rangemode="tozero", tickmode="auto"),
+    }  # fmt: skip
+    return {"data": data, "layout": layout}, traces
 
 
 #: The estimates chart's rows: the figure, its σ, and the row's title.
@@ -140,25 +148,52 @@ def _band_columns(est: dict, key: str, sd: str) -> tuple[list, list, list]:
     return hi, lo, list(ys)
 
 
-def estimates_figure(detail: dict | None) -> go.Figure:
+#: Vertical gap between the estimates chart's rows, as a fraction of its plot height.
+ROW_GAP = 0.08
+
+
+def _band(x: list, key: str, sd: str, est: dict, axes: tuple[str, str]) -> list[dict]:
+    """Return a figure's three traces: its ±2σ band's upper edge, lower edge, and mean."""
+    hi, lo, mean = _band_columns(est, key, sd)
+    where = {"xaxis": axes[0], "yaxis": axes[1]}
+    edge = {"line": {"width": 0}, "showlegend": False, "hoverinfo": "skip", **where}
+    return [_line(x, hi, **edge),
+            _line(x, lo, fill="tonexty", fillcolor=COLOURS["band"], **edge),
+            _line(x, mean, showlegend=False, name=key, line={"color": COLOURS["water"]},
+                  **where)]  # fmt: skip
+
+
+def estimates_figure(detail: dict | None) -> dict:
     """Return the estimates converging over time, each with its ±2σ band.
 
     Each row holds three traces (upper edge, lower edge, mean) in that order, present
-    even when empty, so that updates can append to them by position.
+    even when empty, so that updates can append to them by position. The rows share
+    the time axis. A plain figure dict, as :func:`readings_figure`.
     """
     est = (detail or {}).get("estimates") or {}
-    fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.08,
-                        subplot_titles=[title for *_, title in ESTIMATE_ROWS])  # fmt: skip
     x = _ms(est.get("t") or [])
-    for row, (key, sd, _title) in enumerate(ESTIMATE_ROWS, start=1):
-        ys = est.get(key) or [None] * len(x)
-        sds = est.get(sd) or [None] * len(x)
-        plots.add_band(fig, x, ys, sds, row=row)
-    fig.update_xaxes(type="date")
-    fig.update_xaxes(title_text="time (UTC)", row=3, col=1)
-    fig.update_layout(uirevision=UIREVISION, template="plotly_white", height=520,
-                      margin={"l": 60, "r": 30, "t": 40, "b": 50})  # fmt: skip
-    return fig
+    rows = len(ESTIMATE_ROWS)
+    height = (1.0 - ROW_GAP * (rows - 1)) / rows
+    data: list[dict] = []
+    layout: dict[str, object] = {
+        **CHART_GROUND, "uirevision": UIREVISION, "height": 520, "showlegend": False,
+        "margin": {"l": 60, "r": 30, "t": 40, "b": 50}, "annotations": [],
+    }  # fmt: skip
+    for row, (key, sd, title) in enumerate(ESTIMATE_ROWS):
+        n = "" if row == 0 else str(row + 1)
+        top = 1.0 - row * (height + ROW_GAP)
+        data += _band(x, key, sd, est, (f"x{n}", f"y{n}"))
+        last = row == rows - 1
+        layout[f"xaxis{n}"] = chart_axis(
+            type="date", anchor=f"y{n}", showticklabels=last,
+            **({"title": {"text": "time (UTC)"}} if last else {"matches": f"x{rows}"}),
+        )  # fmt: skip
+        layout[f"yaxis{n}"] = chart_axis(anchor=f"x{n}", domain=[max(top - height, 0.0), top])
+        layout["annotations"].append(  # type: ignore[attr-defined]
+            {"text": title, "x": 0.5, "y": top, "xref": "paper", "yref": "paper",
+             "xanchor": "center", "yanchor": "bottom", "showarrow": False,
+             "font": {"size": 14}})  # fmt: skip
+    return {"data": data, "layout": layout}
 
 
 def chart_update(data: dict, cursor: dict | None) -> tuple[object, object, dict]:

@@ -83,13 +83,20 @@ def test_vessel_callbacks_are_pure_functions_of_the_store(live_log) -> None:
     assert " kg" in text
     assert "W/K" in text
     readings, estimates, cursor = chart_update(chart_data(str(live_log), "kettle-a"), None)
-    assert isinstance(readings, go.Figure)
+    # plain figure dicts; plotly's own validation (go.Figure) accepts every property
+    readings, estimates = go.Figure(readings), go.Figure(estimates)
     assert readings.layout.uirevision == estimates.layout.uirevision
     assert readings.layout.xaxis.title.text == "time (UTC)"
+    assert readings.layout.xaxis.type == "date"
+    assert readings.data[cursor["traces"]["power"]].yaxis == "y2"  # power on its own axis
     assert cursor["traces"]["water"] == 0
     assert len(estimates.data) == 9  # three rows of upper edge, lower edge, mean
+    assert [t.yaxis for t in estimates.data[::3]] == ["y", "y2", "y3"]
+    assert estimates.layout.xaxis.matches == "x3"  # the rows share the time axis
+    assert [a.text for a in estimates.layout.annotations] == [
+        "water mass (kg)", "UA (W/K)", "element conductance (W/K)"]  # fmt: skip
     assert vessel_options(snap) == [{"label": v, "value": v} for v in ("kettle-a", "kettle-b")]
-    assert chart_update({}, None)[0].layout.title.text == "no readings yet"
+    assert go.Figure(chart_update({}, None)[0]).layout.title.text == "no readings yet"
 
 
 def test_new_readings_are_appended_with_a_patch_until_a_redraw_is_due(live_log) -> None:
@@ -272,7 +279,8 @@ def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) ->
     readings, _estimates, length, value, _marks, cards = show_run(detail)
     assert length == 300  # the simulated 300 s run (our scenario)
     assert value == 0
-    assert readings.layout.shapes[0].x0 == detail["series"]["water"]["t"][0] * 1000.0
+    assert readings["layout"]["shapes"][0]["x0"] == detail["series"]["water"]["t"][0] * 1000.0
+    go.Figure(readings), go.Figure(_estimates)  # valid figures by plotly's own checks
     moved, _, cards_later = scrub(detail, 200.0)
     assert isinstance(moved, Patch)
     start = detail["series"]["water"]["t"][0]
