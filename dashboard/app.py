@@ -22,6 +22,7 @@ from pathlib import Path
 from dash import Dash, Input, Output, dcc, html
 
 from dashboard import data, ids
+from dashboard.jobs import Jobs
 from dashboard.views import fleet, maintenance, replay, vessel
 from monitor.safety import SAFETY_TEXT
 
@@ -42,6 +43,7 @@ table.fleet th, table.fleet td { border-bottom: 1px solid #e3e3e3; padding: .3re
 .level-alarm { color: #a11; font-weight: 700; } .level-warning { color: #8a4b00; }
 .pickers { display: grid; grid-template-columns: 1fr 2fr; gap: .6rem; }
 .scrubber { margin: 1rem 0 .4rem; }
+.status { color: #555; font-style: italic; margin: .3rem 0; }
 a.button { display: inline-block; padding: .3rem .6rem; border: 1px solid #0072B2;
   color: #0072B2; text-decoration: none; margin: .2rem 0; }
 @media (max-width: 900px) {
@@ -97,6 +99,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
     """
     logs = [log_path, *more_logs]
     memo = Memo()
+    jobs = Jobs()  # slow work (a run replayed) on a worker thread
 
     def csv_replay(path: str) -> dict:
         return memo.get(data.replay_csv, path)  # type: ignore[return-value]
@@ -130,17 +133,17 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
     )
     maintenance.register(app, lambda chosen: memo.get(data.run_history, log_path, chosen))  # type: ignore[arg-type,return-value]
 
-    def runs_of(path: str) -> list:  # each log is read and split once per file version
-        return memo.get(data.split_log, path)  # type: ignore[return-value]
+    def listed(path: str) -> list:  # from the runs table, else a split, per file version
+        return memo.get(data.list_runs, path)  # type: ignore[return-value]
 
-    def replayed(path: str, vessel_id: str, run: str) -> dict:
-        return data.replay_detail(path, vessel_id, run, runs_of(path))
+    def ask_run(i: int, vessel_id: str, run: str, span: tuple[float, float] | None):
+        path = logs[i]
+        # a run with its span is from the runs table: it has ended and does not change;
+        # one split from a log without that table is asked for again as the file grows
+        key = ("replay", path, vessel_id, run, span, None if span else memo.version(path))
+        return jobs.ask(key, data.replay_detail, path, vessel_id, run, None, span, separate=True)
 
-    replay.register(
-        app,
-        lambda i: data.list_runs(logs[i], runs_of(logs[i])),
-        lambda i, v, r: memo.get(replayed, logs[i], v, r),  # type: ignore[return-value]
-    )
+    replay.register(app, lambda i: listed(logs[i]), ask_run)
 
     def pick_log() -> str:
         from flask import request

@@ -247,20 +247,41 @@ def replay_csv(path: str) -> dict[str, object]:
     return {"vessels": vessels, "runs": run_state(rows)}
 
 
-def replay_one(run) -> dict[str, object]:
-    """Replay one run (monitor.replay.Run): its series, estimates, latest, and summary."""
+def replay_one(
+    run, progress: Callable[[float], None] | None = None, max_points: int = MAX_POINTS
+) -> dict[str, object]:
+    """Replay one run (monitor.replay.Run): its series, estimates, latest, and summary.
+
+    Every estimate is computed; every n-th is kept for the charts (at most about
+    ``max_points``, and always the last), so a week-long run does not hold a week of
+    estimate rows. ``progress(fraction)`` is told how far the replay has got.
+    """
     from monitor.replay import replay_run
 
     start = run.log.start_epoch_s or 0.0
     rows: list[tuple] = []
-    summary = replay_run(run, on_estimate=lambda _r, e: rows.append(_estimate_row(start, e)))
+    total = max(len(run.rows), 1)
+    every = max(1, math.ceil(total / max_points))
+    seen = [0, None]  # estimates so far, the newest one
+
+    def keep(_run, e) -> None:
+        seen[0] += 1
+        seen[1] = e
+        if seen[0] % every == 1 or every == 1:
+            rows.append(_estimate_row(start, e))
+        if progress is not None and seen[0] % 2000 == 0:
+            progress(seen[0] / total)
+
+    summary = replay_run(run, on_estimate=keep)
+    if seen[1] is not None and (not rows or rows[-1][0] != start + seen[1].t_s):
+        rows.append(_estimate_row(start, seen[1]))
     series = {}
     for channel in CHANNELS:
         pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]
         pts = [p for p in pts if p[1] is not None]
         t, y = envelope([p[0] for p in pts], [p[1] for p in pts])
         series[channel] = {"t": t, "y": y}
-    return {"series": series, "estimates": _columns(rows),
+    return {"series": series, "estimates": _columns(rows, thin=False),
             "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
 
 
@@ -279,8 +300,15 @@ def split_log(path: str) -> list:
 def list_runs(path: str, runs: list | None = None) -> list[dict[str, object]]:
     """Return the runs of a log: vessel, label, start and end (Unix s), steps.
 
-    ``runs`` is :func:`split_log` of the log when the caller has it already.
+    A recorder log whose ``runs`` table has rows is listed from it (the live service
+    writes a row as each run ends; cheap however long the log). Otherwise the log is
+    read and split as ``ebullio replay`` splits it; ``runs`` is :func:`split_log` of
+    the log when the caller has it already.
     """
+    if runs is None and is_recorder_log(path):
+        recorded = _table_runs(path)
+        if recorded:
+            return recorded
     out = []
     for run in split_log(path) if runs is None else runs:
         start = run.log.start_epoch_s or 0.0
@@ -291,24 +319,70 @@ def list_runs(path: str, runs: list | None = None) -> list[dict[str, object]]:
     return out
 
 
+def _table_runs(path: str) -> list[dict[str, object]]:
+    """Return the runs in the log's runs table, one per vessel and label (first row kept)."""
+    conn = _connect(path)
+    try:
+        rows = conn.execute(
+            "SELECT vessel, run, start_t, end_t, json_extract(summary, '$.steps') FROM runs "
+            "WHERE end_t IS NOT NULL ORDER BY id"
+        ).fetchall()
+    finally:
+        conn.close()
+    out: dict[tuple[str, str], dict[str, object]] = {}
+    for vessel, label, start_t, end_t, steps in rows:
+        out.setdefault((vessel, str(label)), {"vessel": vessel, "run": str(label),
+                       "start_t": start_t, "end_t": end_t, "steps": steps})  # fmt: skip
+    return sorted(out.values(), key=lambda r: (r["start_t"], r["vessel"]))
+
+
+def _pick_run(runs: list, vessel: str, label: str, span: tuple[float, float] | None):
+    """Return the split run of ``vessel`` that overlaps ``span`` most (else labelled ``label``).
+
+    The live service numbers runs as it goes; the replay numbers them over the whole
+    log, and the two can differ (a restart, say), so a run listed from the runs table
+    is found again by its time span.
+    """
+    mine = [r for r in runs if r.vessel == vessel and r.rows]
+    if span is not None and mine:
+
+        def overlap(r) -> float:
+            start = r.log.start_epoch_s or 0.0
+            lo, hi = start + r.rows[0].time_s, start + r.rows[-1].time_s
+            return min(hi, span[1]) - max(lo, span[0])
+
+        best = max(mine, key=overlap)
+        if overlap(best) >= 0.0:
+            return best
+    return next((r for r in mine if r.label == label), None)
+
+
 def replay_detail(
-    path: str, vessel: str, label: str, runs: list | None = None
+    path: str,
+    vessel: str,
+    label: str,
+    runs: list | None = None,
+    span: tuple[float, float] | None = None,
+    progress: Callable[[float], None] | None = None,
 ) -> dict[str, object]:
     """Return one run of a log replayed through a fresh estimator, for the replay view.
 
     The figures are the replay's (as ``ebullio replay`` gives them), not the ones the
     live service recorded. ``runs`` is :func:`split_log` of the log when the caller has
-    it already. Raises LogFormatError when the log has no such run.
+    it already. ``span`` (start and end, Unix s) finds the run by time, as listed from
+    the runs table; ``run`` in the answer is then the replay's label. ``progress`` is
+    told how far the replay has got (:func:`replay_one`). Raises LogFormatError when
+    the log has no such run.
     """
     from drivers.errors import LogFormatError
 
     runs = split_log(path) if runs is None else runs
-    run = next((r for r in runs if r.vessel == vessel and r.label == label), None)
+    run = _pick_run(runs, vessel, label, span)
     if run is None:
         raise LogFormatError(f"{path}: vessel {vessel!r} has no run {label!r}")
-    detail = replay_one(run)
+    detail = replay_one(run, progress)
     summary = detail.pop("summary")
-    return {"vessel": vessel, "run": label, **detail,
+    return {"vessel": vessel, "run": run.label, "steps": len(run.rows), **detail,
             "summary": {k: summary.get(k) for k in ("start_utc", "heat_up_s", "energy_wh",
                                                      "phase_at_end", "model")}}  # fmt: skip
 

@@ -1,9 +1,11 @@
 """Replay view: pick a log and a run, scrub through it, download its CSV and its report.
 
 The run is replayed through a fresh estimator (the figures ``ebullio replay`` gives,
-not the ones recorded live); the app keeps each replay per file version, so moving
-the scrubber only moves the cursor on the charts (a ``Patch``) and shows the figures
-at that instant.
+not the ones recorded live). A long run takes a while (a week at 1 Hz, most of a
+minute), so the replay runs on the board's worker thread (:mod:`dashboard.jobs`)
+and the view polls it, saying how far it has got; no callback waits for it. The
+app keeps each replay, so moving the scrubber only moves the cursor on the charts
+(a ``Patch``) and shows the figures at that instant.
 """
 
 from __future__ import annotations
@@ -23,10 +25,36 @@ UIREVISION = "replay-view"
 
 
 def run_options(runs: list[dict]) -> list[dict[str, str]]:
-    """Return the run picker's options; a value is 'vessel|run'."""
+    """Return the run picker's options; a value is 'vessel|run|start|end' (Unix s)."""
     return [{"label": f"{r['vessel']} · run {r['run']} · {iso_minutes(r['start_t'])} UTC · "
-                      f"{(r['end_t'] - r['start_t']) / 60.0:.0f} min",
-             "value": f"{r['vessel']}|{r['run']}"} for r in runs]  # fmt: skip
+                      f"{_length_text(r['end_t'] - r['start_t'])}",
+             "value": f"{r['vessel']}|{r['run']}|{r['start_t']!r}|{r['end_t']!r}"}
+            for r in runs]  # fmt: skip
+
+
+def parse_choice(value: str) -> tuple[str, str, tuple[float, float] | None]:
+    """Return (vessel, run label, span or None) from a run picker value."""
+    head, *times = value.rsplit("|", 2)
+    vessel, _, label = head.partition("|")
+    try:
+        return vessel, label, (float(times[0]), float(times[1]))
+    except (IndexError, ValueError):  # an old 'vessel|run' value
+        return value.partition("|")[0], value.partition("|")[2], None
+
+
+def _length_text(seconds: float) -> str:
+    hours = seconds / 3600.0
+    return f"{hours:.1f} h" if hours >= 2.0 else f"{seconds / 60.0:.0f} min"
+
+
+def waiting_text(state) -> str:
+    """Return what the view says while a run is being replayed (or why it could not be)."""
+    if state.status == "failed":
+        return f"This run could not be replayed: {state.error}"
+    if state.status == "running":
+        done = "" if state.progress is None else f" ({state.progress * 100.0:.0f} % done)"
+        return f"Reading the log and replaying the run through the estimator{done}..."
+    return ""
 
 
 def _span(detail: dict) -> tuple[float, float]:
@@ -103,6 +131,8 @@ def layout(log_names: list[str]) -> html.Section:
         ], className="pickers"),
         html.Div(dcc.Slider(id=ids.REPLAY_SCRUB, min=0, max=1, step=1, value=0,
                             updatemode="drag"), className="scrubber"),
+        html.Div(id=ids.REPLAY_STATUS, className="status", role="status"),
+        dcc.Interval(id=ids.REPLAY_WAIT, interval=700, disabled=True),
         html.Div(id=ids.REPLAY_FIGURES, className="figures"),
         html.Div(id=ids.REPLAY_LINKS, className="links"),
         dcc.Loading(dcc.Graph(id=ids.REPLAY_READINGS, config={"displaylogo": False})),
@@ -113,10 +143,11 @@ def layout(log_names: list[str]) -> html.Section:
 def register(
     app: Dash,
     list_runs: Callable[[int], list[dict]],
-    load_run: Callable[[int, str, str], dict],
+    ask_run: Callable[[int, str, str, tuple[float, float] | None], object],
 ) -> None:
-    """Attach the view's callbacks; ``list_runs(log)`` and ``load_run(log, vessel, run)``
-    read the logs (the app keeps their answers per file version)."""
+    """Attach the view's callbacks; ``list_runs(log)`` lists a log's runs and
+    ``ask_run(log, vessel, run, span)`` returns the replay's :class:`~dashboard.jobs.JobState`
+    (the replay runs on the board's worker thread; the view polls until it is done)."""
 
     @app.callback(Output(ids.REPLAY_RUN, "options"), Output(ids.REPLAY_RUN, "value"),
                   Input(ids.REPLAY_LOG, "value"))  # fmt: skip
@@ -133,16 +164,23 @@ def register(
         Output(ids.REPLAY_SCRUB, "marks"),
         Output(ids.REPLAY_FIGURES, "children", allow_duplicate=True),
         Output(ids.REPLAY_LINKS, "children"),
+        Output(ids.REPLAY_STATUS, "children"),
+        Output(ids.REPLAY_WAIT, "disabled"),
         Input(ids.REPLAY_RUN, "value"),
         Input(ids.REPLAY_LOG, "value"),
+        Input(ids.REPLAY_WAIT, "n_intervals"),
         prevent_initial_call="initial_duplicate",
     )
-    def pick_run(choice: str | None, log_index: int | None):
+    def pick_run(choice: str | None, log_index: int | None, _n: int | None):
         if not choice:
-            return (no_update,) * 7
-        vessel, run = choice.split("|", 1)
-        detail = load_run(int(log_index or 0), vessel, run)
-        return (*show_run(detail), download_links(int(log_index or 0), vessel, run))
+            return (*(no_update,) * 7, "", True)
+        vessel, run, span = parse_choice(choice)
+        state = ask_run(int(log_index or 0), vessel, run, span)
+        if state.status != "done":  # type: ignore[attr-defined]
+            return (*(no_update,) * 7, waiting_text(state), state.status == "failed")  # type: ignore[attr-defined]
+        detail = state.answer  # type: ignore[attr-defined]
+        links = download_links(int(log_index or 0), vessel, detail["run"])
+        return (*show_run(detail), links, "", True)
 
     @app.callback(
         Output(ids.REPLAY_READINGS, "figure", allow_duplicate=True),
@@ -156,5 +194,8 @@ def register(
     def move(offset_s: float | None, choice: str | None, log_index: int | None):
         if not choice:
             return no_update, no_update, no_update
-        vessel, run = choice.split("|", 1)
-        return scrub(load_run(int(log_index or 0), vessel, run), offset_s or 0.0)
+        vessel, run, span = parse_choice(choice)
+        state = ask_run(int(log_index or 0), vessel, run, span)
+        if state.status != "done":  # type: ignore[attr-defined]
+            return no_update, no_update, no_update
+        return scrub(state.answer, offset_s or 0.0)  # type: ignore[attr-defined]

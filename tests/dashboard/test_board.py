@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import math
 import shutil
 import subprocess
 import sys
@@ -268,14 +269,23 @@ def test_the_board_serves_the_audit_report_of_a_run(live_log) -> None:
 def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) -> None:
     from dash import Patch
 
-    from dashboard.data import list_runs, replay_detail
-    from dashboard.views.replay import latest_at, run_options, scrub, show_run
+    from dashboard.data import list_runs, replay_detail, split_log
+    from dashboard.views.replay import latest_at, parse_choice, run_options, scrub, show_run
 
-    runs = list_runs(str(live_log))
+    runs = list_runs(str(live_log))  # from the runs table the service wrote
     assert [(r["vessel"], r["run"]) for r in runs] == [("kettle-a", "1"), ("kettle-b", "1")]
+    split = list_runs(str(live_log), split_log(str(live_log)))  # as the replay splits it
+    assert [(r["vessel"], r["run"]) for r in split] == [(r["vessel"], r["run"]) for r in runs]
+    assert [r["steps"] for r in runs] == [r["steps"] for r in split] == [301, 301]
     options = run_options(runs)
-    assert options[0]["value"] == "kettle-a|1"
-    detail = replay_detail(str(live_log), "kettle-a", "1")
+    vessel, label, span = parse_choice(options[0]["value"])
+    assert (vessel, label) == ("kettle-a", "1")
+    assert span == (runs[0]["start_t"], runs[0]["end_t"])
+    seen: list[float] = []
+    detail = replay_detail(str(live_log), vessel, "no such label", span=span,
+                           progress=seen.append)  # fmt: skip
+    assert detail["run"] == "1"  # found by its time span, named by the replay's label
+    assert len(detail["estimates"]["t"]) == 301  # short: every estimate kept
     readings, _estimates, length, value, _marks, cards = show_run(detail)
     assert length == 300  # the simulated 300 s run (our scenario)
     assert value == 0
@@ -300,3 +310,107 @@ def test_the_board_exports_one_run_as_csv(live_log) -> None:
     assert "kettle-b" in text
     assert len(text.splitlines()) > 300  # a header, then one row a second of the 300 s run
     assert client.get("/export.csv?vessel=kettle-b&run=7").status_code == 404
+
+
+def test_a_long_replay_keeps_every_nth_estimate_and_the_last(live_log) -> None:
+    from dashboard.data import replay_one, split_log
+
+    run = split_log(str(live_log))[0]
+    told: list[float] = []
+    thin = replay_one(run, told.append, max_points=50)
+    whole = replay_one(run)
+    t_thin, t_whole = thin["estimates"]["t"], whole["estimates"]["t"]
+    every = math.ceil(301 / 50)  # 301 steps of our 300 s scenario
+    assert len(t_thin) == len(range(0, 301, every)) + 1 <= 50  # every 7th, and the last
+    assert t_thin[-1] == t_whole[-1]
+    assert set(t_thin) <= set(t_whole)
+    assert thin["summary"]["water_mass_kg"] == whole["summary"]["water_mass_kg"]  # all computed
+    assert thin["latest"] == whole["latest"]
+
+
+def test_jobs_answer_at_once_with_progress_then_the_answer_or_the_failure() -> None:
+    import threading
+
+    from dashboard.jobs import Jobs
+
+    gate = threading.Event()
+
+    def slow(x, progress):
+        progress(0.25)
+        gate.wait(10.0)
+        return x * 2
+
+    calls = []
+
+    def broken(progress):  # noqa: ARG001 (Jobs passes it to every job)
+        calls.append(1)
+        raise ValueError("the log ends mid-row")
+
+    jobs = Jobs(keep=2)
+    try:
+        first = jobs.ask(("slow", 21), slow, 21)
+        assert first.status == "running"
+        wait_until(lambda: jobs.ask(("slow", 21), slow, 21).progress == 0.25)
+        gate.set()
+        wait_until(lambda: jobs.ask(("slow", 21), slow, 21).status == "done")
+        assert jobs.ask(("slow", 21), slow, 21).answer == 42  # kept, not run again
+        states = []
+        wait_until(lambda: states.append(jobs.ask(("broken",), broken)) or
+                   states[-1].status == "failed")  # fmt: skip
+        assert "mid-row" in states[-1].error
+        # a failure is returned once and forgotten: asked again, the work runs again
+        wait_until(lambda: jobs.ask(("broken",), broken).status == "failed")
+        assert len(calls) == 2
+    finally:
+        gate.set()
+        jobs.close()
+
+
+def wait_until(check, timeout_s: float = 10.0) -> None:
+    import time
+
+    end = time.monotonic() + timeout_s
+    while not check():
+        assert time.monotonic() < end, "timed out"
+        time.sleep(0.01)
+
+
+def test_a_replay_in_a_child_process_gives_the_same_answer_or_says_why_not(live_log) -> None:
+    from dashboard.data import replay_detail
+    from dashboard.jobs import Jobs
+
+    jobs = Jobs()
+    try:
+
+        def ask(vessel: str):
+            return jobs.ask(("child", vessel), replay_detail, str(live_log), vessel, "1",
+                            separate=True)  # fmt: skip
+
+        wait_until(lambda: ask("kettle-a").status != "running", timeout_s=60.0)
+        state = ask("kettle-a")
+        assert state.status == "done", state.error
+        here = replay_detail(str(live_log), "kettle-a", "1")
+        assert state.answer["latest"] == here["latest"]
+        assert state.answer["estimates"] == here["estimates"]
+        states = []  # a failure is returned once (then forgotten): keep what came back
+        wait_until(lambda: states.append(ask("no-such-vessel")) or
+                   states[-1].status != "running", timeout_s=60.0)  # fmt: skip
+        assert states[-1].status == "failed"
+        assert "has no run '1'" in states[-1].error
+    finally:
+        jobs.close()
+
+
+def test_the_replay_view_says_how_far_a_replay_has_got_and_why_one_failed() -> None:
+    from dashboard.jobs import JobState
+    from dashboard.views.replay import parse_choice, waiting_text
+
+    assert "42 % done" in waiting_text(JobState("running", progress=0.42))
+    assert "replaying" in waiting_text(JobState("running"))
+    assert "could not be replayed: the log ends" in waiting_text(
+        JobState("failed", error="the log ends")
+    )
+    assert waiting_text(JobState("done", answer={})) == ""
+    assert parse_choice("heater|3|1790000000.5|1790086399.0") == (
+        "heater", "3", (1790000000.5, 1790086399.0))  # fmt: skip
+    assert parse_choice("heater|3") == ("heater", "3", None)  # a value from before spans
