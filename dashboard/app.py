@@ -131,7 +131,11 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
     vessel.register(
         app, lambda v, after: data.chart_data(log_path, v, after, csv_replay=csv_replay)
     )
-    maintenance.register(app, lambda chosen: memo.get(data.run_history, log_path, chosen))  # type: ignore[arg-type,return-value]
+
+    def history(path: str, chosen: str | None) -> dict:  # a CSV log's replay is reused
+        return data.run_history(path, chosen, csv_replay)
+
+    maintenance.register(app, lambda chosen: memo.get(history, log_path, chosen))  # type: ignore[arg-type,return-value]
 
     def listed(path: str) -> list:  # from the runs table, else a split, per file version
         return memo.get(data.list_runs, path)  # type: ignore[return-value]

@@ -244,7 +244,7 @@ def replay_csv(path: str) -> dict[str, object]:
              "end_t": start + (s["end_s"] or 0.0),
              "summary": {**s, "drift": [f.as_dict() for f in f_]}}
             for s, f_ in zip(summaries, flags, strict=True)]  # fmt: skip
-    return {"vessels": vessels, "runs": run_state(rows)}
+    return {"vessels": vessels, "runs": run_state(rows), "summaries": [r["summary"] for r in rows]}
 
 
 def replay_one(
@@ -387,17 +387,25 @@ def replay_detail(
                                                      "phase_at_end", "model")}}  # fmt: skip
 
 
-def run_history(path: str, vessel: str | None = None) -> dict[str, object]:
+def run_history(
+    path: str, vessel: str | None = None, csv_replay: Callable[[str], dict] | None = None
+) -> dict[str, object]:
     """Return a vessel's run summaries with their drift flags, and each rule's baseline.
 
     A recorder log carries them in its ``runs`` table (the live service writes one as
     each run ends; ``ebullio replay --record`` adds the replay's, which are preferred
-    when there). Otherwise, or when the table holds none with figures, the whole log is
-    replayed (the figures come from the full data).
+    when there). A CSV log's come from ``csv_replay`` (:func:`replay_csv`, which the
+    board has run already) when given. Otherwise, or when the table holds none with
+    figures, the whole log is replayed (the figures come from the full data).
     """
     from monitor.drift import RULES, baselines_of
 
-    runs = _recorded_summaries(path) if is_recorder_log(path) else []
+    if is_recorder_log(path):
+        runs = _recorded_summaries(path)
+    elif csv_replay is not None:
+        runs = list(csv_replay(path).get("summaries") or [])
+    else:
+        runs = []
     if not runs:
         from monitor.replay import replay
 

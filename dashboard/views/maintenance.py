@@ -1,6 +1,6 @@
 """Maintenance view: each tracked figure of a vessel across its runs, the baseline, the flags.
 
-The history comes from a replay of the whole log (:func:`dashboard.data.run_history`),
+The history comes from the run summaries in the log, else from a replay of it (:func:`dashboard.data.run_history`),
 run when a vessel is picked, not on every poll; the chart is a pure function of it.
 Each run links to its audit report, made on demand by the board's ``/report`` page.
 """

@@ -414,3 +414,24 @@ def test_the_replay_view_says_how_far_a_replay_has_got_and_why_one_failed() -> N
     assert parse_choice("heater|3|1790000000.5|1790086399.0") == (
         "heater", "3", (1790000000.5, 1790086399.0))  # fmt: skip
     assert parse_choice("heater|3") == ("heater", "3", None)  # a value from before spans
+
+
+def test_a_csv_logs_history_reuses_the_boards_replay_and_matches_a_fresh_one(tmp_path) -> None:
+    from dashboard.data import replay_csv, run_history
+    from monitor.cli import main
+
+    log = tmp_path / "sim.csv"
+    assert main(["simulate", "--duration-s", "300", "--out", str(log)]) == 0  # our scenario
+    calls: list[str] = []
+
+    def remembered(path: str) -> dict:
+        calls.append(path)
+        return replay_csv(path)
+
+    reused = run_history(str(log), None, csv_replay=remembered)
+    fresh = run_history(str(log), None)  # replays the log through `ebullio replay`'s path
+    assert calls == [str(log)]
+    assert reused["chosen"] == fresh["chosen"] == "kettle-1"
+    assert [r["run"] for r in reused["runs"]] == [r["run"] for r in fresh["runs"]] == ["1"]
+    assert reused["runs"] == fresh["runs"]
+    assert reused["baselines"] == fresh["baselines"]
