@@ -1,7 +1,8 @@
 """Maintenance view: each tracked figure of a vessel across its runs, the baseline, the flags.
 
-The history comes from the run summaries in the log, else from a replay of it (:func:`dashboard.data.run_history`),
-run when a vessel is picked, not on every poll; the chart is a pure function of it.
+The history comes from the run summaries in the log, else from a replay of it
+(:func:`dashboard.data.run_history`), read when a vessel is picked, not on every
+poll; the chart is a pure function of it.
 Each run links to its audit report, made on demand by the board's ``/report`` page.
 """
 
