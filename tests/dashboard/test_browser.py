@@ -159,6 +159,53 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
         thread.join(timeout=10)
 
 
+def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, browser) -> None:
+    from selenium.webdriver.common.by import By
+
+    from drivers.simulator import SimulatedRig
+
+    # three kettles (our own scenario): "a-clean" is fine; "b-no-room" has no room
+    # thermometer (a notice); "c-open-tc" has its element thermocouple open-circuit, read
+    # as 1500 degC (a warning). By name they sort a, b, c; by need c, b, a.
+    samples, specs = [], []
+    for i, name in enumerate(("a-clean", "b-no-room", "c-open-tc")):
+        scenario = replace(kettle_scenario(duration_s=120.0), vessel=name)
+        for batch in SimulatedRig(scenario, seed=i).run():
+            for smp in batch:
+                if name == "b-no-room" and smp.channel == "ambient":
+                    continue
+                if name == "c-open-tc" and smp.channel == "element":
+                    smp = replace(smp, value=1500.0)
+                samples.append(smp)
+        specs.append(VesselSpec(name, {**scenario_metadata(scenario, i), "element_sensor": "yes"},
+                                True, False))  # fmt: skip
+    samples.sort(key=lambda smp: smp.t)
+    config = RigConfig("browser-test", "# three kettles\n", 101.325, None, (), tuple(specs), 0.05)
+    log = tmp_path / "fleet.sqlite"
+    service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(samples, False)})
+    asyncio.run(run_until(service, lambda: service.stats.samples >= len(samples)))
+    server, thread, url = serve(create_app(str(log), poll_ms=1000))
+    try:
+        browser.get(url)
+
+        def order() -> list[str]:
+            rows = browser.find_elements(By.CSS_SELECTOR, "#fleet-table tbody tr")
+            return [r.text.split(" ")[0] for r in rows]
+
+        wait_for(lambda: len(order()) == 3, what="three vessels in the fleet view")
+        assert order() == ["c-open-tc", "b-no-room", "a-clean"]
+        rows = browser.find_element(By.ID, "fleet-table").text.split("\n")
+        assert "● warning" in rows[1]
+        assert "○ notice" in rows[2]
+        assert " ok " in f" {rows[3]} "
+        ARTIFACTS.mkdir(parents=True, exist_ok=True)
+        browser.save_screenshot(str(ARTIFACTS / "board-fleet-order.png"))
+        assert severe(browser) == []
+    finally:
+        server.shutdown()
+        thread.join(timeout=10)
+
+
 def test_replay_scrubbing_moves_the_cursor_on_both_charts(tmp_path, browser) -> None:
     from selenium.webdriver.common.action_chains import ActionChains
     from selenium.webdriver.common.by import By
