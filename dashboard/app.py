@@ -157,6 +157,16 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         except (ValueError, IndexError):
             return log_path
 
+    def pick_label(path: str, vessel_id: str | None, run: str | None) -> str | None:
+        """The run asked for: by its span (``from``, ``to``, Unix s) when given, else label."""
+        from flask import request
+
+        try:
+            span = (float(request.args["from"]), float(request.args["to"]))
+        except (KeyError, ValueError):
+            return run
+        return data.replay_label(path, vessel_id or "", run or "", span) if vessel_id else run
+
     @app.server.route("/report")
     def report_page():  # the audit report of one run, made on demand (read-only)
         from flask import Response, request
@@ -165,7 +175,9 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         from monitor.report import build_report
 
         try:
-            page = build_report(pick_log(), request.args.get("vessel"), request.args.get("run"))
+            vessel_id = request.args.get("vessel")
+            label = pick_label(pick_log(), vessel_id, request.args.get("run"))
+            page = build_report(pick_log(), vessel_id, label)
         except EbullioError as exc:
             return Response(f"no report: {exc}", 404, mimetype="text/plain")
         return Response(page, mimetype="text/html")
@@ -180,6 +192,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         vessel_id, run = request.args.get("vessel", ""), request.args.get("run", "")
         out = io.StringIO()
         try:
+            run = pick_label(pick_log(), vessel_id, run) or run
             export_run_csv(pick_log(), out, vessel_id, run)
         except EbullioError as exc:
             return Response(f"no export: {exc}", 404, mimetype="text/plain")

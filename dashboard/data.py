@@ -357,6 +357,16 @@ def _pick_run(runs: list, vessel: str, label: str, span: tuple[float, float] | N
     return next((r for r in mine if r.label == label), None)
 
 
+def replay_label(path: str, vessel: str, label: str, span: tuple[float, float]) -> str:
+    """Return the replay's label of the run of ``vessel`` over ``span`` (Unix s), else ``label``.
+
+    The report and the CSV export find runs by the replay's labels; a run the live
+    service recorded is found by its time span (see :func:`_pick_run`).
+    """
+    run = _pick_run(split_log(path), vessel, label, span)
+    return run.label if run is not None else label
+
+
 def replay_detail(
     path: str,
     vessel: str,
@@ -413,7 +423,7 @@ def run_history(
     names = sorted({str(r["vessel"]) for r in runs})
     chosen = vessel if vessel in names else (names[0] if names else None)
     mine = [r for r in runs if r["vessel"] == chosen]
-    keep = ("run", "start_utc", "model", "drift", *(rule.key for rule in RULES))
+    keep = ("run", "start_utc", "start_t", "end_t", "model", "drift", *(rule.key for rule in RULES))
     baselines = baselines_of(mine)
     return {"vessels": names, "chosen": chosen, "baselines": baselines,
             "runs": [{k: r.get(k) for k in keep} for r in mine]}  # fmt: skip
@@ -429,5 +439,6 @@ def _recorded_summaries(path: str) -> list[dict[str, object]]:
         if isinstance(summary, dict) and "drift" in summary:
             source = "replay" if summary.get("source") == "replay" else "live"
             start = summary.get("start_utc") or iso_utc(float(row["start_t"]))  # type: ignore[arg-type]
-            found[source].append({**summary, "vessel": row["vessel"], "start_utc": start})
+            found[source].append({**summary, "vessel": row["vessel"], "start_utc": start,
+                                  "start_t": row["start_t"], "end_t": row["end_t"]})  # fmt: skip
     return found["replay"] or found["live"]

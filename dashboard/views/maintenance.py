@@ -31,7 +31,11 @@ def report_links(history: dict | None) -> html.Ul:
     vessel = history.get("chosen")
     items = []
     for r in history.get("runs") or []:
-        query = urlencode({"vessel": vessel, "run": r.get("run")})
+        span = (r.get("start_t"), r.get("end_t"))
+        # the span lets the report find a live-recorded run whatever the replay calls it
+        where = {"from": span[0], "to": span[1]} if all(
+            isinstance(v, int | float) for v in span) else {}  # fmt: skip
+        query = urlencode({"vessel": vessel, "run": r.get("run"), **where})
         items.append(html.Li(html.A(f"audit report of run {r.get('run')} "
                                     f"({r.get('start_utc') or 'time not recorded'})",
                                     href=f"/report?{query}", target="_blank")))  # fmt: skip
