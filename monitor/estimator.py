@@ -778,8 +778,13 @@ class VesselEstimator:
         if name == "element" and lay.element is not None:
             idx = [lay.element] + ([lay.element_lagged] if lay.element_lagged is not None else [])
         x = core.x.copy()
+        # The reading is of the sensor's state (the lagged one, if it lags). Move the
+        # temperatures together so the sensor reads ``value``, keeping the lag between
+        # them: while heating, the water is ahead of its lagged thermocouple by about
+        # tau·dT/dt, and setting both to the reading put the model a lag behind.
+        shift = value - x[idx[-1]]
         for i in idx:
-            x[i] = value
+            x[i] += shift
         p = core.P.copy()
         for i in idx:
             p[i, :] = 0.0
