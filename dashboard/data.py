@@ -285,16 +285,16 @@ def replay_one(
             "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
 
 
-def split_log(path: str) -> list:
+def split_log(path: str, vessel: str | None = None) -> list:
     """Return the runs of a log as the replay splits them (monitor.replay.Run objects).
 
-    Reads the whole log (the same path as ``ebullio replay``); the board keeps the
-    answer per file version and hands it to :func:`list_runs` and :func:`replay_detail`.
+    Reads the whole log, or of a recorder log only ``vessel``'s samples (the same path
+    as ``ebullio replay``; a fleet's log is not read whole to replay one vessel).
     """
     from monitor.logs import read_log
     from monitor.replay import split_runs
 
-    return split_runs(read_log(path))[0]
+    return split_runs(read_log(path, vessel))[0]
 
 
 def list_runs(path: str, runs: list | None = None) -> list[dict[str, object]]:
@@ -363,7 +363,7 @@ def replay_label(path: str, vessel: str, label: str, span: tuple[float, float]) 
     The report and the CSV export find runs by the replay's labels; a run the live
     service recorded is found by its time span (see :func:`_pick_run`).
     """
-    run = _pick_run(split_log(path), vessel, label, span)
+    run = _pick_run(split_log(path, vessel), vessel, label, span)
     return run.label if run is not None else label
 
 
@@ -386,7 +386,7 @@ def replay_detail(
     """
     from drivers.errors import LogFormatError
 
-    runs = split_log(path) if runs is None else runs
+    runs = split_log(path, vessel) if runs is None else runs
     run = _pick_run(runs, vessel, label, span)
     if run is None:
         raise LogFormatError(f"{path}: vessel {vessel!r} has no run {label!r}")

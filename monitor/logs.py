@@ -38,10 +38,12 @@ def _rejected(path: str) -> list[Rejected]:
     return out
 
 
-def read_log(path: str | Path) -> list[InterchangeLog]:
+def read_log(path: str | Path, vessel: str | None = None) -> list[InterchangeLog]:
     """Return the log at ``path`` as interchange logs: one per vessel for SQLite, one for CSV.
 
-    Raises LogFormatError when the file is neither.
+    ``vessel``: of a recorder log, read only that vessel's samples (its runs split
+    the same, since each vessel's instants are assembled apart); a CSV log is read
+    whole. Raises LogFormatError when the file is neither.
     """
     path = str(path)
     if not Path(path).exists():
@@ -52,7 +54,8 @@ def read_log(path: str | Path) -> list[InterchangeLog]:
                 raise LogFormatError(f"{path}: an SQLite file, but not an ebullio recorder log")
         return [read_csv(path)]
     metadata = read_vessels(path)
-    logs = logs_from_steps(steps_from_samples(enumerate(read_samples(path))), metadata, path)
+    samples = read_samples(path, vessel)
+    logs = logs_from_steps(steps_from_samples(enumerate(samples)), metadata, path)
     rejected = _rejected(path)
     if logs:
         logs[0].rejected.extend(rejected)
@@ -103,7 +106,7 @@ def export_run_csv(log_path: str | Path, out: TextIO, vessel: str, run_label: st
     Returns the rows written. Raises LogFormatError naming the runs when there is no
     such run.
     """
-    runs, _ = split_runs(read_log(log_path))
+    runs, _ = split_runs(read_log(log_path, vessel))
     mine = [r for r in runs if r.vessel == vessel]
     run = next((r for r in mine if r.label == run_label), None)
     if run is None:

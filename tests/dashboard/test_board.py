@@ -301,6 +301,10 @@ def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) ->
     detail = replay_detail(str(live_log), vessel, "no such label", span=span,
                            progress=seen.append)  # fmt: skip
     assert detail["run"] == "1"  # found by its time span, named by the replay's label
+    # it read only kettle-a's samples; the whole log's split gives the same run
+    whole = replay_detail(str(live_log), vessel, "1", runs=split_log(str(live_log)))
+    assert whole["estimates"] == detail["estimates"]
+    assert whole["series"] == detail["series"]
     assert len(detail["estimates"]["t"]) == 301  # short: every estimate kept
     readings, _estimates, length, value, _marks, cards = show_run(detail)
     assert length == 300  # the simulated 300 s run (our scenario)
