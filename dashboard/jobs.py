@@ -20,7 +20,7 @@ import multiprocessing
 import threading
 from collections import OrderedDict
 from collections.abc import Callable
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future
 from dataclasses import dataclass
 from multiprocessing.connection import Connection
 
@@ -50,19 +50,23 @@ class _Job:
 
 
 class Jobs:
-    """Work run on ``workers`` threads, keyed; the last ``keep`` jobs' answers are kept.
+    """Work run ``workers`` at a time, keyed; the last ``keep`` jobs' answers are kept.
 
     ``ask(key, fn, *args)`` starts ``fn(*args, progress=report)`` the first time a
     key is asked for (``report(fraction)`` tells how far it has got) and returns the
     job's :class:`JobState`. A failed job is forgotten once its failure has been
     returned, so the next ask tries again.
+
+    Each job is watched by a daemon thread, so stopping the board does not wait for
+    a replay to finish (its child process, a daemon too, goes with it).
     """
 
     def __init__(self, workers: int = 1, keep: int = 8) -> None:
         self.keep = keep
-        self._pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="board-job")
+        self._slots = threading.BoundedSemaphore(workers)
         self._jobs: OrderedDict[tuple, _Job] = OrderedDict()
         self._lock = threading.Lock()
+        self._closed = False
 
     def ask(
         self, key: tuple, fn: Callable[..., object], *args: object, separate: bool = False
@@ -75,11 +79,12 @@ class Jobs:
         with self._lock:
             job = self._jobs.get(key)
             if job is None:
+                if self._closed:
+                    return JobState("failed", error="the board is stopping")
                 job = _Job()
-                if separate:
-                    job.future = self._pool.submit(_in_child, fn, args, job.report)
-                else:
-                    job.future = self._pool.submit(fn, *args, progress=job.report)
+                job.future = Future()
+                threading.Thread(target=self._work, args=(job, fn, args, separate),
+                                 name="board-job", daemon=True).start()  # fmt: skip
                 self._jobs[key] = job
                 self._forget_oldest()
             else:
@@ -88,7 +93,7 @@ class Jobs:
         assert future is not None
         if not future.done():
             return JobState("running", progress=job.progress)
-        exc = future.exception()
+        exc = RuntimeError("the board is stopping") if future.cancelled() else future.exception()
         if exc is None:
             return JobState("done", answer=future.result(), progress=1.0)
         with self._lock:
@@ -104,9 +109,29 @@ class Jobs:
                 return
             del self._jobs[done]
 
+    def _work(self, job: _Job, fn: Callable[..., object], args: tuple, separate: bool) -> None:
+        future = job.future
+        assert future is not None
+        with self._slots:  # at most ``workers`` at once; the rest wait their turn
+            if not future.set_running_or_notify_cancel():
+                return
+            try:
+                if separate:
+                    answer = _in_child(fn, args, job.report)
+                else:
+                    answer = fn(*args, progress=job.report)
+            except Exception as exc:  # handed to the asker as a failure
+                future.set_exception(exc)
+            else:
+                future.set_result(answer)
+
     def close(self) -> None:
-        """Stop taking work; running jobs finish on their own."""
-        self._pool.shutdown(wait=False, cancel_futures=True)
+        """Take no more work; jobs not yet started are dropped, running ones go on."""
+        with self._lock:
+            self._closed = True
+            for job in self._jobs.values():
+                if job.future is not None:
+                    job.future.cancel()  # only those still waiting for a slot
 
 
 def _in_child(fn: Callable[..., object], args: tuple, report: Callable[[float], None]) -> object:

@@ -455,3 +455,28 @@ def test_a_csv_logs_history_reuses_the_boards_replay_and_matches_a_fresh_one(tmp
     assert [r["run"] for r in reused["runs"]] == [r["run"] for r in fresh["runs"]] == ["1"]
     assert reused["runs"] == fresh["runs"]
     assert reused["baselines"] == fresh["baselines"]
+
+
+def test_jobs_once_closed_take_no_more_work_and_do_not_hold_the_process() -> None:
+    import threading
+
+    from dashboard.jobs import Jobs
+
+    gate = threading.Event()
+
+    def slow(progress):  # noqa: ARG001 (Jobs passes it to every job)
+        gate.wait(10.0)
+        return "late"
+
+    jobs = Jobs(workers=1)
+    try:
+        assert jobs.ask(("first",), slow).status == "running"
+        assert jobs.ask(("queued",), slow).status == "running"  # waits for the one slot
+        jobs.close()
+        assert jobs.ask(("after",), slow).error == "the board is stopping"
+        wait_until(lambda: jobs.ask(("queued",), slow).status == "failed")  # dropped
+        watchers = [t for t in threading.enumerate() if t.name == "board-job"]
+        assert watchers
+        assert all(t.daemon for t in watchers)  # the interpreter will not wait for them
+    finally:
+        gate.set()
