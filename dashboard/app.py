@@ -105,6 +105,9 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         return memo.get(data.replay_csv, path)  # type: ignore[return-value]
 
     first = data.load_snapshot(log_path, csv_replay=csv_replay)  # a file that is no log fails now
+    ranked = fleet.fleet_rows(first)
+    if ranked:  # open on the vessel that needs attention most (then the first by name)
+        first = {**first, "chosen": ranked[0]["vessel"]}
     for extra in more_logs:
         data.load_snapshot(extra, csv_replay=csv_replay)
     app = Dash(__name__, title="ebullio board", update_title=None, compress=True)

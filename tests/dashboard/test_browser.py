@@ -194,6 +194,10 @@ def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, bro
 
         wait_for(lambda: len(order()) == 3, what="three vessels in the fleet view")
         assert order() == ["c-open-tc", "b-no-room", "a-clean"]
+        # the vessel view opens on the vessel that needs attention most
+        assert "c-open-tc" in browser.find_element(By.ID, "vessel-pick").text
+        wait_for(lambda: "1500" in browser.find_element(By.ID, "vessel-flags").text,
+                 what="its open thermocouple in the vessel's flags")  # fmt: skip
         rows = browser.find_element(By.ID, "fleet-table").text.split("\n")
         assert "● warning" in rows[1]
         assert "○ notice" in rows[2]
