@@ -2,7 +2,7 @@
 
 The run is replayed through a fresh estimator (the figures ``ebullio replay`` gives,
 not the ones recorded live). A long run takes a while (a week at 1 Hz, most of a
-minute), so the replay runs on the board's worker thread (:mod:`dashboard.jobs`)
+minute), so the replay runs in a child process (:mod:`dashboard.jobs`)
 and the view polls it, saying how far it has got; no callback waits for it. The
 app keeps each replay, so moving the scrubber only moves the cursor on the charts
 (a ``Patch``) and shows the figures at that instant.
@@ -147,7 +147,7 @@ def register(
 ) -> None:
     """Attach the view's callbacks; ``list_runs(log)`` lists a log's runs and
     ``ask_run(log, vessel, run, span)`` returns the replay's :class:`~dashboard.jobs.JobState`
-    (the replay runs on the board's worker thread; the view polls until it is done)."""
+    (the replay runs in a child process of the board's; the view polls until it is done)."""
 
     @app.callback(Output(ids.REPLAY_RUN, "options"), Output(ids.REPLAY_RUN, "value"),
                   Input(ids.REPLAY_LOG, "value"))  # fmt: skip

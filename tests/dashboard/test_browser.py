@@ -7,6 +7,7 @@ the board update as a rig runs; screenshots go to out/test-artifacts/.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import shutil
 import threading
 import time
@@ -60,11 +61,23 @@ def browser():
     web.quit()
 
 
+@contextlib.contextmanager
 def serve(app):
+    """Serve ``app`` on 127.0.0.1 (any free port) for the block; yield its address."""
     server = make_server("127.0.0.1", 0, app.server, threaded=True)
     thread = threading.Thread(target=server.serve_forever, daemon=True)
     thread.start()
-    return server, thread, f"http://127.0.0.1:{server.server_port}/"
+    try:
+        yield f"http://127.0.0.1:{server.server_port}/"
+    finally:
+        server.shutdown()
+        thread.join(timeout=10)
+
+
+def shot(web, name: str) -> None:
+    """Save a screenshot of the page as a test artifact."""
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    web.save_screenshot(str(ARTIFACTS / f"{name}.png"))
 
 
 def wait_for(check, timeout_s: float = 60.0, what: str = "") -> None:
@@ -105,8 +118,7 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
     first = samples[:cut]
     service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(first, False)})
     asyncio.run(run_until(service, lambda: service.stats.samples >= len(first)))
-    server, thread, url = serve(create_app(str(log), poll_ms=500))
-    try:
+    with serve(create_app(str(log), poll_ms=500)) as url:
         browser.get(url)
 
         def fleet() -> str:
@@ -137,11 +149,10 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
         wait_for(lambda: water_points() > before + 40, what="new readings appended live")
         wait_for(lambda: browser.find_element(By.ID, "vessel-figures").text != figures,
                  what="the figures to change")  # fmt: skip
-        ARTIFACTS.mkdir(parents=True, exist_ok=True)
-        browser.save_screenshot(str(ARTIFACTS / "board-live.png"))
+        shot(browser, "board-live")
         browser.set_window_size(820, 1180)  # a tablet in portrait (common practice, no source)
         time.sleep(1.0)
-        browser.save_screenshot(str(ARTIFACTS / "board-tablet.png"))
+        shot(browser, "board-tablet")
         width = browser.execute_script("return document.documentElement.scrollWidth")
         assert width <= 820  # nothing sticks out sideways at tablet width
         loop.call_soon_threadsafe(service2.stop)
@@ -151,12 +162,8 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
         wait_for(lambda: "● warning" in fleet() or "▲ alarm" in fleet(),
                  what="the scaling warning in the fleet view")  # fmt: skip
         assert "scal" in fleet().split("\n")[1]
-        ARTIFACTS.mkdir(parents=True, exist_ok=True)
-        browser.save_screenshot(str(ARTIFACTS / "board-scaling-flag.png"))
+        shot(browser, "board-scaling-flag")
         assert severe(browser) == []
-    finally:
-        server.shutdown()
-        thread.join(timeout=10)
 
 
 def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, browser) -> None:
@@ -184,8 +191,7 @@ def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, bro
     log = tmp_path / "fleet.sqlite"
     service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(samples, False)})
     asyncio.run(run_until(service, lambda: service.stats.samples >= len(samples)))
-    server, thread, url = serve(create_app(str(log), poll_ms=1000))
-    try:
+    with serve(create_app(str(log), poll_ms=1000)) as url:
         browser.get(url)
 
         def order() -> list[str]:
@@ -202,12 +208,8 @@ def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, bro
         assert "● warning" in rows[1]
         assert "○ notice" in rows[2]
         assert " ok " in f" {rows[3]} "
-        ARTIFACTS.mkdir(parents=True, exist_ok=True)
-        browser.save_screenshot(str(ARTIFACTS / "board-fleet-order.png"))
+        shot(browser, "board-fleet-order")
         assert severe(browser) == []
-    finally:
-        server.shutdown()
-        thread.join(timeout=10)
 
 
 def test_replay_scrubbing_moves_the_cursor_on_both_charts(tmp_path, browser) -> None:
@@ -221,8 +223,7 @@ def test_replay_scrubbing_moves_the_cursor_on_both_charts(tmp_path, browser) -> 
     config = one_kettle(scenario.vessel, meta)
     service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(samples, False)})
     asyncio.run(run_until(service, lambda: service.stats.samples >= len(samples)))
-    server, thread, url = serve(create_app(str(log), poll_ms=60_000))
-    try:
+    with serve(create_app(str(log), poll_ms=60_000)) as url:
         browser.get(url)
 
         def cursor_x(chart: str) -> str | None:
@@ -244,9 +245,5 @@ def test_replay_scrubbing_moves_the_cursor_on_both_charts(tmp_path, browser) -> 
         links = browser.find_element(By.ID, "replay-links").text
         assert "CSV" in links
         assert "report" in links
-        ARTIFACTS.mkdir(parents=True, exist_ok=True)
-        browser.save_screenshot(str(ARTIFACTS / "board-replay.png"))
+        shot(browser, "board-replay")
         assert severe(browser) == []
-    finally:
-        server.shutdown()
-        thread.join(timeout=10)
