@@ -99,7 +99,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
     """
     logs = [log_path, *more_logs]
     memo = Memo()
-    jobs = Jobs()  # slow work (a run replayed) on a worker thread
+    jobs = Jobs()  # slow work (a run replayed), away from the request threads
 
     def csv_replay(path: str) -> dict:
         return memo.get(data.replay_csv, path)  # type: ignore[return-value]

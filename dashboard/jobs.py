@@ -7,7 +7,7 @@ however long the work takes. A :class:`Jobs` lives in the app factory's closure,
 like the board's :class:`~dashboard.app.Memo`, not in module state.
 
 Work asked for with ``separate=True`` runs in a child process of its own (started
-fresh, "spawn"), watched by a worker thread that relays its progress: a week-long
+fresh, "spawn"), watched by a daemon thread that relays its progress: a week-long
 replay is pure Python and, on a thread, would hold the interpreter lock and slow
 every live callback about threefold; in a child it uses another core, and the
 memory it needs (the whole log, read) goes back when it ends.
