@@ -74,11 +74,12 @@ def _latest(row: tuple | None) -> dict[str, object] | None:
     return latest
 
 
-def _columns(rows: list[tuple], thin: bool = True) -> dict[str, list]:
-    """Return estimate rows as columns (every n-th row when ``thin`` and there are many)."""
-    step = max(1, math.ceil(len(rows) / MAX_POINTS)) if thin else 1
-    picked = rows[::step]
-    return {k: [r[i] for r in picked] for i, k in enumerate(_EST_KEYS) if k != "phase"}
+def _columns(rows: list[tuple]) -> dict[str, list]:
+    """Return estimate rows (columns _EST_KEYS, then anything) as columns, phase left out.
+
+    The callers thin the rows first (:func:`chart_data`, :func:`replay_one`).
+    """
+    return {k: [r[i] for r in rows] for i, k in enumerate(_EST_KEYS) if k != "phase"}
 
 
 def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
@@ -227,7 +228,7 @@ def chart_data(
         conn.close()
     latest = _latest(newest_row)
     est_t = est_rows[-1][0] if est_rows else since_est
-    return {"vessel": vessel, "series": series, "estimates": _columns(est_rows, thin=False),
+    return {"vessel": vessel, "series": series, "estimates": _columns(est_rows),
             "latest": latest, "cursor": {"t": newest, "est_t": est_t}}  # fmt: skip
 
 
@@ -306,7 +307,7 @@ def replay_one(
         pts = [p for p in pts if p[1] is not None]
         t, y = envelope([p[0] for p in pts], [p[1] for p in pts])
         series[channel] = {"t": t, "y": y}
-    return {"series": series, "estimates": _columns(rows, thin=False),
+    return {"series": series, "estimates": _columns(rows),
             "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
 
 
