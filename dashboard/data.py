@@ -221,7 +221,7 @@ def chart_data(
                 f"SELECT {columns} FROM estimates WHERE vessel = ? AND t > ? ORDER BY t",
                 (vessel, since_est)).fetchall()  # fmt: skip
         newest_row = conn.execute(
-            f"SELECT {', '.join(_EST_KEYS)}, detail FROM estimates WHERE vessel = ? AND t {op} ?"
+            f"SELECT {columns}, detail FROM estimates WHERE vessel = ? AND t {op} ?"
             " ORDER BY t DESC, id DESC LIMIT 1", (vessel, since_est),
         ).fetchone() if est_rows else None  # fmt: skip
     finally:
