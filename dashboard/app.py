@@ -15,9 +15,12 @@ from __future__ import annotations
 import io
 import os
 import threading
+import uuid
 from collections import OrderedDict
 from collections.abc import Callable
+from html import escape
 from pathlib import Path
+from urllib.parse import urlencode
 
 from dash import Dash, Input, Output, dcc, html
 
@@ -91,6 +94,19 @@ class Memo:
         return answer
 
 
+def waiting_page(vessel: str | None, run: str | None) -> str:
+    """Return the page shown while a run's audit report is being made (it reloads itself)."""
+    what = escape(f"{vessel or 'the vessel'}, run {run or '(last)'}")
+    return (
+        "<!doctype html><html lang='en'><head><meta charset='utf-8'>"
+        "<meta http-equiv='refresh' content='1'><title>ebullio report: preparing</title>"
+        f"<style>{STYLE}</style></head><body><main><h1>Preparing the audit report</h1>"
+        f"<p class='status'>Replaying {what} through the estimator; this page reloads "
+        "until the report is ready. A long log takes a minute or more.</p></main>"
+        f"<footer><b>Caution. </b>{escape(SAFETY_TEXT)}</footer></body></html>"
+    )
+
+
 def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = ()) -> Dash:
     """Return the board over the log at ``log_path``, refreshing every ``poll_ms`` ms.
 
@@ -160,30 +176,41 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         except (ValueError, IndexError):
             return log_path
 
-    def pick_label(path: str, vessel_id: str | None, run: str | None) -> str | None:
-        """The run asked for: by its span (``from``, ``to``, Unix s) when given, else label."""
+    def pick_span() -> tuple[float, float] | None:
+        """The run's span (``from``, ``to``, Unix s) when the link gives one."""
         from flask import request
 
         try:
-            span = (float(request.args["from"]), float(request.args["to"]))
+            return float(request.args["from"]), float(request.args["to"])
         except (KeyError, ValueError):
+            return None
+
+    def pick_label(path: str, vessel_id: str | None, run: str | None) -> str | None:
+        """The run asked for: by its span when given, else by its label."""
+        span = pick_span()
+        if span is None or not vessel_id:
             return run
-        return data.replay_label(path, vessel_id or "", run or "", span) if vessel_id else run
+        return data.replay_label(path, vessel_id, run or "", span)
 
     @app.server.route("/report")
     def report_page():  # the audit report of one run, made on demand (read-only)
-        from flask import Response, request
+        from flask import Response, redirect, request
 
-        from drivers.errors import EbullioError
-        from monitor.report import build_report
-
-        try:
-            vessel_id = request.args.get("vessel")
-            label = pick_label(pick_log(), vessel_id, request.args.get("run"))
-            page = build_report(pick_log(), vessel_id, label)
-        except EbullioError as exc:
-            return Response(f"no report: {exc}", 404, mimetype="text/plain")
-        return Response(page, mimetype="text/html")
+        # A report replays the vessel's runs: a job in a child process, like a replay.
+        # A link starts a fresh one and is sent on to its own address, which the
+        # waiting page reloads until the report is there.
+        job = request.args.get("job", "")
+        if not job:
+            query = {**request.args.to_dict(), "job": uuid.uuid4().hex}
+            return redirect(f"/report?{urlencode(query)}", code=303)
+        vessel_id, run = request.args.get("vessel"), request.args.get("run")
+        state = jobs.ask(("report", job), data.audit_report, pick_log(), vessel_id, run,
+                         pick_span(), separate=True)  # fmt: skip
+        if state.status == "done":
+            return Response(state.answer, mimetype="text/html")
+        if state.status == "failed":
+            return Response(f"no report: {state.error}", 404, mimetype="text/plain")
+        return Response(waiting_page(vessel_id, run), mimetype="text/html")
 
     @app.server.route("/export.csv")
     def export_page():  # one run as a CSV interchange file, made on demand (read-only)

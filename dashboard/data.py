@@ -393,6 +393,25 @@ def replay_label(path: str, vessel: str, label: str, span: tuple[float, float]) 
     return run.label if run is not None else label
 
 
+def audit_report(
+    path: str,
+    vessel: str | None,
+    label: str | None,
+    span: tuple[float, float] | None = None,
+    progress: Callable[[float], None] | None = None,  # noqa: ARG001 (the report says none)
+) -> str:
+    """Return the audit report page of a run (:func:`monitor.report.build_report`).
+
+    ``span`` (Unix s) finds a live-recorded run by its time (:func:`replay_label`).
+    The board makes it as a job; ``progress`` is not told anything.
+    """
+    from monitor.report import build_report
+
+    if span is not None and vessel:
+        label = replay_label(path, vessel, label or "", span)
+    return build_report(path, vessel, label)
+
+
 def replay_detail(
     path: str,
     vessel: str,
