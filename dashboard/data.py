@@ -327,7 +327,8 @@ def list_runs(path: str, runs: list | None = None) -> list[dict[str, object]]:
     """Return the runs of a log: vessel, label, start and end (Unix s), steps.
 
     A recorder log whose ``runs`` table has rows is listed from it (the live service
-    writes a row as each run ends; cheap however long the log). Otherwise the log is
+    writes a row as each run ends; cheap however long the log), each marked
+    ``recorded``: such a run has ended, and is found again by its span. Otherwise the log is
     read and split as ``ebullio replay`` splits it; ``runs`` is :func:`split_log` of
     the log when the caller has it already.
     """
@@ -358,7 +359,8 @@ def _table_runs(path: str) -> list[dict[str, object]]:
     out: dict[tuple[str, str], dict[str, object]] = {}
     for vessel, label, start_t, end_t, steps in rows:
         out.setdefault((vessel, str(label)), {"vessel": vessel, "run": str(label),
-                       "start_t": start_t, "end_t": end_t, "steps": steps})  # fmt: skip
+                       "start_t": start_t, "end_t": end_t, "steps": steps,
+                       "recorded": True})  # fmt: skip
     return sorted(out.values(), key=lambda r: (r["start_t"], r["vessel"]))
 
 

@@ -43,7 +43,7 @@ class JobState:
 class _Job:
     def __init__(self) -> None:
         self.progress: float | None = None
-        self.future: Future | None = None
+        self.future: Future = Future()
 
     def report(self, fraction: float) -> None:
         self.progress = min(max(float(fraction), 0.0), 1.0)
@@ -82,7 +82,6 @@ class Jobs:
                 if self._closed:
                     return JobState("failed", error="the board is stopping")
                 job = _Job()
-                job.future = Future()
                 threading.Thread(target=self._work, args=(job, fn, args, separate),
                                  name="board-job", daemon=True).start()  # fmt: skip
                 self._jobs[key] = job
@@ -90,7 +89,6 @@ class Jobs:
             else:
                 self._jobs.move_to_end(key)
         future = job.future
-        assert future is not None
         if not future.done():
             return JobState("running", progress=job.progress)
         exc = RuntimeError("the board is stopping") if future.cancelled() else future.exception()
@@ -104,14 +102,13 @@ class Jobs:
     def _forget_oldest(self) -> None:
         # finished jobs beyond ``keep`` go first; running ones are never dropped
         while len(self._jobs) > self.keep:
-            done = next((k for k, j in self._jobs.items() if j.future and j.future.done()), None)
+            done = next((k for k, j in self._jobs.items() if j.future.done()), None)
             if done is None:
                 return
             del self._jobs[done]
 
     def _work(self, job: _Job, fn: Callable[..., object], args: tuple, separate: bool) -> None:
         future = job.future
-        assert future is not None
         with self._slots:  # at most ``workers`` at once; the rest wait their turn
             if not future.set_running_or_notify_cancel():
                 return
@@ -130,8 +127,7 @@ class Jobs:
         with self._lock:
             self._closed = True
             for job in self._jobs.values():
-                if job.future is not None:
-                    job.future.cancel()  # only those still waiting for a slot
+                job.future.cancel()  # only those still waiting for a slot
 
 
 def _in_child(fn: Callable[..., object], args: tuple, report: Callable[[float], None]) -> object:

@@ -25,10 +25,12 @@ UIREVISION = "replay-view"
 
 
 def run_options(runs: list[dict]) -> list[dict[str, str]]:
-    """Return the run picker's options; a value is 'vessel|run|start|end' (Unix s)."""
+    """Return the run picker's options; a value is 'vessel|run', then '|start|end' (Unix s)
+    for a run from the runs table (ended, found again by its span)."""
     return [{"label": f"{r['vessel']} · run {r['run']} · {iso_minutes(r['start_t'])} UTC · "
                       f"{_length_text(r['end_t'] - r['start_t'])}",
-             "value": f"{r['vessel']}|{r['run']}|{r['start_t']!r}|{r['end_t']!r}"}
+             "value": f"{r['vessel']}|{r['run']}"
+                      + (f"|{r['start_t']!r}|{r['end_t']!r}" if r.get("recorded") else "")}
             for r in runs]  # fmt: skip
 
 
@@ -38,7 +40,7 @@ def parse_choice(value: str) -> tuple[str, str, tuple[float, float] | None]:
     vessel, _, label = head.partition("|")
     try:
         return vessel, label, (float(times[0]), float(times[1]))
-    except (IndexError, ValueError):  # an old 'vessel|run' value
+    except (IndexError, ValueError):  # 'vessel|run': a run split from the log
         return value.partition("|")[0], value.partition("|")[2], None
 
 

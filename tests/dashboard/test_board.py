@@ -450,7 +450,7 @@ def test_the_replay_view_says_how_far_a_replay_has_got_and_why_one_failed() -> N
     assert waiting_text(JobState("done", answer={})) == ""
     assert parse_choice("heater|3|1790000000.5|1790086399.0") == (
         "heater", "3", (1790000000.5, 1790086399.0))  # fmt: skip
-    assert parse_choice("heater|3") == ("heater", "3", None)  # a value from before spans
+    assert parse_choice("heater|3") == ("heater", "3", None)  # a run split from the log
 
 
 def test_a_csv_logs_history_reuses_the_boards_replay_and_matches_a_fresh_one(tmp_path) -> None:
