@@ -164,6 +164,7 @@ def test_a_meter_without_an_energy_counter_still_gives_the_water_mass(seed):
 
     _est, trace, rig = _run(kettle_scenario(duration_s=300.0), seed=seed, tamper=no_counter)
     e = trace[-1][1]
+    # against what the simulated kettle still holds; 5 % is our own tolerance
     assert e.water_mass_kg.value == pytest.approx(rig.state.water_mass_kg, rel=0.05)
 
 
