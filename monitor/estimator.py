@@ -61,7 +61,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from drivers.errors import ConfigError
-from monitor import transition, water
+from monitor import batchfit, transition, water
 from monitor.contracts import (
     Estimate,
     Estimated,
@@ -111,6 +111,11 @@ class EstimatorSettings:
     # 90 % interval covers the simulated truth about 90 % of the time
     # (benchmarks/bench_estimator.py); revisit on real rig data.
     forecast_model_error: float = 0.015
+    # batch fit: during the first heat-up the parameters come from a fit of the
+    # two-node model with both sensor lags over the run so far (monitor.batchfit)
+    batch_fit: bool = True
+    water_sensor_tau_prior_s: float = 2.5  # when the log does not give the lag
+    element_sensor_tau_prior_s: float = 1.5
 
 
 @dataclass(frozen=True)
@@ -349,6 +354,9 @@ class RunTotals:
     heat_up_energy_j: float | None = None
     evaporated_kg: float = 0.0
     rejected_readings: int = 0
+    water_readings: int = 0  # plausible water readings offered to the filter
+    downweighted_readings: int = 0  # readings given less than full weight (robust update)
+    nis_sum: float = 0.0  # sum of the water readings' NIS, for the run's mean
     reached_target: bool = False
     holding_sum_c: float = 0.0
     holding_steps: int = 0
@@ -368,9 +376,13 @@ class VesselEstimator:
         self.settings = settings or EstimatorSettings()
         tau = self.settings.water_sensor_tau_s
         tau = config.water_sensor_tau_s if tau is None else tau
-        self.lag_rate_per_s = 1.0 / tau if tau and tau > 0.0 else None
         tau_e = self.settings.element_sensor_tau_s
         tau_e = config.element_sensor_tau_s if tau_e is None else tau_e
+        if self.settings.batch_fit:
+            # the fit learns both lags, so the filter always carries the lag states
+            tau = tau if tau and tau > 0.0 else self.settings.water_sensor_tau_prior_s
+            tau_e = tau_e if tau_e and tau_e > 0.0 else self.settings.element_sensor_tau_prior_s
+        self.lag_rate_per_s = 1.0 / tau if tau and tau > 0.0 else None
         two_node = config.has_element_sensor
         self.element_lag_rate_per_s = 1.0 / tau_e if two_node and tau_e and tau_e > 0.0 else None
         self.layout = Layout.build(
@@ -403,6 +415,14 @@ class VesselEstimator:
         self._param_columns = [lay.ln_ua, lay.ln_c] + ([lay.ln_g] if lay.ln_g is not None else [])
         self._eye = np.eye(lay.size)
         self._q_cache: dict[tuple[float, bool], np.ndarray] = {}
+        self.heat_up_fit: batchfit.HeatUpFit | None = (
+            batchfit.HeatUpFit(self._fit_priors(tau, tau_e), two_node)
+            if self.settings.batch_fit
+            else None
+        )
+        self._fit_state: tuple[float, float] | None = None  # (T_e, T_w) of the fit, now
+        self._fit_eta_rel_sd = 0.0  # the fit's time-to-target spread over the time itself
+        self._fit_anchored_s: float | None = None
 
     # -- set-up -------------------------------------------------------------------------
 
@@ -410,6 +430,30 @@ class VesselEstimator:
         volume = self.config.nominal_volume_l or 1.5
         # 70 % full at c_p 4186 J/(kg·K) (common practice, no source)
         return self._non_water_capacity() + 4186.0 * 0.7 * volume
+
+    def _fit_priors(self, tau_s: float | None, tau_e_s: float | None) -> batchfit.FitPriors:
+        """Return the batch fit's weak priors (θ order of :mod:`monitor.batchfit`)."""
+        s, cfg = self.settings, self.config
+        rated = cfg.rated_power_w or 2000.0
+        ce = self.element_capacity_j_per_k
+        water_c = self._prior_capacity_j_per_k() - self._non_water_capacity()
+        # the water node holds everything but the element (and the water)
+        node_c = water_c + max(cfg.vessel_heat_capacity_j_per_k - ce, 0.0)
+        mean = [
+            math.log(s.ua_prior_w_per_k),
+            math.log(max(node_c, 100.0)),
+            math.log(rated / 40.0),
+            math.log(ce),
+            math.log(tau_s or s.water_sensor_tau_prior_s),
+            20.0,
+        ]
+        # 1σ: the volume may be unknown (C within a factor of e^1.5), the element
+        # capacity and lags within about a factor of two, G within e
+        sd = [1.0, 1.5, 1.0, 0.8, 0.8, 20.0]
+        if self.config.has_element_sensor:
+            mean += [math.log(tau_e_s or s.element_sensor_tau_prior_s), 0.0]
+            sd += [1.0, 5.0]
+        return batchfit.FitPriors(np.array(mean), np.array(sd))
 
     def _initialise(self, t_s: float, water_c: float, element_c: float | None) -> None:
         lay, s = self.layout, self.settings
@@ -627,7 +671,159 @@ class VesselEstimator:
                 )
             )
         self._update(t_s, readings, flags)
+        if self.heat_up_fit is not None and not self.totals.reached_target:
+            self._fit_step(t_s, power_w, ambient_c, readings)
         return self._estimate(t_s, power_w, ambient_c, flags)
+
+    # -- the batch fit of the first heat-up ---------------------------------------------
+
+    def _heating(self, power_w: float) -> bool:
+        rated = self.config.rated_power_w or 0.0
+        return power_w > max(self.settings.heating_power_w, 0.02 * rated)
+
+    def _fit_step(
+        self, t_s: float, power_w: float, ambient_c: float, readings: Mapping[str, float]
+    ) -> None:
+        """Feed the heat-up window, carry the fit's temperatures on, and fit when due."""
+        fit = self.heat_up_fit
+        water_c = readings.get("water")
+        element_c = readings.get("element") if self.layout.element is not None else None
+        water_c = water_c if water_c is not None and self._plausible(water_c) else None
+        element_c = element_c if element_c is not None and self._plausible(element_c) else None
+        fit.add(t_s, power_w, ambient_c, water_c, element_c, self._heating(power_w))
+        if self._fit_state is not None and fit.fit is not None:
+            # between fits, the fitted model carries the true temperatures on, open loop
+            dt_s = t_s - self._fit_anchored_s
+            if dt_s > 0.0:
+                th = fit.fit.theta
+                (t_w, t_e), _ = transition.two_node_step(
+                    self._fit_state[1], self._fit_state[0], None, dt_s, power_w, ambient_c,
+                    math.exp(th[0]), math.exp(th[1]), math.exp(th[2]), math.exp(th[3]),
+                    None, None, None,
+                )  # fmt: skip
+                self._fit_state = (t_e, t_w)
+                self._fit_anchored_s = t_s
+        if fit.due(t_s):
+            noise = (self.settings.water_noise_sd_c, self.settings.element_noise_sd_c)
+            result = fit.run(t_s, noise)
+            if result is not None:
+                self._anchor(t_s, result, power_w, ambient_c)
+
+    def _anchor(
+        self, t_s: float, result: batchfit.FitResult, power_w: float, ambient_c: float
+    ) -> None:
+        """Re-anchor the filter on a fit: its parameters, lags, temperatures and covariance."""
+        lay, bf = self.layout, batchfit
+        th = result.theta
+        end, end_j = result.end_state, result.end_jacobian
+        self._fit_state = (float(end[0]), float(end[1]))
+        self._fit_anchored_s = t_s
+        self._fit_eta_rel_sd = self._fit_eta_spread(result, power_w, ambient_c)
+        c, ce = math.exp(th[bf.LN_C]), math.exp(th[bf.LN_CE])
+        self.element_capacity_j_per_k = ce
+        if self.lag_rate_per_s is not None:
+            self.lag_rate_per_s = 1.0 / math.exp(th[bf.LN_TAU_W])
+        if self.element_lag_rate_per_s is not None and result.has_element:
+            self.element_lag_rate_per_s = 1.0 / math.exp(th[bf.LN_TAU_E])
+        # T = ∂(filter state)/∂θ, so the filter's covariance is T Σ Tᵀ with every
+        # correlation the fit knows of (temperatures with parameters included)
+        p = len(th)
+        x = self.core.x.copy()
+        jac = np.zeros((lay.size, p))
+        rows = [(lay.element, 0), (lay.water, 1), (lay.lagged, 2), (lay.element_lagged, 3)]
+        for i, k in rows:
+            if i is not None and k < len(end):
+                x[i] = end[k]
+                jac[i] = end_j[k]
+        x[lay.ln_ua] = th[bf.LN_UA]
+        jac[lay.ln_ua, bf.LN_UA] = 1.0
+        if lay.element is not None:
+            x[lay.ln_c] = th[bf.LN_C]
+            jac[lay.ln_c, bf.LN_C] = 1.0
+            x[lay.ln_g] = th[bf.LN_G]
+            jac[lay.ln_g, bf.LN_G] = 1.0
+        else:  # one node: its C lumps the element in
+            x[lay.ln_c] = math.log(c + ce)
+            jac[lay.ln_c, bf.LN_C] = c / (c + ce)
+            jac[lay.ln_c, bf.LN_CE] = ce / (c + ce)
+        cov = jac @ result.cov @ jac.T
+        for i in self._temps:
+            cov[i, i] += self.settings.water_noise_sd_c**2
+        self.core.predict(x, np.eye(lay.size), np.zeros((lay.size, lay.size)))
+        self.core.P = 0.5 * (cov + cov.T)
+
+    def _fit_eta_spread(
+        self, result: batchfit.FitResult, power_w: float, ambient_c: float
+    ) -> float:
+        """Return the fit's time-to-target 1σ over the time itself, from sigma points."""
+        th, cov = result.theta, result.cov
+        eta = self._fit_time_to_target(th, result.end_state, power_w, ambient_c)
+        if eta is None or eta <= 0.0:
+            return 0.0
+        p = len(th)
+        try:
+            root = np.linalg.cholesky(p * cov)
+        except np.linalg.LinAlgError:
+            w, v = np.linalg.eigh(cov)
+            root = v * np.sqrt(np.clip(w, 0.0, None) * p)
+        sq = 0.0
+        for k in range(p):
+            for sign in (1.0, -1.0):
+                d = sign * root[:, k]
+                state = result.end_state + result.end_jacobian @ d
+                t = self._fit_time_to_target(th + d, state, power_w, ambient_c)
+                if t is None:
+                    return 1.0  # part of the interval never gets there
+                sq += (t - eta) ** 2
+        return math.sqrt(sq / (2 * p)) / eta
+
+    def _fit_time_to_target(
+        self, theta: np.ndarray, state: np.ndarray, power_w: float, ambient_c: float
+    ) -> float | None:
+        ua, c, g, ce = (math.exp(v) for v in theta[:4])
+        return transition.two_node_time_to_target(
+            float(state[1]), float(state[0]), self.target_c, power_w, ambient_c, ua, c, g, ce
+        )
+
+    def _fit_figures(
+        self, water_c: float
+    ) -> tuple[Estimated, Estimated, Estimated, Estimated | None]:
+        """Return (UA, C, water mass, G) from the latest fit, with honest std's."""
+        bf = batchfit
+        result = self.heat_up_fit.fit
+        th, cov = result.theta, result.cov
+        ua, c, g, ce = (math.exp(v) for v in th[:4])
+        ua_est = Estimated(ua, ua * result.ln_sd(bf.LN_UA))
+        total = c + ce
+        var_total = (
+            c * c * cov[bf.LN_C, bf.LN_C]
+            + ce * ce * cov[bf.LN_CE, bf.LN_CE]
+            + 2.0 * c * ce * cov[bf.LN_C, bf.LN_CE]
+        )
+        sd_total = math.sqrt(max(var_total, 0.0))
+        cp = water.specific_heat_j_per_kg_k(min(max(water_c, 0.0), water.T_MAX_C))
+        mass = (total - self.config.vessel_heat_capacity_j_per_k) / cp
+        if self.layout.element is not None:
+            c_est = Estimated(c, c * result.ln_sd(bf.LN_C))
+            g_est = Estimated(g, g * result.ln_sd(bf.LN_G))
+        else:
+            c_est = Estimated(total, sd_total)
+            g_est = None
+        return ua_est, c_est, Estimated(mass, sd_total / cp), g_est
+
+    def _fit_forecast(self, power_w: float, ambient_c: float) -> TargetForecast | None:
+        """Return the time to target from the fit's temperatures now (None: ask the filter)."""
+        if self._fit_state is None:
+            return None
+        state = np.array([self._fit_state[0], self._fit_state[1]])
+        eta = self._fit_time_to_target(self.heat_up_fit.fit.theta, state, power_w, ambient_c)
+        if eta is None:
+            return None
+        model = self.settings.forecast_model_error
+        spread = eta * math.sqrt(self._fit_eta_rel_sd**2 + model * model)
+        return TargetForecast(
+            self.target_c, eta, max(eta - Z_90 * spread, 0.0), eta + Z_90 * spread
+        )
 
     def _predict(self, dt_s: float, power_w: float, ambient_c: float) -> None:
         core, lay = self.core, self.layout
@@ -729,6 +925,8 @@ class VesselEstimator:
             nis = nu * nu / var
             if name == "water":
                 self._nis = nis
+                self.totals.water_readings += 1
+                self.totals.nis_sum += nis
             if nis > s.gate_nis:
                 watch.rejected_in_row += 1
                 self.totals.rejected_readings += 1
@@ -824,7 +1022,17 @@ class VesselEstimator:
         mass = (c - self._non_water_capacity()) / cp
         mass_est = Estimated(mass, c_est.std / cp)
         g_est = Estimated(g, g * self._std(lay.ln_g)) if g is not None else None
-        heating = power_w > max(s.heating_power_w, 0.02 * (cfg.rated_power_w or 0.0))
+        fitted = (
+            self.heat_up_fit is not None
+            and self.heat_up_fit.fit is not None
+            and not tot.reached_target
+        )
+        if fitted:  # the heat-up's batch fit speaks for the parameters
+            ua_est, c_est, mass_est, g_est = self._fit_figures(water_c)
+            ua, c = ua_est.value, c_est.value
+            g = g_est.value if g_est is not None else None
+            mass = mass_est.value
+        heating = self._heating(power_w)
 
         # phase
         if self._boiling and heating:
@@ -867,7 +1075,9 @@ class VesselEstimator:
         # forecasts
         target = None
         if s.forecast and heating and not self._boiling and water_c < self.target_c:
-            target = forecast_time_to_target(self, power_w, ambient_c)
+            target = self._fit_forecast(power_w, ambient_c) if fitted else None
+            if target is None:
+                target = forecast_time_to_target(self, power_w, ambient_c)
             if not target.reachable:
                 flags.append(
                     Flag(

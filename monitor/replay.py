@@ -375,6 +375,25 @@ def estimator_figures(
         "flags": flags,
         "evaporated_kg": tot.evaporated_kg,
         "phase_at_end": str(last.phase),
+        "diagnostics": run_diagnostics(est),
+    }
+
+
+def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
+    """Return what a run's filter says of its own health (the summary's ``diagnostics``).
+
+    ``water_readings``: plausible water readings offered; ``rejected_fraction`` and
+    ``downweighted_fraction``: of those, set aside or given less weight;
+    ``nis_mean``: the mean NIS of the water readings (about 1 when the filter's
+    stated uncertainty is right).
+    """
+    tot = est.totals
+    n = tot.water_readings
+    return {
+        "water_readings": n,
+        "rejected_fraction": tot.rejected_readings / n if n else None,
+        "downweighted_fraction": tot.downweighted_readings / n if n else None,
+        "nis_mean": tot.nis_sum / n if n else None,
     }
 
 

@@ -1,0 +1,534 @@
+"""Parameters from a batch fit over a heat-up: the two-node model with both sensor lags.
+
+A filter that learns UA, C and G one reading at a time is at its weakest in the
+first minute of a heat-up, where the element's own heat capacity and the sensors'
+lags dominate what it sees. So while a vessel heats up, :class:`HeatUpFit` fits the
+whole model to the run so far (from a little before switch-on to now):
+
+    C_e · dT_e/dt = P - G·(T_e - T_w)                      element or plate
+    C   · dT_w/dt = G·(T_e - T_w) - UA·(T_w - T_a)         water (and what follows it)
+    τ_w · dy_w/dt = T_w - y_w                              water thermocouple
+    τ_e · dy_e/dt = T_e - y_e                              element thermocouple (if any)
+
+The fitted vector is θ = [ln UA, ln C, ln G, ln C_e, ln τ_w, T₀, (ln τ_e, ΔT_e₀)]:
+the element's heat capacity and both lags are parameters under weak priors, since
+a user rarely knows them. Without an element thermocouple the element is a hidden
+node of the same fit; its capacity and conductance then rest more on their priors,
+and the caller reports G only where its uncertainty allows. At the window's start
+the vessel is taken to be at rest: every node and sensor at T₀ (the element
+ΔT_e₀ above it when it is measured).
+
+One evaluation is O(n) and vectorised. The inputs are piecewise constant on a
+uniform grid, so the system is solved exactly in its modal form: with
+M = V·diag(λ)·V⁻¹ (all eigenvalues real and negative: the thermal block is similar
+to a symmetric matrix, the lags are triangular), each mode obeys
+z[k+1] = e^{λh}·z[k] + (e^{λh} - 1)/λ · (V⁻¹B u[k]), a first-order recursion that
+``scipy.signal.lfilter`` runs in C.
+
+The fit is Levenberg-Marquardt (Marquardt's diagonal scaling) on residuals
+(model - reading)/σ with Huber weights held fixed through one fit (IRLS across fits),
+plus the priors as residuals. Its covariance is honest by construction:
+(Jᵀ_d J_d/(s²·f) + Jᵀ_p J_p)⁻¹, with s² the residuals' variance over the assumed one
+and f = (1 + ρ₁)/(1 - ρ₁) for their lag-one autocorrelation (correlated residuals
+carry fewer independent facts), plus a structural floor per parameter for what the
+lumped model leaves out (a wall or lid with its own lag, losses that change with
+temperature). ``tests/monitor/test_batchfit.py`` checks the fit against
+``scipy.optimize.least_squares`` on the same residuals.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.signal import lfilter
+
+__all__ = [
+    "FitData",
+    "FitPriors",
+    "FitResult",
+    "HeatUpFit",
+    "fit_heat_up",
+    "residuals",
+    "simulate",
+]
+
+#: Indices into θ.
+LN_UA, LN_C, LN_G, LN_CE, LN_TAU_W, T0 = 0, 1, 2, 3, 4, 5
+LN_TAU_E, DT_E0 = 6, 7
+#: Huber's tuning constant (in σ): 95 % efficiency for normal residuals (Huber 1964,
+#: the usual choice, from memory).
+HUBER_K = 1.345
+#: A grid finer than this is thinned: one evaluation stays well under a millisecond.
+MAX_GRID_POINTS = 1200
+#: 1σ structural floor per parameter, in ln units (T₀ in K): what the lumped model
+#: cannot know of a richer world. Set on the randomised worlds of
+#: benchmarks/bench_worlds.py (the wall and lid take up heat with a lag of their
+#: own, so C and UA drift with the time scale of the fit).
+STRUCTURAL_LN_SD = (0.10, 0.015, 0.04, 0.15, 0.15, 0.05, 0.20, 0.2)
+
+
+@dataclass(frozen=True)
+class FitData:
+    """A heat-up window on a uniform grid: readings at grid points, inputs per interval.
+
+    ``power_w[j]`` and ``ambient_c[j]`` hold over [t_j, t_j+1]; ``water_c`` and
+    ``element_c`` (None: no element thermocouple) are readings at the N+1 grid
+    points, NaN where there is none.
+    """
+
+    h_s: float
+    power_w: np.ndarray
+    ambient_c: np.ndarray
+    water_c: np.ndarray
+    element_c: np.ndarray | None
+
+    @property
+    def has_element(self) -> bool:
+        """Return True when the element thermocouple is in the data."""
+        return self.element_c is not None
+
+    @classmethod
+    def from_steps(
+        cls,
+        t_s: np.ndarray,
+        power_w: np.ndarray,
+        ambient_c: np.ndarray,
+        water_c: np.ndarray,
+        element_c: np.ndarray | None,
+        max_points: int = MAX_GRID_POINTS,
+    ) -> FitData:
+        """Return the grid form of filter steps (t, mean power over the step ending at t, ...).
+
+        The grid step is the median step; each step lands on the nearest grid point
+        and its power fills the intervals since the previous one. Long windows are
+        thinned to ``max_points`` (mean power over a coarse interval, the reading at
+        its end), so the energy is kept whatever the grid.
+        """
+        t_s = np.asarray(t_s, dtype=float)
+        dt = np.diff(t_s)
+        h = float(np.median(dt)) if dt.size else 1.0
+        idx = np.rint((t_s - t_s[0]) / h).astype(int)
+        idx = np.maximum.accumulate(idx)
+        n = int(idx[-1])
+        power = np.zeros(max(n, 1))
+        ambient = np.full(max(n, 1), float(ambient_c[0]))
+        for k in range(1, len(t_s)):
+            lo, hi = idx[k - 1], idx[k]
+            if hi > lo:
+                power[lo:hi] = power_w[k]
+                ambient[lo:hi] = ambient_c[k]
+        water = np.full(n + 1, np.nan)
+        water[idx] = water_c
+        element = None
+        if element_c is not None:
+            element = np.full(n + 1, np.nan)
+            element[idx] = element_c
+        q = max(1, math.ceil(n / max_points))
+        if q > 1:
+            # pad the front with rest intervals (the window starts at rest) to a multiple of q
+            pad = (-n) % q
+            power = np.concatenate([np.full(pad, power[0]), power])
+            ambient = np.concatenate([np.full(pad, ambient[0]), ambient])
+            water = np.concatenate([np.full(pad, np.nan), water])
+            if element is not None:
+                element = np.concatenate([np.full(pad, np.nan), element])
+            m = (n + pad) // q
+            power = power.reshape(m, q).mean(axis=1)
+            ambient = ambient.reshape(m, q).mean(axis=1)
+            # the reading at each coarse point: the fine one there, else the nearest before
+            points = np.arange(0, n + pad + 1, q)
+            water = _nearest_before(water, points, q)
+            element = _nearest_before(element, points, q) if element is not None else None
+            h *= q
+        return cls(h, power, ambient, water, element)
+
+
+def _nearest_before(values: np.ndarray, points: np.ndarray, q: int) -> np.ndarray:
+    """Return values at ``points``, each the latest finite one within q-1 steps before it."""
+    out = np.full(len(points), np.nan)
+    for back in range(q - 1, -1, -1):
+        at = points - back
+        ok = at >= 0
+        got = np.full(len(points), np.nan)
+        got[ok] = values[at[ok]]
+        fill = np.isfinite(got)
+        out[fill] = got[fill]
+    return out
+
+
+@dataclass(frozen=True)
+class FitPriors:
+    """Weak priors: means (θ units) and 1σ, in the order of θ."""
+
+    mean: np.ndarray
+    sd: np.ndarray
+
+
+def _matrices(theta: np.ndarray, has_element: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Return (M, B) of dx/dt = M x + B [P, T_a], x = [T_e, T_w, y_w, (y_e)]."""
+    ua, c, g, ce, tau_w = np.exp(theta[:5])
+    n = 4 if has_element else 3
+    m = np.zeros((n, n))
+    m[0, 0], m[0, 1] = -g / ce, g / ce
+    m[1, 0], m[1, 1] = g / c, -(g + ua) / c
+    m[2, 1], m[2, 2] = 1.0 / tau_w, -1.0 / tau_w
+    if has_element:
+        tau_e = math.exp(theta[LN_TAU_E])
+        m[3, 0], m[3, 3] = 1.0 / tau_e, -1.0 / tau_e
+    b = np.zeros((n, 2))
+    b[0, 0] = 1.0 / ce
+    b[1, 1] = ua / c
+    return m, b
+
+
+def _modes(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Return (λ, V) of M with distinct eigenvalues (a near-double root is nudged apart)."""
+    lam, v = np.linalg.eig(m)
+    lam, v = lam.real, v.real
+    order = np.sort(lam)
+    gaps = np.diff(order)
+    if gaps.size and np.min(gaps) < 1e-7 * np.max(np.abs(order)):
+        # a lag equal to a thermal time constant: a Jordan block, nudge one lag by 1e-5
+        m = m.copy()
+        m[2, 1] *= 1.0 + 1e-5
+        m[2, 2] *= 1.0 + 1e-5
+        lam, v = np.linalg.eig(m)
+        lam, v = lam.real, v.real
+    return lam, v
+
+
+def simulate(theta: np.ndarray, data: FitData) -> tuple[np.ndarray, np.ndarray]:
+    """Return (states at every grid point, shape (N+1, n), °C) of the model θ on ``data``.
+
+    Columns: T_e, T_w, y_w and y_e (with an element thermocouple).
+    """
+    has_e = data.has_element
+    m, b = _matrices(theta, has_e)
+    lam, v = _modes(m)
+    n = m.shape[0]
+    x0 = np.full(n, theta[T0])
+    if has_e:
+        x0[0] += theta[DT_E0]
+        x0[3] += theta[DT_E0]
+    v_inv = np.linalg.inv(v)
+    w = v_inv @ b  # (n, 2)
+    z0 = v_inv @ x0
+    lh = lam * data.h_s
+    a = np.exp(lh)
+    d = np.expm1(lh) / lam
+    z = np.empty((n, len(data.power_w) + 1))
+    for i in range(n):
+        drive = d[i] * (w[i, 0] * data.power_w + w[i, 1] * data.ambient_c)
+        z[i] = lfilter([1.0], [1.0, -a[i]], np.concatenate(([z0[i]], drive)))
+    return (v @ z).T, lam
+
+
+def residuals(
+    theta: np.ndarray,
+    data: FitData,
+    priors: FitPriors,
+    sd_c: tuple[float, float],
+    weights: tuple[np.ndarray, np.ndarray | None] | None = None,
+) -> np.ndarray:
+    """Return the fit's residual vector: weighted (model - reading)/σ, then the priors'.
+
+    ``sd_c`` is (water σ, element σ) in K; ``weights`` the Huber weights per reading
+    (None: 1).
+    """
+    x, _ = simulate(theta, data)
+    parts = []
+    ww = weights[0] if weights is not None else None
+    rw = (x[:, 2] - data.water_c) / sd_c[0]
+    rw = rw[np.isfinite(data.water_c)]
+    parts.append(rw * np.sqrt(ww) if ww is not None else rw)
+    if data.element_c is not None:
+        re = (x[:, 3] - data.element_c) / sd_c[1]
+        re = re[np.isfinite(data.element_c)]
+        we = weights[1] if weights is not None else None
+        parts.append(re * np.sqrt(we) if we is not None else re)
+    parts.append((theta - priors.mean) / priors.sd)
+    return np.concatenate(parts)
+
+
+def _jacobian(f, theta: np.ndarray, r0: np.ndarray) -> np.ndarray:
+    """Return ∂r/∂θ by forward differences (steps of 1e-6 in ln units, 1e-4 K in T)."""
+    jac = np.empty((len(r0), len(theta)))
+    for k in range(len(theta)):
+        step = 1e-4 if k in (T0, DT_E0) else 1e-6
+        bumped = theta.copy()
+        bumped[k] += step
+        jac[:, k] = (f(bumped) - r0) / step
+    return jac
+
+
+def levenberg_marquardt(
+    f, theta0: np.ndarray, max_iter: int = 30, tol: float = 1e-8, max_step: float = 1.5
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, bool]:
+    """Return (θ, r, J, iterations, converged) minimising ½|f(θ)|² from θ₀.
+
+    Marquardt's form: (JᵀJ + μ·diag(JᵀJ)) δ = -Jᵀr, μ shrunk on success and grown on
+    failure; a step is capped at ``max_step`` in any component (ln units), so one
+    iteration cannot move a parameter by more than a factor of e^1.5.
+    """
+    theta = np.array(theta0, dtype=float)
+    r = f(theta)
+    cost = float(r @ r)
+    jac = _jacobian(f, theta, r)
+    mu = 1e-3
+    converged = False
+    it = 0
+    for it in range(1, max_iter + 1):  # noqa: B007 (the count is returned)
+        a = jac.T @ jac
+        g = jac.T @ r
+        diag = np.diag(a).copy()
+        diag[diag <= 0.0] = 1e-12
+        improved = False
+        for _ in range(12):
+            try:
+                delta = np.linalg.solve(a + mu * np.diag(diag), -g)
+            except np.linalg.LinAlgError:
+                mu *= 10.0
+                continue
+            big = np.max(np.abs(delta))
+            if big > max_step:
+                delta *= max_step / big
+            trial = theta + delta
+            r_trial = f(trial)
+            cost_trial = float(r_trial @ r_trial)
+            if np.isfinite(cost_trial) and cost_trial < cost:
+                improved = True
+                break
+            mu *= 4.0
+        if not improved:
+            converged = True  # no descent direction left: a minimum to this precision
+            break
+        drop = cost - cost_trial
+        theta, r, cost = trial, r_trial, cost_trial
+        jac = _jacobian(f, theta, r)
+        mu = max(mu / 3.0, 1e-9)
+        if drop <= tol * max(cost, 1.0) and np.max(np.abs(delta)) < 1e-5:
+            converged = True
+            break
+    return theta, r, jac, it, converged
+
+
+@dataclass(frozen=True)
+class FitResult:
+    """One fit: θ, its covariance (honest, see the module docstring) and its health."""
+
+    theta: np.ndarray
+    cov: np.ndarray
+    end_state: np.ndarray  # [T_e, T_w, y_w, (y_e)] at the window's last grid point, °C
+    end_jacobian: np.ndarray  # ∂end_state/∂θ
+    residual_rms_k: float  # of the water readings, unweighted
+    water_sd_c: float  # robust estimate of the water readings' scatter about the model
+    element_sd_c: float | None
+    variance_factor: float  # s²·f, the data part's inflation
+    downweighted: int  # readings with Huber weight < 1
+    readings: int
+    iterations: int
+    converged: bool
+    has_element: bool
+
+    def value(self, k: int) -> float:
+        """Return exp(θ_k) (a parameter in SI units)."""
+        return math.exp(float(self.theta[k]))
+
+    def ln_sd(self, k: int) -> float:
+        """Return the 1σ of θ_k (a relative std for a log parameter)."""
+        return math.sqrt(max(float(self.cov[k, k]), 0.0))
+
+
+def _robust_sd(values: np.ndarray) -> float:
+    """Return 1.4826·MAD of ``values`` (a normal sd that one outlier cannot move)."""
+    values = values[np.isfinite(values)]
+    if values.size < 3:
+        return 0.0
+    return 1.4826 * float(np.median(np.abs(values - np.median(values))))
+
+
+def _lag1(values: np.ndarray) -> float:
+    """Return the lag-one autocorrelation of a residual series (0 for fewer than 4)."""
+    values = values[np.isfinite(values)]
+    if values.size < 4:
+        return 0.0
+    x = values - values.mean()
+    den = float(x @ x)
+    return float(x[1:] @ x[:-1]) / den if den > 0.0 else 0.0
+
+
+def _huber(r_scaled: np.ndarray) -> np.ndarray:
+    """Return Huber weights min(1, k/|r|) of residuals in σ units."""
+    a = np.abs(r_scaled)
+    out = np.ones_like(a)
+    big = a > HUBER_K
+    out[big] = HUBER_K / a[big]
+    out[~np.isfinite(out)] = 1.0
+    return out
+
+
+def fit_heat_up(
+    data: FitData,
+    priors: FitPriors,
+    theta0: np.ndarray,
+    sd_c: tuple[float, float],
+    previous: FitResult | None = None,
+    max_iter: int = 30,
+) -> FitResult:
+    """Return the fit of the model to ``data`` from θ₀ (warm-started from ``previous``).
+
+    ``sd_c`` is the (water, element) reading σ assumed, K; the noise actually used is
+    the larger of it and the previous fit's robust estimate, and readings far from the
+    previous fit's model are down-weighted (Huber).
+    """
+    sd_w, sd_e = sd_c
+    if previous is not None:
+        sd_w = max(sd_w, previous.water_sd_c)
+        if previous.element_sd_c is not None:
+            sd_e = max(sd_e, previous.element_sd_c)
+    x_start, _ = simulate(theta0, data)
+    ok_w = np.isfinite(data.water_c)
+    w_w = _huber(((x_start[:, 2] - data.water_c) / sd_w)[ok_w])
+    w_e = None
+    if data.element_c is not None:
+        ok_e = np.isfinite(data.element_c)
+        w_e = _huber(((x_start[:, 3] - data.element_c) / sd_e)[ok_e])
+    if previous is None:
+        # the start may be far off: no down-weighting until one fit has been made
+        w_w = np.ones_like(w_w)
+        w_e = np.ones_like(w_e) if w_e is not None else None
+    weights = (w_w, w_e)
+
+    def f(theta: np.ndarray) -> np.ndarray:
+        return residuals(theta, data, priors, (sd_w, sd_e), weights)
+
+    theta, r, jac, iterations, converged = levenberg_marquardt(f, theta0, max_iter=max_iter)
+    x, _ = simulate(theta, data)
+    raw_w = (x[:, 2] - data.water_c)[ok_w]
+    n_w = raw_w.size
+    n_data = n_w + (w_e.size if w_e is not None else 0)
+    p = len(theta)
+    data_r, data_j = r[:n_data], jac[:n_data]
+    prior_j = jac[n_data:]
+    dof = max(n_data - p, 1)
+    s2 = max(float(data_r @ data_r) / dof, 1.0)
+    rho = min(max(_lag1(raw_w), 0.0), 0.98)
+    factor = s2 * (1.0 + rho) / (1.0 - rho)
+    info = data_j.T @ data_j / factor + prior_j.T @ prior_j
+    try:
+        cov = np.linalg.inv(info)
+    except np.linalg.LinAlgError:
+        cov = np.linalg.pinv(info)
+    cov = 0.5 * (cov + cov.T) + np.diag(np.square(STRUCTURAL_LN_SD[:p]))
+    # how the end state moves with θ, for re-anchoring the filter
+    end = x[-1]
+    end_j = np.empty((len(end), p))
+    for k in range(p):
+        step = 1e-4 if k in (T0, DT_E0) else 1e-6
+        bumped = theta.copy()
+        bumped[k] += step
+        end_j[:, k] = (simulate(bumped, data)[0][-1] - end) / step
+    element_sd = None
+    if data.element_c is not None:
+        raw_e = (x[:, 3] - data.element_c)[np.isfinite(data.element_c)]
+        element_sd = _robust_sd(raw_e)
+    down = int(np.sum(w_w < 1.0)) + (int(np.sum(w_e < 1.0)) if w_e is not None else 0)
+    return FitResult(
+        theta=theta,
+        cov=cov,
+        end_state=end,
+        end_jacobian=end_j,
+        residual_rms_k=float(np.sqrt(np.mean(raw_w**2))) if n_w else math.nan,
+        water_sd_c=_robust_sd(raw_w),
+        element_sd_c=element_sd,
+        variance_factor=factor,
+        downweighted=down,
+        readings=n_data,
+        iterations=iterations,
+        converged=converged,
+        has_element=data.has_element,
+    )
+
+
+@dataclass
+class HeatUpFit:
+    """The growing window of one heat-up and its latest fit (owned by one estimator).
+
+    Feed every filter step with :meth:`add`; :meth:`due` says when a new fit is worth
+    making (every ``every_s`` of heating at first, then every 5 % of the heating so
+    far, so a four-hour heater heat-up costs about a hundred fits, not thousands).
+    """
+
+    priors: FitPriors
+    has_element: bool
+    pre_roll_s: float = 60.0
+    every_s: float = 10.0
+    first_after_s: float = 15.0
+    heating_since_s: float | None = None
+    last_fit_s: float | None = None
+    fit: FitResult | None = None
+    fits: int = 0
+
+    def __post_init__(self) -> None:
+        self._t: list[float] = []
+        self._p: list[float] = []
+        self._a: list[float] = []
+        self._w: list[float] = []
+        self._e: list[float] = []
+
+    def add(
+        self,
+        t_s: float,
+        power_w: float,
+        ambient_c: float,
+        water_c: float | None,
+        element_c: float | None,
+        heating: bool,
+    ) -> None:
+        """Record one step: time, mean power over the step ending at t, the readings."""
+        if heating and self.heating_since_s is None:
+            self.heating_since_s = t_s
+        self._t.append(t_s)
+        self._p.append(power_w)
+        self._a.append(ambient_c)
+        self._w.append(math.nan if water_c is None else water_c)
+        self._e.append(math.nan if element_c is None else element_c)
+        if self.heating_since_s is None:
+            # at rest: keep only the pre-roll before a switch-on
+            while len(self._t) > 2 and self._t[0] < t_s - self.pre_roll_s:
+                for buf in (self._t, self._p, self._a, self._w, self._e):
+                    buf.pop(0)
+
+    def due(self, t_s: float) -> bool:
+        """Return True when a fit should be made at t_s."""
+        if self.heating_since_s is None:
+            return False
+        heated_s = t_s - self.heating_since_s
+        if heated_s < self.first_after_s:
+            return False
+        if self.last_fit_s is None:
+            return True
+        return t_s - self.last_fit_s >= max(self.every_s, 0.05 * heated_s)
+
+    def data(self) -> FitData:
+        """Return the window so far on its grid."""
+        element = np.array(self._e) if self.has_element else None
+        return FitData.from_steps(
+            np.array(self._t), np.array(self._p), np.array(self._a), np.array(self._w), element
+        )
+
+    def run(self, t_s: float, sd_c: tuple[float, float]) -> FitResult | None:
+        """Return a new fit of the window so far (None when it does not improve on nothing)."""
+        data = self.data()
+        theta0 = self.fit.theta if self.fit is not None else self.priors.mean.copy()
+        if self.fit is None:
+            first = data.water_c[np.isfinite(data.water_c)]
+            theta0[T0] = float(first[0]) if first.size else theta0[T0]
+        result = fit_heat_up(data, self.priors, theta0, sd_c, self.fit)
+        self.last_fit_s = t_s
+        self.fits += 1
+        if np.all(np.isfinite(result.theta)) and np.all(np.isfinite(result.cov)):
+            self.fit = result
+        return self.fit
