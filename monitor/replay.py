@@ -38,7 +38,7 @@ from pathlib import Path
 from typing import TextIO
 
 from drivers.errors import LogFormatError
-from monitor import __version__
+from monitor import __version__, batchfit
 from monitor.contracts import Estimate, Estimated, Level, finite_or_none
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import InterchangeLog, LogRow, iso_utc
@@ -385,15 +385,30 @@ def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
     ``water_readings``: plausible water readings offered; ``rejected_fraction`` and
     ``downweighted_fraction``: of those, set aside or given less weight;
     ``nis_mean``: the mean NIS of the water readings (about 1 when the filter's
-    stated uncertainty is right).
+    stated uncertainty is right); ``fit``: the heat-up's last batch fit (how many
+    fits, whether it converged, its residual RMS in K, the share of readings it
+    down-weighted, its variance inflation s²·f, and the element capacity and water
+    sensor lag it found), or None when no heat-up was fitted.
     """
     tot = est.totals
     n = tot.water_readings
+    fit = est.heat_up_fit.fit if est.heat_up_fit is not None else None
     return {
         "water_readings": n,
         "rejected_fraction": tot.rejected_readings / n if n else None,
         "downweighted_fraction": tot.downweighted_readings / n if n else None,
         "nis_mean": tot.nis_sum / n if n else None,
+        "fit": None
+        if fit is None
+        else {
+            "fits": est.heat_up_fit.fits,
+            "converged": fit.converged,
+            "residual_rms_k": finite_or_none(fit.residual_rms_k),
+            "downweighted_fraction": fit.downweighted / fit.readings if fit.readings else None,
+            "variance_factor": finite_or_none(fit.variance_factor),
+            "element_heat_capacity_j_per_k": fit.value(batchfit.LN_CE),
+            "water_sensor_tau_s": fit.value(batchfit.LN_TAU_W),
+        },
     }
 
 
