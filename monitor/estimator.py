@@ -25,8 +25,20 @@ Why an EKF, not a UKF
     one core. The forecast, which is strongly non-linear in the parameters, does
     use sigma points (:func:`forecast_time_to_target`).
 
-Without an element thermocouple
-    The element is not a hidden node: the water temperature alone pins G only
+Where the parameters come from in a heat-up
+    During the first heat-up of a run the parameters are not the filter's own: every
+    ~10 s (then every 5 % of the heating so far) :mod:`monitor.batchfit` fits the
+    two-node model with the element's heat capacity and both sensor lags as
+    parameters, over the run from just before switch-on to now, and the filter is
+    re-anchored on the fit (its parameters, lags, temperatures and the fit's whole
+    covariance). UA, C, the water mass, G and the time to target are the fit's until
+    the target is reached; between fits the fitted model carries the temperatures on
+    for the countdown. Idle, holding, cooling and standby stay with the filter,
+    starting from the last fit. ``EstimatorSettings.batch_fit = False`` turns it off.
+    Without an element thermocouple the fit keeps the element as a hidden node.
+
+Without an element thermocouple (outside the heat-up fit)
+    The element is not a hidden node of the filter: the water temperature alone pins G only
     through the few seconds after each switching, so a hidden element node would
     add a poorly observed state that wanders. The one-node model lumps the element's
     heat capacity into C and reports no element conductance.
