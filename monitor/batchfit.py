@@ -66,7 +66,13 @@ MAX_GRID_POINTS = 1200
 #: cannot know of a richer world. Set on the randomised worlds of
 #: benchmarks/bench_worlds.py (the wall and lid take up heat with a lag of their
 #: own, so C and UA drift with the time scale of the fit).
-STRUCTURAL_LN_SD = (0.10, 0.015, 0.04, 0.15, 0.15, 0.05, 0.20, 0.2)
+STRUCTURAL_LN_SD = (0.10, 0.010, 0.03, 0.10, 0.10, 0.05, 0.20, 0.2)
+#: Below this rise of the water since the window's start (K) the fit has seen too
+#: little of the heat-up for its model error to be small: its covariance is
+#: inflated by (EARLY_RISE_K / rise)². Set on drawn kettles (tests/monitor/
+#: test_batchfit.py's world): at 10 % of a heat-up the error over the stated std
+#: was 2.5-4 without it.
+EARLY_RISE_K = 15.0
 
 
 @dataclass(frozen=True)
@@ -321,7 +327,9 @@ class FitResult:
     """One fit: θ, its covariance (honest, see the module docstring) and its health."""
 
     theta: np.ndarray
-    cov: np.ndarray
+    cov: np.ndarray  # honest: statistical, plus the structural floor, times early²
+    statistical_cov: np.ndarray  # the data's and priors' part alone (correlations intact)
+    early_factor: float  # ≥ 1: how much the window's small rise inflates the std's
     end_state: np.ndarray  # [T_e, T_w, y_w, (y_e)] at the window's last grid point, °C
     end_jacobian: np.ndarray  # ∂end_state/∂θ
     residual_rms_k: float  # of the water readings, unweighted
@@ -423,7 +431,13 @@ def fit_heat_up(
         cov = np.linalg.inv(info)
     except np.linalg.LinAlgError:
         cov = np.linalg.pinv(info)
-    cov = 0.5 * (cov + cov.T) + np.diag(np.square(STRUCTURAL_LN_SD[:p]))
+    statistical = 0.5 * (cov + cov.T)
+    cov = statistical + np.diag(np.square(STRUCTURAL_LN_SD[:p]))
+    seen = data.water_c[np.isfinite(data.water_c)]
+    # the rise between the first and the last few readings (medians: a spike is no rise)
+    rise_k = float(np.median(seen[-5:]) - np.median(seen[:5])) if seen.size else 0.0
+    early = max(EARLY_RISE_K / max(rise_k, 0.5), 1.0)
+    cov *= early**2
     # how the end state moves with θ, for re-anchoring the filter
     end = x[-1]
     end_j = np.empty((len(end), p))
@@ -440,6 +454,8 @@ def fit_heat_up(
     return FitResult(
         theta=theta,
         cov=cov,
+        statistical_cov=statistical,
+        early_factor=early,
         end_state=end,
         end_jacobian=end_j,
         residual_rms_k=float(np.sqrt(np.mean(raw_w**2))) if n_w else math.nan,
@@ -459,15 +475,18 @@ class HeatUpFit:
     """The growing window of one heat-up and its latest fit (owned by one estimator).
 
     Feed every filter step with :meth:`add`; :meth:`due` says when a new fit is worth
-    making (every ``every_s`` of heating at first, then every 5 % of the heating so
-    far, so a four-hour heater heat-up costs about a hundred fits, not thousands).
+    making (6 s after switch-on, every 4 s for the first three fits, then every
+    ``every_s`` or 5 % of the heating so far, whichever is longer, so a four-hour
+    heater heat-up costs about a hundred fits, not thousands).
     """
 
     priors: FitPriors
     has_element: bool
     pre_roll_s: float = 60.0
     every_s: float = 10.0
-    first_after_s: float = 15.0
+    first_after_s: float = 6.0
+    early_fits: int = 3  # the first few fits come every ``early_every_s``
+    early_every_s: float = 4.0
     heating_since_s: float | None = None
     last_fit_s: float | None = None
     fit: FitResult | None = None
@@ -479,6 +498,7 @@ class HeatUpFit:
         self._a: list[float] = []
         self._w: list[float] = []
         self._e: list[float] = []
+        self._new_readings = 0  # water readings since the last fit
 
     def add(
         self,
@@ -496,6 +516,7 @@ class HeatUpFit:
         self._p.append(power_w)
         self._a.append(ambient_c)
         self._w.append(math.nan if water_c is None else water_c)
+        self._new_readings += water_c is not None
         self._e.append(math.nan if element_c is None else element_c)
         if self.heating_since_s is None:
             # at rest: keep only the pre-roll before a switch-on
@@ -504,15 +525,18 @@ class HeatUpFit:
                     buf.pop(0)
 
     def due(self, t_s: float) -> bool:
-        """Return True when a fit should be made at t_s."""
-        if self.heating_since_s is None:
+        """Return True when a fit should be made at t_s (never without a new reading)."""
+        if self.heating_since_s is None or self._new_readings == 0:
             return False
         heated_s = t_s - self.heating_since_s
         if heated_s < self.first_after_s:
             return False
         if self.last_fit_s is None:
             return True
-        return t_s - self.last_fit_s >= max(self.every_s, 0.05 * heated_s)
+        since_s = t_s - self.last_fit_s
+        if self.fits < self.early_fits:
+            return since_s >= self.early_every_s
+        return since_s >= max(self.every_s, 0.05 * heated_s)
 
     def data(self) -> FitData:
         """Return the window so far on its grid."""
@@ -530,6 +554,7 @@ class HeatUpFit:
             theta0[T0] = float(first[0]) if first.size else theta0[T0]
         result = fit_heat_up(data, self.priors, theta0, sd_c, self.fit)
         self.last_fit_s = t_s
+        self._new_readings = 0
         self.fits += 1
         if np.all(np.isfinite(result.theta)) and np.all(np.isfinite(result.cov)):
             self.fit = result

@@ -87,6 +87,12 @@ from monitor.contracts import (
 NIS_GATE_999 = 10.8276
 #: Two-sided normal quantile for a 90 % interval (scipy.stats.norm.ppf(0.95)).
 Z_90 = 1.6448536269514722
+#: 1σ, as a fraction, of every parameter between switch-on and the heat-up's first
+#: batch fit (a few seconds): a 0.8 kg kettle read 1.24 kg with a 3 % std there.
+UNFITTED_RELATIVE_SD = 0.3
+#: The filter is re-anchored only on fits whose early factor (monitor.batchfit) is at
+#: most this, i.e. that have seen a rise of at least 10 K.
+ANCHOR_EARLY_FACTOR = 1.5
 
 
 @dataclass(frozen=True)
@@ -126,6 +132,12 @@ class EstimatorSettings:
     # batch fit: during the first heat-up the parameters come from a fit of the
     # two-node model with both sensor lags over the run so far (monitor.batchfit)
     batch_fit: bool = True
+    # 1σ model error of the fit's time to target, as a fraction of it, beside the
+    # fit's own spread (which carries the structural floor of monitor.batchfit)
+    fit_forecast_model_error: float = 0.01
+    # and an absolute 1σ, s: the last kelvins before the boil go faster than the lumped
+    # model says (nucleate boiling at the element raises G), by a second or two
+    fit_forecast_floor_s: float = 2.0
     water_sensor_tau_prior_s: float = 2.5  # when the log does not give the lag
     element_sensor_tau_prior_s: float = 1.5
 
@@ -731,6 +743,11 @@ class VesselEstimator:
         self._fit_state = (float(end[0]), float(end[1]))
         self._fit_anchored_s = t_s
         self._fit_eta_rel_sd = self._fit_eta_spread(result, power_w, ambient_c)
+        if result.early_factor > ANCHOR_EARLY_FACTOR:
+            # too early in the heat-up: the fit's figures are reported with their wide
+            # std's, but a covariance that wide would throw the filter's linearised
+            # updates about (a 0.9 kg kettle "boiled dry" 13 s after switch-on)
+            return
         c, ce = math.exp(th[bf.LN_C]), math.exp(th[bf.LN_CE])
         self.element_capacity_j_per_k = ce
         if self.lag_rate_per_s is not None:
@@ -758,7 +775,14 @@ class VesselEstimator:
             x[lay.ln_c] = math.log(c + ce)
             jac[lay.ln_c, bf.LN_C] = c / (c + ce)
             jac[lay.ln_c, bf.LN_CE] = ce / (c + ce)
-        cov = jac @ result.cov @ jac.T
+        # the temperatures at the window's end are pinned by the readings: they take the
+        # fit's statistical covariance; the parameters get the structural floor on top
+        cov = jac @ result.statistical_cov @ jac.T
+        floor = batchfit.STRUCTURAL_LN_SD
+        cov[lay.ln_ua, lay.ln_ua] += floor[bf.LN_UA] ** 2
+        cov[lay.ln_c, lay.ln_c] += floor[bf.LN_C] ** 2
+        if lay.ln_g is not None:
+            cov[lay.ln_g, lay.ln_g] += floor[bf.LN_G] ** 2
         for i in self._temps:
             cov[i, i] += self.settings.water_noise_sd_c**2
         self.core.predict(x, np.eye(lay.size), np.zeros((lay.size, lay.size)))
@@ -767,8 +791,14 @@ class VesselEstimator:
     def _fit_eta_spread(
         self, result: batchfit.FitResult, power_w: float, ambient_c: float
     ) -> float:
-        """Return the fit's time-to-target 1σ over the time itself, from sigma points."""
-        th, cov = result.theta, result.cov
+        """Return the fit's time-to-target 1σ over the time itself, from sigma points.
+
+        The sigma points take the fit's statistical covariance, whose correlations
+        pin the time far better than each parameter alone; what the model leaves out
+        is the separate fractional term ``fit_forecast_model_error`` times the fit's
+        early factor (:func:`_fit_forecast`).
+        """
+        th, cov = result.theta, result.statistical_cov
         eta = self._fit_time_to_target(th, result.end_state, power_w, ambient_c)
         if eta is None or eta <= 0.0:
             return 0.0
@@ -831,8 +861,9 @@ class VesselEstimator:
         eta = self._fit_time_to_target(self.heat_up_fit.fit.theta, state, power_w, ambient_c)
         if eta is None:
             return None
-        model = self.settings.forecast_model_error
-        spread = eta * math.sqrt(self._fit_eta_rel_sd**2 + model * model)
+        model = self.settings.fit_forecast_model_error * self.heat_up_fit.fit.early_factor
+        floor_s = self.settings.fit_forecast_floor_s
+        spread = math.sqrt((eta * self._fit_eta_rel_sd) ** 2 + (eta * model) ** 2 + floor_s**2)
         return TargetForecast(
             self.target_c, eta, max(eta - Z_90 * spread, 0.0), eta + Z_90 * spread
         )
@@ -1045,6 +1076,21 @@ class VesselEstimator:
             g = g_est.value if g_est is not None else None
             mass = mass_est.value
         heating = self._heating(power_w)
+        unfitted = (
+            heating
+            and self.heat_up_fit is not None
+            and self.heat_up_fit.fit is None
+            and not tot.reached_target
+        )
+        if unfitted:
+            # switched on, not yet fitted: the filter alone cannot know the parameters
+            # yet (the first seconds are the element's and the sensors'), so say so
+            ua_est, c_est, mass_est = (
+                Estimated(v.value, max(v.std, UNFITTED_RELATIVE_SD * abs(v.value)))
+                for v in (ua_est, c_est, mass_est)
+            )
+            if g_est is not None:
+                g_est = Estimated(g_est.value, max(g_est.std, UNFITTED_RELATIVE_SD * g_est.value))
 
         # phase
         if self._boiling and heating:
@@ -1090,6 +1136,15 @@ class VesselEstimator:
             target = self._fit_forecast(power_w, ambient_c) if fitted else None
             if target is None:
                 target = forecast_time_to_target(self, power_w, ambient_c)
+                if unfitted and target.eta_s is not None:
+                    half = Z_90 * UNFITTED_RELATIVE_SD * target.eta_s
+                    target = TargetForecast(
+                        target.target_c,
+                        target.eta_s,
+                        max(min(target.lo_s or 0.0, target.eta_s - half), 0.0),
+                        max(target.hi_s or 0.0, target.eta_s + half),
+                        target.reason,
+                    )
             if not target.reachable:
                 flags.append(
                     Flag(
