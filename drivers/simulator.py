@@ -9,6 +9,11 @@ always tested against a world it does not assume:
 * element-to-water conductance as a series of the water-side film and a scale
   layer, G = 1 / (1/(h·A) + δ/(k_scale·A)), with the film coefficient rising
   once the element surface passes the boiling point (nucleate boiling);
+* optionally a lid (or second wall part) with its own heat capacity and its own
+  conductances to the water and to the room, so its own lag
+  (:class:`LidSpec`; off by default);
+* optionally a small conductance from the element or plate straight to the room,
+  a path that bypasses the water (``ElementSpec.to_room_w_per_k``; 0 by default);
 * the wall loses heat to the room by natural convection,
   h_c = 1.42·(ΔT/L)^¼ W/(m²·K) (simplified laminar form for air, from memory,
   see shared/reference/REFERENCE.md §4.3), and by grey-body radiation,
@@ -16,13 +21,19 @@ always tested against a world it does not assume:
 * at the boiling point of the site pressure the water is clamped and surplus heat
   evaporates water at the latent heat, so the mass falls;
 * a kettle that switches off a set time after boiling starts, or a storage heater
-  with a thermostat, hysteresis and draw-offs of cold water;
+  with a thermostat, hysteresis, an optional idle before it first switches on, and
+  draw-offs of cold water;
 * sensors with first-order lag, noise, quantisation, dropouts and spikes,
   optionally reporting raw thermocouple millivolts with a cold junction.
 
 Water properties come straight from IAPWS-IF97 (``iapws``), memoised on a 0.01 K
 grid, not from ``monitor/``: ``drivers/`` imports nothing from ``monitor/``, and
 the simulated world should not share the estimator's shortcuts.
+
+Every feature added after the first demo logs defaults to off, so that existing
+scenarios and seeds give the same samples, bit for bit (``replay_logs/`` depends
+on it). A log without an energy counter is a scenario whose ``sensors`` have no
+``energy`` entry; one without an element thermocouple has no ``element`` entry.
 
 Everything random draws from one ``numpy.random.default_rng(seed)``; the same
 scenario and seed give the same samples, bit for bit. Time comes from an
@@ -111,6 +122,11 @@ class ElementSpec:
     film_w_per_m2_k: float  # clean water-side film coefficient below surface boiling
     boiling_film_factor: float = 1.6  # film multiplier once nucleate boiling is fully developed
     resistance_tempco_per_k: float = 1.0e-4  # nickel-chromium order of magnitude (from memory)
+    to_room_w_per_k: float = 0.0  # straight from the element or plate to the room, W/K
+
+    def __post_init__(self) -> None:
+        if not self.to_room_w_per_k >= 0.0:
+            raise ConfigError(f"element to_room_w_per_k must be >= 0, got {self.to_room_w_per_k}")
 
     @property
     def resistance_20c_ohm(self) -> float:
@@ -131,6 +147,28 @@ class ShellSpec:
 
 
 @dataclass(frozen=True)
+class LidSpec:
+    """A lid or second wall part: its own heat capacity (J/K) and conductances (W/K).
+
+    Heat flows water → lid → room through two fixed conductances, so the lid follows
+    the water with its own lag, C_lid / (G_water + G_room).
+    """
+
+    heat_capacity_j_per_k: float
+    to_water_w_per_k: float
+    to_room_w_per_k: float
+
+    def __post_init__(self) -> None:
+        for key in ("heat_capacity_j_per_k", "to_water_w_per_k", "to_room_w_per_k"):
+            if not getattr(self, key) > 0.0:
+                raise ConfigError(f"lid {key} must be > 0, got {getattr(self, key)!r}")
+
+    def series_w_per_k(self) -> float:
+        """Return the steady conductance water → lid → room, W/K (two in series)."""
+        return 1.0 / (1.0 / self.to_water_w_per_k + 1.0 / self.to_room_w_per_k)
+
+
+@dataclass(frozen=True)
 class KettleSwitch:
     """A kettle's steam switch: on from the start, off a fixed time after boiling starts."""
 
@@ -145,6 +183,7 @@ class Thermostat:
     setpoint_c: float = 60.0
     hysteresis_k: float = 6.0
     bulb_tau_s: float = 90.0
+    start_delay_s: float = 0.0  # idle before the heater may first switch on, s
 
 
 @dataclass(frozen=True)
@@ -220,6 +259,7 @@ class Scenario:
     start_epoch_s: float = DEFAULT_START_EPOCH_S
     sensors: dict[str, SensorSpec] = field(default_factory=_default_sensors)
     cold_junction_offset_k: float = 3.0  # terminal block above the room, for raw mV sensors
+    lid: LidSpec | None = None  # a lid or second wall part with its own lag (None: none)
 
     def __post_init__(self) -> None:
         checks = {
@@ -249,10 +289,15 @@ class Scenario:
     def vessel_heat_capacity_j_per_k(self) -> float:
         """Return the heat capacity (J/K) of what is not water but follows its temperature.
 
-        The element, the tank metal and, unless it sits behind insulation, the wall.
+        The element, the tank metal, the lid if there is one and, unless it sits
+        behind insulation, the wall: what a commissioning run of the empty vessel
+        would measure.
         """
         wall = 0.0 if self.shell.insulated else self.shell.heat_capacity_j_per_k
-        return self.element.heat_capacity_j_per_k + self.tank_heat_capacity_j_per_k + wall
+        total = self.element.heat_capacity_j_per_k + self.tank_heat_capacity_j_per_k + wall
+        if self.lid is not None:
+            total += self.lid.heat_capacity_j_per_k
+        return total
 
     def clean_element_conductance_w_per_k(self) -> float:
         """Return the element-to-water conductance without scale, below surface boiling, W/K."""
@@ -376,6 +421,7 @@ class RigState:
     cut_out: bool = False  # the dry-boil cut-out has tripped
     boiling_since_s: float | None = None
     bulb_c: float = 0.0
+    lid_c: float = 0.0  # the lid's temperature, °C (only moves when the scenario has a lid)
     # running totals, J (and kg) since the start
     energy_in_j: float = 0.0
     energy_lost_j: float = 0.0
@@ -392,7 +438,11 @@ class Flows:
     power_w: float
     to_water_w: float
     to_wall_w: float
-    to_room_w: float
+    to_room_w: float  # everything that leaves for the room: wall, lid and element paths
+    wall_to_room_w: float = 0.0  # the wall's own convection and radiation
+    to_lid_w: float = 0.0  # water to lid
+    lid_to_room_w: float = 0.0
+    element_to_room_w: float = 0.0  # element or plate straight to the room
 
 
 def wall_loss_w(scenario: Scenario, wall_c: float, ambient_c: float) -> float:
@@ -413,9 +463,13 @@ def wall_loss_w(scenario: Scenario, wall_c: float, ambient_c: float) -> float:
 def effective_ua_w_per_k(scenario: Scenario, water_c: float, ambient_c: float) -> float:
     """Return the steady-state loss conductance (W/K) with the water held at ``water_c``.
 
-    The wall settles where the heat reaching it from the water equals what it
-    loses to the room, G_in·(T_w - T_s) = loss(T_s); the effective UA is that
-    loss over T_w - T_a. This is the figure a one-node estimator should find.
+    The element is off. The wall settles where the heat reaching it from the
+    water equals what it loses to the room, G_in·(T_w - T_s) = loss(T_s); the
+    effective UA is that loss over T_w - T_a, plus the paths that are linear: the
+    lid's two conductances in series, and the element-to-water conductance (no
+    surface boiling) in series with the element's own path to the room. This is
+    the figure a one-node estimator should find once the water has been near
+    ``water_c`` for longer than the wall and lid lags.
     """
     if water_c == ambient_c:
         water_c = ambient_c + 1e-3
@@ -425,7 +479,14 @@ def effective_ua_w_per_k(scenario: Scenario, water_c: float, ambient_c: float) -
         return g_in * (water_c - wall_c) - wall_loss_w(scenario, wall_c, ambient_c)
 
     wall_c = brentq(imbalance, min(water_c, ambient_c), max(water_c, ambient_c), xtol=1e-9)
-    return wall_loss_w(scenario, wall_c, ambient_c) / (water_c - ambient_c)
+    ua = wall_loss_w(scenario, wall_c, ambient_c) / (water_c - ambient_c)
+    if scenario.lid is not None:
+        ua += scenario.lid.series_w_per_k()
+    g_room = scenario.element.to_room_w_per_k
+    if g_room > 0.0:
+        g = scenario.element_conductance_w_per_k(0.0)
+        ua += 1.0 / (1.0 / g + 1.0 / g_room)
+    return ua
 
 
 def sim_url(scenario: Scenario, seed: int) -> str:
@@ -514,6 +575,7 @@ class SimulatedRig:
             ambient_c=s.ambient_c,
             voltage_v=s.element.rated_voltage_v,
             bulb_c=s.start_water_c,
+            lid_c=(s.start_water_c + s.ambient_c) / 2.0,
         )
         self._initial = replace(self.state)
         # sensor states: lagged true values, per role
@@ -525,6 +587,9 @@ class SimulatedRig:
             s.element.heat_capacity_j_per_k / max_g,
             s.shell.heat_capacity_j_per_k / max(s.shell.inner_conductance_w_per_k, 1e-9),
         ]
+        if s.lid is not None:
+            lid = s.lid
+            taus.append(lid.heat_capacity_j_per_k / (lid.to_water_w_per_k + lid.to_room_w_per_k))
         #: RK4 sub-step, s: well inside the stability limit of the stiffest node
         #: (sensor lags are stepped exactly, so they do not limit it).
         self.substep_s = min(s.sample_interval_s, 0.25 * min(taus))
@@ -574,15 +639,30 @@ class SimulatedRig:
         s = self.scenario
         power = self._power_w(st)
         g = s.element_conductance_w_per_k(self._boiling_fraction(st))
+        wall_to_room_w = to_room_w = wall_loss_w(s, st.wall_c, st.ambient_c)
+        to_lid_w = lid_to_room_w = element_to_room_w = 0.0
+        # the optional paths are added only when present, so a scenario without them
+        # gives the same floating-point results as before they existed
+        if s.lid is not None:
+            to_lid_w = s.lid.to_water_w_per_k * (st.water_c - st.lid_c)
+            lid_to_room_w = s.lid.to_room_w_per_k * (st.lid_c - st.ambient_c)
+            to_room_w += lid_to_room_w
+        if s.element.to_room_w_per_k > 0.0:
+            element_to_room_w = s.element.to_room_w_per_k * (st.element_c - st.ambient_c)
+            to_room_w += element_to_room_w
         return Flows(
             power_w=power,
             to_water_w=g * (st.element_c - st.water_c),
             to_wall_w=s.shell.inner_conductance_w_per_k * (st.water_c - st.wall_c),
-            to_room_w=wall_loss_w(s, st.wall_c, st.ambient_c),
+            to_room_w=to_room_w,
+            wall_to_room_w=wall_to_room_w,
+            to_lid_w=to_lid_w,
+            lid_to_room_w=lid_to_room_w,
+            element_to_room_w=element_to_room_w,
         )
 
     def _derivatives(self, st: RigState, t_s: float) -> tuple[float, ...]:
-        """Return the rates of [T_e, T_w, T_s] (K/s) and of [energy in, lost, drawn] (W)."""
+        """Return the rates of [T_e, T_w, T_s] (K/s), [energy in, lost, drawn] (W), T_lid (K/s)."""
         s = self.scenario
         f = self.flows(st)
         p = s.pressure_kpa
@@ -592,16 +672,21 @@ class SimulatedRig:
         drawn_w = (
             flow * (_liquid_h_fast(st.water_c, p) - _liquid_h_fast(cold_c, p)) if flow else 0.0
         )
-        d_element = (f.power_w - f.to_water_w) / s.element.heat_capacity_j_per_k
+        # Subtracting the optional paths' 0.0 when they are absent is exact in IEEE
+        # arithmetic, so scenarios without them keep their samples bit for bit.
+        d_element = (
+            f.power_w - f.to_water_w - f.element_to_room_w
+        ) / s.element.heat_capacity_j_per_k
         water_capacity = st.water_mass_kg * cp + s.tank_heat_capacity_j_per_k
-        d_water = (f.to_water_w - f.to_wall_w - drawn_w) / water_capacity
-        d_wall = (f.to_wall_w - f.to_room_w) / s.shell.heat_capacity_j_per_k
-        return d_element, d_water, d_wall, f.power_w, f.to_room_w, drawn_w
+        d_water = (f.to_water_w - f.to_wall_w - f.to_lid_w - drawn_w) / water_capacity
+        d_wall = (f.to_wall_w - f.wall_to_room_w) / s.shell.heat_capacity_j_per_k
+        d_lid = (f.to_lid_w - f.lid_to_room_w) / s.lid.heat_capacity_j_per_k if s.lid else 0.0
+        return d_element, d_water, d_wall, f.power_w, f.to_room_w, drawn_w, d_lid
 
     def _substep(self, h: float) -> None:
         st = self.state
         t0 = self.elapsed_s
-        y0 = (st.element_c, st.water_c, st.wall_c)
+        y0 = (st.element_c, st.water_c, st.wall_c, st.lid_c)
 
         def at(k: tuple[float, ...], frac: float) -> RigState:
             return replace(
@@ -609,9 +694,11 @@ class SimulatedRig:
                 element_c=y0[0] + frac * h * k[0],
                 water_c=y0[1] + frac * h * k[1],
                 wall_c=y0[2] + frac * h * k[2],
+                lid_c=y0[3] + frac * h * k[6],
             )
 
-        # classical RK4 over the three temperatures and the three running energy totals
+        # classical RK4 over the temperatures (element, water, wall, lid) and the three
+        # running energy totals
         k1 = self._derivatives(st, t0)
         k2 = self._derivatives(at(k1, 0.5), t0 + 0.5 * h)
         k3 = self._derivatives(at(k2, 0.5), t0 + 0.5 * h)
@@ -625,6 +712,7 @@ class SimulatedRig:
         st.energy_in_j += inc[3]
         st.energy_lost_j += inc[4]
         st.draw_net_j += inc[5]
+        st.lid_c += inc[6]
         if st.water_c > self._t_sat_c:
             # boiling clamp: the sensible heat above saturation leaves as vapour
             cp = liquid_cp_j_per_kg_k(self._t_sat_c, self.scenario.pressure_kpa)
@@ -658,6 +746,8 @@ class SimulatedRig:
                 st.boiling_since_s is not None and t >= st.boiling_since_s + c.off_delay_s
             )
             st.heating = t >= c.start_delay_s and not switched_off
+        elif t < c.start_delay_s:
+            st.heating = False  # the idle before the heater is first switched on
         else:
             if st.bulb_c < c.setpoint_c - c.hysteresis_k:
                 st.heating = True
@@ -701,6 +791,7 @@ class SimulatedRig:
             "element": st.element_c,
             "ambient": st.ambient_c,
             "wall": st.wall_c,
+            "lid": st.lid_c,
         }
         if role in temps:
             return temps[role]
@@ -729,6 +820,7 @@ class SimulatedRig:
             "water_c": st.water_c,
             "element_c": st.element_c,
             "wall_c": st.wall_c,
+            "lid_c": st.lid_c,
             "ambient_c": st.ambient_c,
             "water_mass_kg": st.water_mass_kg,
             "element_conductance_w_per_k": self.element_conductance_now_w_per_k(),
@@ -817,6 +909,7 @@ class SimulatedRig:
         stored = (
             s.element.heat_capacity_j_per_k * (st.element_c - first.element_c)
             + s.shell.heat_capacity_j_per_k * (st.wall_c - first.wall_c)
+            + (s.lid.heat_capacity_j_per_k * (st.lid_c - first.lid_c) if s.lid else 0.0)
             + s.tank_heat_capacity_j_per_k * (st.water_c - first.water_c)
             + st.water_mass_kg * liquid_h_j_per_kg(st.water_c, p)
             + st.evaporated_sensible_j

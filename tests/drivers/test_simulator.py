@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import hashlib
 import itertools
 import math
 import time
@@ -13,7 +14,11 @@ import pytest
 from drivers import thermocouple
 from drivers.errors import ConfigError, DriverError
 from drivers.simulator import (
+    DrawOff,
+    ElementSpec,
     FastClock,
+    KettleSwitch,
+    LidSpec,
     PacedClock,
     SensorSpec,
     SimulatedRig,
@@ -269,3 +274,138 @@ def test_saturation_matches_iapws_reference():
     assert t_sat_c == pytest.approx(99.974, abs=5e-4)
     assert h_fg == pytest.approx(2256.54e3, rel=1e-5)
     assert math.isfinite(h_fg)
+
+
+# ---------------------------------------------------------------------------
+# Features added for benchmarks/bench_worlds.py: a lid, a plate-to-room path, an idle
+# before a heater's first switch-on. Every one is off by default.
+# ---------------------------------------------------------------------------
+
+#: A kettle lid of our own: 120 J/K, 1.5 W/K to the water, 0.3 W/K to the room.
+LID = LidSpec(heat_capacity_j_per_k=120.0, to_water_w_per_k=1.5, to_room_w_per_k=0.3)
+
+
+def _with_plate_to_room(scenario, g_w_per_k):
+    return replace(scenario, element=replace(scenario.element, to_room_w_per_k=g_w_per_k))
+
+
+def _sample_digest(scenario, seed):
+    digest = hashlib.sha256()
+    for batch in SimulatedRig(scenario, seed=seed).run():
+        for s in batch:
+            digest.update(repr((s.t, s.channel, s.value)).encode())
+    return digest.hexdigest()
+
+
+@pytest.mark.parametrize(
+    ("scenario", "seed", "want"),
+    [
+        (
+            kettle_scenario(duration_s=400.0),
+            5,
+            "6b365cb0ce3e67b1e45fcfe074f1c4673a8426ab4c4d1cd68dc2b8b80c456686",
+        ),
+        (
+            water_heater_scenario(duration_s=3600.0),
+            6,
+            "67042e96051c3fb635f4185ee1db22c08e3b897b1e84718bbfeccbc229b4c73b",
+        ),
+    ],
+    ids=["kettle", "heater"],
+)
+def test_new_features_off_by_default_leave_the_samples_unchanged(scenario, seed, want):
+    # digests of every (t, channel, value) taken with drivers/simulator.py as it was
+    # before the lid, the plate-to-room path and the heater's idle were added (commit
+    # 26cbffe); tests/test_replay_logs.py checks the demo logs the same way
+    assert _sample_digest(scenario, seed) == want
+
+
+@pytest.mark.parametrize(
+    "scenario",
+    [
+        _with_plate_to_room(kettle_scenario(lid=LID), 0.3),
+        _with_plate_to_room(kettle_scenario(lid=LID, scale_mm=0.4, pressure_kpa=84.556), 0.6),
+        _with_plate_to_room(
+            water_heater_scenario(
+                duration_s=3 * 3600.0,
+                lid=LidSpec(2500.0, 6.0, 0.3),
+                control=Thermostat(start_delay_s=90.0),
+                draws=(DrawOff(start_s=2.5 * 3600.0, volume_l=15.0),),
+            ),
+            0.2,
+        ),
+    ],
+    ids=["kettle", "kettle-scaled-1500m", "heater-draws"],
+)
+def test_energy_balance_closes_with_a_lid_and_a_plate_to_room_path(scenario):
+    rig = SimulatedRig(scenario, seed=12)
+    _run_to_end(rig)
+    # in = stored (the lid's share included) + lost (all three paths) + latent + drawn
+    assert abs(_closure(rig)) < 1e-4
+    # and the lid did take up heat: it starts halfway between water and room (as the
+    # wall does) and ends well away from there
+    lid_start_c = (scenario.start_water_c + scenario.ambient_c) / 2.0
+    assert abs(rig.truth()["lid_c"] - lid_start_c) > 5.0
+
+
+def test_lid_and_plate_paths_carry_heat_to_the_room():
+    scenario = _with_plate_to_room(kettle_scenario(lid=LID, duration_s=150.0), 0.3)
+    plain = SimulatedRig(kettle_scenario(duration_s=150.0), seed=3)
+    rig = SimulatedRig(scenario, seed=3)
+    _run_to_end(plain)
+    _run_to_end(rig)
+    st = rig.state
+    # mid heat-up the lid lags: colder than the water, warmer than the room
+    assert st.ambient_c < st.lid_c < st.water_c - 5.0
+    f = rig.flows()
+    assert f.to_lid_w == pytest.approx(1.5 * (st.water_c - st.lid_c), rel=1e-12)
+    assert f.element_to_room_w == pytest.approx(0.3 * (st.element_c - st.ambient_c), rel=1e-12)
+    assert f.to_room_w == pytest.approx(
+        f.wall_to_room_w + 0.3 * (st.lid_c - st.ambient_c) + f.element_to_room_w, rel=1e-12
+    )
+    # the lid's capacity and the extra losses slow the heat-up
+    assert st.water_c < plain.state.water_c - 1.0
+
+
+def test_effective_ua_matches_the_simulated_cooling_with_a_lid_and_plate_path():
+    # after ten minutes of cooling the lid and the wall follow the water closely, so the
+    # rig's own heat flow to the room over (T_w - T_a) should be near the steady figure
+    scenario = _with_plate_to_room(kettle_scenario(lid=LID, duration_s=900.0), 0.3)
+    rig = SimulatedRig(scenario, seed=4)
+    _run_to_end(rig)
+    st = rig.state
+    assert not st.heating
+    seen = rig.flows().to_room_w / (st.water_c - st.ambient_c)
+    steady = effective_ua_w_per_k(scenario, st.water_c, st.ambient_c)
+    assert seen == pytest.approx(steady, rel=0.02)
+    # the new paths raise UA by about their series conductances: lid 1.5·0.3/1.8 =
+    # 0.25 W/K, plate 54·0.3/54.3 ≈ 0.30 W/K (hand sums)
+    bare = effective_ua_w_per_k(kettle_scenario(), st.water_c, st.ambient_c)
+    assert steady - bare == pytest.approx(0.25 + 0.298, abs=0.01)
+
+
+def test_a_heater_idles_for_its_start_delay():
+    scenario = water_heater_scenario(duration_s=600.0, control=Thermostat(start_delay_s=95.0))
+    rig = SimulatedRig(scenario, seed=5)
+    heating = [(rig.elapsed_s, rig.state.heating) for _ in rig.run()]
+    assert all(not on for t, on in heating if t < 95.0)
+    assert all(on for t, on in heating if t >= 100.0)
+
+
+def test_a_log_without_an_energy_counter_or_element_thermocouple():
+    sensors = {k: v for k, v in kettle_scenario().sensors.items() if k not in ("energy", "element")}
+    rig = SimulatedRig(kettle_scenario(duration_s=60.0, sensors=sensors), seed=6)
+    channels = {s.channel for batch in rig.run() for s in batch}
+    assert "energy" not in channels
+    assert "element" not in channels
+    assert {"water", "power", "ambient"} <= channels
+
+
+def test_bad_lid_and_plate_paths_are_refused():
+    with pytest.raises(ConfigError, match="lid to_water_w_per_k"):
+        LidSpec(heat_capacity_j_per_k=100.0, to_water_w_per_k=0.0, to_room_w_per_k=0.3)
+    with pytest.raises(ConfigError, match="to_room_w_per_k"):
+        ElementSpec(2000.0, 230.0, 200.0, 0.02, 3000.0, to_room_w_per_k=-0.1)
+    assert kettle_scenario(lid=LID, control=KettleSwitch()).vessel_heat_capacity_j_per_k == (
+        kettle_scenario().vessel_heat_capacity_j_per_k + 120.0
+    )
