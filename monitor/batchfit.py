@@ -260,7 +260,10 @@ def residuals(
 
 
 def _jacobian(f, theta: np.ndarray, r0: np.ndarray) -> np.ndarray:
-    """Return ∂r/∂θ by forward differences (steps of 1e-6 in ln units, 1e-4 K in T)."""
+    """Return ∂f/∂θ by forward differences (steps of 1e-6 in ln units, 1e-4 K in T).
+
+    ``r0`` is f(θ); used for the residuals and for the window's end state.
+    """
     jac = np.empty((len(r0), len(theta)))
     for k in range(len(theta)):
         step = 1e-4 if k in (T0, DT_E0) else 1e-6
@@ -441,12 +444,7 @@ def fit_heat_up(
     cov *= early**2
     # how the end state moves with θ, for re-anchoring the filter
     end = x[-1]
-    end_j = np.empty((len(end), p))
-    for k in range(p):
-        step = 1e-4 if k in (T0, DT_E0) else 1e-6
-        bumped = theta.copy()
-        bumped[k] += step
-        end_j[:, k] = (simulate(bumped, data)[0][-1] - end) / step
+    end_j = _jacobian(lambda th: simulate(th, data)[0][-1], theta, end)
     element_sd = None
     if data.element_c is not None:
         raw_e = (x[:, 3] - data.element_c)[np.isfinite(data.element_c)]
