@@ -490,6 +490,7 @@ class HeatUpFit:
     last_fit_s: float | None = None
     fit: FitResult | None = None
     fits: int = 0
+    failed: int = 0  # fits the window's inputs made impossible (the last good one kept)
 
     def __post_init__(self) -> None:
         self._t: list[float] = []
@@ -551,10 +552,19 @@ class HeatUpFit:
         if self.fit is None:
             first = data.water_c[np.isfinite(data.water_c)]
             theta0[T0] = float(first[0]) if first.size else theta0[T0]
-        result = fit_heat_up(data, self.priors, theta0, sd_c, self.fit)
         self.last_fit_s = t_s
         self._new_readings = 0
         self.fits += 1
+        inputs_ok = np.all(np.isfinite(data.power_w)) and np.all(np.isfinite(data.ambient_c))
+        try:
+            if not inputs_ok:
+                raise ValueError("a non-finite power or room temperature in the window")
+            result = fit_heat_up(data, self.priors, theta0, sd_c, self.fit)
+        except (np.linalg.LinAlgError, ValueError, FloatingPointError):
+            # inputs the model cannot take: keep the last fit, so one bad window never
+            # stops the vessel's filter
+            self.failed += 1
+            return self.fit
         if np.all(np.isfinite(result.theta)) and np.all(np.isfinite(result.cov)):
             self.fit = result
         return self.fit

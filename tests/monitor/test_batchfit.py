@@ -107,11 +107,22 @@ def test_fit_recovers_a_heavy_plate_and_a_slow_sensor_from_the_switch_on():
     )  # fmt: skip
     result = bf.fit_heat_up(data, _priors(), _priors().mean.copy(), (0.05, 0.3))
     c, g = result.value(bf.LN_C), result.value(bf.LN_G)
+    # tolerances ours: C within 3 %, G within 10 %
     assert abs(c / math.exp(truth[bf.LN_C]) - 1.0) < 0.03
     assert abs(g / math.exp(truth[bf.LN_G]) - 1.0) < 0.10
     # honest: the truth within 3 stated σ for each physical parameter
     for k in (bf.LN_C, bf.LN_G, bf.LN_CE, bf.LN_TAU_W):
         assert abs(result.theta[k] - truth[k]) < 3.0 * result.ln_sd(k)
+
+
+def test_a_window_the_model_cannot_take_keeps_the_last_fit():
+    fit = bf.HeatUpFit(_priors(6), has_element=False)
+    for k in range(30):
+        power = 2000.0 if k >= 5 else 0.0
+        fit.add(float(k), power if k != 20 else math.inf, 20.0, 15.0 + 0.3 * k, None, k >= 5)
+    assert fit.due(29.0)
+    assert fit.run(29.0, (0.05, 0.3)) is None  # no fit yet, and no exception
+    assert fit.failed == 1
 
 
 def test_thinned_grid_keeps_the_energy_and_the_start():
