@@ -48,6 +48,7 @@ from dataclasses import dataclass
 
 from drivers.sample import Quality, Sample
 from monitor.contracts import Estimate, finite_or_none
+from monitor.drift import VesselDrift, run_checks
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
 from monitor.replay import REFILL_WINDOW_S, RUN_GAP_S, Run, _starts_run, estimator_figures
@@ -235,8 +236,6 @@ class LiveVessel:
         self._previous_s: float | None = None
         self._previous_row: LogRow | None = None
         self._window: list[tuple[float, float]] = []
-        from monitor.drift import VesselDrift  # here: monitor.drift builds on the replay
-
         #: The vessel's drift trackers, fed each run's summary as the run ends.
         self.drift = VesselDrift(vessel, self.metadata)
         #: Summaries of the runs that have ended, until the service takes them.
@@ -248,8 +247,10 @@ class LiveVessel:
     def resume(self, earlier: list[Mapping[str, object]]) -> None:
         """Carry on from runs an earlier session recorded (their summaries, oldest first).
 
-        Their figures feed the drift trackers, so the baseline survives a restart, and
-        run labels go on from the highest numbered one.
+        Their figures feed the drift trackers, so the baseline survives a restart (a
+        doubtful run, by its recorded verdict or, in a summary without one, by
+        :func:`monitor.drift.run_verdict`, is passed over as it was live), and run labels
+        go on from the highest numbered one.
         """
         for summary in earlier:
             self.drift.observe(summary)
@@ -260,13 +261,12 @@ class LiveVessel:
     def end_run(self) -> dict[str, object] | None:
         """Return the summary of the current run as it ends (None before any estimate).
 
-        Its figures are :func:`monitor.replay.estimator_figures` of the live filter; its
-        ``drift`` flags compare them with the vessel's earlier runs.
+        Its figures are :func:`monitor.replay.estimator_figures` of the live filter, its
+        ``verdict`` included; its ``drift`` flags compare them with the vessel's earlier
+        runs, or say that a doubtful run was not judged.
         """
         if self.estimator is None or self.latest is None or not self.runs:
             return None
-        from monitor.drift import run_checks
-
         run = self.runs[-1]
         cfg = self.estimator.config
         summary: dict[str, object] = {

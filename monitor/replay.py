@@ -40,6 +40,7 @@ from typing import TextIO
 from drivers.errors import LogFormatError
 from monitor import __version__, batchfit
 from monitor.contracts import Estimate, Estimated, Level, finite_or_none
+from monitor.drift import VERDICT_TEXT, run_verdict, verdict_of
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import InterchangeLog, LogRow, iso_utc
 
@@ -311,6 +312,7 @@ def _summary(
             "flags": [{"name": "no_water_reading", "level": str(Level.WARNING),
                        "message": "The run has no usable water temperature, so nothing "
                        "could be estimated."}],
+            "verdict": run_verdict({}),
         }  # fmt: skip
     ambient = [r.values["ambient"] for r in run.rows if "ambient" in r.values]
     ambient = [a for a in ambient if math.isfinite(a)]
@@ -339,7 +341,9 @@ def estimator_figures(
 
     ``last`` is the run's last estimate, ``at_heat_up`` the one where the heat-up
     ended (None if it did not) and ``start_c`` the water temperature it started at.
-    Used by the replay and, as each run ends, by the live service.
+    Used by the replay and, as each run ends, by the live service. ``verdict`` is
+    :func:`monitor.drift.run_verdict` of these figures: ``trusted`` or ``doubtful``
+    with its reasons (a doubtful run is not judged for drift).
     """
     tot, cfg = est.totals, est.config
     at = at_heat_up or last
@@ -362,7 +366,7 @@ def estimator_figures(
         {"name": f.name, "level": str(f.level), "message": f.message}
         for f in tot.flags_raised.values()
     ]
-    return {
+    figures: dict[str, object] = {
         "water_mass_kg": _value(at.water_mass_kg),
         "heat_capacity_j_per_k": _value(at.heat_capacity_j_per_k),
         "ua_w_per_k": _value(last.ua_w_per_k),
@@ -377,6 +381,9 @@ def estimator_figures(
         "phase_at_end": str(last.phase),
         "diagnostics": run_diagnostics(est),
     }
+    # the run's verdict (monitor.drift.run_verdict) from these figures, for replay and live
+    figures["verdict"] = run_verdict(figures | {"start_water_c": finite_or_none(start_c)})
+    return figures
 
 
 def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
@@ -492,18 +499,22 @@ def summary_table(result: dict[str, object]) -> str:
 
     lines = []
     header = (f"{'vessel':<12} {'run':>4} {'heat-up s':>9} {'energy Wh':>9} {'water kg':>15} "
-              f"{'UA W/K':>15} {'G W/K':>13} {'loss kWh/24h':>15} {'eff.':>5}  flags")  # fmt: skip
+              f"{'UA W/K':>15} {'G W/K':>13} {'loss kWh/24h':>15} {'eff.':>5}  "
+              f"{'verdict':<21} flags")  # fmt: skip
     lines.append(header)
     lines.append("-" * len(header))
     for run in result["runs"]:  # type: ignore[union-attr]
         flags = ", ".join(f"{f['name']}({f['level']})" for f in run["flags"]) or "-"
+        verdict = verdict_of(run)
         lines.append(
             f"{run['vessel']:<12} {run['run']:>4} {fmt(run['heat_up_s'], 0):>9} "
             f"{fmt(run['energy_wh'], 1):>9} {fmt(run['water_mass_kg'], 3):>15} "
             f"{fmt(run['ua_w_per_k'], 3):>15} {fmt(run['element_conductance_w_per_k'], 1):>13} "
             f"{fmt(run['standing_loss_kwh_per_24h'], 2):>15} {fmt(run['efficiency'], 3):>5}  "
-            f"{flags}"
+            f"{VERDICT_TEXT[str(verdict['status'])]:<21} {flags}"
         )
+        for reason in verdict["reasons"]:  # type: ignore[attr-defined]
+            lines.append(f"{'':<12} {'':>4} why not judged: {reason}")
     quarantined = result["quarantined"]
     if quarantined:
         lines.append(f"{len(quarantined)} rows set aside:")  # type: ignore[arg-type]

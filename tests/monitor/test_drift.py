@@ -14,9 +14,13 @@ from monitor.drift import (
     RULES,
     Cusum,
     VesselDrift,
+    baselines_of,
     drift_over_runs,
     extra_over_temperature_k,
+    fleet_rows,
+    fleet_table,
     make_baseline,
+    run_verdict,
     scale_thickness_range_mm,
 )
 from monitor.interchange import InterchangeLog, rows_from_samples
@@ -30,14 +34,75 @@ def test_cusum_accumulates_past_the_reference_value_and_never_goes_below_zero() 
     assert [c.update(z) for z in (-3.0, 1.0, 2.0, 0.5, -10.0)] == [0.0, 0.5, 2.0, 2.0, 0.0]
 
 
-def test_baseline_spread_has_a_floor() -> None:
-    b = make_baseline([(50.0, 0.1)] * 5, SCALING)
-    assert (b.mean, b.runs) == (50.0, 5)
-    assert b.sd == pytest.approx(0.03 * 50.0)  # the rule's 3 % floor
+def test_the_baseline_is_the_median_and_mad_of_its_runs() -> None:
+    # one diverged run among five: median 51, |x - 51| = 1, 1, 2, 0, 149 -> MAD 1,
+    # sd 1.4826 (hand arithmetic; 1.4826 = 1/Φ⁻¹(3/4), common practice, no source)
+    b = make_baseline([(50.0, 0.1), (52.0, 0.1), (49.0, 0.1), (51.0, 0.1), (200.0, 0.1)], SCALING)
+    assert (b.median, b.runs) == (51.0, 5)
+    assert b.mad_sd == pytest.approx(1.4826)
+    assert (b.sd, b.spread_from) == (pytest.approx(1.4826), "runs")
+    # an even count: median of 40 and 60 is 50, MAD 10 -> sd 14.826 (hand arithmetic)
     wide = make_baseline([(40.0, 0.1), (60.0, 0.1)], SCALING)
-    assert wide.sd == pytest.approx(math.sqrt(200.0))  # sample sd of 40 and 60
+    assert (wide.median, wide.sd) == (50.0, pytest.approx(14.826))
+    # the runs' own stated std floors the spread, and so does the rule's minimum
+    stated = make_baseline([(50.0, 3.0)] * 3 + [(51.0, 2.0)] * 2, SCALING)
+    assert (stated.sd, stated.spread_from) == (3.0, "stated")  # median of 3, 3, 3, 2, 2
+    same = make_baseline([(50.0, 0.1)] * 5, SCALING)
+    assert (same.sd, same.spread_from) == (pytest.approx(0.02 * 50.0), "floor")  # 2 % floor
     with pytest.raises(ValueError, match="at least one run"):
         make_baseline([], SCALING)
+    with pytest.raises(ValueError, match="not positive"):
+        make_baseline([(0.0, 0.1)], SCALING)
+
+
+def clean_summary(**diagnostics: object) -> dict[str, object]:
+    """A run summary of a clean kettle heat-up (made-up figures like a replay's)."""
+    diag: dict[str, object] = {"water_readings": 300, "rejected_fraction": 0.03,
+                               "downweighted_fraction": 0.0, "nis_mean": 1.1,
+                               "fit": {"converged": True, "residual_rms_k": 0.05}}  # fmt: skip
+    diag.update(diagnostics)
+    return {"vessel": "k1", "run": "1", "model": "two-node", "start_water_c": 15.0,
+            "element_conductance_w_per_k": {"value": 54.0, "std": 1.6},
+            "ua_w_per_k": {"value": 0.65, "std": 0.05},
+            "heat_capacity_j_per_k": {"value": 5400.0, "std": 54.0},
+            "diagnostics": diag}  # fmt: skip
+
+
+def test_a_run_verdict_names_each_sign_of_a_failed_estimate() -> None:
+    assert run_verdict(clean_summary()) == {"status": "trusted", "reasons": []}
+    # older summaries without diagnostics, or without the fit, are judged on what they hold
+    bare = clean_summary()
+    del bare["diagnostics"]
+    assert run_verdict(bare)["status"] == "trusted"
+    assert run_verdict(clean_summary(fit=None))["status"] == "trusted"
+    cases = {
+        "Only 20 usable water readings": clean_summary(water_readings=20),
+        "set aside as outliers": clean_summary(rejected_fraction=0.3),
+        "given less weight": clean_summary(downweighted_fraction=0.9),
+        "mean NIS 900": clean_summary(nis_mean=900.0),
+        "did not converge": clean_summary(fit={"converged": False, "residual_rms_k": 0.05}),
+        "2.50 K RMS": clean_summary(fit={"converged": True, "residual_rms_k": 2.5}),
+    }
+    diverged = clean_summary()
+    diverged["element_conductance_w_per_k"] = {"value": 243.0, "std": 60.75}  # 4.5x, 25 %
+    cases["conductance G is known only to ±25%"] = diverged
+    cold = clean_summary()
+    cold["start_water_c"] = None
+    cases["never heated the water"] = cold
+    for words, summary in cases.items():
+        verdict = run_verdict(summary)
+        assert verdict["status"] == "doubtful", words
+        assert len(verdict["reasons"]) == 1, verdict
+        assert words in verdict["reasons"][0]
+    nothing = run_verdict({"vessel": "k1", "run": "1", "flags": []})
+    assert nothing["status"] == "doubtful"
+    assert "Nothing could be estimated" in nothing["reasons"][0]
+    # UA states a wide std honestly on a short run; only past its value is it a failure
+    short = clean_summary()
+    short["ua_w_per_k"] = {"value": 0.65, "std": 0.5}
+    assert run_verdict(short)["status"] == "trusted"
+    short["ua_w_per_k"] = {"value": 0.65, "std": 0.8}
+    assert run_verdict(short)["status"] == "doubtful"
 
 
 def test_scale_thickness_follows_the_series_resistance() -> None:
@@ -104,6 +169,114 @@ def test_one_node_runs_never_raise_scaling() -> None:
     for r in runs:
         r["model"] = "one-node"
     assert levels(drift_over_runs(runs), "scaling") == [None] * 10
+
+
+def diverge(run: dict, factor: float = 4.0) -> dict:
+    """A copy of ``run`` whose G went ``factor`` times too high with a 25 % std (the
+    divergence seen on an independent world: G 4-5x the truth with a 25 % std)."""
+    g = run["element_conductance_w_per_k"]["value"] * factor
+    out = {**run, "element_conductance_w_per_k": {"value": g, "std": 0.25 * g}}
+    out.pop("verdict", None)  # judged again from what it now says
+    return out
+
+
+def test_a_diverged_baseline_run_is_passed_over_and_scaling_is_flagged_as_without_it() -> None:
+    ratios = [1.0] * 5 + [0.93] * 20 + [0.75] * 5
+    clean = synthetic_runs(ratios, seed=3)
+    spoilt = [diverge(r) if i == 2 else r for i, r in enumerate(clean)]
+    got_clean = levels(drift_over_runs(clean), "scaling")
+    flags = drift_over_runs(spoilt)
+    got = levels(flags, "scaling")
+    assert [f.name for f in flags[2]] == ["not_judged"]
+    assert got[:25] == [None] * 25 == got_clean[:25]
+    assert got[26] in ("warning", "alarm")
+    assert got_clean[26] in ("warning", "alarm")
+    # a mean and sd baseline would have taken the diverged run in: mean about 1.6x G0
+    drift = VesselDrift("k1")
+    for r in spoilt[:6]:
+        drift.observe(r)
+    baseline = drift.trackers["scaling"].baseline
+    assert baseline is not None
+    assert baseline.labels == ("1", "2", "4", "5", "6")  # run 3 replaced by run 6
+    assert baseline.median == pytest.approx(54.0, rel=0.05)
+
+
+def test_a_doubtful_run_is_not_judged_says_why_and_moves_nothing() -> None:
+    runs = synthetic_runs([1.0] * 7, seed=12)
+    drift = VesselDrift("k1")
+    for r in runs[:6]:
+        drift.observe(r)
+    before = {name: (t.baseline, t.cusum.s, t.cusum.runs, t.shifted_runs)
+              for name, t in drift.trackers.items()}  # fmt: skip
+    bad = {**runs[6], "element_conductance_w_per_k": {"value": 20.0, "std": 0.3},
+           "diagnostics": {"water_readings": 300, "rejected_fraction": 0.4}}  # fmt: skip
+    (flag,) = drift.observe(bad)
+    assert (flag.name, flag.level) == ("not_judged", Level.NOTICE)
+    assert "not judged" in flag.message
+    assert "40% of the readings were set aside" in flag.message
+    assert flag.evidence["judged"] == "no"
+    assert "set aside" in str(flag.evidence["reasons"])
+    after = {name: (t.baseline, t.cusum.s, t.cusum.runs, t.shifted_runs)
+             for name, t in drift.trackers.items()}  # fmt: skip
+    assert after == before
+    # a recorded verdict is taken as it stands
+    marked = {**runs[6], "verdict": {"status": "doubtful", "reasons": ["Said so live."]}}
+    (flag,) = drift.observe(marked)
+    assert flag.name == "not_judged"
+    assert "Said so live." in flag.message
+
+
+def test_a_doubtful_marked_baseline_run_is_replaced_by_the_next_trusted_one() -> None:
+    runs = synthetic_runs([0.6, 0.6] + [1.0] * 7, seed=8)
+    runs[4] = diverge(runs[4], 5.0)  # run 5, one of the marked ones
+    drift = VesselDrift("k1", {"baseline_runs": "3,4,5,6,7"})
+    for r in runs:
+        drift.observe(r)
+    baseline = drift.trackers["scaling"].baseline
+    assert baseline is not None
+    assert baseline.labels == ("3", "4", "6", "7", "8")
+    assert baselines_of(runs)["element_conductance_w_per_k"]["runs"] == 5.0
+
+
+def test_one_run_far_outside_the_baseline_is_a_notice_and_two_in_a_row_a_warning() -> None:
+    # five identical runs whose stated std makes σ_d = 4 % (hypot of 1.527 and 1.527 over
+    # 54, hand arithmetic), then 20 % down: 5 σ_d out and 2.5 σ_d past the 10 % tolerance,
+    # where the CUSUM alone gains 2.0 a run (below its notice at 2.5)
+    std = 0.04 * 54.0 / math.sqrt(2.0)
+    base = [{"vessel": "k1", "run": str(i + 1), "model": "two-node",
+             "element_conductance_w_per_k": {"value": 54.0, "std": std}}
+            for i in range(5)]  # fmt: skip
+    low = [{**base[0], "run": str(i), "element_conductance_w_per_k": {"value": 43.2, "std": std}}
+           for i in (6, 7)]  # fmt: skip
+    drift = VesselDrift("k1")
+    flags = [drift.observe(r) for r in [*base, low[0], base[1], low[0], low[1]]]
+    first = flags[5][0]
+    assert (first.name, first.level, first.evidence["raised_by"]) == ("scaling", Level.NOTICE,
+                                                                      "shift")  # fmt: skip
+    assert first.evidence["shift_sd"] == pytest.approx(5.0)
+    assert first.evidence["cusum"] == pytest.approx(2.0)
+    assert "in this one run" in first.message
+    assert flags[6] == []  # back in line: the streak ends (the CUSUM has fallen to 0)
+    assert flags[7][0].level == Level.NOTICE
+    second = flags[8][0]
+    assert (second.level, second.evidence["shifted_runs"]) == (Level.WARNING, 2)
+    assert "two runs in a row" in second.message
+    assert "descale" in second.message
+
+
+def test_fleet_text_and_rows_show_a_doubtful_last_run() -> None:
+    runs = synthetic_runs([1.0] * 6, seed=9)
+    runs[-1] = diverge(runs[-1])
+    result = {"runs": [{**r, "flags": [], "drift": [f.as_dict() for f in fl]}
+                       for r, fl in zip(runs, drift_over_runs(runs), strict=True)]}  # fmt: skip
+    (row,) = fleet_rows(result)
+    assert (row["last_verdict"], row["not_judged_runs"], row["runs_since_baseline"]) == (
+        "doubtful", 1, 0)  # fmt: skip
+    assert row["status"] == "notice"
+    assert "not_judged" in row["flags"]
+    text = fleet_table([row])
+    assert "DOUBTFUL (not judged)" in text
+    assert "why not judged: The element-to-water conductance G is known only to ±25%" in text
 
 
 def test_rising_ua_raises_insulation() -> None:
@@ -187,9 +360,18 @@ def test_simulated_scale_series_silent_within_ten_percent_warned_at_a_quarter() 
     # (scale figures from the simulator's own element model, our scenarios)
     series = [0.0] * 5 + [0.04] * 4 + [0.14] * 3
     runs = [simulated_run(100 + i, mm) for i, mm in enumerate(series)]
+    assert all(r["verdict"] == {"status": "trusted", "reasons": []} for r in runs)
     got = levels(drift_over_runs(runs), "scaling")
     assert got[:9] == [None] * 9
     assert {"warning", "alarm"} & set(got[9:])
+    # the same series with its second run diverged (G 4x the truth, 25 % std): that run
+    # is not judged, run 6 takes its place in the baseline, and scaling is flagged alike
+    spoilt = [diverge(r) if i == 1 else r for i, r in enumerate(runs)]
+    flags = drift_over_runs(spoilt)
+    assert [f.name for f in flags[1]] == ["not_judged"]
+    got_spoilt = levels(flags, "scaling")
+    assert got_spoilt[:9] == [None] * 9
+    assert got_spoilt[9:] == got[9:]
 
 
 def test_an_underfilled_vessel_raises_fill() -> None:

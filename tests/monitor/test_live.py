@@ -104,3 +104,52 @@ def test_live_estimates_equal_a_replay_of_the_same_samples_bit_for_bit() -> None
         ),
     )
     assert replayed == live_rows
+
+
+def _live_summary(samples: list[Sample], meta: dict, earlier: list[dict] | None = None) -> dict:
+    live = LiveVessel("kettle-1", meta, has_element_sensor=True)
+    if earlier:
+        live.resume(earlier)
+    for step in steps_from_samples(enumerate(samples)):
+        live.step(step)
+    summary = live.end_run()
+    assert summary is not None
+    return summary
+
+
+def test_a_live_run_summary_carries_the_verdict_the_replay_gives() -> None:
+    samples, meta = _kettle_samples(3)
+    meta = {**meta, "element_sensor": "yes"}
+    summary = _live_summary(samples, meta)
+    assert summary["verdict"] == {"status": "trusted", "reasons": []}
+    logs = logs_from_steps(steps_from_samples(enumerate(samples)), {"kettle-1": meta}, "mem")
+    (run,) = split_runs(logs)[0]
+    assert replay_run(run)["verdict"] == summary["verdict"]
+
+
+def test_a_restart_keeps_the_baseline_of_the_trusted_runs_and_passes_over_a_doubtful_one() -> None:
+    samples, meta = _kettle_samples(3)
+    meta = {**meta, "element_sensor": "yes"}
+
+    def recorded(label: str, g: float, status: str = "trusted") -> dict:
+        # run summaries as an earlier session recorded them (made-up figures: a G of
+        # 80 W/K, far above this kettle's 54, so the live run must read as scaled)
+        reasons = [] if status == "trusted" else ["The heat-up fit did not converge."]
+        return {"vessel": "kettle-1", "run": label, "model": "two-node",
+                "element_conductance_w_per_k": {"value": g, "std": 1.0},
+                "verdict": {"status": status, "reasons": reasons}}  # fmt: skip
+
+    earlier = [recorded("1", 80.0), recorded("2", 80.0), recorded("3", 20.0, "doubtful"),
+               recorded("4", 80.0), recorded("5", 80.0), recorded("6", 80.0)]  # fmt: skip
+    live = LiveVessel("kettle-1", meta, has_element_sensor=True)
+    live.resume(earlier)
+    baseline = live.drift.trackers["scaling"].baseline
+    assert baseline is not None
+    assert baseline.labels == ("1", "2", "4", "5", "6")
+    assert baseline.median == 80.0
+    assert live.run_number == 6
+    summary = _live_summary(samples, meta, earlier)
+    (scaling,) = [f for f in summary["drift"] if f["name"] == "scaling"]
+    assert scaling["level"] in ("warning", "alarm")  # about 32 % down on 80 W/K
+    assert scaling["evidence"]["baseline_runs"] == 5
+    assert summary["run"] == "7"

@@ -55,6 +55,28 @@ def test_json_contract(capsys):
     assert 0.85 < run["efficiency"] < 1.0
     for flag in run["flags"]:
         assert set(flag) >= {"name", "level", "message"}
+    # the run's own diagnostics say the estimate held: it is judged for drift
+    assert run["verdict"] == {"status": "trusted", "reasons": []}
+    assert not [f for f in run["drift"] if f["name"] == "not_judged"]
+
+
+def test_a_run_too_short_to_judge_is_doubtful_and_said_to_be_not_judged(tmp_path, capsys):
+    rows = ["time_s,water_c,element_c,power_w"]
+    rows += [f"{t},{15 + 0.25 * t:.2f},{25 + 0.25 * t:.2f},2000" for t in range(40)]  # made-up
+    path = tmp_path / "short.csv"
+    path.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    (run,) = _json([str(path)], capsys)["runs"]
+    assert run["verdict"]["status"] == "doubtful"
+    assert any("usable water readings" in r for r in run["verdict"]["reasons"])
+    (note,) = [f for f in run["drift"] if f["name"] == "not_judged"]
+    assert note["level"] == "notice"
+    assert "not judged" in note["message"]
+    assert "usable water readings" in note["message"]
+    assert note["evidence"]["judged"] == "no"
+    assert main(["replay", str(path)]) == 0
+    text = capsys.readouterr().out
+    assert "DOUBTFUL (not judged)" in text
+    assert "why not judged: Only" in text
 
 
 def test_estimates_columns_and_rows(tmp_path, capsys):
