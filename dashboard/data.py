@@ -86,9 +86,13 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
     """Return, per vessel, its last recorded run and the state of its drift checks.
 
     ``runs`` are the log's run rows in order (summaries parsed). Each vessel gets its
-    last run's label and times, that run's drift flags, and the scaling index
-    (1 - G/G0) of the latest scaling flag among all its runs, if any.
+    last run's label and times, that run's drift flags and verdict
+    (:func:`monitor.drift.verdict_of`: trusted, or doubtful and not judged, with the
+    reasons), and the scaling index (1 - G/G0) of the latest scaling flag among all
+    its runs, if any.
     """
+    from monitor.drift import verdict_of
+
     out: dict[str, dict[str, object]] = {}
     for row in runs:
         summary = row.get("summary") if isinstance(row.get("summary"), dict) else {}
@@ -101,7 +105,7 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
             if f.get("name") == "scaling":
                 state["scaling_index"] = (f.get("evidence") or {}).get("scaling_index")
         state.update(run=row["run"], start_t=row["start_t"], end_t=row.get("end_t"),
-                     drift=drift)  # fmt: skip
+                     drift=drift, verdict=verdict_of(summary))  # fmt: skip
     return out
 
 
@@ -455,7 +459,7 @@ def run_history(
     board has run already) when given. Otherwise, or when the table holds none with
     figures, the whole log is replayed (the figures come from the full data).
     """
-    from monitor.drift import RULES, baselines_of
+    from monitor.drift import RULES, baselines_of, verdict_of
 
     if is_recorder_log(path):
         runs = _recorded_summaries(path)
@@ -472,8 +476,10 @@ def run_history(
     mine = [r for r in runs if r["vessel"] == chosen]
     keep = ("run", "start_utc", "start_t", "end_t", "model", "drift", *(rule.key for rule in RULES))
     baselines = baselines_of(mine)
+    # each run's verdict, judged here for a summary recorded before runs carried one
     return {"vessels": names, "chosen": chosen, "baselines": baselines,
-            "runs": [{k: r.get(k) for k in keep} for r in mine]}  # fmt: skip
+            "runs": [{**{k: r.get(k) for k in keep}, "verdict": verdict_of(r)}
+                     for r in mine]}  # fmt: skip
 
 
 def _recorded_summaries(path: str) -> list[dict[str, object]]:

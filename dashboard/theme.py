@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from monitor.drift import VERDICT_MARK as DRIFT_VERDICT_MARK
+
 LEVEL_RANK = {"alarm": 3, "warning": 2, "notice": 1}
 
 #: The live charts' look (our own: white ground, light grid, plain axis lines).
@@ -20,6 +22,14 @@ def chart_axis(**extra: object) -> dict[str, object]:
 
 #: Level shown with a word and a shape, never by colour alone.
 LEVEL_MARK = {"alarm": "▲ alarm", "warning": "● warning", "notice": "○ notice", "ok": "ok"}
+#: A run's verdict shown with a word and a shape (the report's own, monitor.drift).
+VERDICT_MARK = DRIFT_VERDICT_MARK
+
+
+def verdict_mark(verdict: dict | None) -> str:
+    """Return a run verdict as its mark ('✕ doubtful: not judged'), or '-' for none."""
+    status = str((verdict or {}).get("status"))
+    return VERDICT_MARK.get(status, "-")
 
 
 def duration_text(seconds: float | None) -> str:

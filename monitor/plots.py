@@ -7,7 +7,7 @@ from collections.abc import Mapping, Sequence
 import plotly.graph_objects as go
 from plotly.subplots import make_subplots
 
-from monitor.drift import RULES
+from monitor.drift import RULES, figure, verdict_of
 
 #: Okabe and Ito's colour-blind-safe colours (a published set; from memory).
 PALETTE = {
@@ -55,7 +55,7 @@ def add_band(
                              line={"color": PALETTE["water"]}), row=row, col=col)  # fmt: skip
 
 
-def history_figure(
+def _judged_history_figure(
     runs: Sequence[Mapping[str, object]],
     baselines: Mapping[str, Mapping[str, float]],
     uirevision: str = "history",
@@ -92,4 +92,61 @@ def history_figure(
     margin = {"l": 60, "r": 30, "t": 40, "b": 50}
     fig.update_layout(height=250 * len(RULES), template="plotly_white", showlegend=False,
                       uirevision=uirevision, margin=margin)  # fmt: skip
+    return fig
+
+
+def history_figure(
+    runs: Sequence[Mapping[str, object]],
+    baselines: Mapping[str, Mapping[str, float]],
+    uirevision: str = "history",
+) -> go.Figure:
+    """Return each tracked figure across runs, doubtful runs marked as not judged.
+
+    The trusted runs are drawn by :func:`_judged_history_figure`. A doubtful run's
+    figures leave the judged line (a diverged estimate would read as a trend) and come
+    back as grey open crosses labelled "not judged", the reasons on hover. A cross far
+    outside the judged runs and the baseline band is drawn at the edge of the plot and
+    says "off scale", so one diverged run does not flatten the rest.
+    """
+    verdicts = [verdict_of(r) for r in runs]
+    judged = [r if v["status"] == "trusted" else {**r, **{rule.key: None for rule in RULES}}
+              for r, v in zip(runs, verdicts, strict=True)]  # fmt: skip
+    fig = _judged_history_figure(judged, baselines, uirevision=uirevision)
+    labels = [str(r.get("run")) for r in runs]
+    for row, rule in enumerate(RULES, start=1):
+        crosses = [
+            (str(r.get("run")), got, v)
+            for r, v in zip(runs, verdicts, strict=True)
+            if v["status"] == "doubtful" and (got := figure(r, rule.key)) is not None
+        ]
+        if not crosses:
+            continue
+        seen = [got[0] for r in judged if (got := figure(r, rule.key)) is not None]
+        base = baselines.get(rule.key)
+        if base:
+            seen += [base["mean"] - 2 * base["sd"], base["mean"] + 2 * base["sd"]]
+        edge = None
+        if seen:
+            pad = 0.15 * ((max(seen) - min(seen)) or abs(max(seen)) or 1.0)
+            edge = (min(seen) - pad, max(seen) + pad)
+        off = [edge is not None and not edge[0] <= got[0] <= edge[1] for _, got, _ in crosses]
+        ys = [min(max(got[0], edge[0]), edge[1]) if out and edge else got[0]
+              for (_, got, _), out in zip(crosses, off, strict=True)]  # fmt: skip
+        fig.add_trace(go.Scatter(
+            x=[lab for lab, _, _ in crosses], y=ys, mode="markers+text",
+            text=["not judged (off scale)" if out else "not judged" for out in off],
+            # a cross held at the top edge has its words below it, inside the plot
+            textposition=["bottom center" if out and edge and got[0] > edge[1] else "top center"
+                          for (_, got, _), out in zip(crosses, off, strict=True)],
+            name=f"{rule.name} not judged",
+            marker={"symbol": "x-open", "size": 12, "color": "#555555"},
+            hovertext=[f"run {lab}: doubtful, not judged ({got[0]:.4g}). "
+                       + " ".join(str(x) for x in v["reasons"])  # type: ignore[union-attr]
+                       for lab, got, v in crosses],
+            hoverinfo="text",
+        ), row=row, col=1)  # fmt: skip
+        if edge is not None and any(off):
+            span = edge[1] - edge[0]
+            fig.update_yaxes(range=[edge[0] - 0.1 * span, edge[1] + 0.1 * span], row=row, col=1)
+    fig.update_xaxes(categoryorder="array", categoryarray=labels)
     return fig

@@ -27,7 +27,12 @@ from plotly.subplots import make_subplots
 from drivers.errors import LogFormatError
 from monitor import __version__
 from monitor.contracts import Estimate
-from monitor.drift import baselines_of, drift_over_runs
+from monitor.drift import (
+    VERDICT_MARK,
+    baselines_of,
+    drift_over_runs,
+    verdict_of,
+)
 from monitor.estimator import EstimatorSettings
 from monitor.logs import read_log
 from monitor.plots import PALETTE, add_band, history_figure
@@ -62,6 +67,21 @@ def _fmt(entry: object, digits: int = 3, unit: str = "") -> str:
 def _table(rows: Sequence[tuple[str, str]]) -> str:
     cells = "".join(f"<tr><th>{html.escape(k)}</th><td>{v}</td></tr>" for k, v in rows)
     return f"<table>{cells}</table>"
+
+
+def _verdict_html(verdict: Mapping[str, object]) -> str:
+    """Return the run's verdict as HTML: a word and a shape, and the reasons if doubtful."""
+    status = str(verdict.get("status"))
+    if status != "doubtful":
+        return ("<p id='report-verdict' class='verdict-trusted'><b>✓ trusted</b>: the run's own "
+                "diagnostics show no sign that the estimate failed, so it is judged for drift "
+                "against the vessel's baseline.</p>")  # fmt: skip
+    reasons = "".join(f"<li>{html.escape(str(r))}</li>"
+                      for r in verdict.get("reasons") or [])  # type: ignore[union-attr]  # fmt: skip
+    return ("<div id='report-verdict' class='verdict-doubtful'><p><b>✕ doubtful: not judged"
+            "</b>. The run's own diagnostics say the estimate failed, so it was not judged "
+            "for drift and does not count towards the baseline. Use its figures with care. "
+            f"Why:</p><ul>{reasons}</ul></div>")  # fmt: skip
 
 
 def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
@@ -211,6 +231,8 @@ def build_report(log_path: str, vessel: str | None = None, run_label: str | None
     history = history_figure(results, baselines_of(results), uirevision="report")
     hist_fig = pio.to_html(history, include_plotlyjs=False, full_html=False,
                            div_id="report-history-plot")  # fmt: skip
+    marks = [f"{r.get('run')} {VERDICT_MARK[str(verdict_of(r)['status'])]}" for r in results]
+    runs_verdicts = html.escape(", ".join(marks))
     made = datetime.now(tz=UTC).isoformat(timespec="seconds")
     title = f"ebullio report: {vessel}, run {chosen.label}"
     config_html = (f"<pre>{html.escape(str(config_text))}</pre>" if config_text
@@ -225,6 +247,7 @@ th, td {{ text-align: left; padding: .2rem .8rem .2rem 0; vertical-align: top; }
 th {{ font-weight: 600; color: #444; }}
 .ok {{ color: #1b7a3a; }} .bad {{ color: #b3261e; }}
 li.warning, li.alarm {{ color: #b3261e; }}
+.verdict-doubtful {{ border: 2px dashed #555; padding: .2rem 1rem; background: #f4f4f4; }}
 .caution {{ border: 2px solid #b3261e; padding: .6rem 1rem; background: #fff6f5; }}
 pre {{ background: #f5f5f5; padding: .6rem; overflow-x: auto; }}
 </style></head><body>
@@ -234,10 +257,12 @@ the log: {html.escape(", ".join(labels))}.</p>
 <div class="caution"><b>Caution.</b> {html.escape(SAFETY_TEXT)}</div>
 <h2>Integrity</h2>{_table(integrity_rows)}
 <h2>Test conditions</h2>{_table(conditions)}
+<h2>Run verdict</h2>{_verdict_html(verdict_of(result))}
 <h2>Results (value ± one standard deviation)</h2>{_table(results_rows)}
 <h2>Flags and drift against the vessel's baseline</h2><ul id="report-flags">{flag_html}</ul>
 <h2>Plots of this run</h2>{run_fig}
-<h2>This vessel across its runs (dotted: baseline ± 2σ)</h2>{hist_fig}
+<h2>This vessel across its runs (band: baseline ± 2σ; ✕ a doubtful run, not judged)</h2>
+<p>Runs and their verdicts: {runs_verdicts}.</p>{hist_fig}
 <h2>Vessel and site</h2>{_table(meta_rows)}
 <h2>Instruments and calibrations (the recorded rig configuration)</h2>{config_html}
 <h2>Estimator settings</h2>{_table(settings_rows)}

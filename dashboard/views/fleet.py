@@ -5,7 +5,14 @@ from __future__ import annotations
 from dash import Dash, Input, Output, html
 
 from dashboard import ids
-from dashboard.theme import LEVEL_MARK, LEVEL_RANK, duration_text, iso_minutes, worst_level
+from dashboard.theme import (
+    LEVEL_MARK,
+    LEVEL_RANK,
+    duration_text,
+    iso_minutes,
+    verdict_mark,
+    worst_level,
+)
 
 
 def fleet_rows(snapshot: dict | None) -> list[dict[str, object]]:
@@ -30,6 +37,8 @@ def fleet_rows(snapshot: dict | None) -> list[dict[str, object]]:
             "time_to_target": duration_text(eta) if eta is not None else "-",
             "scaling_index": run.get("scaling_index"),
             "last_run": f"{run['run']} ({iso_minutes(start)})" if run.get("run") else "-",
+            "last_verdict": (run.get("verdict") or {}).get("status"),
+            "last_verdict_mark": verdict_mark(run.get("verdict")) if run.get("run") else "-",
         })  # fmt: skip
     rows.sort(key=lambda r: (-LEVEL_RANK.get(str(r["status"]), 0), str(r["vessel"])))
     return rows
@@ -39,7 +48,8 @@ def render_fleet(snapshot: dict | None) -> html.Table:
     """Return the fleet table for a snapshot."""
     head = html.Tr([html.Th(h) for h in ("vessel", "status", "phase", "water (°C)",
                                          "time to target", "scaling index (1 − G/G₀)",
-                                         "last run (UTC)", "what needs doing")])  # fmt: skip
+                                         "last run (UTC)", "last run's verdict",
+                                         "what needs doing")])  # fmt: skip
     body = []
     for r in fleet_rows(snapshot):
         water = r["water_c"]
@@ -51,6 +61,8 @@ def render_fleet(snapshot: dict | None) -> html.Table:
             html.Td(r["time_to_target"]),
             html.Td(f"{index:.0%}" if isinstance(index := r["scaling_index"], float) else "-"),
             html.Td(r["last_run"]),
+            html.Td(r["last_verdict_mark"], className=f"verdict-{r['last_verdict']}",
+                    style={"fontWeight": 700} if r["last_verdict"] == "doubtful" else {}),
             html.Td("; ".join(r["flags"]) or "-"),  # type: ignore[arg-type]
         ]))  # fmt: skip
     return html.Table([html.Thead(head), html.Tbody(body)], className="fleet")

@@ -3,7 +3,9 @@
 The history comes from the run summaries in the log, else from a replay of it
 (:func:`dashboard.data.run_history`), read when a vessel is picked, not on every
 poll; the chart is a pure function of it.
-Each run links to its audit report, made on demand by the board's ``/report`` page.
+Each run links to its audit report, made on demand by the board's ``/report`` page,
+and says its verdict: a doubtful run (not judged for drift) is crossed on the chart
+and spelt out, with its reasons, beside its link.
 """
 
 from __future__ import annotations
@@ -15,11 +17,15 @@ import plotly.graph_objects as go
 from dash import Dash, Input, Output, dcc, html
 
 from dashboard import ids
+from dashboard.theme import verdict_mark
 from monitor import plots
 
 
 def history_figure(history: dict | None) -> go.Figure:
-    """Return the vessel's tracked figures across runs (:func:`monitor.plots.history_figure`)."""
+    """Return the vessel's tracked figures across runs, doubtful runs crossed as not judged.
+
+    :func:`monitor.plots.history_figure`, the audit report's own chart.
+    """
     history = history or {}
     return plots.history_figure(history.get("runs") or [], history.get("baselines") or {},
                                 uirevision="maintenance")  # fmt: skip
@@ -36,9 +42,17 @@ def report_links(history: dict | None) -> html.Ul:
         where = {"from": span[0], "to": span[1]} if all(
             isinstance(v, int | float) for v in span) else {}  # fmt: skip
         query = urlencode({"vessel": vessel, "run": r.get("run"), **where})
-        items.append(html.Li(html.A(f"audit report of run {r.get('run')} "
-                                    f"({r.get('start_utc') or 'time not recorded'})",
-                                    href=f"/report?{query}", target="_blank")))  # fmt: skip
+        verdict = r.get("verdict") or {}
+        doubtful = verdict.get("status") == "doubtful"
+        why = " ".join(str(x) for x in verdict.get("reasons") or [])
+        items.append(html.Li([
+            html.A(f"audit report of run {r.get('run')} "
+                   f"({r.get('start_utc') or 'time not recorded'})",
+                   href=f"/report?{query}", target="_blank"),
+            html.Span(f" {verdict_mark(verdict)}" + (f": {why}" if doubtful and why else ""),
+                      className=f"verdict-{verdict.get('status', 'unknown')}",
+                      style={"fontWeight": 700} if doubtful else {}),
+        ]))  # fmt: skip
     return html.Ul(items or [html.Li("No runs yet.")])
 
 

@@ -63,6 +63,8 @@ def test_snapshot_of_a_recorder_log(live_log) -> None:
     assert set(snap["latest"]) == {"kettle-a", "kettle-b"}
     assert snap["latest"]["kettle-b"]["water_mass_kg"] == pytest.approx(1.2, rel=0.05)  # the sim's
     assert snap["runs"]["kettle-a"]["run"] == "1"  # recorded as the service stopped
+    # the live service recorded each run's verdict with its summary; the board reads it
+    assert snap["runs"]["kettle-a"]["verdict"] == {"status": "trusted", "reasons": []}
     data = chart_data(str(live_log), "kettle-b")
     assert len(data["series"]["water"]["t"]) == 301
     assert data["cursor"]["t"] == data["series"]["water"]["t"][-1]
@@ -142,16 +144,24 @@ def test_fleet_puts_the_vessels_that_need_attention_first() -> None:
         "d": {"flags": [], "phase": "idle"},
     }, "runs": {
         "d": {"run": "9", "start_t": 1.7e9, "scaling_index": 0.27,
-              "drift": [{"name": "scaling", "level": "warning", "message": "scaling"}]},
+              "drift": [{"name": "scaling", "level": "warning", "message": "scaling"}],
+              "verdict": {"status": "trusted", "reasons": []}},
+        "a": {"run": "4", "start_t": 1.7e9, "scaling_index": None,
+              "drift": [{"name": "not_judged", "level": "notice", "message": "not judged"}],
+              "verdict": {"status": "doubtful", "reasons": ["The fit did not converge."]}},
     }}  # fmt: skip
     rows = fleet_rows(snap)
     assert [r["vessel"] for r in rows] == ["b", "d", "a", "c"]  # d: its last run's drift
     assert rows[0]["flags"] == ["dry boil"]
     assert rows[-1]["time_to_target"] == "1 min 01 s"
     assert rows[1]["last_run"] == "9 (2023-11-14 22:13)"
+    assert (rows[1]["last_verdict"], rows[2]["last_verdict"]) == ("trusted", "doubtful")
     table = str(render_fleet(snap))
     assert "▲ alarm" in table
     assert "27%" in table
+    assert "last run's verdict" in table
+    assert "✓ trusted" in table
+    assert "✕ doubtful: not judged" in table
 
 
 def test_the_board_renders_in_headless_chromium(live_log) -> None:
@@ -238,9 +248,16 @@ def test_maintenance_history_figure_and_report_links() -> None:
     runs = [
         {"run": str(i), "start_utc": None,
          "element_conductance_w_per_k": {"value": g, "std": 0.3},
-         "drift": [{"name": "scaling", "level": "warning"}] if g < 45 else []}
+         "drift": [{"name": "scaling", "level": "warning"}] if g < 45 else [],
+         "verdict": {"status": "trusted", "reasons": []}}
         for i, g in enumerate([54, 54, 53.8, 54.2, 54, 40, 39], start=1)
     ]  # fmt: skip
+    # a doubtful run between them (made-up: G 4.5x with a 25 % std), shown, not judged
+    runs.insert(3, {"run": "3b", "start_utc": None,
+                    "element_conductance_w_per_k": {"value": 243.0, "std": 60.75},
+                    "drift": [{"name": "not_judged", "level": "notice"}],
+                    "verdict": {"status": "doubtful",
+                                "reasons": ["The G is known only to ±25%."]}})  # fmt: skip
     history = {
         "chosen": "k1",
         "runs": runs,
@@ -251,8 +268,13 @@ def test_maintenance_history_figure_and_report_links() -> None:
     assert len(flags) == 1
     assert list(flags[0].x) == ["6", "7"]  # the runs where the warning was raised
     assert any(s.type == "rect" for s in fig.layout.shapes)  # the baseline band
+    (cross,) = [t for t in fig.data if t.name == "scaling not judged"]
+    assert list(cross.x) == ["3b"]
+    assert list(cross.text) == ["not judged (off scale)"]
     links = str(report_links(history))
     assert "/report?vessel=k1&run=7" in links
+    assert "✓ trusted" in links
+    assert "✕ doubtful: not judged: The G is known only to ±25%." in links
 
 
 def fetch_report(client, url: str):
@@ -287,7 +309,7 @@ def test_the_board_serves_the_audit_report_of_a_run(live_log) -> None:
     from dashboard.views.maintenance import report_links
 
     history = run_history(str(live_log), "kettle-a")
-    (link,) = [a.href for li in report_links(history).children for a in [li.children]]
+    (link,) = [li.children[0].href for li in report_links(history).children]  # A, then verdict
     assert "&from=" in link
     assert "&to=" in link
     relabelled = link.replace("run=1", "run=9")

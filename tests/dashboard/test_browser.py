@@ -95,6 +95,22 @@ def wait_for(check, timeout_s: float = 60.0, what: str = "") -> None:
     raise AssertionError(f"timed out waiting for {what}")
 
 
+def read_settled(read, tries: int = 40):
+    """Return ``read()``, tried again while the board re-renders what it reads.
+
+    The board polls, so an element found a moment ago can be replaced before its text
+    is read (a stale element); that is a re-render, not a failure.
+    """
+    from selenium.common.exceptions import StaleElementReferenceException
+
+    for _ in range(tries - 1):
+        try:
+            return read()
+        except StaleElementReferenceException:
+            time.sleep(0.1)
+    return read()
+
+
 def one_kettle(vessel: str, meta: dict) -> RigConfig:
     """A rig configuration of one kettle with an element thermocouple (our own)."""
     return RigConfig("browser-test", "# one kettle\n", 101.325, None, (),
@@ -195,8 +211,11 @@ def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, bro
         browser.get(url)
 
         def order() -> list[str]:
-            rows = browser.find_elements(By.CSS_SELECTOR, "#fleet-table tbody tr")
-            return [r.text.split(" ")[0] for r in rows]
+            def names() -> list[str]:
+                rows = browser.find_elements(By.CSS_SELECTOR, "#fleet-table tbody tr")
+                return [r.text.split(" ")[0] for r in rows]
+
+            return read_settled(names)
 
         wait_for(lambda: len(order()) == 3, what="three vessels in the fleet view")
         assert order() == ["c-open-tc", "b-no-room", "a-clean"]
@@ -204,7 +223,7 @@ def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, bro
         assert "c-open-tc" in browser.find_element(By.ID, "vessel-pick").text
         wait_for(lambda: "1500" in browser.find_element(By.ID, "vessel-flags").text,
                  what="its open thermocouple in the vessel's flags")  # fmt: skip
-        rows = browser.find_element(By.ID, "fleet-table").text.split("\n")
+        rows = read_settled(lambda: browser.find_element(By.ID, "fleet-table").text).split("\n")
         assert "● warning" in rows[1]
         assert "○ notice" in rows[2]
         assert " ok " in f" {rows[3]} "

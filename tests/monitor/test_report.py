@@ -51,6 +51,10 @@ def test_the_report_holds_the_figures_integrity_and_cautions(log) -> None:
     assert "plotly.js v" in page or "Plotly" in page
     assert "<script src=" not in page
     assert "truth_water_mass_kg" not in page  # the simulator's truth is not a reading
+    # the run's verdict, in a word and a shape
+    assert "<h2>Run verdict</h2>" in page
+    assert "id='report-verdict' class='verdict-trusted'><b>✓ trusted</b>" in page
+    assert "Runs and their verdicts: 1 ✓ trusted, 2 ✓ trusted." in page
 
 
 def test_a_tampered_log_says_its_integrity_check_failed(log) -> None:
@@ -127,3 +131,37 @@ def test_without_an_element_thermocouple_scaling_is_said_to_be_not_judged(tmp_pa
     assert "limescale is not judged" in build_report(str(bare))
     (row,) = fleet_rows(replay([str(bare)]))
     assert row["note"] == "no element thermocouple: scaling is not judged"
+
+
+def test_a_doubtful_run_is_marked_in_the_report_with_its_reasons(tmp_path) -> None:
+    rows = ["time_s,water_c,element_c,power_w"]
+    rows += [f"{t},{15 + 0.25 * t:.2f},{25 + 0.25 * t:.2f},2000" for t in range(40)]  # made-up
+    path = tmp_path / "short.csv"
+    path.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    page = build_report(str(path))
+    assert "class='verdict-doubtful'><p><b>✕ doubtful: not judged</b>" in page
+    assert "usable water readings; at least 60 are needed" in page
+    assert "<b>not_judged</b> (notice)" in page
+    assert "Runs and their verdicts: 1 ✕ doubtful: not judged." in page
+
+
+def test_the_history_chart_crosses_doubtful_runs_and_keeps_them_off_the_judged_line() -> None:
+    from monitor.plots import history_figure
+
+    def run(label: str, g: float, std: float) -> dict:
+        return {"run": label, "element_conductance_w_per_k": {"value": g, "std": std}}
+
+    # made-up figures: five runs near 54 W/K, then one diverged (4.5x with a 25 % std)
+    runs = [run(str(i), g, 1.6) for i, g in enumerate([54, 53.5, 54.5, 54, 53.8], start=1)]
+    runs.insert(2, run("2b", 243.0, 60.75))
+    base = {"element_conductance_w_per_k": {"mean": 54.0, "sd": 1.6, "runs": 5}}
+    fig = history_figure(runs, base)
+    (judged,) = [t for t in fig.data if t.name == "scaling"]
+    assert "2b" not in list(judged.x)
+    (cross,) = [t for t in fig.data if t.name == "scaling not judged"]
+    assert list(cross.x) == ["2b"]
+    assert cross.marker.symbol == "x-open"
+    assert list(cross.text) == ["not judged (off scale)"]
+    assert cross.y[0] < 100.0  # drawn at the edge, not at 243 W/K
+    assert "known only to ±25%" in cross.hovertext[0]
+    assert list(fig.layout.xaxis.categoryarray) == ["1", "2", "2b", "3", "4", "5"]
