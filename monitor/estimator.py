@@ -80,7 +80,7 @@ from __future__ import annotations
 
 import math
 from collections import deque
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -913,26 +913,17 @@ class VesselEstimator:
         is the separate fractional term ``fit_forecast_model_error`` times the fit's
         early factor (:func:`_fit_forecast`).
         """
-        th, cov = result.theta, result.statistical_cov
+        th = result.theta
         eta = self._fit_time_to_target(th, result.end_state, power_w, ambient_c)
         if eta is None or eta <= 0.0:
             return 0.0
-        p = len(th)
-        try:
-            root = np.linalg.cholesky(p * cov)
-        except np.linalg.LinAlgError:
-            w, v = np.linalg.eigh(cov)
-            root = v * np.sqrt(np.clip(w, 0.0, None) * p)
-        sq = 0.0
-        for k in range(p):
-            for sign in (1.0, -1.0):
-                d = sign * root[:, k]
-                state = result.end_state + result.end_jacobian @ d
-                t = self._fit_time_to_target(th + d, state, power_w, ambient_c)
-                if t is None:
-                    return 1.0  # part of the interval never gets there
-                sq += (t - eta) ** 2
-        return math.sqrt(sq / (2 * p)) / eta
+
+        def eta_at(d: np.ndarray) -> float | None:
+            state = result.end_state + result.end_jacobian @ d
+            return self._fit_time_to_target(th + d, state, power_w, ambient_c)
+
+        sd = sigma_point_sd(eta_at, result.statistical_cov, eta)
+        return 1.0 if sd is None else sd / eta  # None: part of the interval never gets there
 
     def _fit_time_to_target(
         self, theta: np.ndarray, state: np.ndarray, power_w: float, ambient_c: float
@@ -1451,6 +1442,34 @@ def _time_to_target(
     )
 
 
+def sigma_point_sd(
+    f: Callable[[np.ndarray], float | None], cov: np.ndarray, centre: float
+) -> float | None:
+    """Return the unscented spread of f about ``centre``, or None where f fails at a point.
+
+    f takes an offset d from the mean; the 2n symmetric sigma points are the columns
+    ±√(n·cov) (Cholesky, or the eigen-decomposition with negative eigenvalues cut to
+    zero when cov is not positive definite), and the spread is the RMS of f(d) − centre
+    over them (the unscented transform's standard deviation, equal weights). Used for
+    the time to target from the filter's state and from a heat-up fit's parameters.
+    """
+    n = cov.shape[0]
+    sym = 0.5 * (cov + cov.T)
+    try:
+        root = np.linalg.cholesky(n * sym)
+    except np.linalg.LinAlgError:
+        w, v = np.linalg.eigh(sym)
+        root = v * np.sqrt(np.clip(w, 0.0, None) * n)
+    sq = 0.0
+    for k in range(n):
+        for sign in (1.0, -1.0):
+            value = f(sign * root[:, k])
+            if value is None:
+                return None
+            sq += (value - centre) ** 2
+    return math.sqrt(sq / (2 * n))
+
+
 def forecast_time_to_target(
     est: VesselEstimator, power_w: float, ambient_c: float
 ) -> TargetForecast:
@@ -1472,26 +1491,12 @@ def forecast_time_to_target(
             f"near {level_c:.1f} °C, below the {est.target_c:.2f} °C target"
         )
         return TargetForecast(est.target_c, None, None, None, reason)
-    n = len(mean)
-    try:
-        root = np.linalg.cholesky(n * (cov + cov.T) / 2.0)
-    except np.linalg.LinAlgError:
-        w, v = np.linalg.eigh((cov + cov.T) / 2.0)
-        root = v * np.sqrt(np.clip(w, 0.0, None) * n)
-    times = []
-    for k in range(n):
-        for sign in (1.0, -1.0):
-            t = _time_to_target(est, mean + sign * root[:, k], power_w, ambient_c)
-            if t is None:
-                return TargetForecast(
-                    est.target_c,
-                    eta,
-                    None,
-                    None,
-                    "the interval reaches conditions that never get there",
-                )
-            times.append(t)
-    parametric = sum((t - eta) ** 2 for t in times) / (2 * n)
+    sd = sigma_point_sd(lambda d: _time_to_target(est, mean + d, power_w, ambient_c), cov, eta)
+    if sd is None:
+        return TargetForecast(
+            est.target_c, eta, None, None, "the interval reaches conditions that never get there"
+        )
+    parametric = sd * sd
     model_error = (est.settings.forecast_model_error * eta) ** 2
     spread = math.sqrt(parametric + model_error)
     return TargetForecast(est.target_c, eta, max(eta - Z_90 * spread, 0.0), eta + Z_90 * spread)
