@@ -608,7 +608,12 @@ class VesselEstimator:
         if lay.element_lagged is not None:
             x[lay.element_lagged] = x[lay.element]
             p[lay.element_lagged, lay.element_lagged] = s.element_noise_sd_c**2
-            p[lay.element, lay.element_lagged] = p[lay.element_lagged, lay.element] = 0.5
+            # the sensor's state is known to its noise, the element's to 1 K about it: the
+            # cross term may not pass √(1·noise²) or P is not a covariance (it was 0.5
+            # against 0.3 once, and a heater's first slow update then made P_jj negative)
+            p[lay.element, lay.element_lagged] = p[lay.element_lagged, lay.element] = (
+                s.element_noise_sd_c**2
+            )
         x[lay.ln_ua] = math.log(s.ua_prior_w_per_k)
         p[lay.ln_ua, lay.ln_ua] = s.ua_prior_ln_sd**2
         x[lay.ln_c] = math.log(self._prior_capacity_j_per_k())
