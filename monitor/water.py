@@ -431,6 +431,20 @@ def specific_enthalpy_j_per_kg(t_c: FloatOrArray) -> FloatOrArray:
     return _liquid_scalar(_liquid_tables().h, t_c)
 
 
+def mean_specific_heat_j_per_kg_k(t0_c: float, t1_c: float) -> float:
+    """Return the mean isobaric specific heat of liquid water between t0_c and t1_c (°C).
+
+    In J/(kg·K): (h(t1) - h(t0)) / (t1 - t0), the heat capacity a lumped model with one
+    constant c_p sees over that range (the first law over the range, not c_p at one
+    end). Within 0.01 K of each other it is c_p at their middle. Same lines and range
+    as :func:`specific_heat_j_per_kg_k`; raises PhysicsRangeError outside 0-150 °C.
+    """
+    if abs(t1_c - t0_c) < 0.01:
+        return float(specific_heat_j_per_kg_k(0.5 * (t0_c + t1_c)))
+    dh = float(specific_enthalpy_j_per_kg(t1_c)) - float(specific_enthalpy_j_per_kg(t0_c))
+    return dh / (t1_c - t0_c)
+
+
 def heating_energy_j(
     mass_kg: FloatOrArray, from_c: FloatOrArray, to_c: FloatOrArray
 ) -> FloatOrArray:

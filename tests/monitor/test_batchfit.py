@@ -189,14 +189,20 @@ def test_drawn_kettles_mass_and_countdown_by_mid_heat_up(seed, two_node):
 
 
 def test_batch_fit_beats_the_filter_alone_on_an_unknown_plate():
-    with_fit, boiled_s = _kettle_run(5, True, batch_fit=True)
-    alone, _ = _kettle_run(5, True, batch_fit=False)
-    started_s = next(t for t, e, _ in with_fit if e is not None and e.power_w > 100.0)
-    quarter_s = started_s + 0.25 * (boiled_s - started_s)
-
-    def mass_error(rows):
+    # over three drawn kettles, not one: the robust filter alone is right on some
+    # kettles (0.6 % on seed 5) and far off on others (33 % on seed 3, 2026-12-03)
+    def mass_error(rows, quarter_s):
         _, e, mass = min(rows, key=lambda r: abs(r[0] - quarter_s))
         return abs(e.water_mass_kg.value - mass) / mass
 
-    assert mass_error(with_fit) < 0.05
-    assert mass_error(with_fit) < mass_error(alone)
+    fitted, unfitted = [], []
+    for seed in (3, 4, 5):
+        with_fit, boiled_s = _kettle_run(seed, True, batch_fit=True)
+        alone, _ = _kettle_run(seed, True, batch_fit=False)
+        started_s = next(t for t, e, _ in with_fit if e is not None and e.power_w > 100.0)
+        quarter_s = started_s + 0.25 * (boiled_s - started_s)
+        fitted.append(mass_error(with_fit, quarter_s))
+        unfitted.append(mass_error(alone, quarter_s))
+    assert max(fitted) < 0.05
+    assert max(fitted) < max(unfitted)
+    assert sum(fitted) < sum(unfitted)

@@ -229,6 +229,25 @@ def test_specific_heat_at_20_and_25_c_closely() -> None:
     assert water.specific_heat_j_per_kg_k(25.0) < water.specific_heat_j_per_kg_k(20.0)
 
 
+def test_mean_specific_heat_is_the_enthalpy_rise_over_the_temperature_rise() -> None:
+    # Consistency of our own functions (no outside value): the mean over 15-100 °C is
+    # the integral of c_p, so it lies between c_p's extremes on the range and is the
+    # trapezoid mean of c_p on a fine grid; over a tiny range it is c_p at the middle.
+    mean = water.mean_specific_heat_j_per_kg_k(15.0, 100.0)
+    grid = np.linspace(15.0, 100.0, 2001)
+    cp = water.specific_heat_j_per_kg_k(grid)
+    assert mean == pytest.approx(float(np.trapezoid(cp, grid)) / 85.0, rel=1e-6)
+    assert float(cp.min()) < mean < float(cp.max())
+    # at the end of a kettle's heat-up c_p itself is 0.7 % above the mean the fit saw
+    assert water.specific_heat_j_per_kg_k(100.0) / mean - 1.0 == pytest.approx(0.0068, abs=0.001)
+    assert water.mean_specific_heat_j_per_kg_k(40.0, 40.005) == pytest.approx(
+        water.specific_heat_j_per_kg_k(40.0025), rel=1e-12
+    )
+    assert water.mean_specific_heat_j_per_kg_k(80.0, 20.0) == pytest.approx(
+        water.mean_specific_heat_j_per_kg_k(20.0, 80.0), rel=1e-12
+    )
+
+
 def test_saturated_liquid_at_one_atm() -> None:
     # ρ 958.37 kg/m³ and c_p 4.2156 kJ/(kg·K), IAPWS-95, REFERENCE §2.2.
     tb = water.boiling_point_c(STANDARD_PRESSURE_KPA)
