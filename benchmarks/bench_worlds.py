@@ -1104,6 +1104,30 @@ def z_summary(scores: Sequence[RunScore]) -> dict[str, object]:
     }
 
 
+def z_per_decile(scores: Sequence[RunScore]) -> dict[str, object]:
+    """Return, per figure and decile, the RMS and the median of the finite error/std.
+
+    Where in a heat-up a figure is over- or under-confident (RMS far from 1) and
+    biased (median far from 0): what a structural floor is set on.
+    """
+    measured = [s for s in scores if s.element_sensor]
+    out: dict[str, object] = {}
+    for name, attr, runs in (("water_mass", "mass_z", scores), ("element_conductance", "g_z",
+                             measured), ("ua", "ua_z", scores), ("time_to_target", "eta_z",
+                             scores)):  # fmt: skip
+        per: dict[str, object] = {}
+        for f in DECILES:
+            z = np.array([getattr(s, attr).get(label(f), math.inf) for s in runs], dtype=float)
+            z = z[np.isfinite(z)]
+            per[label(f)] = (
+                {"rms": num(float(np.sqrt(np.mean(z * z)))), "median": num(float(np.median(z)))}
+                if z.size
+                else None
+            )
+        out[name] = per
+    return out
+
+
 def fit_summary(scores: Sequence[RunScore]) -> dict[str, object]:
     """Return the offline fit's errors and the filter's over the fit's, per fraction."""
     per: dict[str, object] = {}
@@ -1136,6 +1160,7 @@ def figures(scores: Sequence[RunScore]) -> dict[str, object]:
         "time_to_target": time_to_target_summary(scores),
         "coverage_90": coverage_summary(scores),
         "z_rms": z_summary(scores),
+        "z_per_decile": z_per_decile(scores),
         "water_mass": {
             "mid_heat_up": error_stats(s.mass_mid_error for s in scores),
             "end_heat_up": error_stats(s.mass_end_error for s in scores),
@@ -1378,6 +1403,7 @@ def run(options: Options) -> dict[str, object]:
                 "time_to_target": time_to_target_summary([s for s in scores if s.kind == kind]),
                 "coverage_90": coverage_summary([s for s in scores if s.kind == kind]),
                 "z_rms": z_summary([s for s in scores if s.kind == kind]),
+                "z_per_decile": z_per_decile([s for s in scores if s.kind == kind]),
             }
             for kind in (KETTLE, HEATER)
         },
