@@ -10,7 +10,13 @@ import pytest
 from scipy.linalg import expm
 from scipy.optimize import least_squares
 
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simulator import (
+    LidSpec,
+    SimulatedRig,
+    effective_ua_w_per_k,
+    kettle_scenario,
+    scenario_metadata,
+)
 from monitor import batchfit as bf
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 
@@ -138,13 +144,14 @@ def test_thinned_grid_keeps_the_energy_and_the_start():
     assert np.isfinite(data.water_c[-1])
 
 
-def _kettle_run(seed: int, two_node: bool, batch_fit: bool):
+def _kettle_run(seed: int, two_node: bool, batch_fit: bool, lid: LidSpec | None = None):
     """Return (estimates, truth rows) of a drawn kettle given only what a user knows."""
     rng = np.random.default_rng(seed)
     sc = kettle_scenario(
         water_mass_kg=float(rng.uniform(0.6, 1.7)),
         start_water_c=float(rng.uniform(8.0, 25.0)),
         duration_s=600.0,
+        lid=lid,
     )
     element = replace(sc.element, heat_capacity_j_per_k=float(rng.uniform(150.0, 500.0)))
     sensors = dict(sc.sensors)
@@ -165,6 +172,8 @@ def _kettle_run(seed: int, two_node: bool, batch_fit: bool):
             values.pop("element", None)
         e = est.step(rig.elapsed_s, values)
         rows.append((rig.elapsed_s, e, rig.state.water_mass_kg))
+    if lid is not None:  # the scenario, for the truth of UA
+        return rows, rig.state.boiling_since_s, sc
     return rows, rig.state.boiling_since_s
 
 
@@ -206,3 +215,23 @@ def test_batch_fit_beats_the_filter_alone_on_an_unknown_plate():
     assert max(fitted) < 0.05
     assert max(fitted) < max(unfitted)
     assert sum(fitted) < sum(unfitted)
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_a_heavy_slow_lid_neither_hides_water_nor_makes_ua_overconfident(seed):
+    # A lid of 200 J/K on a 1 W/K path to the water (a lag of about 170 s, longer than
+    # half this heat-up) is in the vessel's heat capacity the user gives, but a heat-up
+    # has barely warmed it: read as it is, the fit's heat capacity made the water 2-3 %
+    # light at mid heat-up on bench_worlds.py's kettles, and the heat flowing into the
+    # lid read as loss (UA high, error/std RMS 2.2-2.8). Tolerances ours: the mass within
+    # 4 % and 3 σ, UA's truth (at that instant's water and room) within 3 σ.
+    lid = LidSpec(heat_capacity_j_per_k=200.0, to_water_w_per_k=1.0, to_room_w_per_k=0.2)
+    rows, boiled_s, sc = _kettle_run(seed, True, batch_fit=True, lid=lid)
+    started_s = next(t for t, e, _ in rows if e is not None and e.power_w > 100.0)
+    mid_s = started_s + 0.5 * (boiled_s - started_s)
+    _, e, mass = min(rows, key=lambda r: abs(r[0] - mid_s))
+    err = e.water_mass_kg.value - mass
+    assert abs(err) / mass < 0.04
+    assert abs(err) < 3.0 * e.water_mass_kg.std
+    true_ua = effective_ua_w_per_k(sc, e.water_c, e.ambient_c)
+    assert abs(e.ua_w_per_k.value - true_ua) < 3.0 * e.ua_w_per_k.std
