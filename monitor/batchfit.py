@@ -540,6 +540,38 @@ class HeatUpFit:
             return since_s >= self.early_every_s
         return since_s >= max(self.every_s, 0.05 * heated_s)
 
+    def heating_power_w(self, block_s: float = 300.0) -> tuple[float, float] | None:
+        """Return the mean heating power (W) since switch-on and the relative sd of its
+        slow part.
+
+        Over the steps since heating began whose power is above half their median (a
+        thermostat's or a steam switch's off steps, and the switch-on step itself,
+        are not heating power). The sd is of the means of consecutive ``block_s``
+        blocks of those steps, so a meter's reading noise, which averages out over a
+        heat-up, does not count as wander of the power; with fewer than three blocks
+        (a kettle) it is the sd of the steps themselves. None before three steps.
+        """
+        if self.heating_since_s is None:
+            return None
+        pairs = [(t, pw) for t, pw in zip(self._t, self._p, strict=True)
+                 if t > self.heating_since_s]  # fmt: skip
+        if len(pairs) < 3:
+            return None
+        half = 0.5 * float(np.median([pw for _, pw in pairs]))
+        on = [(t, pw) for t, pw in pairs if pw > half]
+        if len(on) < 3:
+            return None
+        p = np.array([pw for _, pw in on])
+        mean = float(np.mean(p))
+        if not mean > 0.0:
+            return None
+        t = np.array([t for t, _ in on])
+        block = np.floor((t - t[0]) / block_s).astype(int)
+        counts = np.bincount(block)
+        means = np.bincount(block, weights=p)[counts > 0] / counts[counts > 0]
+        spread = float(np.std(means)) if means.size >= 3 else float(np.std(p))
+        return mean, spread / mean
+
     def data(self) -> FitData:
         """Return the window so far on its grid."""
         element = np.array(self._e) if self.has_element else None

@@ -125,7 +125,9 @@ VERDICT_MAX_RELATIVE_STD = {
 VERDICT_MAX_REJECTED_FRACTION = 0.15
 #: Largest share of readings the filter down-weighted (water and element, over the water
 #: readings). Gating: 0 in every run. Down-weighting (Huber, 2 σ): clean runs median 0.19-0.21,
-#: 99th percentile 0.34-0.36, largest 0.42; lags four to five times the stated ones up
+#: 99th percentile 0.34-0.36, largest 0.42; at 2.5 σ with the idle noise estimate
+#: (2026-12-03, bench_drift.py's 1000 clean runs) median 0.24, 99th percentile 0.46,
+#: largest 0.52, none doubtful; lags four to five times the stated ones up
 #: to 0.49 (G within 3 %); an element thermocouple 8 K out 0.36-0.67 (G 17 % low); noise
 #: ten times the catalogue 1.44-1.53. Limit 0.6, 1.4 times the largest clean run.
 VERDICT_MAX_DOWNWEIGHTED_FRACTION = 0.6

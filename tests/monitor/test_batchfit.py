@@ -235,3 +235,34 @@ def test_a_heavy_slow_lid_neither_hides_water_nor_makes_ua_overconfident(seed):
     assert abs(err) < 3.0 * e.water_mass_kg.std
     true_ua = effective_ua_w_per_k(sc, e.water_c, e.ambient_c)
     assert abs(e.ua_w_per_k.value - true_ua) < 3.0 * e.ua_w_per_k.std
+
+
+def test_heating_power_leaves_out_the_off_steps_and_the_switch_on():
+    fit = bf.HeatUpFit(_priors(6), has_element=False)
+    assert fit.heating_power_w() is None
+    for t in range(5):  # idle before switch-on
+        fit.add(float(t), 0.0, 20.0, 20.0, None, heating=False)
+    fit.add(5.0, 900.0, 20.0, 20.0, None, heating=True)  # the switch-on step itself
+    powers = [1980.0, 2020.0, 2000.0, 0.0, 0.0, 1990.0, 2010.0]  # a thermostat's off steps
+    for k, p in enumerate(powers):
+        fit.add(6.0 + k, p, 20.0, 21.0 + k, None, heating=True)
+    mean, rel_sd = fit.heating_power_w()
+    on = [p for p in powers if p > 0.0]
+    assert mean == pytest.approx(np.mean(on), rel=1e-12)
+    assert rel_sd == pytest.approx(np.std(on) / np.mean(on), rel=1e-12)
+
+
+def test_heating_power_wander_is_read_from_block_means_not_reading_noise():
+    # a heater at 10 s samples for an hour: white reading noise of 2 % on a steady
+    # 2 kW, then the same with a slow 2 % swing; only the swing is wander
+    rng = np.random.default_rng(4)
+    for swing, low, high in ((0.0, 0.0, 0.006), (0.02, 0.01, 0.02)):
+        fit = bf.HeatUpFit(_priors(6), has_element=False)
+        fit.add(0.0, 2000.0, 20.0, 20.0, None, heating=True)
+        for k in range(1, 361):
+            t = 10.0 * k
+            p = 2000.0 * (1.0 + swing * math.sin(2.0 * math.pi * t / 1200.0))
+            fit.add(t, p * (1.0 + 0.02 * rng.standard_normal()), 20.0, 20.0 + t / 100.0,
+                    None, heating=True)  # fmt: skip
+        _, rel_sd = fit.heating_power_w()
+        assert low < rel_sd < high
