@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from monitor.drift import VERDICT_MARK as DRIFT_VERDICT_MARK
+from monitor.drift import VERDICT_MARK
 
 LEVEL_RANK = {"alarm": 3, "warning": 2, "notice": 1}
 
@@ -22,12 +22,13 @@ def chart_axis(**extra: object) -> dict[str, object]:
 
 #: Level shown with a word and a shape, never by colour alone.
 LEVEL_MARK = {"alarm": "▲ alarm", "warning": "● warning", "notice": "○ notice", "ok": "ok"}
-#: A run's verdict shown with a word and a shape (the report's own, monitor.drift).
-VERDICT_MARK = DRIFT_VERDICT_MARK
 
 
 def verdict_mark(verdict: dict | None) -> str:
-    """Return a run verdict as its mark ('✕ doubtful: not judged'), or '-' for none."""
+    """Return a run verdict as its mark ('✕ doubtful: not judged'), or '-' for none.
+
+    The marks are monitor.drift.VERDICT_MARK, the report's own.
+    """
     status = str((verdict or {}).get("status"))
     return VERDICT_MARK.get(status, "-")
 
