@@ -22,8 +22,8 @@ One evaluation is O(n) and vectorised. The inputs are piecewise constant on a
 uniform grid, so the system is solved exactly in its modal form: with
 M = V·diag(λ)·V⁻¹ (all eigenvalues real and negative: the thermal block is similar
 to a symmetric matrix, the lags are triangular), each mode obeys
-z[k+1] = e^{λh}·z[k] + (e^{λh} - 1)/λ · (V⁻¹B u[k]), a first-order recursion that
-``scipy.signal.lfilter`` runs in C.
+z[k+1] = e^{λh}·z[k] + (e^{λh} - 1)/λ · (V⁻¹B u[k]), a first-order recursion run
+compiled (:func:`monitor.kernels.first_order_recursion`).
 
 The fit is Levenberg-Marquardt (Marquardt's diagonal scaling) on residuals
 (model - reading)/σ with Huber weights held fixed through one fit (IRLS across fits),
@@ -42,7 +42,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.signal import lfilter
+
+from monitor import kernels
 
 __all__ = [
     "FitData",
@@ -230,7 +231,7 @@ def simulate(theta: np.ndarray, data: FitData) -> tuple[np.ndarray, np.ndarray]:
     z = np.empty((n, len(data.power_w) + 1))
     for i in range(n):
         drive = d[i] * (w[i, 0] * data.power_w + w[i, 1] * data.ambient_c)
-        z[i] = lfilter([1.0], [1.0, -a[i]], np.concatenate(([z0[i]], drive)))
+        z[i] = kernels.first_order_recursion(float(a[i]), float(z0[i]), drive)
     return (v @ z).T, lam
 
 

@@ -82,11 +82,12 @@ import math
 from collections import deque
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
 from drivers.errors import ConfigError
-from monitor import batchfit, transition, water
+from monitor import batchfit, kernels, transition, water
 from monitor.contracts import (
     Estimate,
     Estimated,
@@ -296,22 +297,23 @@ class Layout:
 
 
 class FastCore:
-    """EKF predict and scalar updates written out in numpy.
+    """EKF predict and scalar updates, in numpy and compiled kernels.
 
     Predict:  x⁻ = f(x),  P⁻ = F P Fᵀ + Q
     Update of one reading z of state j (H = e_jᵀ, so scalar algebra):
         ν = z - x_j,   S = P_jj + r,   K = P[:, j] / S
         x⁺ = x + K ν
         P⁺ = (I - K H) P (I - K H)ᵀ + K r Kᵀ        Joseph form, which filterpy uses
-           = P - K S Kᵀ                              equal for the optimal K: used here,
-                                                      then symmetrised
-    The Joseph form itself is kept for consider updates (some gains zeroed), where
-    the short form does not hold.
+           = P - K cᵀ - c Kᵀ + S K Kᵀ,  c = P[:, j]
+    The last line is exact for any gain, so it serves the consider updates too
+    (some gains zeroed, where the short form P - K S Kᵀ does not hold); it runs
+    compiled (:func:`monitor.kernels.scalar_update`).
     """
 
     def __init__(self, x: np.ndarray, p: np.ndarray) -> None:
         self.x = np.array(x, dtype=float)
         self.P = np.array(p, dtype=float)
+        self._masks: dict[tuple[int, ...], np.ndarray] = {}
 
     def predict(self, x_new: np.ndarray, f: np.ndarray, q: np.ndarray) -> None:
         """Set the prior from the propagated state and the Jacobian F."""
@@ -324,25 +326,19 @@ class FastCore:
 
     def update(self, j: int, z: float, r: float, frozen: tuple[int, ...] = ()) -> None:
         """Apply a reading z of state j; states in ``frozen`` get zero gain (consider update)."""
-        p = self.P
-        column = p[:, j]
-        s = column[j] + r
-        nu = z - self.x[j]
-        k = column / s
-        if not frozen:
-            # With the optimal gain the Joseph form reduces exactly to P - K S Kᵀ =
-            # P - P[:, j] P[j, :] / S: three array operations instead of seven. It is
-            # symmetrised so rounding cannot make P lose its symmetry over a long run.
-            self.x = self.x + k * nu
-            updated = p - np.multiply.outer(k, column)
-            self.P = 0.5 * (updated + updated.T)
-            return
-        k = k.copy()
-        k[list(frozen)] = 0.0
-        self.x = self.x + k * nu
-        kc = k[:, None]
-        a = p - kc * p[j, :]
-        self.P = a - a[:, j : j + 1] * k + r * kc * k
+        mask = self._masks.get(frozen)
+        if mask is None:
+            mask = np.zeros(self.x.shape[0], dtype=np.bool_)
+            mask[list(frozen)] = True
+            self._masks[frozen] = mask
+        self.x, self.P = kernels.scalar_update(
+            np.ascontiguousarray(self.x, dtype=float),
+            np.ascontiguousarray(self.P, dtype=float),
+            j,
+            float(z),
+            float(r),
+            mask,
+        )
 
 
 class FilterpyCore:
@@ -560,6 +556,7 @@ class VesselEstimator:
         self._temps = lay.temperatures
         self._temps_ix = np.ix_(self._temps, self._temps)
         self._param_columns = [lay.ln_ua, lay.ln_c] + ([lay.ln_g] if lay.ln_g is not None else [])
+        self._temps_params_ix = np.ix_(self._temps, self._param_columns)
         self._eye = np.eye(lay.size)
         self._q_cache: dict[tuple[float, bool], np.ndarray] = {}
         self.heat_up_fit: batchfit.HeatUpFit | None = (
@@ -643,11 +640,20 @@ class VesselEstimator:
         return math.exp(x[lay.ln_ua]), math.exp(x[lay.ln_c]), g
 
     def _propagate(
-        self, x: list[float], dt_s: float, power_w: float, ambient_c: float, boiling: bool
-    ) -> tuple[list[float], tuple | None, float]:
-        """Return (f(x), temperature block of ∂f/∂x or None if clamped, heat evaporated J).
+        self,
+        x: list[float],
+        dt_s: float,
+        power_w: float,
+        ambient_c: float,
+        boiling: bool,
+        sensitivities: bool = False,
+    ) -> tuple[list[float], Any, Any, float]:
+        """Return (f(x), M, S, heat evaporated J) for one step.
 
-        Works on plain lists of floats: this runs four times per filter step.
+        M is the temperature block of ∂f/∂x and S the temperatures' derivatives by
+        the log-parameters (when ``sensitivities``; see :mod:`monitor.transition`);
+        both are None when the water is clamped at the boil. Works on plain lists of
+        floats: this runs at every filter step.
         """
         lay = self.layout
         ua, c, g = self._params(x)
@@ -673,14 +679,21 @@ class VesselEstimator:
                 for i, value in zip(self._temps, temps, strict=True):
                     out[i] = value
                 out[lay.ln_c] = self._capacity_after_boiling(c, evaporated_j)
-                return out, None, evaporated_j
+                return out, None, None, evaporated_j
             # no surplus heat: the water leaves the boil and follows the linear model
+        sens: tuple | None = None
         if lay.element is None:
-            temps, m = transition.one_node_step(
+            one_node = (
+                transition.one_node_step_and_sensitivities
+                if sensitivities
+                else transition.one_node_step
+            )
+            temps, m, *rest = one_node(
                 x[lay.water], lagged, dt_s, power_w, ambient_c, ua, c, self.lag_rate_per_s
             )
+            sens = rest[0] if rest else None
         else:
-            temps, m = transition.two_node_step(
+            temp_array, m, sens = transition.two_node_step_arrays(
                 x[lay.water],
                 x[lay.element],
                 lagged,
@@ -694,16 +707,18 @@ class VesselEstimator:
                 self.lag_rate_per_s,
                 element_lagged,
                 self.element_lag_rate_per_s,
+                sensitivities,
             )
+            temps = temp_array.tolist()
         for i, value in zip(self._temps, temps, strict=True):
             out[i] = value
         if out[lay.water] <= self.boiling_point_c:
-            return out, m, 0.0
+            return out, m, sens, 0.0
         # crossed the boiling point inside the step: clamp, the excess evaporates
         excess_j = c * (out[lay.water] - self.boiling_point_c)
         out[lay.water] = self.boiling_point_c
         out[lay.ln_c] = self._capacity_after_boiling(c, excess_j)
-        return out, None, excess_j
+        return out, None, None, excess_j
 
     def _capacity_after_boiling(self, capacity_j_per_k: float, evaporated_j: float) -> float:
         """Return ln C after ``evaporated_j`` of heat boiled water away (C falls by c_p·Δm)."""
@@ -723,25 +738,34 @@ class VesselEstimator:
         self,
         x: list[float],
         fx: list[float],
-        m: tuple | None,
+        m: Any,
+        sens: Any,
         dt_s: float,
         power_w: float,
         ambient_c: float,
         boiling: bool,
     ) -> np.ndarray:
-        """Return F = ∂f/∂x: the exact temperature block, the other columns by differences."""
+        """Return F = ∂f/∂x, in closed form off the boil.
+
+        The temperature block is M and the parameter columns are S (exact, from
+        :mod:`monitor.transition`). Clamped at the boil, or where S could not be
+        formed without losing digits (None), columns are taken by forward differences.
+        """
         f = self._eye.copy()
-        if m is not None:
+        if m is None:
+            columns: list[int] | range = range(self.layout.size)  # clamped: every column
+        else:
             f[self._temps_ix] = m
             columns = self._param_columns
-        else:
-            columns = range(self.layout.size)  # clamped: difference every column
+            if sens is not None:
+                f[self._temps_params_ix] = sens
+                return f
         h = 1e-6
         base = np.array(fx)
         for k in columns:
             bumped = list(x)
             bumped[k] += h
-            fb, _, _ = self._propagate(bumped, dt_s, power_w, ambient_c, boiling)
+            fb, _, _, _ = self._propagate(bumped, dt_s, power_w, ambient_c, boiling)
             f[:, k] = (np.array(fb) - base) / h
         return f
 
@@ -1061,8 +1085,8 @@ class VesselEstimator:
         core, lay = self.core, self.layout
         x = core.x.tolist()
         boiling = self._boiling and x[lay.water] >= self.boiling_point_c - 1e-9
-        fx, m, evaporated_j = self._propagate(x, dt_s, power_w, ambient_c, boiling)
-        f = self._jacobian(x, fx, m, dt_s, power_w, ambient_c, boiling)
+        fx, m, sens, evaporated_j = self._propagate(x, dt_s, power_w, ambient_c, boiling, True)
+        f = self._jacobian(x, fx, m, sens, dt_s, power_w, ambient_c, boiling)
         self.totals.evaporated_kg += evaporated_j / self.latent_heat_j_per_kg
         clamped = m is None
         # C is learnt only while the element heats: with no heating power over the step

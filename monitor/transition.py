@@ -30,6 +30,9 @@ from __future__ import annotations
 
 import math
 
+import numba
+import numpy as np
+
 
 def _expm1_ratio(a: float, b: float, t: float) -> float:
     """Return (e^{a t} - e^{b t}) / (a - b), exact as a → b (then t·e^{b t})."""
@@ -52,6 +55,61 @@ def _two_node_modes(
     return a11, a12, a21, a22, det / mu2, mu2  # μ₁ from the product of the roots
 
 
+Rows = tuple[tuple[float, ...], ...]
+
+
+def _one_node(
+    water_c: float,
+    lagged_c: float | None,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    ua_w_per_k: float,
+    capacity_j_per_k: float,
+    lag_rate_per_s: float | None,
+    want_sensitivities: bool,
+) -> tuple[tuple[float, ...], Rows, Rows | None]:
+    """Return (temperatures, M, S or None); see :func:`one_node_step_and_sensitivities`."""
+    ua, c = ua_w_per_k, capacity_j_per_k
+    mu = -ua / c
+    e_mu = math.exp(mu * dt_s)
+    # T_w(t) = T_w + (T_eq - T_w)(1 - e^{μt}), written with the drive to stay exact as UA → 0
+    drive_w = power_w - ua * (water_c - ambient_c)
+    phi = -math.expm1(mu * dt_s) / (-mu) if mu != 0.0 else dt_s
+    new_water = water_c + drive_w / c * phi
+    # S, columns (ln UA, ln C): T_w(t) = T_eq + e^{μt}(T_w - T_eq) with T_eq = T_a + P/UA,
+    # ∂μ/∂ln UA = μ, ∂μ/∂ln C = -μ, ∂T_eq/∂ln UA = -P/UA, ∂T_eq/∂ln C = 0
+    d_eq_d_ln_ua = -power_w / ua
+    off_eq = water_c - (ambient_c + power_w / ua)
+    t_e_mu = dt_s * e_mu  # ∂e^{μt}/∂μ
+    s_water = ((1.0 - e_mu) * d_eq_d_ln_ua + t_e_mu * mu * off_eq, -t_e_mu * mu * off_eq)
+    if lag_rate_per_s is None or lagged_c is None:
+        return (new_water,), ((e_mu,),), ((s_water,) if want_sensitivities else None)
+    lam = lag_rate_per_s
+    e_lam = math.exp(-lam * dt_s)
+    gain = lam * _expm1_ratio(mu, -lam, dt_s)
+    # y(t) = y·e^{-λt} + ∫₀ᵗ λ e^{-λ(t-s)} T_w(s) ds, with T_w(s) = T_w + (D/C)(1 - e^{μs})/(-μ):
+    #   ∫ λ e^{-λ(t-s)} ds        = 1 - e^{-λt}
+    #   ∫ λ e^{-λ(t-s)} e^{μs} ds = λ (e^{μt} - e^{-λt})/(μ + λ)        ("gain")
+    # so y(t) = y·e^{-λt} + T_w·(1 - e^{-λt}) + (D/C)·forced, forced = (1 - e^{-λt} - gain)/(-μ)
+    forced = (1.0 - e_lam - gain) / (-mu) if mu != 0.0 else dt_s - (1.0 - e_lam) / lam
+    new_lagged = lagged_c * e_lam + water_c * (1.0 - e_lam) + drive_w / c * forced
+    # ∂y/∂T_w includes the drive's own dependence on T_w, ∂D/∂T_w = -UA
+    d_lag_d_water = (1.0 - e_lam) - ua / c * forced
+    temps, m = (new_water, new_lagged), ((e_mu, 0.0), (d_lag_d_water, e_lam))
+    if not want_sensitivities:
+        return temps, m, None
+    # y(t) - T_eq = gain·(T_w - T_eq) + e^{-λt}(y - T_eq) and ∂gain/∂μ = λ·Φ₂(μ, -λ, μ)
+    # (see _two_node_sensitivities), from the step's own exponentials
+    gap = mu + lam
+    if abs(gap) * dt_s < 1e-3:
+        return temps, m, None  # Φ₂ would lose digits: the caller differences this step
+    lam_second = (lam * t_e_mu - gain) / gap
+    eq_part = (1.0 - d_lag_d_water - e_lam) * d_eq_d_ln_ua
+    lag_mu = lam_second * mu * off_eq
+    return temps, m, (s_water, (eq_part + lag_mu, -lag_mu))
+
+
 def one_node_step(
     water_c: float,
     lagged_c: float | None,
@@ -61,31 +119,255 @@ def one_node_step(
     ua_w_per_k: float,
     capacity_j_per_k: float,
     lag_rate_per_s: float | None,
-) -> tuple[tuple[float, ...], tuple[tuple[float, ...], ...]]:
+) -> tuple[tuple[float, ...], Rows]:
     """Return ((T_w, [y]), M) after ``dt_s`` s: temperatures in °C and M = ∂x(t)/∂x(0).
 
     ``lagged_c`` and ``lag_rate_per_s`` are None when the sensor lag is not modelled.
     """
-    mu = -ua_w_per_k / capacity_j_per_k
-    e_mu = math.exp(mu * dt_s)
-    # T_w(t) = T_w + (T_eq - T_w)(1 - e^{μt}), written with the drive to stay exact as UA → 0
-    drive_w = power_w - ua_w_per_k * (water_c - ambient_c)
-    phi = -math.expm1(mu * dt_s) / (-mu) if mu != 0.0 else dt_s
-    new_water = water_c + drive_w / capacity_j_per_k * phi
-    if lag_rate_per_s is None or lagged_c is None:
-        return (new_water,), ((e_mu,),)
-    lam = lag_rate_per_s
-    e_lam = math.exp(-lam * dt_s)
-    gain = lam * _expm1_ratio(mu, -lam, dt_s)
-    # y(t) = y·e^{-λt} + ∫₀ᵗ λ e^{-λ(t-s)} T_w(s) ds, with T_w(s) = T_w + (D/C)(1 - e^{μs})/(-μ):
-    #   ∫ λ e^{-λ(t-s)} ds        = 1 - e^{-λt}
-    #   ∫ λ e^{-λ(t-s)} e^{μs} ds = λ (e^{μt} - e^{-λt})/(μ + λ)        ("gain")
-    # so y(t) = y·e^{-λt} + T_w·(1 - e^{-λt}) + (D/C)·forced, forced = (1 - e^{-λt} - gain)/(-μ)
-    forced = (1.0 - e_lam - gain) / (-mu) if mu != 0.0 else dt_s - (1.0 - e_lam) / lam
-    new_lagged = lagged_c * e_lam + water_c * (1.0 - e_lam) + drive_w / capacity_j_per_k * forced
-    # ∂y/∂T_w includes the drive's own dependence on T_w, ∂D/∂T_w = -UA
-    d_lag_d_water = (1.0 - e_lam) - ua_w_per_k / capacity_j_per_k * forced
-    return (new_water, new_lagged), ((e_mu, 0.0), (d_lag_d_water, e_lam))
+    temps, m, _ = _one_node(
+        water_c,
+        lagged_c,
+        dt_s,
+        power_w,
+        ambient_c,
+        ua_w_per_k,
+        capacity_j_per_k,
+        lag_rate_per_s,
+        False,
+    )
+    return temps, m
+
+
+def one_node_step_and_sensitivities(
+    water_c: float,
+    lagged_c: float | None,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    ua_w_per_k: float,
+    capacity_j_per_k: float,
+    lag_rate_per_s: float | None,
+) -> tuple[tuple[float, ...], Rows, Rows | None]:
+    """Return :func:`one_node_step`'s (temperatures, M) and S = ∂x(t)/∂(ln UA, ln C).
+
+    S has one row per temperature and a column per log-parameter, in the
+    estimator's order. S is None where the closed form would lose digits (the lag
+    rate within 0.1 %/dt of the mode's rate); the caller differences that step.
+    """
+    return _one_node(
+        water_c,
+        lagged_c,
+        dt_s,
+        power_w,
+        ambient_c,
+        ua_w_per_k,
+        capacity_j_per_k,
+        lag_rate_per_s,
+        True,
+    )
+
+
+@numba.njit(cache=True)
+def _ratio(a: float, b: float, t: float) -> float:
+    """Compiled twin of :func:`_expm1_ratio` (the same arithmetic)."""
+    d = a - b
+    x = d * t
+    if abs(x) < 1e-6:
+        return t * math.exp(b * t) * (1.0 + 0.5 * x + x * x / 6.0)
+    return math.exp(b * t) * math.expm1(x) / d
+
+
+@numba.njit(cache=True)
+def _two_node_kernel(
+    water_c: float,
+    element_c: float,
+    lagged_c: float,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    ua: float,
+    c: float,
+    g: float,
+    ce: float,
+    lag_rate_per_s: float,
+    element_lagged_c: float,
+    element_lag_rate_per_s: float,
+    want_sensitivities: bool,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, bool]:
+    """Return (temperatures, M, S, S usable) of a two-node step; absent lags are NaN.
+
+    The state is (T_w, T_e, [y_w], [y_e]); M = ∂x(t)/∂x(0); S = ∂x(t)/∂(ln UA, ln C,
+    ln G), formed only when ``want_sensitivities`` (see :func:`two_node_step` and
+    :func:`two_node_step_and_sensitivities` for the equations).
+    """
+    a11 = -(g + ua) / c
+    a12 = g / c
+    a21 = g / ce
+    a22 = -g / ce
+    half_trace = 0.5 * (a11 + a22)
+    det = ua * g / (c * ce)
+    mu2 = half_trace - math.sqrt(max(half_trace * half_trace - det, 0.0))  # no cancellation
+    mu1 = det / mu2  # from the product of the roots
+    span = mu1 - mu2
+    e1 = math.exp(mu1 * dt_s)
+    e2 = math.exp(mu2 * dt_s)
+    # projectors P1 = (A - μ2 I)/(μ1 - μ2), P2 = (A - μ1 I)/(μ2 - μ1); e^{At} = e1 P1 + e2 P2
+    proj = np.empty((2, 2, 2))
+    proj[0, 0, 0] = (a11 - mu2) / span
+    proj[0, 0, 1] = a12 / span
+    proj[0, 1, 0] = a21 / span
+    proj[0, 1, 1] = (a22 - mu2) / span
+    proj[1, 0, 0] = -(a11 - mu1) / span
+    proj[1, 0, 1] = -a12 / span
+    proj[1, 1, 0] = -a21 / span
+    proj[1, 1, 1] = -(a22 - mu1) / span
+    has_lag = (not math.isnan(lag_rate_per_s), not math.isnan(element_lag_rate_per_s))
+    n = 2 + int(has_lag[0]) + int(has_lag[1])
+    temps = np.empty(n)
+    m = np.zeros((n, n))
+    for r in range(2):
+        for q in range(2):
+            m[r, q] = e1 * proj[0, r, q] + e2 * proj[1, r, q]
+    eq = np.empty(2)
+    eq[0] = ambient_c + power_w / ua
+    eq[1] = eq[0] + power_w / g
+    off = np.empty(2)
+    off[0] = water_c - eq[0]
+    off[1] = element_c - eq[1]
+    for r in range(2):
+        temps[r] = eq[r] + m[r, 0] * off[0] + m[r, 1] * off[1]
+    # each lagged reading follows its node: node(s) - eq = Σ_i e^{μ_i s}·(row of P_i)·(x0 - x_eq)
+    lag_node = np.empty(2, dtype=np.int64)
+    lag_rate = np.empty(2)
+    lag_gain = np.empty((2, 2))  # λ·Φ(μ_i, -λ) per lag
+    k = 2
+    for node in range(2):
+        if not has_lag[node]:
+            continue
+        y0 = lagged_c if node == 0 else element_lagged_c
+        lam = lag_rate_per_s if node == 0 else element_lag_rate_per_s
+        e_lam = math.exp(-lam * dt_s)
+        g1 = lam * _ratio(mu1, -lam, dt_s)
+        g2 = lam * _ratio(mu2, -lam, dt_s)
+        d_w = g1 * proj[0, node, 0] + g2 * proj[1, node, 0]
+        d_e = g1 * proj[0, node, 1] + g2 * proj[1, node, 1]
+        temps[k] = eq[node] + (y0 - eq[node]) * e_lam + d_w * off[0] + d_e * off[1]
+        m[k, 0] = d_w
+        m[k, 1] = d_e
+        m[k, k] = e_lam
+        lag_node[k - 2] = node
+        lag_rate[k - 2] = lam
+        lag_gain[k - 2, 0] = g1
+        lag_gain[k - 2, 1] = g2
+        k += 1
+    s = np.zeros((n, 3))
+    if not want_sensitivities:
+        return temps, m, s, False
+    # S: ∂x(t) = (I - E)·∂z_eq + ∂E·(x(0) - z_eq); ∂E by Duhamel's formula through the modes
+    mus = (mu1, mu2)
+    phi = np.empty((2, 2))
+    phi[0, 0] = dt_s * e1
+    phi[1, 1] = dt_s * e2
+    phi[0, 1] = phi[1, 0] = (e1 - e2) / span
+    second = np.empty((2, 2, 2))  # λ·Φ₂(μ_i, -λ, μ_j) per lag
+    for lag in range(n - 2):
+        lam = lag_rate[lag]
+        for i in range(2):
+            gap = mus[i] + lam
+            if abs(gap) * dt_s < 1e-3:
+                return temps, m, s, False  # Φ₂ would lose digits
+            for j in range(2):
+                second[lag, i, j] = (lam * phi[i, j] - lag_gain[lag, j]) / gap
+    # v_j = P_j·(x(0) - z_eq), the node offsets carried by each mode
+    v = np.empty((2, 2))
+    for j in range(2):
+        for r in range(2):
+            v[j, r] = proj[j, r, 0] * off[0] + proj[j, r, 1] * off[1]
+    # ∂K/∂ln θ = θ·∂K/∂θ (C_e is not a state) and ∂(water_eq, element_eq)/∂ln θ
+    dk = np.zeros((3, 2, 2))
+    dk[0, 0, 0] = -ua / c  # ln UA
+    dk[1, 0, 0] = -a11  # ln C: the water row scales as 1/C
+    dk[1, 0, 1] = -a12
+    dk[2, 0, 0] = -g / c  # ln G
+    dk[2, 0, 1] = a12
+    dk[2, 1, 0] = a21
+    dk[2, 1, 1] = a22
+    d_eq = np.zeros((3, 2))
+    d_eq[0, 0] = d_eq[0, 1] = -power_w / ua
+    d_eq[2, 1] = -power_w / g
+    u = np.empty(2)
+    for par in range(3):
+        # (I - E)·∂z_eq; a lag's equilibrium is its node's
+        for r in range(n):
+            node = r if r < 2 else lag_node[r - 2]
+            s[r, par] = d_eq[par, node] - m[r, 0] * d_eq[par, 0] - m[r, 1] * d_eq[par, 1]
+            if r >= 2:
+                s[r, par] -= m[r, r] * d_eq[par, node]
+        for j in range(2):
+            w0 = dk[par, 0, 0] * v[j, 0] + dk[par, 0, 1] * v[j, 1]
+            w1 = dk[par, 1, 0] * v[j, 0] + dk[par, 1, 1] * v[j, 1]
+            for i in range(2):
+                u[0] = proj[i, 0, 0] * w0 + proj[i, 0, 1] * w1  # P_i ∂K v_j
+                u[1] = proj[i, 1, 0] * w0 + proj[i, 1, 1] * w1
+                s[0, par] += phi[i, j] * u[0]
+                s[1, par] += phi[i, j] * u[1]
+                for lag in range(n - 2):
+                    s[2 + lag, par] += second[lag, i, j] * u[lag_node[lag]]
+    return temps, m, s, True
+
+
+def _nan_if_none(value: float | None) -> float:
+    return math.nan if value is None else float(value)
+
+
+def two_node_step_arrays(
+    water_c: float,
+    element_c: float,
+    lagged_c: float | None,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    ua_w_per_k: float,
+    capacity_j_per_k: float,
+    conductance_w_per_k: float,
+    element_capacity_j_per_k: float,
+    lag_rate_per_s: float | None,
+    element_lagged_c: float | None,
+    element_lag_rate_per_s: float | None,
+    want_sensitivities: bool,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """Return :func:`two_node_step_and_sensitivities`'s (temperatures, M, S) as arrays.
+
+    S is None when not wanted or when it could not be formed without losing digits.
+    A lag is modelled when both its reading and its rate are given.
+    """
+    water_lag = lag_rate_per_s if lagged_c is not None else None
+    element_lag = element_lag_rate_per_s if element_lagged_c is not None else None
+    temps, m, s, usable = _two_node_kernel(
+        float(water_c),
+        float(element_c),
+        _nan_if_none(lagged_c),
+        float(dt_s),
+        float(power_w),
+        float(ambient_c),
+        float(ua_w_per_k),
+        float(capacity_j_per_k),
+        float(conductance_w_per_k),
+        float(element_capacity_j_per_k),
+        _nan_if_none(water_lag),
+        _nan_if_none(element_lagged_c),
+        _nan_if_none(element_lag),
+        want_sensitivities,
+    )
+    return temps, m, (s if usable else None)
+
+
+def _two_node(*args: object) -> tuple[tuple[float, ...], Rows, Rows | None]:
+    """Return :func:`two_node_step_arrays` as tuples of floats."""
+    temps, m, s = two_node_step_arrays(*args)  # type: ignore[arg-type]
+    rows = tuple(tuple(r) for r in m.tolist())
+    sens = tuple(tuple(r) for r in s.tolist()) if s is not None else None
+    return tuple(temps.tolist()), rows, sens
 
 
 def two_node_step(
@@ -102,55 +384,69 @@ def two_node_step(
     lag_rate_per_s: float | None,
     element_lagged_c: float | None = None,
     element_lag_rate_per_s: float | None = None,
-) -> tuple[tuple[float, ...], tuple[tuple[float, ...], ...]]:
+) -> tuple[tuple[float, ...], Rows]:
     """Return ((T_w, T_e, [y_w], [y_e]), M) after ``dt_s`` s: °C and M = ∂x(t)/∂x(0).
 
     ``y_w`` and ``y_e`` are the water and element thermocouples' lagged readings,
     present when their lag rates are given. Requires UA > 0 and G > 0.
     """
-    ua, g = ua_w_per_k, conductance_w_per_k
-    a11, a12, a21, a22, mu1, mu2 = _two_node_modes(
-        ua, capacity_j_per_k, g, element_capacity_j_per_k
+    temps, m, _ = _two_node(
+        water_c,
+        element_c,
+        lagged_c,
+        dt_s,
+        power_w,
+        ambient_c,
+        ua_w_per_k,
+        capacity_j_per_k,
+        conductance_w_per_k,
+        element_capacity_j_per_k,
+        lag_rate_per_s,
+        element_lagged_c,
+        element_lag_rate_per_s,
+        False,
     )
-    span = mu1 - mu2
-    e1, e2 = math.exp(mu1 * dt_s), math.exp(mu2 * dt_s)
-    # projectors P1 = (A - μ2 I)/(μ1 - μ2), P2 = (A - μ1 I)/(μ2 - μ1); e^{At} = e1 P1 + e2 P2
-    p1 = ((a11 - mu2) / span, a12 / span, a21 / span, (a22 - mu2) / span)
-    p2 = (-(a11 - mu1) / span, -a12 / span, -a21 / span, -(a22 - mu1) / span)
-    m11 = e1 * p1[0] + e2 * p2[0]
-    m12 = e1 * p1[1] + e2 * p2[1]
-    m21 = e1 * p1[2] + e2 * p2[2]
-    m22 = e1 * p1[3] + e2 * p2[3]
-    water_eq = ambient_c + power_w / ua
-    element_eq = water_eq + power_w / g
-    dw, de = water_c - water_eq, element_c - element_eq
-    temps = [water_eq + m11 * dw + m12 * de, element_eq + m21 * dw + m22 * de]
-    rows = [[m11, m12], [m21, m22]]
-    # each lagged reading follows its node: node(s) - eq = Σ_i e^{μ_i s}·(row of P_i)·(x0 - x_eq)
-    has_water_lag = lag_rate_per_s is not None and lagged_c is not None
-    has_element_lag = element_lag_rate_per_s is not None and element_lagged_c is not None
-    if not (has_water_lag or has_element_lag):
-        return tuple(temps), ((m11, m12), (m21, m22))
-    width = 2 + has_water_lag + has_element_lag
-    rows = [[m11, m12] + [0.0] * (width - 2), [m21, m22] + [0.0] * (width - 2)]
-    k = 2
-    terms = []
-    if has_water_lag:
-        terms.append((lagged_c, lag_rate_per_s, water_eq, p1[0], p1[1], p2[0], p2[1]))
-    if has_element_lag:
-        terms.append((element_lagged_c, element_lag_rate_per_s, element_eq, *p1[2:], *p2[2:]))
-    for y0, lam, eq, r1w, r1e, r2w, r2e in terms:
-        e_lam = math.exp(-lam * dt_s)
-        g1 = lam * _expm1_ratio(mu1, -lam, dt_s)
-        g2 = lam * _expm1_ratio(mu2, -lam, dt_s)
-        d_w = g1 * r1w + g2 * r2w
-        d_e = g1 * r1e + g2 * r2e
-        temps.append(eq + (y0 - eq) * e_lam + d_w * dw + d_e * de)
-        row = [d_w, d_e] + [0.0] * (width - 2)
-        row[k] = e_lam
-        rows.append(row)
-        k += 1
-    return tuple(temps), tuple(tuple(r) for r in rows)
+    return temps, m
+
+
+def two_node_step_and_sensitivities(
+    water_c: float,
+    element_c: float,
+    lagged_c: float | None,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    ua_w_per_k: float,
+    capacity_j_per_k: float,
+    conductance_w_per_k: float,
+    element_capacity_j_per_k: float,
+    lag_rate_per_s: float | None,
+    element_lagged_c: float | None = None,
+    element_lag_rate_per_s: float | None = None,
+) -> tuple[tuple[float, ...], Rows, Rows | None]:
+    """Return :func:`two_node_step`'s (temperatures, M) and S = ∂x(t)/∂(ln UA, ln C, ln G).
+
+    S has one row per temperature (as in M) and a column per log-parameter, in
+    the estimator's order; it replaces three finite-difference propagations. S is
+    None where the closed form would lose digits (a lag's rate within 0.1 %/dt of
+    a mode's); the caller differences that step instead.
+    """
+    return _two_node(
+        water_c,
+        element_c,
+        lagged_c,
+        dt_s,
+        power_w,
+        ambient_c,
+        ua_w_per_k,
+        capacity_j_per_k,
+        conductance_w_per_k,
+        element_capacity_j_per_k,
+        lag_rate_per_s,
+        element_lagged_c,
+        element_lag_rate_per_s,
+        True,
+    )
 
 
 def clamped_step(

@@ -269,3 +269,18 @@ def test_heating_power_wander_is_read_from_block_means_not_reading_noise():
                     None, heating=True)  # fmt: skip
         _, rel_sd = fit.heating_power_w()
         assert low < rel_sd < high
+
+
+def test_compiled_recursion_is_lfilter_bit_for_bit():
+    # the batch fit's modal recursion replaced scipy.signal.lfilter (a second to import);
+    # the same arithmetic in the same order, so the same bits
+    from scipy.signal import lfilter
+
+    from monitor import kernels
+
+    rng = np.random.default_rng(3)
+    drive = rng.normal(size=5000) * 40.0
+    for decay in (0.0, 0.5, 0.9993, 1.0):
+        want = lfilter([1.0], [1.0, -decay], np.concatenate(([12.5], drive)))
+        got = kernels.first_order_recursion(decay, 12.5, drive)
+        assert np.array_equal(got, want)

@@ -25,11 +25,11 @@ from monitor.estimator import (
 )
 
 
-def _run(scenario, seed, element=True, tamper=None, core=FastCore):
+def _run(scenario, seed, element=True, tamper=None, core=FastCore, kind=VesselEstimator):
     """Replay a simulated run; return (estimator, [(t, estimate, truth)], rig)."""
     rig = SimulatedRig(scenario, seed=seed)
     cfg = VesselConfig.from_metadata(scenario.vessel, scenario_metadata(scenario, seed), element)
-    est = VesselEstimator(cfg, core=core)
+    est = kind(cfg, core=core)
     out = []
     for batch in rig.run():
         readings = {s.channel: s.value for s in batch}
@@ -314,6 +314,38 @@ def test_fast_core_matches_filterpy_step_by_step():
     assert 0.0 <= _Lockstep.worst < 1e-9
     assert downweighted > 0  # some updates did go through with an inflated r
     assert _Lockstep.consider > 0  # and some consider updates (idle, boil) were checked
+
+
+class _DifferencedJacobian(VesselEstimator):
+    """An estimator that also takes every Jacobian by differences and keeps the worst gap."""
+
+    worst = 0.0
+    closed_form = 0
+
+    def _jacobian(self, x, fx, m, sens, dt_s, power_w, ambient_c, boiling):
+        got = super()._jacobian(x, fx, m, sens, dt_s, power_w, ambient_c, boiling)
+        if sens is not None:
+            _DifferencedJacobian.closed_form += 1
+            ref = super()._jacobian(x, fx, m, None, dt_s, power_w, ambient_c, boiling)
+            cols = self._param_columns
+            gap = np.abs(got[:, cols] - ref[:, cols]) / np.maximum(np.abs(ref[:, cols]), 1e-3)
+            _DifferencedJacobian.worst = max(_DifferencedJacobian.worst, float(gap.max()))
+        return got
+
+
+@pytest.mark.parametrize("element", [True, False], ids=["two-node", "one-node"])
+def test_closed_form_parameter_columns_match_differences_over_a_run(element):
+    # the Jacobian's parameter columns come from transition's sensitivities; over a
+    # heat-up with lagged sensors they must agree with forward differences (h = 1e-6 on
+    # temperatures near equilibria of hundreds of °C: the differences' own error is
+    # about 1e-3 of an entry at worst, a wrong term is of order 1)
+    _DifferencedJacobian.worst, _DifferencedJacobian.closed_form = 0.0, 0
+    est, _, _ = _run(
+        kettle_scenario(duration_s=240.0), seed=15, element=element, kind=_DifferencedJacobian
+    )
+    assert est.layout.lagged is not None  # the water sensor's lag is in the model
+    assert _DifferencedJacobian.closed_form > 200
+    assert _DifferencedJacobian.worst < 5e-3
 
 
 def test_same_log_same_figures_bit_for_bit():

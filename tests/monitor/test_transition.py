@@ -111,3 +111,101 @@ def test_fast_time_to_target_never():
     assert transition.two_node_time_to_target(15.0, 15.0, 99.97, 50.0, AMB_C, UA, C, G, CE) is None
     assert transition.one_node_time_to_target(15.0, 99.97, 50.0, AMB_C, UA, C) is None
     assert transition.one_node_time_to_target(15.0, 99.97, 0.0, AMB_C, UA, C) is None
+
+
+def _two_node_system(ua, c, g, lw, le):
+    """Return (A, b) of x = [T_w, T_e, y_w, y_e] for the test's vessel (x' = A x + b)."""
+    a = np.array(
+        [
+            [-(g + ua) / c, g / c, 0.0, 0.0],
+            [g / CE, -g / CE, 0.0, 0.0],
+            [lw, 0.0, -lw, 0.0],
+            [0.0, le, 0.0, -le],
+        ]
+    )
+    return a, np.array([ua * AMB_C / c, P_W / CE, 0.0, 0.0])
+
+
+def _van_loan_sensitivities(x0, dt_s, ua, c, g, lw, le):
+    """Return ∂x(t)/∂(ln UA, ln C, ln G) by Van Loan's block exponential, independently.
+
+    With Ã = [[A, b], [0, 0]] the step is expm(Ã t); the derivative of expm(Ã t) by θ
+    is the top-right block of expm([[Ã, ∂Ã], [0, Ã]]·t) (Van Loan 1978, from memory).
+    ∂Ã/∂ln θ is taken by central differences of the (linear-in-1/θ) matrix entries.
+    """
+    columns = []
+    for k in range(3):
+        theta = np.log([ua, c, g])
+
+        def aug(th):
+            a, b = _two_node_system(*np.exp(th), lw, le)
+            out = np.zeros((5, 5))
+            out[:4, :4], out[:4, 4] = a, b
+            return out
+
+        h = 1e-6
+        up, down = theta.copy(), theta.copy()
+        up[k] += h
+        down[k] -= h
+        d_aug = (aug(up) - aug(down)) / (2 * h)
+        big = np.zeros((10, 10))
+        big[:5, :5] = big[5:, 5:] = aug(theta) * dt_s
+        big[:5, 5:] = d_aug * dt_s
+        d_step = expm(big)[:5, 5:]
+        columns.append(d_step[:4, :4] @ x0 + d_step[:4, 4])
+    return np.array(columns).T
+
+
+@pytest.mark.parametrize("dt_s", [0.5, 1.0, 10.0, 120.0])
+@pytest.mark.parametrize("vessel", [(UA, C, G), (4.0, 180e3, 25.0), (0.3, 2500.0, 8.0)])
+def test_parameter_sensitivities_match_van_loan(dt_s, vessel):
+    ua, c, g = vessel
+    lw, le = 1 / 4.0, 1 / 1.5
+    x0 = np.array([30.0, 60.0, 29.0, 55.0])
+    _, _, s = transition.two_node_step_and_sensitivities(
+        30.0, 60.0, 29.0, dt_s, P_W, AMB_C, ua, c, g, CE, lw, 55.0, le
+    )
+    want = _van_loan_sensitivities(x0, dt_s, ua, c, g, lw, le)
+    np.testing.assert_allclose(np.array(s), want, rtol=1e-6, atol=1e-9)
+
+
+@pytest.mark.parametrize("lagged", [False, True])
+def test_sensitivities_without_one_or_both_lags_and_for_one_node(lagged):
+    # the two-node rows without the element lag are the full system's rows [T_w, T_e, y_w]
+    lw = 0.25 if lagged else None
+    _, _, s = transition.two_node_step_and_sensitivities(
+        30.0, 60.0, 29.0 if lagged else None, 2.0, P_W, AMB_C, UA, C, G, CE, lw
+    )
+    full = _van_loan_sensitivities(np.array([30.0, 60.0, 29.0, 55.0]), 2.0, UA, C, G, 0.25, 0.5)
+    np.testing.assert_allclose(np.array(s), full[: 3 if lagged else 2], rtol=1e-6, atol=1e-9)
+    # one node: central differences of the closed form (C = 6 kJ/K, no element)
+    _, _, s1 = transition.one_node_step_and_sensitivities(
+        30.0, 29.0 if lagged else None, 2.0, P_W, AMB_C, UA, 6000.0, lw
+    )
+    for k, (ua, c) in enumerate([(UA * np.exp(1e-5), 6000.0), (UA, 6000.0 * np.exp(1e-5))]):
+        up, _ = transition.one_node_step(30.0, 29.0 if lagged else None, 2.0, P_W, AMB_C,
+                                         ua, c, lw)  # fmt: skip
+        down, _ = transition.one_node_step(
+            30.0, 29.0 if lagged else None, 2.0, P_W, AMB_C,
+            UA * np.exp(-1e-5) if k == 0 else UA, 6000.0 * np.exp(-1e-5) if k else 6000.0, lw,
+        )  # fmt: skip
+        np.testing.assert_allclose(
+            [row[k] for row in s1], (np.array(up) - np.array(down)) / 2e-5, rtol=1e-5, atol=1e-10
+        )
+
+
+def test_sensitivities_step_aside_where_a_lag_matches_a_mode():
+    # the closed form divides by (μ + λ): at a coincidence it says so instead of guessing
+    a11, a22 = -(G + UA) / C, -G / CE
+    half = 0.5 * (a11 + a22)
+    fast = half - np.sqrt(half * half - UA * G / (C * CE))
+    temps, m, s = transition.two_node_step_and_sensitivities(
+        30.0, 60.0, 29.0, 1.0, P_W, AMB_C, UA, C, G, CE, -fast
+    )
+    assert s is None
+    assert len(temps) == 3  # the step itself is still given
+    assert len(m) == 3
+    _, _, s1 = transition.one_node_step_and_sensitivities(
+        30.0, 29.0, 1.0, P_W, AMB_C, UA, 6000.0, UA / 6000.0
+    )
+    assert s1 is None
