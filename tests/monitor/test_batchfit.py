@@ -55,6 +55,32 @@ def test_modal_solution_matches_the_matrix_exponential_step_by_step():
         np.testing.assert_allclose(states[k + 1], x, rtol=0, atol=1e-8)
 
 
+def test_a_second_start_from_the_priors_leaves_a_wrong_valley():
+    # warm-started in a valley of long lags and a light element, which explains a
+    # short window's switch-on nearly as well: the cold start beside it wins on cost
+    rng = np.random.default_rng(8)
+    n = 60
+    truth = _theta(ce=330.0, tau_w=1.4, g=25.0, c=2600.0, tau_e=3.0)
+    power = _switch_on(n, 20, 2500.0)
+    ambient = np.full(n, 20.0)
+    clean = bf.FitData(1.0, power, ambient, np.zeros(n + 1), np.zeros(n + 1))
+    states, _ = bf.simulate(truth, clean)
+    data = bf.FitData(
+        1.0, power, ambient, states[:, 2] + rng.normal(0.0, 0.08, n + 1),
+        states[:, 3] + rng.normal(0.0, 0.5, n + 1),
+    )  # fmt: skip
+    priors = _priors()
+    wrong = _theta(ce=40.0, tau_w=8.0, g=21.0, c=3300.0, tau_e=19.0)
+    stuck = bf.fit_heat_up(data, priors, wrong, (0.05, 0.3))
+    fit = bf.HeatUpFit(priors, has_element=True)
+    fit.fit = stuck
+    cold = fit._cold_fit(data, (0.05, 0.3))
+    assert cold.cost < stuck.cost  # the data say so; the warm start alone stayed put
+    chosen = bf.HeatUpFit._better_of(stuck, cold)
+    assert chosen is cold
+    assert abs(chosen.end_state[1] - states[-1, 1]) < abs(stuck.end_state[1] - states[-1, 1])
+
+
 def test_a_lag_equal_to_a_thermal_time_constant_does_not_break_the_solution():
     theta = _theta()
     m, _ = bf._matrices(theta, True)
