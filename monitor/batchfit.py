@@ -493,6 +493,7 @@ class HeatUpFit:
     first_after_s: float = 6.0
     early_fits: int = 3  # the first few fits come every ``early_every_s``
     early_every_s: float = 4.0
+    cold_fits: int = 8  # fits that also start afresh from the priors (:meth:`_cold_fit`)
     heating_since_s: float | None = None
     last_fit_s: float | None = None
     fit: FitResult | None = None
@@ -607,6 +608,9 @@ class HeatUpFit:
         the rest of the heat-up (bench_worlds, 2026-12-05: five kettles whose
         countdown ran 9-14 % short at mid heat-up). A second start from the priors,
         weighed on the same readings, weights and noise, lets the data choose again.
+        It is made at the first ``cold_fits`` fits only (about the first minute of
+        heating), where a valley is chosen: later the data have settled it, and a
+        second start at every fit doubled the fits' cost.
         """
         theta0 = self.priors.mean.copy()
         first = data.water_c[np.isfinite(data.water_c)]
@@ -635,7 +639,7 @@ class HeatUpFit:
             if not inputs_ok:
                 raise ValueError("a non-finite power or room temperature in the window")
             result = fit_heat_up(data, self.priors, theta0, sd_c, self.fit)
-            if self.fit is not None:
+            if self.fit is not None and self.fits <= self.cold_fits:
                 result = self._better_of(result, self._cold_fit(data, sd_c))
         except (np.linalg.LinAlgError, ValueError, FloatingPointError):
             # inputs the model cannot take: keep the last fit, so one bad window never
