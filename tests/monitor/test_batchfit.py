@@ -39,6 +39,29 @@ def _switch_on(n: int = 240, on_at: int = 30, power_w: float = 2000.0) -> np.nda
     return np.r_[np.zeros(on_at), np.full(n - on_at, power_w)]
 
 
+def _noisy_window(
+    truth: np.ndarray,
+    n: int,
+    on_at: int,
+    seed: int,
+    power_w: float = 2000.0,
+    has_element: bool = True,
+) -> tuple[bf.FitData, np.ndarray]:
+    """Return (a window of readings of model θ with noise, the clean states) at 1 s.
+
+    Water readings carry 0.08 K of noise and element readings 0.5 K (drawn in that
+    order from ``default_rng(seed)``); the room is at 20 °C.
+    """
+    rng = np.random.default_rng(seed)
+    power = _switch_on(n, on_at, power_w)
+    ambient = np.full(n, 20.0)
+    clean = bf.FitData(1.0, power, ambient, np.zeros(n + 1), np.zeros(n + 1))
+    states, _ = bf.simulate(truth, clean)
+    water = states[:, 2] + rng.normal(0.0, 0.08, n + 1)
+    element = states[:, 3] + rng.normal(0.0, 0.5, n + 1) if has_element else None
+    return bf.FitData(1.0, power, ambient, water, element), states
+
+
 def test_modal_solution_matches_the_matrix_exponential_step_by_step():
     theta = _theta()
     power = _switch_on(60, 10)
@@ -58,17 +81,8 @@ def test_modal_solution_matches_the_matrix_exponential_step_by_step():
 def test_a_second_start_from_the_priors_leaves_a_wrong_valley():
     # warm-started in a valley of long lags and a light element, which explains a
     # short window's switch-on nearly as well: the cold start beside it wins on cost
-    rng = np.random.default_rng(8)
-    n = 60
     truth = _theta(ce=330.0, tau_w=1.4, g=25.0, c=2600.0, tau_e=3.0)
-    power = _switch_on(n, 20, 2500.0)
-    ambient = np.full(n, 20.0)
-    clean = bf.FitData(1.0, power, ambient, np.zeros(n + 1), np.zeros(n + 1))
-    states, _ = bf.simulate(truth, clean)
-    data = bf.FitData(
-        1.0, power, ambient, states[:, 2] + rng.normal(0.0, 0.08, n + 1),
-        states[:, 3] + rng.normal(0.0, 0.5, n + 1),
-    )  # fmt: skip
+    data, states = _noisy_window(truth, 60, 20, seed=8, power_w=2500.0)
     priors = _priors()
     wrong = _theta(ce=40.0, tau_w=8.0, g=21.0, c=3300.0, tau_e=19.0)
     stuck = bf.fit_heat_up(data, priors, wrong, (0.05, 0.3))
@@ -97,17 +111,9 @@ def test_a_lag_equal_to_a_thermal_time_constant_does_not_break_the_solution():
 
 @pytest.mark.parametrize("has_element", [True, False])
 def test_fit_agrees_with_scipy_least_squares_on_the_same_residuals(has_element):
-    rng = np.random.default_rng(11)
     truth = _theta(tau_w=4.0, ce=420.0)
-    n = 200
-    power = _switch_on(n, 30)
-    ambient = np.full(n, 20.0)
-    clean = bf.FitData(1.0, power, ambient, np.zeros(n + 1), np.zeros(n + 1))
-    states, _ = bf.simulate(truth, clean)
-    water = states[:, 2] + rng.normal(0.0, 0.08, n + 1)
-    element = states[:, 3] + rng.normal(0.0, 0.5, n + 1) if has_element else None
+    data, _ = _noisy_window(truth, 200, 30, seed=11, has_element=has_element)
     p = 8 if has_element else 6
-    data = bf.FitData(1.0, power, ambient, water, element)
     priors = _priors(p)
     ours = bf.fit_heat_up(data, priors, priors.mean.copy(), (0.05, 0.3))
     assert ours.converged
@@ -126,17 +132,9 @@ def test_fit_agrees_with_scipy_least_squares_on_the_same_residuals(has_element):
 def test_fit_recovers_a_heavy_plate_and_a_slow_sensor_from_the_switch_on():
     # a plate three times heavier than the default guess and a 4 s water lag: the
     # switch-on transient must be put down to C_e and τ, not to C and G
-    rng = np.random.default_rng(3)
     truth = _theta(ce=3.0 * 130.0, tau_w=4.0, g=45.0)
-    n = 120  # two minutes of a heat-up, the countdown's critical part
-    power = _switch_on(n, 20)
-    ambient = np.full(n, 20.0)
-    clean = bf.FitData(1.0, power, ambient, np.zeros(n + 1), np.zeros(n + 1))
-    states, _ = bf.simulate(truth, clean)
-    data = bf.FitData(
-        1.0, power, ambient, states[:, 2] + rng.normal(0.0, 0.08, n + 1),
-        states[:, 3] + rng.normal(0.0, 0.5, n + 1),
-    )  # fmt: skip
+    # two minutes of a heat-up, the countdown's critical part
+    data, _ = _noisy_window(truth, 120, 20, seed=3)
     result = bf.fit_heat_up(data, _priors(), _priors().mean.copy(), (0.05, 0.3))
     c, g = result.value(bf.LN_C), result.value(bf.LN_G)
     # tolerances ours: C within 3 %, G within 10 %
