@@ -166,6 +166,8 @@ def test_parameter_sensitivities_match_van_loan(dt_s, vessel):
         30.0, 60.0, 29.0, dt_s, P_W, AMB_C, ua, c, g, CE, lw, 55.0, le
     )
     want = _van_loan_sensitivities(x0, dt_s, ua, c, g, lw, le)
+    # tolerances ours: the reference's central difference of the generator (h = 1e-6)
+    # is good to about 1e-8 relative; a wrong term would be off by order 1
     np.testing.assert_allclose(np.array(s), want, rtol=1e-6, atol=1e-9)
 
 
@@ -178,7 +180,8 @@ def test_sensitivities_without_one_or_both_lags_and_for_one_node(lagged):
     )
     full = _van_loan_sensitivities(np.array([30.0, 60.0, 29.0, 55.0]), 2.0, UA, C, G, 0.25, 0.5)
     np.testing.assert_allclose(np.array(s), full[: 3 if lagged else 2], rtol=1e-6, atol=1e-9)
-    # one node: central differences of the closed form (C = 6 kJ/K, no element)
+    # one node: central differences of the closed form (C = 6 kJ/K, no element); the
+    # tolerances here are ours, as above (rtol 1e-5 for a difference step of 1e-5)
     _, _, s1 = transition.one_node_step_and_sensitivities(
         30.0, 29.0 if lagged else None, 2.0, P_W, AMB_C, UA, 6000.0, lw
     )
