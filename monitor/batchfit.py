@@ -534,6 +534,11 @@ class HeatUpFit:
                 for buf in (self._t, self._p, self._a, self._w, self._e):
                     buf.pop(0)
 
+    def shift_element(self, by_c: float) -> None:
+        """Move every element reading already in the window by ``by_c`` (K): the
+        estimator zeroes the element thermocouple at switch-on, after the pre-roll."""
+        self._e = [v + by_c for v in self._e]
+
     def due(self, t_s: float) -> bool:
         """Return True when a fit should be made at t_s (never without a new reading)."""
         if self.heating_since_s is None or self._new_readings == 0:

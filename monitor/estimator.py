@@ -193,6 +193,25 @@ class EstimatorSettings:
     noise_min_count: int = 30  # differences before the estimate is used
     noise_settle_s: float = 120.0  # idle this long after a switch before counting
     noise_max_gap_s: float = 60.0  # a longer gap between readings breaks the chain
+    # the element's path to the room, learnt while cooling (_ElementPath): readings
+    # from this long after the switch-off (a few of the element's C_e/G and the
+    # sensors' lags), at least this many, before UA counts the path
+    element_path_settle_s: float = 120.0
+    element_path_min_readings: int = 30
+    element_rest_min_readings: int = 5
+    element_path_min_span_k: float = 10.0  # cooling's excess over the rest's, at least
+    # the element thermocouple's zero from the rest before the first switch-on
+    # (_zeroed): a rest this close to the room, a mismatch up to this (type K's
+    # class 1 tolerance is ±1.5 K, from memory)
+    element_zero_max_excess_k: float = 20.0
+    element_zero_max_c: float = 1.5
+    # 1σ of the element thermocouple's reading against the water's when no rest
+    # reading measured it (two type K junctions: judgement, from memory), and the
+    # floor on a measured one (the water and element are never quite equal at rest)
+    element_mismatch_sd_c: float = 0.5
+    element_rest_floor_sd_c: float = 0.03
+    # 1σ of what the correction leaves out, as a share of it (calibrated below)
+    element_path_model_rel_sd: float = 0.2
 
 
 @dataclass(frozen=True)
@@ -474,6 +493,134 @@ class _NoiseTracker:
         self.previous.clear()
 
 
+#: Water within this of the room (K) is at rest, not cooling (common practice, no source).
+REST_EXCESS_K = 3.0
+
+
+@dataclass
+class _ElementPath:
+    """The element's own path to the room, learnt from the readings while cooling.
+
+    The filter's two-node model joins the element to the water only, so its UA is
+    the water's path to the room alone. A plate or a sheathed element also loses
+    heat straight to the room: off and settled, it sits a little below the water and
+    draws G·(T_w − T_e) from it, heat the water loses all the same. What a user means
+    by the vessel's UA counts that path too (bench_worlds, 2026-12-05: the kettles
+    with an element thermocouple read UA 12 % low after 10 min of cooling without
+    it, p90 19 %).
+
+    The share ρ = (T_w − T_e)/(T_w − T_a) is close to constant while a vessel cools
+    (both differences fall together), so it is averaged over the cooling from
+    ``element_path_settle_s`` after the switch-off, from the readings (the filter's
+    element state is pulled towards the water by the model that lacks the path):
+      ΔT = (R_w − R_e) + δ + (τ_w − τ_e)·r
+    with δ the element thermocouple's reading above the water's at rest (idle, near
+    room temperature, both in the same water), τ the sensor lags and r the water's
+    mean rate over the window (a lagged sensor reads T − τ·dT/dt on a slope). UA
+    reported = UA + G·ρ.
+    """
+
+    rest: _GapMoments = field(default_factory=lambda: _GapMoments())
+    cool: _GapMoments = field(default_factory=lambda: _GapMoments())
+    first: tuple[float, float] | None = None  # (t_s, water reading) at the window's start
+    last: tuple[float, float] | None = None
+
+    def at_rest(self, water_c: float, element_c: float, ambient_c: float) -> None:
+        """Take one settled, unheated instant's readings (°C) before heating or near the room."""
+        self.rest.add(water_c - element_c, water_c - ambient_c)
+
+    def cooling(self, t_s: float, water_c: float, element_c: float, ambient_c: float) -> None:
+        """Take one settled cooling instant's readings (°C)."""
+        self.cool.add(water_c - element_c, water_c - ambient_c)
+        if self.first is None:
+            self.first = (t_s, water_c)
+        self.last = (t_s, water_c)
+
+    def rest_zero_c(self, s: EstimatorSettings) -> float | None:
+        """Return the element's mean reading above the water's at rest (K), or None.
+
+        None with fewer than ``element_path_min_readings`` rest readings, a rest more
+        than ``element_zero_max_excess_k`` from the room (the path's own share would
+        be in it) or a mismatch over ``element_zero_max_c``.
+        """
+        rest = self.rest
+        if rest.n < s.element_path_min_readings:
+            return None
+        if abs(rest.mean_excess_k) > s.element_zero_max_excess_k:
+            return None
+        zero = -rest.mean_gap_c
+        return zero if abs(zero) <= s.element_zero_max_c else None
+
+    def restart(self) -> None:
+        """Forget the cooling window (heating began again); the rest is kept."""
+        self.cool = _GapMoments()
+        self.first = self.last = None
+
+    def share(
+        self, lag_diff_s: float, lag_diff_sd_s: float, s: EstimatorSettings
+    ) -> Estimated | None:
+        """Return ρ and its 1σ, or None before ``element_path_min_readings`` readings.
+
+        ``lag_diff_s`` is τ_w − τ_e (s) with its 1σ. The 1σ adds: the rest's mean gap
+        (or ``element_mismatch_sd_c`` with fewer than ``element_rest_min_readings``
+        rest readings), the cooling's mean gap, the lag difference times the rate, and
+        ``element_path_model_rel_sd`` of ρ for what the correction leaves out (the
+        plate's own heat, which lags as the whole vessel cools).
+        """
+        cool, rest = self.cool, self.rest
+        if cool.n < s.element_path_min_readings:
+            return None
+        pair_var = s.water_noise_sd_c**2 + s.element_noise_sd_c**2
+        if rest.n >= s.element_rest_min_readings:
+            # the gap at rest holds the thermocouples' mismatch (and the small share
+            # of the path at the rest's own excess): ρ is the slope between the two
+            rest_gap, rest_excess = rest.mean_gap_c, rest.mean_excess_k
+            rest_var = rest.mean_var_c2(pair_var) + s.element_rest_floor_sd_c**2
+        else:
+            rest_gap, rest_var, rest_excess = 0.0, s.element_mismatch_sd_c**2, 0.0
+        span = cool.mean_excess_k - rest_excess
+        if not span > s.element_path_min_span_k:
+            return None
+        (t0, w0), (t1, w1) = self.first, self.last
+        rate = (w1 - w0) / (t1 - t0) if t1 > t0 else 0.0
+        rho = (cool.mean_gap_c + lag_diff_s * rate - rest_gap) / span
+        var_rise = rest_var + cool.mean_var_c2(pair_var) + (lag_diff_sd_s * rate) ** 2
+        sd = math.sqrt(var_rise / (span * span) + (s.element_path_model_rel_sd * rho) ** 2)
+        return Estimated(rho, sd)
+
+
+@dataclass
+class _GapMoments:
+    """Running sums of the water-minus-element reading gap (K) and the water's excess
+    on the room (K) over a group of instants."""
+
+    n: int = 0
+    gap_sum_c: float = 0.0
+    gap_sq_c2: float = 0.0
+    excess_sum_k: float = 0.0
+
+    def add(self, gap_c: float, excess_k: float) -> None:
+        self.n += 1
+        self.gap_sum_c += gap_c
+        self.gap_sq_c2 += gap_c * gap_c
+        self.excess_sum_k += excess_k
+
+    @property
+    def mean_gap_c(self) -> float:
+        return self.gap_sum_c / self.n
+
+    @property
+    def mean_excess_k(self) -> float:
+        return self.excess_sum_k / self.n
+
+    def mean_var_c2(self, floor_c2: float) -> float:
+        """Return the variance of the mean gap: the gaps' variance (at least
+        ``floor_c2``, the two readings' noise) over half the instants (the lags make
+        neighbours a little alike)."""
+        mean = self.mean_gap_c
+        return max(self.gap_sq_c2 / self.n - mean * mean, floor_c2) / (0.5 * self.n)
+
+
 @dataclass
 class _SensorWatch:
     """Per-sensor health bookkeeping (owned by one estimator)."""
@@ -570,6 +717,8 @@ class VesselEstimator:
         self._fit_state: tuple[float, float] | None = None  # (T_e, T_w) of the fit, now
         self._fit_eta_rel_sd = 0.0  # the fit's time-to-target spread over the time itself
         self._fit_anchored_s: float | None = None
+        self._element_path = _ElementPath()
+        self._element_zero_c: float | None = None  # set at the first switch-on (_zeroed)
 
     # -- set-up -------------------------------------------------------------------------
 
@@ -850,10 +999,81 @@ class VesselEstimator:
                     "No room temperature reading: assuming 20 °C for the losses.",
                 )
             )
+        raw = readings
+        if self.layout.element is not None:
+            readings = self._zeroed(readings, power_w)
         self._update(t_s, readings, flags)
         if self.heat_up_fit is not None and not self.totals.reached_target:
             self._fit_step(t_s, power_w, ambient_c, readings)
+        if self.layout.element is not None:
+            self._watch_element_path(t_s, power_w, raw)
         return self._estimate(t_s, power_w, ambient_c, flags)
+
+    def _zeroed(self, readings: Mapping[str, float], power_w: float) -> Mapping[str, float]:
+        """Return the readings with the element thermocouple zeroed against the water's.
+
+        At the first switch-on, the element's mean reading above the water's at rest
+        (:class:`_ElementPath`, near room temperature) becomes its zero, if there were
+        ``element_path_min_readings`` of them and it is within ``element_zero_max_c``
+        (a larger one is a fault for a person, not a zero). Two thermocouples that
+        disagree by 0.4 K are within type K's tolerance, yet the filter, whose element
+        follows the water when off, read such a mismatch as heat and put UA 25 % high
+        in cooling (tests/monitor/test_estimator.py, _plate_kettle).
+        """
+        if self._element_zero_c is None and self._heating(power_w):
+            path, s = self._element_path, self.settings
+            zero = path.rest_zero_c(s)
+            self._element_zero_c = zero if zero is not None else 0.0
+            if zero is not None and self.heat_up_fit is not None:
+                self.heat_up_fit.shift_element(-zero)  # the pre-roll read raw
+        value = readings.get("element")
+        if not self._element_zero_c or value is None:
+            return readings
+        zeroed = dict(readings)
+        zeroed["element"] = value - self._element_zero_c
+        return zeroed
+
+    def _watch_element_path(
+        self, t_s: float, power_w: float, readings: Mapping[str, float]
+    ) -> None:
+        """Feed :class:`_ElementPath` with the instant's readings (see there)."""
+        path = self._element_path
+        if self._heating(power_w):
+            path.restart()
+            return
+        water_c, element_c = readings.get("water"), readings.get("element")
+        ambient_c = readings.get("ambient")
+        if water_c is None or element_c is None or ambient_c is None or self._boiling:
+            return
+        if not (self._plausible(water_c) and self._plausible(element_c)):
+            return
+        since_s = t_s - self._last_switch_s if self._last_switch_s is not None else math.inf
+        s = self.settings
+        # at rest: before the first switch-on (however far the fill is from the
+        # room) or back near room temperature; cooling: off and settled after heating
+        never_heated = self.totals.heating_started_s is None
+        if never_heated or water_c - ambient_c <= REST_EXCESS_K:
+            if since_s >= s.noise_settle_s:
+                path.at_rest(water_c, element_c, ambient_c)
+        elif since_s >= s.element_path_settle_s:
+            path.cooling(t_s, water_c, element_c, ambient_c)
+
+    def _lag_difference_s(self) -> tuple[float, float]:
+        """Return τ_w − τ_e (s) and its 1σ: the heat-up fit's, else the filter's with 1 s."""
+        fit = self.heat_up_fit.fit if self.heat_up_fit is not None else None
+        if fit is not None and self.layout.element is not None:
+            bf = batchfit
+            tw, te = math.exp(fit.theta[bf.LN_TAU_W]), math.exp(fit.theta[bf.LN_TAU_E])
+            cov = fit.cov
+            var = (
+                tw * tw * cov[bf.LN_TAU_W, bf.LN_TAU_W]
+                + te * te * cov[bf.LN_TAU_E, bf.LN_TAU_E]
+                - 2.0 * tw * te * cov[bf.LN_TAU_W, bf.LN_TAU_E]
+            )
+            return tw - te, math.sqrt(max(var, 0.0))
+        tw = 1.0 / self.lag_rate_per_s if self.lag_rate_per_s else 0.0
+        te = 1.0 / self.element_lag_rate_per_s if self.element_lag_rate_per_s else 0.0
+        return tw - te, 1.0
 
     # -- the batch fit of the first heat-up ---------------------------------------------
 
@@ -1399,10 +1619,19 @@ class VesselEstimator:
             phase = Phase.HOLDING
         elif heating:
             phase = Phase.HEATING
-        elif water_c > ambient_c + 3.0:
+        elif water_c > ambient_c + REST_EXCESS_K:
             phase = Phase.COOLING
         else:
             phase = Phase.IDLE
+        if phase is Phase.COOLING and g is not None and not fitted:
+            share = self._element_path.share(*self._lag_difference_s(), s)
+            if share is not None:
+                g_sd = g_est.std if g_est is not None else 0.0
+                ua_est = Estimated(
+                    ua + g * share.value,
+                    math.sqrt(ua_est.std**2 + (share.value * g_sd) ** 2 + (g * share.std) ** 2),
+                )
+                ua = ua_est.value
 
         # heat-up bookkeeping
         if heating and tot.heating_started_s is None:
