@@ -39,7 +39,9 @@ temperature). ``tests/monitor/test_batchfit.py`` checks the fit against
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -178,63 +180,62 @@ class FitPriors:
     sd: np.ndarray
 
 
-def _matrices(theta: np.ndarray, has_element: bool) -> tuple[np.ndarray, np.ndarray]:
-    """Return (M, B) of dx/dt = M x + B [P, T_a], x = [T_e, T_w, y_w, (y_e)]."""
-    ua, c, g, ce, tau_w = np.exp(theta[:5])
-    n = 4 if has_element else 3
-    m = np.zeros((n, n))
-    m[0, 0], m[0, 1] = -g / ce, g / ce
-    m[1, 0], m[1, 1] = g / c, -(g + ua) / c
-    m[2, 1], m[2, 2] = 1.0 / tau_w, -1.0 / tau_w
-    if has_element:
-        tau_e = math.exp(theta[LN_TAU_E])
-        m[3, 0], m[3, 3] = 1.0 / tau_e, -1.0 / tau_e
-    b = np.zeros((n, 2))
-    b[0, 0] = 1.0 / ce
-    b[1, 1] = ua / c
-    return m, b
-
-
-def _modes(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Return (λ, V) of M with distinct eigenvalues (a near-double root is nudged apart)."""
-    lam, v = np.linalg.eig(m)
-    lam, v = lam.real, v.real
-    order = np.sort(lam)
-    gaps = np.diff(order)
-    if gaps.size and np.min(gaps) < 1e-7 * np.max(np.abs(order)):
-        # a lag equal to a thermal time constant: a Jordan block, nudge one lag by 1e-5
-        m = m.copy()
-        m[2, 1] *= 1.0 + 1e-5
-        m[2, 2] *= 1.0 + 1e-5
-        lam, v = np.linalg.eig(m)
-        lam, v = lam.real, v.real
-    return lam, v
+#: (M, B) of dx/dt = M x + B [P, T_a], x = [T_e, T_w, y_w, (y_e)], from θ (compiled).
+_matrices = kernels.fit_matrices
 
 
 def simulate(theta: np.ndarray, data: FitData) -> tuple[np.ndarray, np.ndarray]:
     """Return (states at every grid point, shape (N+1, n), °C) of the model θ on ``data``.
 
-    Columns: T_e, T_w, y_w and y_e (with an element thermocouple).
+    Columns: T_e, T_w, y_w and y_e (with an element thermocouple). The modal
+    recursion is compiled (:func:`monitor.kernels.modal_response`); a lag equal to
+    a thermal time constant (a Jordan block) has the water lag's row nudged by 1e-5.
     """
     has_e = data.has_element
     m, b = _matrices(theta, has_e)
-    lam, v = _modes(m)
-    n = m.shape[0]
-    x0 = np.full(n, theta[T0])
-    if has_e:
-        x0[0] += theta[DT_E0]
-        x0[3] += theta[DT_E0]
-    v_inv = np.linalg.inv(v)
-    w = v_inv @ b  # (n, 2)
-    z0 = v_inv @ x0
-    lh = lam * data.h_s
-    a = np.exp(lh)
-    d = np.expm1(lh) / lam
-    z = np.empty((n, len(data.power_w) + 1))
-    for i in range(n):
-        drive = d[i] * (w[i, 0] * data.power_w + w[i, 1] * data.ambient_c)
-        z[i] = kernels.first_order_recursion(float(a[i]), float(z0[i]), drive)
-    return (v @ z).T, lam
+    x0 = kernels.fit_start_state(theta, has_e)
+    return kernels.modal_response(m, b, x0, data.h_s, data.power_w, data.ambient_c, 2)
+
+
+class Residuals:
+    """The fit's residual vector as a function of θ: weighted (model - reading)/σ, then
+    the priors'. What does not depend on θ (masks, scales) is worked out once.
+
+    ``sd_c`` is (water σ, element σ) in K; ``weights`` the Huber weights per reading
+    (None: 1).
+    """
+
+    def __init__(
+        self,
+        data: FitData,
+        priors: FitPriors,
+        sd_c: tuple[float, float],
+        weights: tuple[np.ndarray, np.ndarray | None] | None = None,
+    ) -> None:
+        self.data = data
+        ok_w = np.isfinite(data.water_c)
+        self.at_w = np.flatnonzero(ok_w)
+        self.water_c = np.ascontiguousarray(data.water_c[ok_w])
+        ww = weights[0] if weights is not None else np.ones(self.at_w.size)
+        self.scale_w = np.sqrt(ww) / sd_c[0]
+        self.at_e = np.zeros(0, dtype=np.int64)
+        self.element_c = self.scale_e = np.zeros(0)
+        if data.element_c is not None:
+            ok_e = np.isfinite(data.element_c)
+            self.at_e = np.flatnonzero(ok_e)
+            self.element_c = np.ascontiguousarray(data.element_c[ok_e])
+            we = weights[1] if weights is not None else np.ones(self.at_e.size)
+            self.scale_e = np.sqrt(we) / sd_c[1]
+        self.prior_mean = np.asarray(priors.mean, dtype=float)
+        self.prior_sd = np.asarray(priors.sd, dtype=float)
+
+    def __call__(self, theta: np.ndarray) -> np.ndarray:
+        d = self.data
+        return kernels.fit_residuals(
+            np.asarray(theta, dtype=float), d.has_element, d.h_s, d.power_w, d.ambient_c,
+            self.at_w, self.water_c, self.scale_w, self.at_e, self.element_c, self.scale_e,
+            self.prior_mean, self.prior_sd,
+        )  # fmt: skip
 
 
 def residuals(
@@ -244,24 +245,8 @@ def residuals(
     sd_c: tuple[float, float],
     weights: tuple[np.ndarray, np.ndarray | None] | None = None,
 ) -> np.ndarray:
-    """Return the fit's residual vector: weighted (model - reading)/σ, then the priors'.
-
-    ``sd_c`` is (water σ, element σ) in K; ``weights`` the Huber weights per reading
-    (None: 1).
-    """
-    x, _ = simulate(theta, data)
-    parts = []
-    ww = weights[0] if weights is not None else None
-    rw = (x[:, 2] - data.water_c) / sd_c[0]
-    rw = rw[np.isfinite(data.water_c)]
-    parts.append(rw * np.sqrt(ww) if ww is not None else rw)
-    if data.element_c is not None:
-        re = (x[:, 3] - data.element_c) / sd_c[1]
-        re = re[np.isfinite(data.element_c)]
-        we = weights[1] if weights is not None else None
-        parts.append(re * np.sqrt(we) if we is not None else re)
-    parts.append((theta - priors.mean) / priors.sd)
-    return np.concatenate(parts)
+    """Return the fit's residual vector at θ (see :class:`Residuals`)."""
+    return Residuals(data, priors, sd_c, weights)(theta)
 
 
 def _jacobian(f, theta: np.ndarray, r0: np.ndarray) -> np.ndarray:
@@ -279,7 +264,7 @@ def _jacobian(f, theta: np.ndarray, r0: np.ndarray) -> np.ndarray:
 
 
 def levenberg_marquardt(
-    f, theta0: np.ndarray, max_iter: int = 60, tol: float = 1e-8, max_step: float = 1.5
+    f, theta0: np.ndarray, max_iter: int = 60, tol: float = 1e-6, max_step: float = 1.5
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, bool]:
     """Return (θ, r, J, iterations, converged) minimising ½|f(θ)|² from θ₀.
 
@@ -421,9 +406,7 @@ def fit_heat_up(
         w_e = np.ones_like(w_e) if w_e is not None else None
     weights = (w_w, w_e)
 
-    def f(theta: np.ndarray) -> np.ndarray:
-        return residuals(theta, data, priors, (sd_w, sd_e), weights)
-
+    f = Residuals(data, priors, (sd_w, sd_e), weights)
     theta, r, jac, iterations, converged = levenberg_marquardt(f, theta0, max_iter=max_iter)
     x, _ = simulate(theta, data)
     raw_w = (x[:, 2] - data.water_c)[ok_w]
@@ -474,6 +457,47 @@ def fit_heat_up(
         converged=converged,
         has_element=data.has_element,
     )
+
+
+@dataclass
+class FitBudget:
+    """A share of one core for heat-up fits, shared by the vessels of one live service.
+
+    A token bucket of CPU seconds: it fills at ``cpu_share`` per second of ``clock``
+    up to ``burst_s``, each fit is charged its own CPU time, and a fit is allowed
+    while the bucket is above zero. A fit that is not allowed stays due and is made
+    at a later step of its vessel, so when many vessels heat up at once the fits
+    spread out instead of the readings queueing (the filter runs on every reading
+    either way). Replay has no budget: its figures are those of every fit made when
+    due, the same on every machine; the live figures equal them whenever the budget
+    never ran dry (``deferred`` stays 0).
+    """
+
+    cpu_share: float = 0.2
+    burst_s: float = 0.5
+    clock: Callable[[], float] = time.monotonic
+    deferred: int = 0  # times a due fit was put off
+    spent_s: float = 0.0  # CPU seconds charged
+    _tokens_s: float = field(default=0.0, init=False)
+    _at: float | None = field(default=None, init=False)
+
+    def allow(self) -> bool:
+        """Return True if a fit may be made now (False counts as one deferral)."""
+        now = self.clock()
+        if self._at is None:
+            self._tokens_s = self.burst_s
+        else:
+            self._tokens_s = min(self.burst_s, self._tokens_s + (now - self._at) * self.cpu_share)
+        self._at = now
+        if self._tokens_s > 0.0:
+            return True
+        self.deferred += 1
+        return False
+
+    def charge(self, cpu_s: float) -> None:
+        """Take a fit's CPU seconds out of the bucket (it may go below zero)."""
+        self._tokens_s -= cpu_s
+        self.spent_s += cpu_s
 
 
 @dataclass

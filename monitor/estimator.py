@@ -79,6 +79,7 @@ in the tests.
 from __future__ import annotations
 
 import math
+import time
 from collections import deque
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -664,8 +665,11 @@ class VesselEstimator:
         config: VesselConfig,
         settings: EstimatorSettings | None = None,
         core: type[FastCore] | type[FilterpyCore] = FastCore,
+        fit_budget: batchfit.FitBudget | None = None,
     ) -> None:
         self.config = config
+        #: the live service's shared CPU budget for heat-up fits (None: fit when due)
+        self.fit_budget = fit_budget
         self.settings = settings or EstimatorSettings()
         tau = self.settings.water_sensor_tau_s
         tau = config.water_sensor_tau_s if tau is None else tau
@@ -1103,12 +1107,16 @@ class VesselEstimator:
                 )  # fmt: skip
                 self._fit_state = (t_e, t_w)
                 self._fit_anchored_s = t_s
-        if fit.due(t_s):
+        budget = self.fit_budget
+        if fit.due(t_s) and (budget is None or budget.allow()):
+            started_s = time.thread_time()
             # the same reading noise the filter weighs its updates with
             noise = (self.reading_noise_sd_c("water"), self.reading_noise_sd_c("element"))
             result = fit.run(t_s, noise)
             if result is not None:
                 self._anchor(t_s, result, power_w, ambient_c)
+            if budget is not None:
+                budget.charge(time.thread_time() - started_s)
 
     def _anchor(
         self, t_s: float, result: batchfit.FitResult, power_w: float, ambient_c: float

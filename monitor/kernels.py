@@ -63,3 +63,108 @@ def first_order_recursion(decay: float, start: float, drive: np.ndarray) -> np.n
         value = decay * value + drive[k]
         out[k + 1] = value
     return out
+
+
+@numba.njit(cache=True)
+def modal_response(
+    m: np.ndarray, b: np.ndarray, x0: np.ndarray, h_s: float, power_w: np.ndarray,
+    ambient_c: np.ndarray, nudge_row: int,
+) -> tuple[np.ndarray, np.ndarray]:  # fmt: skip
+    """Return (x, λ): x[k] the state of dx/dt = M x + B [P, T_a] at step k from x0,
+    with P and T_a held over each step of h_s s, shape (len(P) + 1, n); λ the modes.
+
+    The exact discretisation through the modes (M = V·diag(λ)·V⁻¹, all real): each
+    mode z_i obeys z_i[k+1] = e^(λ_i h)·z_i[k] + (e^(λ_i h) - 1)/λ_i · (V⁻¹B u[k])_i.
+    Where two modes nearly coincide (a Jordan block) row ``nudge_row`` of M is
+    scaled by 1 + 1e-5 first, so the modes part. M's modes must be real (numba's
+    eig raises otherwise; the two-node model's are: its thermal block is similar to
+    a symmetric one and the lags are triangular).
+    """
+    lam, v = np.linalg.eig(m)
+    order = np.sort(lam)
+    n = lam.shape[0]
+    smallest_gap, largest = np.inf, 0.0
+    for i in range(n):
+        largest = max(largest, abs(order[i]))
+        if i > 0:
+            smallest_gap = min(smallest_gap, order[i] - order[i - 1])
+    if n > 1 and smallest_gap < 1e-7 * largest:
+        m = m.copy()
+        for j in range(n):
+            m[nudge_row, j] *= 1.0 + 1e-5
+        lam, v = np.linalg.eig(m)
+    v_inv = np.linalg.inv(v)
+    w = v_inv @ b
+    z0 = v_inv @ x0
+    steps = power_w.shape[0]
+    z = np.empty((n, steps + 1))
+    for i in range(n):
+        lh = lam[i] * h_s
+        decay = np.exp(lh)
+        gain = np.expm1(lh) / lam[i]
+        value = z0[i]
+        z[i, 0] = value
+        for k in range(steps):
+            value = decay * value + gain * (w[i, 0] * power_w[k] + w[i, 1] * ambient_c[k])
+            z[i, k + 1] = value
+    return (v @ z).T.copy(), lam
+
+
+@numba.njit(cache=True)
+def fit_matrices(theta: np.ndarray, has_element: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Return (M, B) of the heat-up fit's model, dx/dt = M x + B [P, T_a].
+
+    θ is :mod:`monitor.batchfit`'s: [ln UA, ln C, ln G, ln C_e, ln τ_w, T₀, ln τ_e,
+    ΔT_e0] (the last two with an element thermocouple); x = [T_e, T_w, y_w, (y_e)].
+    """
+    ua, c, g, ce, tau_w = (np.exp(theta[0]), np.exp(theta[1]), np.exp(theta[2]),
+                           np.exp(theta[3]), np.exp(theta[4]))  # fmt: skip
+    n = 4 if has_element else 3
+    m = np.zeros((n, n))
+    m[0, 0], m[0, 1] = -g / ce, g / ce
+    m[1, 0], m[1, 1] = g / c, -(g + ua) / c
+    m[2, 1], m[2, 2] = 1.0 / tau_w, -1.0 / tau_w
+    if has_element:
+        tau_e = np.exp(theta[6])
+        m[3, 0], m[3, 3] = 1.0 / tau_e, -1.0 / tau_e
+    b = np.zeros((n, 2))
+    b[0, 0] = 1.0 / ce
+    b[1, 1] = ua / c
+    return m, b
+
+
+@numba.njit(cache=True)
+def fit_start_state(theta: np.ndarray, has_element: bool) -> np.ndarray:
+    """Return the heat-up fit's state at its window's start: every node at T₀, the
+    element and its thermocouple ΔT_e0 above (θ as :func:`fit_matrices`)."""
+    n = 4 if has_element else 3
+    x0 = np.full(n, theta[5])
+    if has_element:
+        x0[0] += theta[7]
+        x0[3] += theta[7]
+    return x0
+
+
+@numba.njit(cache=True)
+def fit_residuals(
+    theta: np.ndarray, has_element: bool, h_s: float, power_w: np.ndarray,
+    ambient_c: np.ndarray, at_w: np.ndarray, water_c: np.ndarray, scale_w: np.ndarray,
+    at_e: np.ndarray, element_c: np.ndarray, scale_e: np.ndarray,
+    prior_mean: np.ndarray, prior_sd: np.ndarray,
+) -> np.ndarray:  # fmt: skip
+    """Return the heat-up fit's residuals at θ: (y_w - reading)·scale at the grid
+    points ``at_w``, the same for the element thermocouple at ``at_e`` (empty
+    without one), then (θ - prior mean)/prior sd. :class:`monitor.batchfit.Residuals`
+    says what the scales are."""
+    m, b = fit_matrices(theta, has_element)
+    x, _ = modal_response(m, b, fit_start_state(theta, has_element), h_s, power_w,
+                          ambient_c, 2)  # fmt: skip
+    nw, ne, p = at_w.shape[0], at_e.shape[0], theta.shape[0]
+    out = np.empty(nw + ne + p)
+    for i in range(nw):
+        out[i] = (x[at_w[i], 2] - water_c[i]) * scale_w[i]
+    for i in range(ne):
+        out[nw + i] = (x[at_e[i], 3] - element_c[i]) * scale_e[i]
+    for i in range(p):
+        out[nw + ne + i] = (theta[i] - prior_mean[i]) / prior_sd[i]
+    return out

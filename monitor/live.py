@@ -47,6 +47,7 @@ from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass
 
 from drivers.sample import Quality, Sample
+from monitor.batchfit import FitBudget
 from monitor.contracts import Estimate, finite_or_none
 from monitor.drift import VesselDrift, run_checks
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
@@ -217,8 +218,10 @@ class LiveVessel:
         metadata: Mapping[str, str | float],
         has_element_sensor: bool,
         settings: EstimatorSettings | None = None,
+        fit_budget: FitBudget | None = None,
     ) -> None:
         self.vessel = vessel
+        self.fit_budget = fit_budget
         self.metadata = dict(metadata)
         self.config = VesselConfig.from_metadata(vessel, self.metadata, has_element_sensor)
         self.settings = settings
@@ -226,7 +229,7 @@ class LiveVessel:
         self.estimator: VesselEstimator | None = None
         # Built now, not at the first reading: the first filter of a process builds the
         # water-property tables (about half a second), which would stall a live loop.
-        self._fresh: VesselEstimator | None = VesselEstimator(self.config, settings)
+        self._fresh: VesselEstimator | None = self._new_estimator()
         self.run_number = 0
         self.latest: Estimate | None = None
         self.steps = 0
@@ -243,6 +246,9 @@ class LiveVessel:
         self._at_heat_up: Estimate | None = None
         self._start_c: float | None = None
         self._run_steps = 0
+
+    def _new_estimator(self) -> VesselEstimator:
+        return VesselEstimator(self.config, self.settings, fit_budget=self.fit_budget)
 
     def resume(self, earlier: list[Mapping[str, object]]) -> None:
         """Carry on from runs an earlier session recorded (their summaries, oldest first).
@@ -298,7 +304,7 @@ class LiveVessel:
             self._run_steps = 0
             self.runs.append({"run": str(self.run_number), "start_t": step.t, "end_t": step.t})
             self._run = Run(self.vessel, self.run_number, str(self.run_number), [], None)  # type: ignore[arg-type]
-            self.estimator = self._fresh or VesselEstimator(self.config, self.settings)
+            self.estimator = self._fresh or self._new_estimator()
             self._fresh = None
             self._window.clear()
         assert self.estimator is not None

@@ -308,3 +308,50 @@ def test_compiled_recursion_is_lfilter_bit_for_bit():
         want = lfilter([1.0], [1.0, -decay], np.concatenate(([12.5], drive)))
         got = kernels.first_order_recursion(decay, 12.5, drive)
         assert np.array_equal(got, want)
+
+
+def test_fit_budget_fills_at_its_share_and_charges_each_fit():
+    now = [0.0]
+    budget = bf.FitBudget(cpu_share=0.2, burst_s=0.5, clock=lambda: now[0])
+    assert budget.allow()  # starts full
+    budget.charge(0.6)  # one long fit takes it below zero
+    assert not budget.allow()
+    now[0] = 0.4  # 0.4 s at 0.2 refills 0.08 s: still below zero
+    assert not budget.allow()
+    now[0] = 1.0  # 1 s in all: -0.1 + 0.2 > 0
+    assert budget.allow()
+    now[0] = 100.0  # never above the burst
+    assert budget.allow()
+    budget.charge(0.5)
+    assert not budget.allow()
+    assert budget.deferred == 3
+    assert budget.spent_s == pytest.approx(1.1)
+
+
+def test_a_dry_budget_defers_the_fits_and_a_refilled_one_catches_up():
+    # our kettle scenario: with a budget that never refills no fit is made, the vessel
+    # goes on with the filter alone; once the budget refills the due fit is made at
+    # the next step, and the figures match the unbudgeted run's from the next fit on
+    sc = kettle_scenario(duration_s=200.0)
+    meta = scenario_metadata(sc, 3)
+    now = [0.0]
+    budget = bf.FitBudget(cpu_share=1.0, burst_s=1e9, clock=lambda: now[0])
+    budget._at, budget._tokens_s = 0.0, -1e9  # dry, and the clock stands still
+    config = VesselConfig.from_metadata(sc.vessel, meta, True)
+    budgeted = VesselEstimator(config, fit_budget=budget)
+    free = VesselEstimator(config)
+    rig = SimulatedRig(sc, 3)
+    for batch in rig.run():
+        values = {s.channel: s.value for s in batch}
+        e_b = budgeted.step(rig.elapsed_s, values)
+        e_f = free.step(rig.elapsed_s, values)
+        if rig.elapsed_s == 60.0:
+            assert budgeted.heat_up_fit.fits == 0 < free.heat_up_fit.fits
+            assert budget.deferred > 0
+            budget._tokens_s = 1e9  # refilled
+    assert budgeted.heat_up_fit.fits > 0
+    # the deferred schedule runs a step or two apart from the free one, on nearly the
+    # same window by the end: nearly the same figures (our tolerance)
+    assert abs(budgeted.heat_up_fit.last_fit_s - free.heat_up_fit.last_fit_s) < 10.0
+    assert e_b.water_mass_kg.value == pytest.approx(e_f.water_mass_kg.value, rel=0.01)
+    assert e_b.ua_w_per_k.value == pytest.approx(e_f.ua_w_per_k.value, rel=0.05)
