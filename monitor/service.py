@@ -56,7 +56,7 @@ from drivers.channels import Quarantined
 from drivers.errors import DriverError, EbullioError
 from drivers.sample import Sample
 from monitor import __version__
-from monitor.batchfit import FitBudget
+from monitor.batchfit import FitBudget, warm_up
 from monitor.config import Instrument, RigConfig, driver_settings
 from monitor.live import LiveVessel, estimate_message
 from monitor.recorder import Recorder, estimate_record
@@ -455,6 +455,7 @@ class Service:
         """Run until :meth:`stop`; return the counters. The log is closed on return."""
         vessels_meta = {v.id: v.metadata for v in self.config.vessels}
         earlier = await asyncio.to_thread(_earlier_runs, self.log_path)
+        await asyncio.to_thread(warm_up)  # the fit's kernels compiled before any reading
         for name, vessel in self.vessels.items():
             vessel.resume(earlier.get(name, []))
         self._recorder = await asyncio.to_thread(

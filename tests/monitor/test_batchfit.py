@@ -314,18 +314,21 @@ def test_fit_budget_fills_at_its_share_and_charges_each_fit():
     now = [0.0]
     budget = bf.FitBudget(cpu_share=0.2, burst_s=0.5, clock=lambda: now[0])
     assert budget.allow()  # starts full
-    budget.charge(0.6)  # one long fit takes it below zero
+    budget.charge(0.3)
+    budget.charge(0.3)  # two fits take it below zero
     assert not budget.allow()
-    now[0] = 0.4  # 0.4 s at 0.2 refills 0.08 s: still below zero
+    now[0] = 0.4  # 0.4 s at 0.2 refills 0.08 s: -0.02, still below zero
     assert not budget.allow()
-    now[0] = 1.0  # 1 s in all: -0.1 + 0.2 > 0
+    now[0] = 1.0  # 1 s in all: +0.1
     assert budget.allow()
     now[0] = 100.0  # never above the burst
     assert budget.allow()
-    budget.charge(0.5)
+    budget.charge(2.0)  # a 2 s fit (a first compilation) is charged one burst only
     assert not budget.allow()
+    now[0] = 100.1  # so 0.1 s later the bucket is above zero again
+    assert budget.allow()
     assert budget.deferred == 3
-    assert budget.spent_s == pytest.approx(1.1)
+    assert budget.spent_s == pytest.approx(2.6)
 
 
 def test_a_dry_budget_defers_the_fits_and_a_refilled_one_catches_up():
