@@ -748,8 +748,17 @@ class VesselEstimator:
             20.0,
         ]
         # 1σ: the volume may be unknown (C within a factor of e^1.5), the element
-        # capacity and lags within about a factor of two, G within e
-        sd = [1.0, 1.5, 1.0, 0.8, 0.8, 20.0]
+        # capacity and lags within about a factor of two, G within e. Without an
+        # element thermocouple the water reading sees the element's delay C_e/G and
+        # its own lag in series, and two first-order lags give the same response in
+        # either order: the readings fix their sum, the split is the prior's. With
+        # 0.8 there, 3 of 20 kettles of bench_worlds put τ_w at 6-12 s against a true
+        # 1.1-1.6 s, two near-mirror valleys within a unit of cost, and the water 2-7 K
+        # ahead of the truth (2026-12-05); so there the water lag's 1σ is e^0.5
+        # (0.9-6.8 s at 95 % about 2.5 s: a sheathed thermocouple in water, judgement,
+        # from memory). With an element thermocouple the readings split it themselves.
+        tau_w_sd = 0.8 if self.config.has_element_sensor else 0.5
+        sd = [1.0, 1.5, 1.0, 0.8, tau_w_sd, 20.0]
         if self.config.has_element_sensor:
             mean += [math.log(tau_e_s or s.element_sensor_tau_prior_s), 0.0]
             sd += [1.0, 5.0]
