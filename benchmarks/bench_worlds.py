@@ -86,6 +86,8 @@ Scores (relative errors are (estimate − truth)/truth; statistics are of |error
     in series, plus the water-to-element conductance in series with the element's
     own path to the room. It is the figure a one-node model should find; it leaves
     out the heat the wall and lid give back as they cool (their lags).
+    ``ua_after_10min_cooling_z``: the same UA's error over its stated std, RMS, for
+    kettles with and without an element thermocouple (reported, not a target).
     ``standing_loss_after_4h_standby``: heaters, the estimated UA 4 h after the
     arrival times the filter's mean (water − room) over the last 2 h of that
     standby, against the rig's true mean heat flow to the room over the same 2 h
@@ -843,6 +845,7 @@ class RunScore:
     mass_end_error: float = math.inf
     g80_error: float | None = None
     ua_cooling_error: float | None = None
+    ua_cooling_z: float | None = None
     standing_loss_error: float | None = None
     sim_s: float = 0.0
     estimator_s: float = 0.0
@@ -939,6 +942,7 @@ def score_cooling(score: RunScore, trace: Trace) -> None:
     room_c = float(np.mean(trace.true_ambient_c[k0 : k1 + 1]))
     truth = effective_ua_w_per_k(trace.world.scenario, water_c, room_c)
     score.ua_cooling_error = relative_error(value_of(trace.estimates[k1], "ua_w_per_k")[0], truth)
+    score.ua_cooling_z = z_score(*value_of(trace.estimates[k1], "ua_w_per_k"), truth)
 
 
 def score_standby(score: RunScore, trace: Trace, arrival_s: float) -> None:
@@ -1180,6 +1184,18 @@ def figures(scores: Sequence[RunScore]) -> dict[str, object]:
         },
         "element_conductance_at_80pct": error_stats(s.g80_error for s in scores),
         "ua_after_10min_cooling": error_stats(s.ua_cooling_error for s in kettles),
+        # error over the stated std there (reported, not a target): with and without
+        # an element thermocouple, whose UA in cooling is worked out differently
+        "ua_after_10min_cooling_z": {
+            "element_thermocouple": rms_stats(
+                s.ua_cooling_z for s in kettles if s.element_sensor and s.ua_cooling_z is not None
+            ),
+            "no_element_thermocouple": rms_stats(
+                s.ua_cooling_z
+                for s in kettles
+                if not s.element_sensor and s.ua_cooling_z is not None
+            ),
+        },
         "standing_loss_after_4h_standby": error_stats(s.standing_loss_error for s in heaters),
         "offline_fit": fit_summary(scores),
     }

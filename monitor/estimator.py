@@ -213,6 +213,12 @@ class EstimatorSettings:
     element_rest_floor_sd_c: float = 0.03
     # 1σ of what the correction leaves out, as a share of it (calibrated below)
     element_path_model_rel_sd: float = 0.2
+    # 1σ of what the lumped model leaves out of the filter's UA, as a share of it:
+    # cooling, the wall and lid give back heat with lags of their own. On
+    # benchmarks/bench_worlds.py (2026-12-05) the kettles without an element
+    # thermocouple stated 1.2-1.7 % after 10 min of cooling for errors whose RMS
+    # over the std was 1.8 (worst 6.5)
+    ua_model_rel_sd: float = 0.02
 
 
 @dataclass(frozen=True)
@@ -1592,7 +1598,7 @@ class VesselEstimator:
         x = self.core.x
         ua, c, g = self._params(x)
         water_c = float(x[lay.water])
-        ua_est = Estimated(ua, ua * self._std(lay.ln_ua))
+        ua_est = Estimated(ua, ua * math.hypot(self._std(lay.ln_ua), s.ua_model_rel_sd))
         c_est = Estimated(c, c * self._std(lay.ln_c))
         cp = water.specific_heat_j_per_kg_k(min(max(water_c, 0.0), water.T_MAX_C))
         mass = (c - self._non_water_capacity()) / cp
