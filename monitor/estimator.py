@@ -219,6 +219,9 @@ class EstimatorSettings:
     # thermocouple stated 1.2-1.7 % after 10 min of cooling for errors whose RMS
     # over the std was 1.8 (worst 6.5)
     ua_model_rel_sd: float = 0.02
+    # a notice once a due heat-up fit has waited this long for the live service's
+    # CPU budget (monitor.batchfit.FitBudget), s
+    fit_wait_notice_s: float = 20.0
 
 
 @dataclass(frozen=True)
@@ -729,6 +732,7 @@ class VesselEstimator:
         self._fit_anchored_s: float | None = None
         self._element_path = _ElementPath()
         self._element_zero_c: float | None = None  # set at the first switch-on (_zeroed)
+        self._fit_waiting_since_s: float | None = None  # a due fit the budget put off
 
     # -- set-up -------------------------------------------------------------------------
 
@@ -1123,7 +1127,8 @@ class VesselEstimator:
                 self._fit_state = (t_e, t_w)
                 self._fit_anchored_s = t_s
         budget = self.fit_budget
-        if fit.due(t_s) and (budget is None or budget.allow()):
+        due = fit.due(t_s)
+        if due and (budget is None or budget.allow()):
             started_s = time.thread_time()
             # the same reading noise the filter weighs its updates with
             noise = (self.reading_noise_sd_c("water"), self.reading_noise_sd_c("element"))
@@ -1132,6 +1137,9 @@ class VesselEstimator:
                 self._anchor(t_s, result, power_w, ambient_c)
             if budget is not None:
                 budget.charge(time.thread_time() - started_s)
+            self._fit_waiting_since_s = None
+        elif due and self._fit_waiting_since_s is None:
+            self._fit_waiting_since_s = t_s  # put off by the live service's budget
 
     def _anchor(
         self, t_s: float, result: batchfit.FitResult, power_w: float, ambient_c: float
@@ -1677,6 +1685,19 @@ class VesselEstimator:
         if phase is Phase.HOLDING:
             tot.holding_sum_c += water_c
             tot.holding_steps += 1
+
+        waiting = self._fit_waiting_since_s
+        if waiting is not None and not tot.reached_target and t_s - waiting >= s.fit_wait_notice_s:
+            flags.append(
+                Flag(
+                    "fit_waiting",
+                    Level.NOTICE,
+                    f"The heat-up fit has waited {t_s - waiting:.0f} s for processor time "
+                    "(many vessels heating at once): these figures come from an older fit. "
+                    "A replay of the log gives them with every fit made on time.",
+                    {"waiting_s": t_s - waiting},
+                )
+            )
 
         # forecasts
         target = None

@@ -348,10 +348,19 @@ def test_a_dry_budget_defers_the_fits_and_a_refilled_one_catches_up():
         values = {s.channel: s.value for s in batch}
         e_b = budgeted.step(rig.elapsed_s, values)
         e_f = free.step(rig.elapsed_s, values)
+        names_b = {f.name for f in e_b.flags} if e_b is not None else set()
+        names_f = {f.name for f in e_f.flags} if e_f is not None else set()
+        assert "fit_waiting" not in names_f  # no budget, never waiting
+        if rig.elapsed_s == 20.0:  # the first fit was due at 11 s: not yet 20 s waiting
+            assert "fit_waiting" not in names_b
         if rig.elapsed_s == 60.0:
             assert budgeted.heat_up_fit.fits == 0 < free.heat_up_fit.fits
             assert budget.deferred > 0
+            # the operator is told the figures come from an older fit (here: none)
+            assert "fit_waiting" in names_b
             budget._tokens_s = 1e9  # refilled
+        if rig.elapsed_s == 61.0:
+            assert "fit_waiting" not in names_b  # the waiting fit was made at this step
     assert budgeted.heat_up_fit.fits > 0
     # the deferred schedule runs a step or two apart from the free one, on nearly the
     # same window by the end: nearly the same figures (our tolerance)
