@@ -9,8 +9,10 @@ Run from the repository root:
 One JSON object goes to stdout (and to ``--out`` when given); progress goes to stderr.
 A run that crashes or never reaches its target stays in every figure as a failure
 (infinite error, missing z) and is listed under ``runs.failed``. A full run took
-6 min on this 2-core machine (2026-12-02, shared with other work): simulation 270 s,
-estimator 360 s and offline fit 74 s of CPU.
+50 s of wall time on this 2-core machine (2026-12-05): simulation 48 s, estimator
+29 s and offline fit 15 s of CPU (6 min on 2026-12-02, before the fit was compiled).
+The JSON's ``estimator_module`` names the file the estimator was imported from:
+check it when comparing commits (an editable install can win over a worktree).
 
 The worlds
     Run ``i`` has the seed ``seed + i`` and draws its world from
