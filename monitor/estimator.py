@@ -508,6 +508,38 @@ REST_EXCESS_K = 3.0
 
 
 @dataclass
+class _GapMoments:
+    """Running sums of the water-minus-element reading gap (K) and the water's excess
+    on the room (K) over a group of instants."""
+
+    n: int = 0
+    gap_sum_c: float = 0.0
+    gap_sq_c2: float = 0.0
+    excess_sum_k: float = 0.0
+
+    def add(self, gap_c: float, excess_k: float) -> None:
+        self.n += 1
+        self.gap_sum_c += gap_c
+        self.gap_sq_c2 += gap_c * gap_c
+        self.excess_sum_k += excess_k
+
+    @property
+    def mean_gap_c(self) -> float:
+        return self.gap_sum_c / self.n
+
+    @property
+    def mean_excess_k(self) -> float:
+        return self.excess_sum_k / self.n
+
+    def mean_var_c2(self, floor_c2: float) -> float:
+        """Return the variance of the mean gap: the gaps' variance (at least
+        ``floor_c2``, the two readings' noise) over half the instants (the lags make
+        neighbours a little alike)."""
+        mean = self.mean_gap_c
+        return max(self.gap_sq_c2 / self.n - mean * mean, floor_c2) / (0.5 * self.n)
+
+
+@dataclass
 class _ElementPath:
     """The element's own path to the room, learnt from the readings while cooling.
 
@@ -530,8 +562,8 @@ class _ElementPath:
     reported = UA + G·ρ.
     """
 
-    rest: _GapMoments = field(default_factory=lambda: _GapMoments())
-    cool: _GapMoments = field(default_factory=lambda: _GapMoments())
+    rest: _GapMoments = field(default_factory=_GapMoments)
+    cool: _GapMoments = field(default_factory=_GapMoments)
     first: tuple[float, float] | None = None  # (t_s, water reading) at the window's start
     last: tuple[float, float] | None = None
 
@@ -597,38 +629,6 @@ class _ElementPath:
         var_rise = rest_var + cool.mean_var_c2(pair_var) + (lag_diff_sd_s * rate) ** 2
         sd = math.sqrt(var_rise / (span * span) + (s.element_path_model_rel_sd * rho) ** 2)
         return Estimated(rho, sd)
-
-
-@dataclass
-class _GapMoments:
-    """Running sums of the water-minus-element reading gap (K) and the water's excess
-    on the room (K) over a group of instants."""
-
-    n: int = 0
-    gap_sum_c: float = 0.0
-    gap_sq_c2: float = 0.0
-    excess_sum_k: float = 0.0
-
-    def add(self, gap_c: float, excess_k: float) -> None:
-        self.n += 1
-        self.gap_sum_c += gap_c
-        self.gap_sq_c2 += gap_c * gap_c
-        self.excess_sum_k += excess_k
-
-    @property
-    def mean_gap_c(self) -> float:
-        return self.gap_sum_c / self.n
-
-    @property
-    def mean_excess_k(self) -> float:
-        return self.excess_sum_k / self.n
-
-    def mean_var_c2(self, floor_c2: float) -> float:
-        """Return the variance of the mean gap: the gaps' variance (at least
-        ``floor_c2``, the two readings' noise) over half the instants (the lags make
-        neighbours a little alike)."""
-        mean = self.mean_gap_c
-        return max(self.gap_sq_c2 / self.n - mean * mean, floor_c2) / (0.5 * self.n)
 
 
 @dataclass

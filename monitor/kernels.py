@@ -1,9 +1,10 @@
 """Compiled arithmetic for the filter's hottest loops (numba, cached to disk).
 
 Only plain array arithmetic lives here; what it means is documented where it is
-used (:class:`monitor.estimator.FastCore`). Each kernel is checked against the
-filterpy reference path by the estimator's tests, to 1e-9 on every predict and
-update.
+used (:class:`monitor.estimator.FastCore`, :mod:`monitor.batchfit`). The filter's
+update is checked against the filterpy reference path by the estimator's tests, to
+1e-9 on every predict and update; the fit's kernels against the matrix exponential
+and ``scipy.optimize.least_squares`` by the batch fit's tests.
 
 numba compiles a kernel the first time it is called in a process and keeps the
 machine code in ``__pycache__`` beside this file (``cache=True``), so later
@@ -96,17 +97,12 @@ def modal_response(
     v_inv = np.linalg.inv(v)
     w = v_inv @ b
     z0 = v_inv @ x0
-    steps = power_w.shape[0]
-    z = np.empty((n, steps + 1))
+    z = np.empty((n, power_w.shape[0] + 1))
     for i in range(n):
         lh = lam[i] * h_s
-        decay = np.exp(lh)
         gain = np.expm1(lh) / lam[i]
-        value = z0[i]
-        z[i, 0] = value
-        for k in range(steps):
-            value = decay * value + gain * (w[i, 0] * power_w[k] + w[i, 1] * ambient_c[k])
-            z[i, k + 1] = value
+        drive = gain * (w[i, 0] * power_w + w[i, 1] * ambient_c)
+        z[i] = first_order_recursion(np.exp(lh), z0[i], drive)
     return (v @ z).T.copy(), lam
 
 
