@@ -311,6 +311,7 @@ def test_compiled_recursion_is_lfilter_bit_for_bit():
 
 
 def test_fit_budget_fills_at_its_share_and_charges_each_fit():
+    # our own numbers: the token bucket's arithmetic, worked by hand in the comments
     now = [0.0]
     budget = bf.FitBudget(cpu_share=0.2, burst_s=0.5, clock=lambda: now[0])
     assert budget.allow()  # starts full
