@@ -1325,6 +1325,7 @@ class VesselEstimator:
                 if later is not None:
                     eta = later
             power_rel_sd = (1.0 - w) * rel_sd * math.sqrt(2.0 * tau / (eta + 2.0 * tau))
+        self.heat_up_fit.expect_end(eta)
         model = self.settings.fit_forecast_model_error * self.heat_up_fit.fit.early_factor
         floor_s = self.settings.fit_forecast_floor_s
         spread = math.sqrt(

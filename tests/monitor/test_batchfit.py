@@ -155,6 +155,33 @@ def test_a_window_the_model_cannot_take_keeps_the_last_fit():
     assert fit.failed == 1
 
 
+def test_a_short_heat_up_is_fitted_more_often_in_its_first_third():
+    # the schedule, not a fit: fits, last_fit_s and the countdown are set by hand
+    fit = bf.HeatUpFit(_priors(6), has_element=False)
+    for k in range(21):
+        fit.add(float(k), 2000.0 if k >= 1 else 0.0, 20.0, 15.0 + 0.3 * k, None, k >= 1)
+    fit.fits, fit.last_fit_s = 3, 16.0
+    assert not fit.due(20.0)  # 4 s after the last fit: the usual spacing is 10 s
+    fit.expect_end(80.0)  # 20 s heated + 80 s to go: 5 % of 100 s is 5 s
+    assert not fit.due(20.0)
+    fit.add(21.0, 2000.0, 20.0, 21.3, None, True)
+    assert fit.due(21.0)
+    # past 30 % of the expected heat-up the usual 10 s spacing is back
+    fit.fits, fit.last_fit_s = 8, 35.0
+    fit.add(40.0, 2000.0, 20.0, 27.0, None, True)
+    fit.expect_end(60.0)
+    assert not fit.due(40.0)
+    fit.add(45.0, 2000.0, 20.0, 28.5, None, True)
+    assert fit.due(45.0)
+    # a four-hour heater: its countdown never brings a fit sooner than every_s
+    slow = bf.HeatUpFit(_priors(6), has_element=False)
+    for k in range(121):
+        slow.add(float(k), 2000.0 if k >= 1 else 0.0, 20.0, 15.0 + 0.01 * k, None, k >= 1)
+    slow.fits, slow.last_fit_s = 3, 115.0
+    slow.expect_end(14400.0)
+    assert not slow.due(120.0)
+
+
 def test_thinned_grid_keeps_the_energy_and_the_start():
     t = np.arange(0.0, 5001.0)
     power = np.where(t > 100.0, 2500.0, 0.0)
