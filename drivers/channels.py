@@ -25,7 +25,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from drivers.errors import ConfigError
-from drivers.sample import CHANNEL_UNITS, Quality, Sample
+from drivers.sample import CHANNEL_UNITS, PLAIN_NUMBER, Quality, Sample
 from drivers.thermocouple import classify_emf, reference_table
 
 #: Units a channel may be configured in, and the channel roles each suits.
@@ -105,10 +105,10 @@ def parse_number(text: str | float | int) -> float:
     if isinstance(text, int | float):
         value = float(text)
     else:
-        try:
-            value = float(text.strip())
-        except (ValueError, AttributeError):
-            raise ValueError(f"{text!r} is not a number") from None
+        stripped = text.strip() if isinstance(text, str) else None
+        if stripped is None or PLAIN_NUMBER.fullmatch(stripped) is None:
+            raise ValueError(f"{text!r} is not a plain decimal number")
+        value = float(stripped)
     if not math.isfinite(value):
         raise ValueError(f"{text!r} is not a finite number")
     return value

@@ -37,7 +37,7 @@ import re
 from typing import Any
 
 from drivers.errors import FrameError
-from drivers.sample import CHANNEL_UNITS, Sample
+from drivers.sample import CHANNEL_UNITS, PLAIN_NUMBER, Sample
 
 #: Column-name suffix of each unit, so that a column says its unit (``water_c``, ``power_w``).
 UNIT_SUFFIXES: dict[str, str] = {
@@ -72,8 +72,6 @@ DEFAULT_MAX_AHEAD_S = 300.0
 #: spaces, no ``$``, no ``/``).
 VESSEL_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}", re.ASCII)
 
-# A plain decimal number; stricter than float(), which also takes "nan", "inf" and "1_0".
-_BARE_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
 # How much of a refused value a reason quotes.
 _QUOTE_CHARS = 40
 
@@ -171,7 +169,7 @@ def _instrument_t(value: object, received_t: float, max_ahead_s: float) -> float
 def _channel_payload(text: str, received_t: float, max_ahead_s: float) -> tuple[float, float]:
     """Return (t, value) of a single-channel payload: a bare number or {"t", "value"}."""
     stripped = text.strip()
-    if _BARE_NUMBER.fullmatch(stripped):
+    if PLAIN_NUMBER.fullmatch(stripped):
         value = float(stripped)
         if not math.isfinite(value):
             raise ValueError(f"{_quote(stripped)} is not a finite number")

@@ -90,6 +90,7 @@ VESSEL_NUMBERS = (
     "vessel_heat_capacity_j_per_k",
     "element_heat_capacity_j_per_k",
     "rated_power_w",
+    "max_power_w",
     "nominal_volume_l",
     "target_c",
     "water_sensor_tau_s",

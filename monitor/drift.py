@@ -162,7 +162,8 @@ def run_verdict(summary: Mapping[str, object]) -> dict[str, object]:
     Pure, over a run summary (the replay's or the live service's). ``reasons`` holds
     one plain sentence per sign that the estimate failed (the ``VERDICT_*`` limits):
     nothing estimated, too few water readings, no heat-up, a tracked figure's
-    relative std too large, too many readings set aside or down-weighted, a mean NIS
+    relative std too large, a filter that failed and started afresh, too many readings
+    set aside or down-weighted, a mean NIS
     far above 1, a heat-up fit that did not converge or left large residuals. A
     diagnostic the summary does not carry (an older summary, no ``fit``) is not held
     against the run.
@@ -173,6 +174,10 @@ def run_verdict(summary: Mapping[str, object]) -> dict[str, object]:
     diag = diag if isinstance(diag, Mapping) else {}
     if all(got is None for got in figures.values()):
         reasons.append("Nothing could be estimated from this run (no usable water readings).")
+    faults = _number(diag.get("estimator_faults"))
+    if faults:
+        reasons.append(f"The filter failed {faults:.0f} time(s) in this run and started "
+                       "afresh, so what it had learnt before was lost.")  # fmt: skip
     n = _number(diag.get("water_readings"))
     if n is not None and n < VERDICT_MIN_WATER_READINGS:
         reasons.append(f"Only {n:.0f} usable water readings; at least "

@@ -78,6 +78,8 @@ in the tests.
 
 from __future__ import annotations
 
+import dataclasses
+import logging
 import math
 import time
 from collections import deque
@@ -88,6 +90,7 @@ from typing import Any
 import numpy as np
 
 from drivers.errors import ConfigError
+from drivers.sample import ReadingLimits
 from monitor import batchfit, kernels, transition, water
 from monitor.contracts import (
     Estimate,
@@ -97,6 +100,10 @@ from monitor.contracts import (
     Phase,
     TargetForecast,
 )
+
+_log = logging.getLogger("ebullio.estimator")
+#: Channels whose missing readings the filter watches (a NaN is passed on for them).
+_WATCHED = frozenset(("water", "element"))
 
 #: χ² with one degree of freedom at 99.9 % (REFERENCE.md §7.4: 10.8276).
 NIS_GATE_999 = 10.8276
@@ -232,6 +239,7 @@ class VesselConfig:
     vessel_heat_capacity_j_per_k: float = 0.0  # everything not water that follows it
     element_heat_capacity_j_per_k: float | None = None
     rated_power_w: float | None = None
+    max_power_w: float | None = None  # above it a power reading is no reading
     nominal_volume_l: float | None = None
     target_c: float | None = None
     pressure_kpa: float = 101.325
@@ -275,6 +283,7 @@ class VesselConfig:
             vessel_heat_capacity_j_per_k=vessel_c,
             element_heat_capacity_j_per_k=number("element_heat_capacity_j_per_k"),
             rated_power_w=number("rated_power_w"),
+            max_power_w=number("max_power_w"),
             nominal_volume_l=number("nominal_volume_l"),
             target_c=number("target_c"),
             pressure_kpa=pressure,
@@ -703,6 +712,11 @@ class VesselEstimator:
         self.latent_heat_j_per_kg = water.latent_heat_j_per_kg(config.pressure_kpa)
         self.target_c = config.target_c if config.target_c is not None else self.boiling_point_c
         self._core_type = core
+        #: (time s, reason) of each failure inside the filter this run (see :meth:`step`)
+        self.faults: list[tuple[float, str]] = []
+        self._limits = ReadingLimits.from_metadata(
+            {"rated_power_w": config.rated_power_w, "max_power_w": config.max_power_w}
+        )
         self.core: FastCore | FilterpyCore | None = None
         self.t_s: float | None = None
         self.totals = RunTotals()
@@ -991,7 +1005,64 @@ class VesselEstimator:
 
         Returns None until the first water reading has initialised the filter.
         Raises ValueError if time does not move forward.
+
+        A reading no instrument could give (not finite, a temperature at or below
+        absolute zero, a power far above the vessel's; :class:`drivers.sample.ReadingLimits`)
+        counts as a known-missing one (NaN). A failure inside the filter never leaves
+        it: the traceback is logged (in full the first time), the estimator starts
+        afresh from the next reading (:meth:`_restart_after`), this step returns None
+        and every later estimate of the run carries an ``estimator_fault`` warning.
         """
+        if self.core is not None and not t_s > self.t_s:
+            raise ValueError(f"time went from {self.t_s} to {t_s} s: not forward")
+        limits = self._limits
+        if any(v != v or limits.problem(k, v) is not None for k, v in readings.items()):
+            # a thermocouple's bad reading becomes NaN (the filter watches that sensor
+            # and predicts across); any other channel's is simply left out
+            clean: dict[str, float] = {}
+            for k, v in readings.items():
+                if v == v and limits.problem(k, v) is None:
+                    clean[k] = v
+                elif k in _WATCHED:
+                    clean[k] = math.nan
+            readings = clean
+        try:
+            estimate = self._step(t_s, readings)
+        except Exception as exc:  # one vessel's failure stays with that vessel
+            self._restart_after(t_s, exc)
+            return None
+        if estimate is not None and self.faults:
+            estimate = dataclasses.replace(estimate, flags=(*estimate.flags, self._fault_flag()))
+        return estimate
+
+    def _restart_after(self, t_s: float, exc: Exception) -> None:
+        """Start afresh after a failure at ``t_s``: the same config, settings and budget."""
+        faults = [*self.faults, (t_s, f"{type(exc).__name__}: {exc}")]
+        if len(faults) == 1:
+            _log.exception("vessel %s: the filter failed at %.1f s; it starts afresh",
+                           self.config.vessel, t_s)  # fmt: skip
+        else:
+            _log.warning("vessel %s: the filter failed again at %.1f s (%s); it starts afresh",
+                         self.config.vessel, t_s, faults[-1][1])  # fmt: skip
+        self.__init__(self.config, self.settings, self._core_type, self.fit_budget)  # type: ignore[misc]
+        self.faults = faults
+        flag = self._fault_flag()
+        self.totals.flags_raised[flag.name] = flag
+
+    def _fault_flag(self) -> Flag:
+        """The ``estimator_fault`` warning of a run whose filter had to start afresh."""
+        t_s, reason = self.faults[0]
+        more = f" ({len(self.faults)} times in all)" if len(self.faults) > 1 else ""
+        return Flag(
+            "estimator_fault",
+            Level.WARNING,
+            f"The filter failed at {t_s:.0f} s ({reason}){more} and started afresh: the "
+            "figures since then come from the restarted filter and what it learnt "
+            "before is lost. The readings were all recorded.",
+            {"faults": float(len(self.faults)), "first_at_s": t_s},
+        )
+
+    def _step(self, t_s: float, readings: Mapping[str, float]) -> Estimate | None:
         flags: list[Flag] = []
         ambient = readings.get("ambient")
         if ambient is not None:

@@ -392,7 +392,8 @@ def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
     ``water_readings``: plausible water readings offered; ``rejected_fraction`` and
     ``downweighted_fraction``: of those, set aside or given less weight;
     ``nis_mean``: the mean NIS of the water readings (about 1 when the filter's
-    stated uncertainty is right); ``fit``: the heat-up's last batch fit (how many
+    stated uncertainty is right); ``estimator_faults``: how often the filter failed
+    and started afresh (:meth:`monitor.estimator.VesselEstimator.step`); ``fit``: the heat-up's last batch fit (how many
     fits, whether it converged, its residual RMS in K, the share of readings it
     down-weighted, its variance inflation s²·f, and the element capacity and water
     sensor lag it found), or None when no heat-up was fitted.
@@ -401,6 +402,7 @@ def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
     n = tot.water_readings
     fit = est.heat_up_fit.fit if est.heat_up_fit is not None else None
     return {
+        "estimator_faults": len(est.faults),
         "water_readings": n,
         "rejected_fraction": tot.rejected_readings / n if n else None,
         "downweighted_fraction": tot.downweighted_readings / n if n else None,

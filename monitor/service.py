@@ -25,6 +25,11 @@ Shape (all in one asyncio loop, except the recorder's SQLite writes)::
   to the recorder thread, feeds each vessel's :class:`~monitor.live.InstantAssembler`
   and, when the queue is empty, closes the open instants and steps the filters.
   Samples of vessels the configuration does not know are quarantined with that reason.
+  A value no instrument could give (not finite, a temperature at or below absolute
+  zero, a power far above the vessel's; :class:`drivers.sample.ReadingLimits`) is
+  recorded as a ``fault`` sample (NaN), its value kept in the quarantine with the
+  reason, and never given to the filter. A failure inside one vessel's filter stays
+  with that vessel (:meth:`monitor.estimator.VesselEstimator.step`).
 * **Recorder thread.** Owns the SQLite connection. It commits one block every
   ``[recorder] commit_interval_s`` (default 1 s), so a crash loses at most that window;
   what was committed stays (WAL, see :mod:`monitor.recorder`).
@@ -42,6 +47,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import math
 import os
 import queue
 import random
@@ -54,7 +60,7 @@ from urllib.parse import urlsplit, urlunsplit
 
 from drivers.channels import Quarantined
 from drivers.errors import DriverError, EbullioError
-from drivers.sample import Sample
+from drivers.sample import Quality, ReadingLimits, Sample
 from monitor import __version__
 from monitor.batchfit import FitBudget, warm_up
 from monitor.config import Instrument, RigConfig, driver_settings
@@ -278,6 +284,8 @@ class Service:
             v.id: LiveVessel(v.id, v.metadata, v.has_element_sensor, fit_budget=self.fit_budget)
             for v in config.vessels
         }
+        #: what each vessel's readings may physically be (drivers.sample.ReadingLimits)
+        self.limits = {v.id: ReadingLimits.from_metadata(v.metadata) for v in config.vessels}
         self.sources: dict[str, DriverFactory] = {
             public_url(i.url): instrument_factory(i, clock) for i in config.instruments
         }
@@ -347,6 +355,14 @@ class Service:
                     )
                 )
                 continue
+            if item.quality != Quality.FAULT:
+                problem = self.limits[item.vessel].problem(item.channel, item.value)
+                if problem is not None:  # kept as it came, and never given to the filter
+                    where = f"vessel {item.vessel!r} channel {item.channel!r}"
+                    raw = repr(item.value).encode()
+                    quarantined.append(Quarantined(item.t, item.source, where, problem, raw))
+                    item = Sample(item.t, item.vessel, item.channel, math.nan, Quality.FAULT,
+                                  item.source)  # fmt: skip
             samples.append(item)
             touched[item.vessel] = vessel
             for step in vessel.assembler.feed(item, 0):

@@ -65,10 +65,14 @@ def test_plain_readings_are_scaled_and_absent_fields_give_nothing() -> None:
 @pytest.mark.parametrize(
     ("fields", "needle"),
     [
-        ({"ch1": "abc", "cj": "20"}, "not a number"),
-        ({"ch1": "nan", "cj": "20"}, "not a finite number"),
+        ({"ch1": "abc", "cj": "20"}, "not a plain decimal number"),
+        ({"ch1": "nan", "cj": "20"}, "not a plain decimal number"),
         ({"ch1": "1.0"}, "cold-junction field 'cj' is missing"),
-        ({"ch1": "1.0", "cj": "inf"}, "not a finite number"),
+        ({"ch1": "1.0", "cj": "inf"}, "not a plain decimal number"),
+        # Python's float() takes these; an instrument's line never means them
+        ({"ch1": "1_000", "cj": "20"}, "not a plain decimal number"),
+        ({"ch1": "1E1_0", "cj": "20"}, "not a plain decimal number"),
+        ({"ch1": "\u0661\u0662", "cj": "20"}, "not a plain decimal number"),
     ],
 )
 def test_unusable_fields_are_reported_for_quarantine(fields: dict, needle: str) -> None:
@@ -106,3 +110,31 @@ def test_parse_number_refuses_what_is_not_a_finite_number(text: object) -> None:
 def test_parse_number_accepts_numbers_and_padded_text() -> None:
     assert parse_number(" 12.5 ") == 12.5
     assert parse_number(3) == 3.0
+
+
+def test_reading_limits_know_what_no_instrument_could_give() -> None:
+    from drivers.sample import ReadingLimits
+
+    limits = ReadingLimits.from_metadata({"rated_power_w": 2000})
+    assert limits.max_power_w == 8000.0  # 4x the rating by default
+    for channel, value, needle in [
+        ("power", 1e200, "above the vessel's 8000 W"),
+        ("power", -1e12, "below -160 W"),
+        ("water", 1e308, "above any thermocouple's range"),
+        ("water", -300.0, "absolute zero"),
+        ("ambient", float("nan"), "not a finite number"),
+        ("energy", -5.0, "outside 0 to"),
+    ]:
+        problem = limits.problem(channel, value)
+        assert problem is not None, (channel, value)
+        assert needle in problem, (channel, value, problem)
+    for channel, value in [("power", 2500.0), ("power", -20.0), ("water", 99.9),
+                           ("element", 650.0), ("ambient", -30.0), ("energy", 12.5)]:  # fmt: skip
+        assert limits.problem(channel, value) is None, (channel, value)
+    assert (
+        ReadingLimits.from_metadata({"rated_power_w": 2000, "max_power_w": 20000}).problem(
+            "power", 15000.0
+        )
+        is None
+    )
+    assert ReadingLimits.from_metadata({}).max_power_w == 1.0e6

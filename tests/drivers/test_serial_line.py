@@ -268,7 +268,7 @@ def test_corrupt_lines_are_quarantined_and_the_stream_goes_on(pty: Pty) -> None:
     quarantined = [q for q in got if isinstance(q, Quarantined)]
     reasons = [q.reason for q in quarantined]
     expected_reasons = [
-        "field 'water_mv': 'abc' is not a number",
+        "field 'water_mv': 'abc' is not a plain decimal number",
         "not valid UTF-8 at byte 0",
         "token 1 'LOGGER' has no '='",
         "key 't' appears more than once",

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import replace
 
 import numpy as np
@@ -629,3 +630,52 @@ def test_ua_in_cooling_counts_the_element_path_to_the_room(offset_c):
     assert share is not None
     path = share.value * last.element_conductance_w_per_k.value
     assert path == pytest.approx(path_true, rel=0.25)
+
+
+def test_a_failure_inside_the_filter_restarts_it_and_says_so(monkeypatch) -> None:
+    """Issue 14: an exception inside one vessel's filter stays there; the filter starts
+    afresh, the step gives no estimate, and the rest of the run carries the flag."""
+    from monitor.estimator import VesselConfig, VesselEstimator
+
+    meta = {"vessel_heat_capacity_j_per_k": 700, "rated_power_w": 2000}
+    est = VesselEstimator(VesselConfig.from_metadata("k", meta, False))
+    original = VesselEstimator._step
+
+    def failing(self, t_s, readings):
+        if t_s == 60.0:
+            raise FloatingPointError("injected for the test")
+        return original(self, t_s, readings)
+
+    monkeypatch.setattr(VesselEstimator, "_step", failing)
+    got = {}
+    for k in range(120):
+        # a made-up heat-up of our own: 0.1 K/s at 2 kW after 20 s
+        readings = {"water": 15.0 + 0.1 * max(k - 20, 0), "power": 2000.0 * (k > 20),
+                    "ambient": 20.0}  # fmt: skip
+        got[k] = est.step(float(k), readings)
+    assert got[60] is None
+    assert all(got[k] is not None for k in range(61, 120))
+    assert "estimator_fault" not in {f.name for f in got[59].flags}
+    flag = next(f for f in got[119].flags if f.name == "estimator_fault")
+    assert "injected for the test" in flag.message
+    assert est.faults == [(60.0, "FloatingPointError: injected for the test")]
+    assert "estimator_fault" in est.totals.flags_raised
+    assert abs(got[119].water_c - (15.0 + 0.1 * 99)) < 0.5  # tracking again
+    with pytest.raises(ValueError, match="not forward"):  # the caller's error still raises
+        est.step(119.0, {"water": 25.0})
+
+
+def test_readings_no_instrument_could_give_are_left_out() -> None:
+    from monitor.estimator import VesselConfig, VesselEstimator
+
+    meta = {"vessel_heat_capacity_j_per_k": 700, "rated_power_w": 2000}
+    est = VesselEstimator(VesselConfig.from_metadata("k", meta, False))
+    bad = {50: {"power": 1e200}, 60: {"water": 1e308}, 70: {"water": -300.0},
+           80: {"power": -1e12}, 90: {"ambient": math.nan}, 95: {"energy": math.inf}}  # fmt: skip
+    for k in range(150):
+        readings = {"water": 15.0 + 0.1 * max(k - 20, 0), "power": 2000.0 * (k > 20),
+                    "ambient": 20.0} | bad.get(k, {})  # fmt: skip
+        e = est.step(float(k), readings)
+    assert est.faults == []  # none of them reached the filter's arithmetic
+    assert abs(e.water_c - (15.0 + 0.1 * 129)) < 0.5
+    assert abs(e.power_w - 2000.0) < 1.0

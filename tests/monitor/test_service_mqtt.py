@@ -214,3 +214,61 @@ def test_ebullio_run_refuses_a_bad_configuration_before_starting(tmp_path) -> No
     assert "rig.toml: vessels[0].vessel_heat_capacity_j_per_k: is required" in proc.stderr
     assert "Traceback" not in proc.stderr
     assert not (tmp_path / "x.sqlite").exists()
+
+
+def test_an_impossible_reading_is_set_aside_and_every_vessel_goes_on(mosquitto, tmp_path) -> None:
+    """Issue 14: one reading of power_w = 1e200 used to stop the whole service. Now it
+    is recorded as a fault with its value kept in the quarantine, and both vessels keep
+    estimating after it."""
+    import time
+
+    t0 = time.time() - 120.0
+    second = ["[[vessels]]", 'id = "urn-2"', "vessel_heat_capacity_j_per_k = 900"]
+    toml = rig_toml(mosquitto.url) + "\n".join([*second, "rated_power_w = 2000", ""])
+    config = parse_config(toml, "rig.toml", {})
+    log = tmp_path / "bad.sqlite"
+
+    def bad(i: int, **values: float) -> bytes:
+        good = json.loads(reading(i, t0))
+        return json.dumps(good | values).encode()
+
+    async def scenario():
+        estimates: list[dict] = []
+        service = Service(config, str(log), on_estimate=estimates.append)
+        task = asyncio.create_task(service.run())
+        await service.started.wait()
+        await asyncio.sleep(0.3)
+        payloads = []
+        for i in range(40):
+            for vessel in ("urn-1", "urn-2"):
+                payload = reading(i, t0)
+                if vessel == "urn-1" and i == 15:
+                    payload = bad(i, power_w=1e200)
+                if vessel == "urn-1" and i == 20:
+                    payload = bad(i, water_c=1e308, power_w=-1e12)
+                if vessel == "urn-1" and i == 25:
+                    payload = bad(i, water_c=-300.0)
+                payloads.append((f"lab/{vessel}/reading", payload))
+        await publish(mosquitto.url, payloads)
+        await wait_for(lambda: service.stats.samples >= 240)
+        await wait_for(lambda: {e["t"] for e in estimates if e["vessel"] == "urn-1"} >= {t0 + 39})
+        service.stop()
+        return await task, estimates
+
+    stats, estimates = asyncio.run(scenario())
+    assert stats.samples == 240
+    for vessel in ("urn-1", "urn-2"):
+        after = [e for e in estimates if e["vessel"] == vessel and e["t"] > t0 + 25]
+        assert len(after) == 14, vessel  # every step after the bad ones was estimated
+        assert all(e["water_c"] is not None and 20.0 < e["water_c"] < 40.0 for e in after)
+    faults = [s for s in read_samples(log) if s.quality == "fault"]
+    assert sorted((round(s.t - t0), s.channel) for s in faults) == [
+        (15, "power"),
+        (20, "power"),
+        (20, "water"),
+        (25, "water"),
+    ]
+    kept = {q["reason"]: bytes(q["raw"]) for q in read_quarantine(log)}
+    assert any("1e+200" in raw.decode() and "power" in reason for reason, raw in kept.items())
+    assert any("absolute zero" in reason for reason in kept)
+    assert verify(log)["ok"]
