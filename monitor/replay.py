@@ -393,10 +393,11 @@ def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
     ``downweighted_fraction``: of those, set aside or given less weight;
     ``nis_mean``: the mean NIS of the water readings (about 1 when the filter's
     stated uncertainty is right); ``estimator_faults``: how often the filter failed
-    and started afresh (:meth:`monitor.estimator.VesselEstimator.step`); ``fit``: the heat-up's last batch fit (how many
-    fits, whether it converged, its residual RMS in K, the share of readings it
-    down-weighted, its variance inflation s²·f, and the element capacity and water
-    sensor lag it found), or None when no heat-up was fitted.
+    and started afresh (:meth:`monitor.estimator.VesselEstimator.step`); ``fit``: the
+    heat-up's last batch fit (how many fits, whether it converged, its residual RMS
+    in K, the share of readings it down-weighted, its variance inflation s²·f, and
+    the element capacity and water sensor lag it found), or None when no heat-up was
+    fitted.
     """
     tot = est.totals
     n = tot.water_readings
