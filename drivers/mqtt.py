@@ -13,11 +13,12 @@ or password given as an option wins over the URL's. The URL has no path and no
 query: the options are keyword arguments. The ``source`` of every sample is the URL
 without its credentials, and no password is ever logged or put into a message.
 
-Delivery: QoS 1 both ways. With a ``client_id`` the driver keeps a persistent
-session (MQTT 5 needs ``clean_start`` off *and* a session expiry interval, see
-shared/NOTES.md), so messages published while it was away are delivered when a new
-driver with the same ``client_id`` connects, for up to ``session_expiry_s``. The
-broker must be allowed to queue them: Mosquitto's default ``max_queued_messages``
+Delivery: readings and flags at QoS 1; estimates at QoS 0 (:data:`ESTIMATE_QOS`).
+With a ``client_id`` the driver keeps a persistent session (MQTT 5 needs
+``clean_start`` off *and* a session expiry interval, see shared/NOTES.md), so
+messages published while it was away are delivered when a new driver with the same
+``client_id`` connects, for up to ``session_expiry_s``. The broker must be allowed
+to queue them: Mosquitto's default ``max_queued_messages``
 of 1000 drops QoS 1 messages beyond that for a slow or absent subscriber without a
 word; set it to 0 (no limit) or a large figure. Messages the client has already
 acknowledged but not yet handed on are lost if the process dies.
@@ -57,6 +58,12 @@ _client_logger = logging.getLogger(__name__ + ".client")
 DEFAULT_PORTS = {"mqtt": 1883, "mqtts": 8883}
 #: QoS of every subscription and publication.
 QOS = 1
+#: QoS of the estimates: 0. An estimate is retained and superseded within a second or
+#: so, and every one is in the log, so a lost copy costs nothing; at 1,000 vessels the
+#: PUBACK of each was a measurable share of the service's core (bench_ingest.py; the
+#: 2026-12-02 note measured 750 → 850 estimates a second at QoS 0). Flags, rare and
+#: acted on, stay at QoS 1.
+ESTIMATE_QOS = 0
 #: In-flight calls before aiomqtt warns; its default of 10 warns on every burst.
 PENDING_CALLS_THRESHOLD = 10_000
 #: Largest session expiry MQTT 5 can express (s); 0xFFFFFFFF means "never expires".
@@ -392,7 +399,7 @@ def encode_json(value: object) -> bytes:
 
 
 class MqttPublisher:
-    """Publishes estimates and flags, retained at QoS 1, for boards and other systems.
+    """Publishes estimates (QoS 0) and flags (QoS 1), retained, for boards and other systems.
 
     ``async with MqttPublisher(url) as pub: await pub.publish_estimate("k1", {...})``.
     Topics: ``<prefix>/<vessel>/estimate`` (a JSON object) and ``<prefix>/<vessel>/flags``
@@ -461,22 +468,22 @@ class MqttPublisher:
         client, self._client = self._client, None
         await _disconnect(client, self.source)
 
-    async def _publish(self, vessel: str, leaf: str, value: object) -> None:
+    async def _publish(self, vessel: str, leaf: str, value: object, qos: int = QOS) -> None:
         client = self._client
         if client is None:
             raise DriverError(f"{self.source}: use the publisher inside 'async with'")
         topic = f"{self.prefix}/{_check_vessel(vessel)}/{leaf}"
         payload = encode_json(value)
         try:
-            await client.publish(topic, payload, qos=QOS, retain=True)
+            await client.publish(topic, payload, qos=qos, retain=True)
         except aiomqtt.MqttError as exc:
             raise DriverError(f"{self.source}: cannot publish on {topic}: {exc}") from exc
 
     async def publish_estimate(self, vessel: str, payload: Mapping[str, object]) -> None:
-        """Publish one vessel's estimate (JSON object) retained at QoS 1; returns on PUBACK."""
+        """Publish one vessel's estimate (JSON object) retained at :data:`ESTIMATE_QOS` (0)."""
         if not isinstance(payload, Mapping):
             raise TypeError("an estimate is a mapping of names to values")
-        await self._publish(vessel, "estimate", payload)
+        await self._publish(vessel, "estimate", payload, ESTIMATE_QOS)
 
     async def publish_flags(self, vessel: str, flags: Sequence[Mapping[str, object]]) -> None:
         """Publish one vessel's current flags (JSON list) retained at QoS 1; returns on PUBACK."""

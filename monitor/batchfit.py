@@ -470,7 +470,8 @@ class FitBudget:
     spread out instead of the readings queueing (the filter runs on every reading
     either way). Replay has no budget: its figures are those of every fit made when
     due, the same on every machine; the live figures equal them whenever the budget
-    never ran dry (``deferred`` stays 0).
+    never ran dry (``deferred`` stays 0). The live service moves ``cpu_share`` with the
+    load (:meth:`retune`).
     """
 
     cpu_share: float = 0.2
@@ -493,6 +494,19 @@ class FitBudget:
             return True
         self.deferred += 1
         return False
+
+    def retune(
+        self, busy_share: float, aim: float = 0.8, lowest: float = 0.03, highest: float = 0.5
+    ) -> float:
+        """Give the fits what the rest of the work leaves of the core; return the share.
+
+        ``busy_share`` is the share of the core the service's thread spent on everything
+        but the fits lately. The fits get ``aim`` less that, kept within
+        [``lowest``, ``highest``]: a small fleet's fits are all made when due, a
+        large fleet's readings keep their time and the fits wait.
+        """
+        self.cpu_share = min(max(aim - busy_share, lowest), highest)
+        return self.cpu_share
 
     def charge(self, cpu_s: float) -> None:
         """Take a fit's CPU seconds out of the bucket (it may go below zero, by one

@@ -69,12 +69,15 @@ from monitor.recorder import Recorder, estimate_record
 
 log = logging.getLogger("ebullio.service")
 
-#: The share of one core the vessels' heat-up fits may take between them
+#: The share of one core the vessels' heat-up fits may take between them at the start
 #: (:class:`monitor.batchfit.FitBudget`). When many vessels heat up at once their
 #: fits wait their turn rather than the readings: bench_ingest.py's 1,000 kettles
-#: all heating fell 40 % behind the readings without it (2026-12-05). Judgement:
-#: what the filter, MQTT and the recorder leave of a core at 1,000 vessels.
+#: all heating fell 40 % behind the readings without it (2026-12-05). Every
+#: ``FIT_RETUNE_S`` the share then follows the slack (``FitBudget.retune``): what the
+#: service's thread spent on everything else over that time, taken from 0.8 of the
+#: core (judgement: room for the recorder thread's hold on the interpreter lock).
 FIT_CPU_SHARE = 0.15
+FIT_RETUNE_S = 2.0
 
 #: A driver factory: called for every (re)connection, returns an unentered driver.
 DriverFactory = Callable[[], Any]
@@ -427,6 +430,21 @@ class Service:
                     break
             self._take(items)
 
+    async def _retune_fits(self) -> None:
+        """Every ``FIT_RETUNE_S``, give the fits what the rest of the work left of the core.
+
+        Runs in the loop's thread, so ``time.thread_time`` is that thread's CPU: the
+        consumer, the filters, the MQTT clients and the fits themselves (taken out).
+        """
+        budget = self.fit_budget
+        cpu, wall, spent = time.thread_time(), time.monotonic(), budget.spent_s
+        while True:
+            await asyncio.sleep(FIT_RETUNE_S)
+            cpu_now, wall_now, spent_now = time.thread_time(), time.monotonic(), budget.spent_s
+            if wall_now > wall:
+                budget.retune(((cpu_now - cpu) - (spent_now - spent)) / (wall_now - wall))
+            cpu, wall, spent = cpu_now, wall_now, spent_now
+
     async def _publish(self) -> None:
         mqtt = self.config.mqtt
         if mqtt is None or not mqtt.publish:
@@ -449,7 +467,7 @@ class Service:
                         estimates, self._to_publish = self._to_publish, {}
                         flags, self._flags_to_publish = self._flags_to_publish, {}
                         try:
-                            # all at once: each publish waits for its own PUBACK
+                            # all at once: each flags publish waits for its own PUBACK
                             await asyncio.gather(
                                 *(pub.publish_estimate(v, r) for v, r in estimates.items()),
                                 *(pub.publish_flags(v, f) for v, f in flags.items()),
@@ -492,13 +510,17 @@ class Service:
                     for name, factory in self.sources.items()
                 ]
                 consumer = group.create_task(self._consume(), name="consumer")
+                retuner = group.create_task(self._retune_fits(), name="fit budget")
                 publisher = group.create_task(self._publish(), name="publisher")
                 self.started.set()
                 await self._stop.wait()
                 await _cancel_all(sources)
                 consumer.cancel()
+                retuner.cancel()
                 with contextlib.suppress(asyncio.CancelledError):
                     await consumer
+                with contextlib.suppress(asyncio.CancelledError):
+                    await retuner
                 leftovers: list[Sample | Quarantined] = []
                 while not self._queue.empty():
                     leftovers.append(self._queue.get_nowait())

@@ -359,6 +359,25 @@ def test_fit_budget_fills_at_its_share_and_charges_each_fit():
     assert budget.spent_s == pytest.approx(2.6)
 
 
+def test_fit_budget_gives_the_fits_what_the_rest_leaves():
+    # our own numbers: aim 0.8 of the core, the share kept within 0.03-0.5
+    budget = bf.FitBudget(cpu_share=0.15)
+    assert budget.retune(0.10) == pytest.approx(0.5)  # a small fleet: the ceiling
+    assert budget.retune(0.60) == pytest.approx(0.2)
+    assert budget.retune(0.79) == pytest.approx(0.03)  # saturated: the floor
+    assert budget.cpu_share == pytest.approx(0.03)
+    now = [0.0]
+    budget = bf.FitBudget(cpu_share=0.15, burst_s=0.5, clock=lambda: now[0])
+    budget.allow()
+    budget.charge(0.5)
+    budget.retune(0.75)  # 0.05 a second: 1 s refills 0.05 s
+    now[0] = 1.0
+    assert budget.allow()
+    budget.charge(0.1)
+    now[0] = 1.5
+    assert not budget.allow()  # -0.05 + 0.025
+
+
 def test_a_dry_budget_defers_the_fits_and_a_refilled_one_catches_up():
     # our kettle scenario: with a budget that never refills no fit is made, the vessel
     # goes on with the filter alone; once the budget refills the due fit is made at
