@@ -31,6 +31,7 @@ file, line and reason under ``quarantined``, and counted per run.
 from __future__ import annotations
 
 import csv
+import logging
 import math
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
@@ -50,6 +51,8 @@ REFILL_WINDOW_S = 30.0
 #: Room temperature of the standing-loss figure, °C (common storage-heater test practice,
 #: from memory; see shared/reference/REFERENCE.md §6).
 STANDING_LOSS_ROOM_C = 20.0
+
+_log = logging.getLogger("ebullio.replay")
 
 ESTIMATE_COLUMNS = [
     "time_s", "vessel", "run", "phase", "water_c", "water_mass_kg", "water_mass_std",
@@ -280,6 +283,39 @@ def replay_run(
     return _summary(run, est, last, at_heat_up, start_c)
 
 
+#: A summary's figures when there are none (nothing estimated, or the replay failed).
+_NO_FIGURES: dict[str, object] = {
+    "water_mass_kg": None, "heat_capacity_j_per_k": None, "ua_w_per_k": None,
+    "element_conductance_w_per_k": None, "standing_loss_kwh_per_24h": None,
+    "standing_loss_at_c": None, "heat_up_s": None, "energy_wh": None, "efficiency": None,
+}  # fmt: skip
+
+
+def _replay_isolated(
+    run: Run,
+    settings: EstimatorSettings | None,
+    on_estimate: Callable[[Run, Estimate], None] | None,
+) -> dict[str, object]:
+    """Return :func:`replay_run`'s summary, or, when replaying this run fails outside
+    the filter (which guards itself), a summary that says so: one bad run does not
+    end the replay of the others. The traceback goes to the log once per run."""
+    try:
+        return replay_run(run, settings, on_estimate=on_estimate)
+    except Exception as exc:  # one run's failure must not end the others' replay
+        _log.exception("replay of vessel %s run %s failed", run.vessel, run.label)
+        reason = f"{type(exc).__name__}: {exc}"
+        return _NO_FIGURES | {
+            "vessel": run.vessel, "run": run.label, "file": run.log.path,
+            "start_s": run.rows[0].time_s if run.rows else None,
+            "end_s": run.rows[-1].time_s if run.rows else None,
+            "steps": len(run.rows), "quarantined_rows": run.quarantined,
+            "flags": [{"name": "replay_failed", "level": str(Level.WARNING),
+                       "message": f"This run could not be replayed ({reason}); its readings "
+                       "are in the log as recorded."}],
+            "verdict": {"status": "doubtful", "reasons": [f"The replay failed: {reason}."]},
+        }  # fmt: skip
+
+
 def _summary(
     run: Run,
     est: VesselEstimator,
@@ -304,11 +340,8 @@ def _summary(
         "water_sensor_tau_s": cfg.water_sensor_tau_s,
     }
     if last is None:
-        return base | {
-            "water_mass_kg": None, "heat_capacity_j_per_k": None, "ua_w_per_k": None,
-            "element_conductance_w_per_k": None, "standing_loss_kwh_per_24h": None,
-            "standing_loss_at_c": None, "heat_up_s": None, "energy_wh": tot.energy_j / 3600.0,
-            "efficiency": None,
+        return base | _NO_FIGURES | {
+            "energy_wh": tot.energy_j / 3600.0,
             "flags": [{"name": "no_water_reading", "level": str(Level.WARNING),
                        "message": "The run has no usable water temperature, so nothing "
                        "could be estimated."}],
@@ -476,7 +509,7 @@ def replay(
                   file=progress, flush=True)  # fmt: skip
             next_report += total // 10
 
-    results = [replay_run(run, settings, on_estimate=on_estimate) for run in runs]
+    results = [_replay_isolated(run, settings, on_estimate) for run in runs]
     from monitor.drift import drift_over_runs  # here: monitor.drift reads these summaries
 
     metadata = {run.vessel: run.log.metadata for run in runs}

@@ -314,6 +314,7 @@ class Service:
         self._flag_rows: list[dict[str, object]] = []
         self._flags_sent: dict[str, tuple[str, ...]] = {}
         self._publish_ready = asyncio.Event()
+        self._faulted: set[str] = set()  # vessels whose failure has been logged in full
         self.started = asyncio.Event()
 
     def stop(self) -> None:
@@ -368,11 +369,11 @@ class Service:
                                   item.source)  # fmt: skip
             samples.append(item)
             touched[item.vessel] = vessel
-            for step in vessel.assembler.feed(item, 0):
-                self._step(vessel, step)
+            self._isolated(
+                vessel, item.t, lambda v=vessel, i=item: self._steps(v, v.assembler.feed(i, 0))
+            )
         for vessel in touched.values():  # only these can have an open instant
-            for step in vessel.assembler.flush():
-                self._step(vessel, step)
+            self._isolated(vessel, None, lambda v=vessel: self._steps(v, v.assembler.flush()))
         self.stats.samples += len(samples)
         self.stats.quarantined += len(quarantined)
         assert self._recorder is not None
@@ -381,6 +382,31 @@ class Service:
         if quarantined:
             self._recorder.put("quarantined", quarantined)
         self._flush_to_recorder()
+
+    def _steps(self, vessel: LiveVessel, steps: list[Any]) -> None:
+        for step in steps:
+            self._step(vessel, step)
+
+    def _isolated(self, vessel: LiveVessel, t: float | None, work: Callable[[], None]) -> None:
+        """Run one vessel's ``work``; a failure stays with that vessel and is recorded.
+
+        The estimator guards its own filter (``VesselEstimator.step``); this catches
+        the rest of a vessel's code (assembling instants, splitting runs, summaries and
+        drift). The traceback is logged once per vessel, every failure is recorded as a
+        ``vessel_fault`` event, and the other vessels go on. The readings themselves
+        are recorded before any of this runs.
+        """
+        try:
+            work()
+        except Exception as exc:  # one vessel's failure must not stop the others
+            first = vessel.vessel not in self._faulted
+            self._faulted.add(vessel.vessel)
+            if first:
+                log.exception("vessel %s: its processing failed; it goes on", vessel.vessel)
+            else:
+                log.warning("vessel %s: its processing failed again: %s", vessel.vessel, exc)
+            when = t if t is not None else self.clock()
+            self._event(when, "vessel_fault", vessel.vessel, f"{type(exc).__name__}: {exc}")
 
     def _flush_to_recorder(self) -> None:
         """Hand the estimates and flags gathered so far to the recorder thread."""
@@ -526,8 +552,9 @@ class Service:
                     leftovers.append(self._queue.get_nowait())
                 self._take(leftovers)
                 for vessel in self.vessels.values():  # as a replay ends: nothing left waiting
-                    for step in vessel.assembler.finish():
-                        self._step(vessel, step)
+                    self._isolated(
+                        vessel, None, lambda v=vessel: self._steps(v, v.assembler.finish())
+                    )
                 self._flush_to_recorder()
                 self._record_runs()
                 await self._flush_publish(publisher)
@@ -541,11 +568,15 @@ class Service:
     def _record_runs(self) -> None:
         """Record the run each vessel is in as the service stops (ended runs are in already)."""
         assert self._recorder is not None
-        rows = []
-        for vessel in self.vessels.values():
+        rows: list[dict[str, object]] = []
+
+        def end(vessel: LiveVessel) -> None:
             summary = vessel.end_run()
             if summary is not None:
                 rows.append(_run_row(summary | {"ended_by": "stop"}))
+
+        for vessel in self.vessels.values():
+            self._isolated(vessel, None, lambda v=vessel: end(v))
         if rows:
             self._recorder.put("runs", rows)
 

@@ -189,3 +189,28 @@ def test_missing_file_is_a_clear_error(tmp_path):
 
 def test_replay_function_returns_the_same_as_the_cli(capsys):
     assert replay([KETTLE])["runs"] == _json([KETTLE], capsys)["runs"]
+
+
+def test_one_run_that_cannot_be_replayed_leaves_the_others(monkeypatch, capsys):
+    """Issue 14: a failure replaying one run (outside the filter, which guards itself)
+    is that run's summary, and the other runs and the terminal table still come."""
+    import monitor.replay as rp
+
+    original = rp.replay_run
+
+    def failing(run, *args, **kwargs):
+        if run.label == "2":
+            raise RuntimeError("injected for the test")
+        return original(run, *args, **kwargs)
+
+    monkeypatch.setattr(rp, "replay_run", failing)
+    result = _json([KETTLE, KETTLE, str(LOGS / "water-heater-12h.csv")], capsys)
+    runs = {(r["vessel"], r["run"]): r for r in result["runs"]}
+    assert len(runs) == 3
+    bad = runs[("kettle-1", "2")]
+    assert [f["name"] for f in bad["flags"]] == ["replay_failed"]
+    assert bad["verdict"]["status"] == "doubtful"
+    assert runs[("kettle-1", "1")]["water_mass_kg"] is not None
+    assert runs[("heater-1", "1")]["standing_loss_kwh_per_24h"] is not None
+    assert main(["replay", KETTLE, KETTLE]) == 0  # the text table too
+    assert "replay_failed" in capsys.readouterr().out

@@ -242,3 +242,41 @@ def test_each_run_is_recorded_as_it_ends_with_drift_against_the_earlier_runs(tmp
     assert last["run"] == "7"
     assert "scaling" in [f["name"] for f in last["summary"]["drift"]]
     assert last["summary"]["drift"][0]["evidence"]["scaling_index"] > 0.15
+
+
+def test_a_failure_in_one_vessels_processing_leaves_the_others_going(tmp_path, monkeypatch) -> None:
+    """Issue 14: whatever fails in one vessel's code past the recorder stays there."""
+    from monitor.live import LiveVessel
+
+    vessel, samples, meta = kettle(duration_s=120.0)
+    other = [replace(x, vessel="second") for x in samples]
+    log = tmp_path / "iso.sqlite"
+    spec = VesselSpec(vessel, meta, True, False)
+    config = replace(
+        config_for(vessel, meta), vessels=(spec, VesselSpec("second", meta, True, False))
+    )
+    original = LiveVessel.step
+    failures = []
+
+    def failing(self, step):
+        if self.vessel == vessel and 50 <= self.steps < 53:
+            failures.append(step.t)
+            self.steps += 1
+            raise RuntimeError("injected for the test")
+        return original(self, step)
+
+    monkeypatch.setattr(LiveVessel, "step", failing)
+    items = sorted([*samples, *other], key=lambda x: x.t)
+    service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(items, False)})
+    stats = asyncio.run(run_until(service, lambda: service.stats.samples >= len(items)))
+    assert len(failures) == 3
+    assert stats.samples == len(items)  # every reading recorded, the bad steps' too
+    by_vessel = {}
+    for row in read_estimates(log):
+        by_vessel.setdefault(row["vessel"], []).append(row["t"])
+    assert len(by_vessel["second"]) > 100  # the other vessel never noticed
+    assert max(by_vessel[vessel]) > max(failures)  # and the failing one went on after
+    events = [e for e in read_events(log) if e["kind"] == "vessel_fault"]
+    assert len(events) == 3
+    assert all("injected for the test" in e["detail"] for e in events)
+    assert verify(log)["ok"]
