@@ -129,7 +129,9 @@ def cmd_demo_with_board(args: argparse.Namespace) -> int:
 def extend(verbs, parsers) -> None:
     """Add ``board`` and the demo's board options to the ``ebullio`` parser."""
     demo = parsers["demo"]
-    demo.add_argument("--board-port", type=int, default=8050, help="board port (default 8050)")
+    demo.add_argument(
+        "--board-port", type=cli.port_option, default=8050, help="board port (default 8050)"
+    )
     demo.add_argument("--no-board", action="store_true", help="run without the web board")
     demo.set_defaults(func=cmd_demo_with_board)
     brd = verbs.add_parser(
@@ -145,8 +147,13 @@ def extend(verbs, parsers) -> None:
     brd.add_argument("more", metavar="MORE", nargs="*",
                      help="further logs to offer in the replay view")  # fmt: skip
     brd.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1)")
-    brd.add_argument("--port", type=int, default=8050, help="port (default 8050)")
-    brd.add_argument("--poll-s", type=float, default=2.0, help="refresh every N s (default 2)")
+    brd.add_argument("--port", type=cli.port_option, default=8050, help="port (default 8050)")
+    brd.add_argument(
+        "--poll-s",
+        type=cli.number_option(0.1, 3600.0),
+        default=2.0,
+        help="refresh every N s (default 2)",
+    )
     brd.add_argument("--no-auth", action="store_true", help="no login even beyond loopback")
     brd.set_defaults(func=cmd_board)
 

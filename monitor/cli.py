@@ -35,6 +35,42 @@ log = logging.getLogger("ebullio")
 SIM_CHANNELS = ["water", "element", "ambient", "power", "energy", "voltage", "current"]
 
 
+def number_option(low: float | None = None, high: float | None = None, *, above: bool = False):
+    """Return an argparse ``type`` taking a finite number within [low, high].
+
+    With ``above`` the low end is excluded (``--speed 0`` is refused). The message
+    names the range, and argparse prints it as a usage error (exit 2), no traceback.
+    """
+
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+        if value != value or value in (float("inf"), float("-inf")):
+            raise argparse.ArgumentTypeError(f"{text!r} is not a finite number")
+        if low is not None and (value <= low if above else value < low):
+            word = "above" if above else "at least"
+            raise argparse.ArgumentTypeError(f"{text} must be {word} {low:g}")
+        if high is not None and value > high:
+            raise argparse.ArgumentTypeError(f"{text} must be at most {high:g}")
+        return value
+
+    parse.__name__ = "number"
+    return parse
+
+
+def port_option(text: str) -> int:
+    """Argparse ``type`` of a TCP port: 0 (any free one) to 65535."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a port number") from None
+    if not 0 <= value <= 65535:
+        raise argparse.ArgumentTypeError(f"{text} is not a port (0-65535)")
+    return value
+
+
 def _site_pressure_kpa(args: argparse.Namespace) -> float:
     if args.pressure_kpa is not None:
         return args.pressure_kpa
@@ -241,18 +277,26 @@ def _add_scenario_options(p: argparse.ArgumentParser, seed: int) -> None:
     """Add the simulated scenario's options (shared by ``simulate`` and ``demo``)."""
     p.add_argument("--scenario", choices=["kettle", "water-heater"], default="kettle")
     p.add_argument("--seed", type=int, default=seed, help=f"random seed (default {seed})")
-    p.add_argument("--scale-mm", type=float, help="limescale on the element, mm (default 0)")
-    p.add_argument("--duration-s", type=float, help="length of the run, s")
-    p.add_argument("--mass-kg", type=float, help="water fill, kg")
+    p.add_argument(
+        "--scale-mm", type=number_option(0.0, 10.0), help="limescale on the element, mm (default 0)"
+    )
+    p.add_argument("--duration-s", type=number_option(0.0, above=True), help="length of the run, s")
+    p.add_argument("--mass-kg", type=number_option(0.0, above=True), help="water fill, kg")
     p.add_argument("--vessel", help="vessel id written to the log")
     _add_site_options(p)
 
 
 def _add_site_options(p: argparse.ArgumentParser) -> None:
     site = p.add_mutually_exclusive_group()
-    site.add_argument("--pressure-kpa", type=float, help="site pressure, kPa (default 101.325)")
     site.add_argument(
-        "--altitude-m", type=float, help="site elevation, m; pressure from the ICAO atmosphere"
+        "--pressure-kpa",
+        type=number_option(1.0, 500.0),
+        help="site pressure, kPa (default 101.325)",
+    )
+    site.add_argument(
+        "--altitude-m",
+        type=number_option(-500.0, 9000.0),
+        help="site elevation, m; pressure from the ICAO atmosphere",
     )
 
 
@@ -295,8 +339,18 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
         epilog="example: ebullio demo --speed 20 --out out/demo.sqlite",
     )
     _add_scenario_options(demo, seed=7)
-    demo.add_argument("--speed", type=float, default=20.0, help="times real time (default 20)")
-    demo.add_argument("--every-s", type=float, default=10.0, help="print every N simulated s")
+    demo.add_argument(
+        "--speed",
+        type=number_option(0.0, above=True),
+        default=20.0,
+        help="times real time (default 20)",
+    )
+    demo.add_argument(
+        "--every-s",
+        type=number_option(0.0, above=True),
+        default=10.0,
+        help="print every N simulated s",
+    )
     demo.add_argument(
         "--out", default="out/demo.sqlite", help="SQLite log (default out/demo.sqlite)"
     )
@@ -334,7 +388,11 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
     )
     run.add_argument("--config", required=True, help="TOML rig configuration")
     run.add_argument("--log", required=True, help="SQLite log to write (appended if it exists)")
-    run.add_argument("--for-s", type=float, help="stop by itself after this many seconds")
+    run.add_argument(
+        "--for-s",
+        type=number_option(0.0, above=True),
+        help="stop by itself after this many seconds",
+    )
     run.set_defaults(func=cmd_run)
 
     ver = verbs.add_parser(

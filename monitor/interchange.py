@@ -28,7 +28,7 @@ from typing import TextIO
 
 from drivers.errors import LogFormatError
 from drivers.payloads import CHANNEL_COLUMNS as ROLE_COLUMNS
-from drivers.sample import Sample
+from drivers.sample import PLAIN_NUMBER, Sample
 
 #: Channel roles the CSV interchange format carries (shared/DESIGN.md), in column order.
 INTERCHANGE_ROLES = ("water", "water_top", "element", "ambient", "power", "energy", "voltage",
@@ -95,24 +95,62 @@ def _parse_iso(text: str) -> float:
 def read_csv(path: str | Path) -> InterchangeLog:
     """Return the log in a CSV interchange file; unusable rows go to ``rejected``.
 
-    Raises :class:`LogFormatError` (with file and line) when there is no header,
-    the first column is not a time column, or a column is unknown or repeated.
+    Any bytes are taken: a UTF-8 byte-order mark at the start is skipped, and a line
+    that is not UTF-8, or whose cells CSV cannot split (a field over the csv module's
+    limit, a stray quote), is set aside with its line number and reason like any
+    other bad row (its bytes kept, undecodable ones as ``\\xNN``). Raises
+    :class:`LogFormatError` (with file and line) when there is no header, the first
+    column is not a time column, or a column is unknown or repeated.
     """
     path = str(path)
-    with open(path, encoding="utf-8", newline="") as handle:
-        return read_csv_text(handle, path)
+    with open(path, "rb") as handle:
+        return read_csv_text(_decoded_lines(handle), path)
 
 
-def read_csv_text(handle: TextIO, name: str = "<text>") -> InterchangeLog:
-    """Return the log read from an open text stream; see :func:`read_csv`."""
+class _Undecodable(str):
+    """A line that is not UTF-8, kept with its bytes escaped (``\\xNN``)."""
+
+    reason = "not UTF-8 text"
+
+
+def _decoded_lines(handle: Iterable[bytes]) -> Iterator[str]:
+    """Yield a binary file's lines as text; a line that is not UTF-8 as :class:`_Undecodable`."""
+    for number, raw in enumerate(handle, start=1):
+        if number == 1 and raw.startswith(b"\xef\xbb\xbf"):
+            raw = raw[3:]  # the byte-order mark some editors write
+        try:
+            yield raw.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            line = _Undecodable(raw.decode("utf-8", "backslashreplace"))
+            line.reason = f"not UTF-8 text (byte 0x{raw[exc.start]:02x} at byte {exc.start + 1})"
+            yield line
+
+
+def _split(raw: str) -> list[str]:
+    """Return the CSV cells of one line; raise ValueError saying why it cannot be split."""
+    if isinstance(raw, _Undecodable):
+        raise ValueError(raw.reason)
+    try:
+        return next(csv.reader([raw]))
+    except csv.Error as exc:
+        raise ValueError(f"not a CSV row ({exc})") from None
+
+
+def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog:
+    """Return the log read from text lines (an open text stream); see :func:`read_csv`."""
     metadata: dict[str, str | float] = {}
     lines = iter(enumerate(handle, start=1))
     header: list[str] | None = None
     header_line = 0
     rejected: list[Rejected] = []
     for number, raw in lines:
+        if number == 1 and raw.startswith("\ufeff"):
+            raw = raw[1:]  # a byte-order mark, in text already decoded
         text = raw.strip()
         if not text:
+            continue
+        if isinstance(raw, _Undecodable) and text.startswith("#"):
+            rejected.append(Rejected(number, raw.rstrip("\r\n"), raw.reason))
             continue
         if text.startswith("#"):
             body = text[1:].strip()
@@ -124,8 +162,10 @@ def read_csv_text(handle: TextIO, name: str = "<text>") -> InterchangeLog:
                     Rejected(number, raw.rstrip("\r\n"), "metadata line without 'key: value'")
                 )
             continue
-        header = next(csv.reader([raw]))
-        header = [h.strip() for h in header]
+        try:
+            header = [h.strip() for h in _split(raw)]
+        except ValueError as exc:
+            raise LogFormatError(f"{name}, line {number}: the header row is {exc}") from None
         header_line = number
         break
     if header is None:
@@ -202,7 +242,10 @@ def cells_time(raw: str) -> str:
 
 
 def _parse_row(number: int, raw: str, header: list[str], iso: bool) -> tuple[LogRow | None, str]:
-    cells = next(csv.reader([raw]))
+    try:
+        cells = _split(raw)
+    except ValueError as exc:
+        return None, f"line {number}: {exc}"
     if len(cells) != len(header):
         return None, f"line {number}: {len(cells)} cells where the header has {len(header)}"
     time_text = cells[0].strip()
@@ -221,10 +264,10 @@ def _parse_row(number: int, raw: str, header: list[str], iso: bool) -> tuple[Log
             continue
         if not text:
             continue
-        try:
-            value = float(text)
-        except ValueError:
-            return None, f"line {number}: column {column!r} holds {text!r}, not a number"
+        if PLAIN_NUMBER.fullmatch(text) is None:
+            shown = text if len(text) <= 40 else text[:40] + "..."
+            return None, f"line {number}: column {column!r} holds {shown!r}, not a number"
+        value = float(text)
         if not math.isfinite(value):
             return None, f"line {number}: column {column!r} is not finite"
         values[COLUMN_CHANNELS[column]] = value

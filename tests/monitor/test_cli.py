@@ -57,9 +57,11 @@ def test_simulate_at_altitude_boils_lower(tmp_path):
 
 
 def test_bad_input_gives_a_clear_error_and_exit_code(tmp_path, capsys):
-    code = main(["simulate", "--mass-kg", "-1", "--out", str(tmp_path / "x.csv")])
-    assert code == 2
-    assert "bad water_mass_kg" in capsys.readouterr().err
+    # refused by the option's own check now, before the simulator sees it
+    with pytest.raises(SystemExit) as stop:
+        main(["simulate", "--mass-kg", "-1", "--out", str(tmp_path / "x.csv")])
+    assert stop.value.code == 2
+    assert "--mass-kg: -1 must be above 0" in capsys.readouterr().err
 
 
 def test_demo_runs_live_through_the_real_drivers_and_records(tmp_path):
@@ -124,3 +126,22 @@ def test_every_verb_has_help_with_an_example():
             check=True,
         )
         assert "example: ebullio " + verb in proc.stdout
+
+
+@pytest.mark.parametrize(
+    ("argv", "needle"),
+    [
+        (["demo", "--speed", "0"], "--speed: 0 must be above 0"),
+        (["demo", "--speed", "nan"], "is not a finite number"),
+        (["demo", "--every-s", "-1"], "--every-s: -1 must be above 0"),
+        (["simulate", "--mass-kg", "abc"], "'abc' is not a number"),
+    ],
+)
+def test_numeric_options_are_checked(argv, needle, capsys) -> None:
+    """Issue 14: ``demo --speed 0`` ended in a ZeroDivisionError traceback."""
+    with pytest.raises(SystemExit) as stop:
+        main(argv)
+    assert stop.value.code == 2
+    err = capsys.readouterr().err
+    assert needle in err
+    assert "Traceback" not in err

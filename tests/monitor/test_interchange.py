@@ -59,7 +59,7 @@ def test_bad_rows_are_kept_with_line_and_reason_and_reading_goes_on():
         "1,hot,2000\n"  # not a number
         "2,15.2\n"  # too few cells
         "x,15.3,2000\n"  # bad time
-        "4,nan,2000\n"  # not finite
+        "4,nan,2000\n"  # not a plain decimal number (float() would take it)
         "5,15.5,2000\n"
     )
     log = read_csv_text(io.StringIO(text), "bench.csv")
@@ -69,7 +69,7 @@ def test_bad_rows_are_kept_with_line_and_reason_and_reading_goes_on():
     assert "'water_c' holds 'hot'" in reasons[5]
     assert "2 cells where the header has 3" in reasons[6]
     assert "bad time 'x'" in reasons[7]
-    assert "not finite" in reasons[8]
+    assert "'water_c' holds 'nan', not a number" in reasons[8]
     assert next(r.raw for r in log.rejected if r.line == 5) == "1,hot,2000"
 
 
@@ -108,3 +108,43 @@ def test_writer_refuses_metadata_that_would_break_the_format():
         to_text([], {"note": "two\nlines"}, ["water"])
     text = to_text([LogRow(0, 0.5, {"water": 20.25})], {"k": 1.5}, ["water", "power"])
     assert text == "# k: 1.5\ntime_s,water_c,power_w\n0.5,20.25,\n"
+
+
+def _file_with(tmp_path, name: str, mangle) -> str:
+    """Write our own small three-row log, mangled by ``mangle(bytes) -> bytes``."""
+    text = "# vessel: k1\ntime_s,water_c,power_w\n0,20.0,0\n1,20.5,2000\n2,21.0,2000\n"
+    path = tmp_path / name
+    path.write_bytes(mangle(text.encode()))
+    return str(path)
+
+
+def test_any_bytes_are_read_and_bad_lines_set_aside_with_where_and_why(tmp_path) -> None:
+    """Issue 14: these gave tracebacks (UnicodeDecodeError, csv field limit) or a
+    header error showing '\\ufefftime_s'."""
+    from monitor.interchange import read_csv
+
+    bom = read_csv(_file_with(tmp_path, "bom.csv", lambda b: b"\xef\xbb\xbf" + b))
+    assert len(bom.rows) == 3
+    assert bom.metadata["vessel"] == "k1"
+    bad_byte = read_csv(_file_with(tmp_path, "latin.csv", lambda b: b.replace(b"20.5", b"2\xff.5")))
+    assert [r.time_s for r in bad_byte.rows] == [0.0, 2.0]
+    (rejected,) = bad_byte.rejected
+    assert rejected.line == 4
+    assert "not UTF-8" in rejected.reason
+    assert "0xff" in rejected.reason
+    assert "\\xff" in rejected.raw  # the byte kept, escaped
+    huge = read_csv(
+        _file_with(tmp_path, "huge.csv", lambda b: b.replace(b"20.5", b'"' + b"9" * 200_000 + b'"'))
+    )
+    assert [r.time_s for r in huge.rows] == [0.0, 2.0]
+    assert "field larger than field limit" in huge.rejected[0].reason
+    nul = read_csv(_file_with(tmp_path, "nul.csv", lambda b: b.replace(b"21.0", b"2\x001.0")))
+    assert [r.time_s for r in nul.rows] == [0.0, 1.0]
+    assert "not a number" in nul.rejected[0].reason
+    # Python's float() would take these; a log's cell is a plain decimal number
+    under = read_csv(
+        _file_with(tmp_path, "under.csv", lambda b: b.replace(b"2000\n2", b"2_000\n2"))
+    )
+    assert [r.time_s for r in under.rows] == [0.0, 2.0]
+    with pytest.raises(LogFormatError, match="line 1: the header row is not UTF-8"):
+        read_csv(_file_with(tmp_path, "head.csv", lambda b: b"\xfe" + b.split(b"\n", 1)[1]))
