@@ -5,7 +5,8 @@ Run from the repository root (Debian's ``mosquitto`` must be installed):
     .venv/bin/python benchmarks/bench_ingest.py                    # 100 and 1000 vessels
     .venv/bin/python benchmarks/bench_ingest.py --vessels 50 --seconds 10   # a quick look
 
-For each fleet size a fresh broker starts on 127.0.0.1 (``max_queued_messages 0``),
+For each fleet size a fresh broker starts on 127.0.0.1 (``max_queued_messages 0``,
+``max_inflight_messages 0``: the README's settings for acknowledgement after commit),
 ``ebullio run`` starts in its own process with one MQTT vessel per simulated kettle,
 and this process publishes one multi-channel ``<prefix>/<vessel>/reading`` message
 per vessel per second (water, power and ambient; QoS 1), spread evenly over each
@@ -80,6 +81,7 @@ def config_text(url: str, vessels: list[str]) -> str:
         f'url = "{url}"',
         f'prefix = "{PREFIX}"',
         'client_id = "bench-service"',
+        "inflight_window = 0",  # the broker below has no in-flight limit (README)
         "[recorder]",
         "commit_interval_s = 1.0",
         "queue_samples = 200000",
@@ -193,7 +195,9 @@ def bench(n: int, seconds: int, warmup_s: int) -> dict[str, object]:
     vessels = [f"v{i:04d}" for i in range(n)]
     with tempfile.TemporaryDirectory(prefix="ebullio-ingest-") as tmp:
         work = Path(tmp)
-        with MosquittoBroker(work / "broker") as broker:
+        # readings are acknowledged once committed (a block a second): the broker must
+        # let that many wait unacknowledged, as the README's broker settings say
+        with MosquittoBroker(work / "broker", extra_config=("max_inflight_messages 0",)) as broker:
             cfg = work / "rig.toml"
             cfg.write_text(config_text(broker.url, vessels), encoding="utf-8")
             log = work / "ingest.sqlite"

@@ -21,7 +21,7 @@ Drivers yield :class:`Sample` and :class:`Quarantined` items from ``samples()``.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 
 from drivers.errors import ConfigError
@@ -45,6 +45,21 @@ class Quarantined:
     where: str
     reason: str
     raw: bytes
+
+
+@dataclass(frozen=True, slots=True)
+class Acknowledge:
+    """Sent by a driver after the items of one delivery it must confirm once they are safe.
+
+    The live service passes it to the recorder, which calls ``send()`` (in the event
+    loop's thread) after the block holding those items is committed: a broker's QoS 1
+    message is acknowledged only once it is on disk, so a crash before the commit has
+    the broker deliver it again. ``send`` must be safe to call on a closed link (it
+    then does nothing: the broker redelivers). ``source`` names the driver.
+    """
+
+    source: str
+    send: Callable[[], object]
 
 
 @dataclass(frozen=True, slots=True)

@@ -20,8 +20,9 @@ messages published while it was away are delivered when a new driver with the sa
 ``client_id`` connects, for up to ``session_expiry_s``. The broker must be allowed
 to queue them: Mosquitto's default ``max_queued_messages``
 of 1000 drops QoS 1 messages beyond that for a slow or absent subscriber without a
-word; set it to 0 (no limit) or a large figure. Messages the client has already
-acknowledged but not yet handed on are lost if the process dies.
+word; set it to 0 (no limit) or a large figure. By default a message is acknowledged
+on arrival, so one not yet handed on is lost if the process dies; with ``ack_after``
+(the live service) it is acknowledged only once its readings are committed.
 
 Retained messages are not asked for at subscribe time: a retained reading is an old
 one, and a bare number would be stamped with the time it was re-sent.
@@ -46,7 +47,7 @@ from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.subscribeoptions import SubscribeOptions
 
-from drivers.channels import Quarantined
+from drivers.channels import Acknowledge, Quarantined
 from drivers.errors import ConfigError, DriverError, FrameError
 from drivers.payloads import DEFAULT_MAX_AHEAD_S, check_prefix, is_vessel_id, parse_message
 from drivers.sample import Sample
@@ -192,6 +193,20 @@ async def _open_client(
     return client
 
 
+def _manual_acks(client: aiomqtt.Client) -> None:
+    """Turn off paho's acknowledgement on arrival (aiomqtt has no option of its own).
+    Must be called before subscribing. This and :func:`_acknowledger` are the only
+    places that reach past aiomqtt to its paho client."""
+    client._client.manual_ack_set(True)
+
+
+def _acknowledger(client: aiomqtt.Client, message: aiomqtt.Message) -> Callable[[], object]:
+    """Return the call that acknowledges ``message`` on ``client``'s link (paho's own
+    ``ack``; on a link that has closed it sends nothing and the broker redelivers)."""
+    paho, mid, qos = client._client, message.mid, message.qos
+    return lambda: paho.ack(mid, qos)
+
+
 async def _disconnect(client: aiomqtt.Client | None, source: str) -> None:
     """Close ``client``; a dead link is logged, never raised."""
     if client is None:
@@ -237,6 +252,10 @@ class MqttDriver:
       time before the message is refused; default 300.
     * ``tls_ca_file``: CA certificate file for ``mqtts://``; default the system's.
     * ``clock``: receipt time source, Unix s; default :func:`time.time`.
+    * ``ack_after``: when True, QoS 1 messages are not acknowledged on arrival: after
+      each message's items the driver yields an :class:`~drivers.channels.Acknowledge`
+      whose ``send()`` acknowledges it (the live service calls it once the block that
+      holds the items is committed); default False, acknowledged on arrival.
     """
 
     def __init__(
@@ -254,9 +273,11 @@ class MqttDriver:
         max_ahead_s: float = DEFAULT_MAX_AHEAD_S,
         tls_ca_file: str | None = None,
         clock: Callable[[], float] = time.time,
+        ack_after: bool = False,
     ) -> None:
         self._address = parse_mqtt_url(url)
         self.source = self._address.source
+        self.ack_after = bool(ack_after)
         self.prefix = _check_prefix(prefix)
         if vessels is not None:
             if isinstance(vessels, str):
@@ -316,6 +337,8 @@ class MqttDriver:
             session_expiry_s=self.session_expiry_s if persistent else None,
         )
         self._client = client
+        if self.ack_after:
+            _manual_acks(client)
         options = SubscribeOptions(qos=QOS, retainHandling=SubscribeOptions.RETAIN_DO_NOT_SEND)
         try:
             codes = await client.subscribe([(topic, options) for topic in self.topics])
@@ -360,8 +383,9 @@ class MqttDriver:
             logger.warning("%s: quarantined a message: %s", self.source, exc)
             return [Quarantined(received_t, self.source, topic, str(exc), raw)]
 
-    async def samples(self) -> AsyncIterator[Sample | Quarantined]:
-        """Yield samples (value in the channel's unit) and quarantined messages as they come.
+    async def samples(self) -> AsyncIterator[Sample | Quarantined | Acknowledge]:
+        """Yield samples (value in the channel's unit) and quarantined messages as they come,
+        each QoS 1 message's items followed by its :class:`Acknowledge` with ``ack_after``.
 
         Raises :class:`DriverError` when the broker goes away.
         """
@@ -372,6 +396,8 @@ class MqttDriver:
             async for message in client.messages:
                 for item in self._items(message, self._clock()):
                     yield item
+                if self.ack_after and message.qos > 0:
+                    yield Acknowledge(self.source, _acknowledger(client, message))
         except aiomqtt.MqttError as exc:
             raise DriverError(f"{self.source}: lost the broker: {exc}") from exc
 

@@ -17,9 +17,10 @@ An example, with every table::
     password_env = "EBULLIO_MQTT_PASSWORD"  # the credentials themselves
     client_id = "ebullio-lab-1"       # fixed id: a persistent session (QoS 1 kept while away)
     publish = true                    # estimates and flags back, retained
+    inflight_window = 20              # the broker's max_inflight_messages (0: no limit)
 
     [recorder]
-    commit_interval_s = 1.0           # a crash loses at most this window
+    commit_interval_s = 1.0           # readings are acknowledged after each commit
     queue_samples = 100000            # the bounded queue between sources and consumers
 
     [[instruments]]                   # a serial line logger
@@ -112,6 +113,11 @@ class MqttSettings:
     client_id: str | None = None
     publish: bool = True
     session_expiry_s: float = 3600.0
+    #: the broker's limit of unacknowledged QoS 1 messages to one client (Mosquitto's
+    #: ``max_inflight_messages``, 20 unless raised; 0: no limit). Readings are
+    #: acknowledged only once committed, so the recorder commits early when half this
+    #: many wait: the broker would otherwise stop sending until the next commit.
+    inflight_window: int = 20
 
 
 @dataclass(frozen=True)
@@ -344,6 +350,7 @@ def _mqtt(table: _Table | None, environ: Mapping[str, str]) -> MqttSettings | No
         client_id=table.string("client_id"),
         publish=table.boolean("publish", True),
         session_expiry_s=table.number("session_expiry_s", 3600.0, lo=0.0, hi=4294967295.0),
+        inflight_window=int(table.number("inflight_window", 20.0, lo=0.0, hi=65535.0)),
     )
     table.done()
     return settings

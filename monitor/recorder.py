@@ -453,6 +453,9 @@ class Recorder:
         self._pending: dict[str, list[Row]] = {name: [] for name in HASHED_TABLES}
         self._count = 0
         self.last_block: int | None = None
+        #: samples not added again by ``add_samples(..., skip_repeats=True)``
+        self.repeats_skipped = 0
+        self._latest_t: dict[tuple[object, object], float] = {}  # (vessel, channel) -> t
         _check_existing(self.path)
         try:
             self._conn = sqlite3.connect(
@@ -521,11 +524,17 @@ class Recorder:
         self._count += len(rows)
         return len(rows)
 
-    def add_samples(self, samples: Iterable[Sample]) -> int:
+    def add_samples(self, samples: Iterable[Sample], *, skip_repeats: bool = False) -> int:
         """Return how many samples were added to the pending block.
 
         The whole batch is checked first: a sample with a non-finite time or a
         field of the wrong type raises ValueError and nothing of the batch is added.
+        With ``skip_repeats`` a sample the log already holds (pending or committed:
+        the same vessel, channel, time and value) is not added again and is counted in
+        :attr:`repeats_skipped`: a broker that delivers a QoS 1 message again after a
+        crash or a lost link (the live service acknowledges only after the commit) has
+        its readings recorded once. Only a sample not later than its channel's latest
+        is looked up, so the cost is in the rare repeats, not in every sample.
         """
         rows = []
         for s in samples:
@@ -544,7 +553,44 @@ class Recorder:
             if quality not in _QUALITIES:
                 raise ValueError(f"sample quality {quality!r} is not one of {list(_QUALITIES)}")
             rows.append((t, vessel, channel, value, quality, source))
+        if skip_repeats:
+            rows = self._without_repeats(rows)
         return self._add("samples", rows)
+
+    def _without_repeats(self, rows: list[Row]) -> list[Row]:
+        kept: list[Row] = []
+        latest = self._latest_t
+        for row in rows:
+            t, key = row[0], (row[1], row[2])
+            last = latest.get(key)
+            if last is None:
+                found = self._conn.execute(
+                    "SELECT max(t) FROM samples WHERE vessel = ? AND channel = ?", key
+                ).fetchone()[0]
+                last = -math.inf if found is None else found
+            if t <= last and self._holds(row, kept):  # type: ignore[operator]
+                self.repeats_skipped += 1
+                continue
+            latest[key] = max(last, t)  # type: ignore[type-var]
+            kept.append(row)
+        return kept
+
+    def _holds(self, row: Row, batch: list[Row]) -> bool:
+        """Return True if ``row``'s sample is in ``batch``, the pending block or the log."""
+        head = row[:4]
+        if any(r[:4] == head for r in batch) or any(
+            r[:4] == head for r in self._pending["samples"]
+        ):
+            return True
+        t, vessel, channel, value = head
+        return (
+            self._conn.execute(
+                "SELECT 1 FROM samples WHERE vessel = ? AND channel = ? AND t = ? AND value IS ? "
+                "LIMIT 1",
+                (vessel, channel, t, value),
+            ).fetchone()
+            is not None
+        )
 
     def add_quarantined(self, items: Iterable[Quarantined]) -> int:
         """Return how many quarantined inputs were added (raw kept byte for byte)."""

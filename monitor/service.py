@@ -31,8 +31,12 @@ Shape (all in one asyncio loop, except the recorder's SQLite writes)::
   reason, and never given to the filter. A failure inside one vessel's filter stays
   with that vessel (:meth:`monitor.estimator.VesselEstimator.step`).
 * **Recorder thread.** Owns the SQLite connection. It commits one block every
-  ``[recorder] commit_interval_s`` (default 1 s), so a crash loses at most that window;
-  what was committed stays (WAL, see :mod:`monitor.recorder`).
+  ``[recorder] commit_interval_s`` (default 1 s); what was committed stays (WAL, see
+  :mod:`monitor.recorder`). MQTT readings are acknowledged to the broker only after
+  the commit that holds them (:class:`~drivers.channels.Acknowledge`, sent from the
+  loop's thread), so a crash loses nothing acknowledged: the broker delivers the rest
+  again and the recorder records each reading once (``skip_repeats``). When half the
+  broker's in-flight window (``[mqtt] inflight_window``) waits, it commits at once.
 * **Publisher.** The latest estimate of each vessel, and its flags when they change,
   are published retained on ``<prefix>/<vessel>/estimate`` and ``.../flags``. When the
   broker is slower than the estimates, only the newest estimate per vessel is sent
@@ -58,7 +62,7 @@ from dataclasses import dataclass, field
 from typing import Any
 from urllib.parse import urlsplit, urlunsplit
 
-from drivers.channels import Quarantined
+from drivers.channels import Acknowledge, Quarantined
 from drivers.errors import DriverError, EbullioError
 from drivers.sample import Quality, ReadingLimits, Sample
 from monitor import __version__
@@ -123,6 +127,7 @@ class Stats:
     backpressure_waits: int = 0
     backpressure_s: float = 0.0
     blocks: int = 0
+    repeats_skipped: int = 0  # readings a broker delivered again, recorded once
     fits_deferred: int = 0  # steps at which a due heat-up fit waited for FIT_CPU_SHARE
     fit_cpu_s: float = 0.0
 
@@ -203,8 +208,12 @@ class RecorderThread:
     def __init__(
         self, path: str, config_text: str | None, vessels: Mapping[str, Mapping[str, object]],
         commit_interval_s: float, stats: Stats,
+        loop: asyncio.AbstractEventLoop | None = None, ack_early: int = 0,
     ) -> None:  # fmt: skip
         self._queue: queue.SimpleQueue[tuple[str, Any] | None] = queue.SimpleQueue()
+        self._loop = loop  # where acknowledgements are sent from (the sources' loop)
+        self._acks: list[Acknowledge] = []  # queued behind rows not yet committed
+        self._ack_early = ack_early  # commit at once when this many acks wait (0: never)
         self._interval_s = commit_interval_s
         self._stats = stats
         self._error: BaseException | None = None
@@ -226,7 +235,8 @@ class RecorderThread:
     def _run(self) -> None:
         rec = self._recorder
         adders = {
-            "samples": rec.add_samples,
+            "samples": lambda rows: rec.add_samples(rows, skip_repeats=True),
+            "acks": lambda acks: self._acks.extend(acks),  # self._acks is replaced on send
             "quarantined": rec.add_quarantined,
             "estimates": rec.add_estimates,
             "flags": rec.add_flags,
@@ -246,17 +256,37 @@ class RecorderThread:
                 kind, rows = item
                 if kind != "tick":
                     adders[kind](rows)
-                if time.monotonic() >= deadline:
+                early = self._ack_early and len(self._acks) >= self._ack_early
+                if early or time.monotonic() >= deadline:
                     if rec.commit() is not None:
                         self._stats.blocks += 1
+                    self._acknowledge()
                     deadline = time.monotonic() + self._interval_s
             if rec.commit() is not None:
                 self._stats.blocks += 1
+            self._acknowledge()
         except BaseException as exc:  # kept and raised again in the loop by close()
             self._error = exc
             log.exception("recorder: writing the log failed")
         finally:
             rec.close()
+
+    def _acknowledge(self) -> None:
+        """Send the acknowledgements of everything committed so far, in arrival order.
+
+        Called right after a commit, so every acknowledgement queued before it covers
+        rows that are on disk now. They are sent from the loop's thread (the MQTT
+        client is not thread-safe); one whose link has gone sends nothing, and the
+        broker delivers that message again (recorded once: ``skip_repeats``).
+        """
+        acks, self._acks = self._acks, []
+        self._stats.repeats_skipped = self._recorder.repeats_skipped
+        if not acks or self._loop is None:
+            return
+        try:
+            self._loop.call_soon_threadsafe(_send_acks, acks)
+        except RuntimeError:  # the loop has closed: nothing is acknowledged, all redelivered
+            log.warning("recorder: %d acknowledgements not sent (the loop had stopped)", len(acks))
 
     def close(self) -> None:
         """Write what is queued, commit the last block, close the log (blocks: call in a thread)."""
@@ -264,6 +294,22 @@ class RecorderThread:
         self._thread.join()
         if self._error is not None:
             raise EbullioError(f"the recorder failed: {self._error}") from self._error
+
+
+def _ack_early(mqtt: Any) -> int:
+    """Return how many waiting acknowledgements make the recorder commit at once: half
+    the broker's in-flight window (``[mqtt] inflight_window``; 0 for no limit: never)."""
+    window = getattr(mqtt, "inflight_window", 0) if mqtt is not None else 0
+    return max(window // 2, 1) if window else 0
+
+
+def _send_acks(acks: list[Acknowledge]) -> None:
+    """Send acknowledgements in order (in the loop's thread); a failure is logged, not raised."""
+    for ack in acks:
+        try:
+            ack.send()
+        except Exception as exc:  # the link went: the broker will deliver the message again
+            log.debug("%s: an acknowledgement was not sent: %s", ack.source, exc)
 
 
 class Service:
@@ -301,11 +347,13 @@ class Service:
             self.sources[public_url(mqtt.url)] = lambda: MqttDriver(
                 mqtt.url, prefix=mqtt.prefix, vessels=mqtt_vessels, client_id=client_id,
                 username=mqtt.username, password=mqtt.password,
-                session_expiry_s=mqtt.session_expiry_s, clock=clock,
+                session_expiry_s=mqtt.session_expiry_s, clock=clock, ack_after=True,
             )  # fmt: skip
         self.sources.update(extra_sources or {})
         self.on_estimate = on_estimate
-        self._queue: asyncio.Queue[Sample | Quarantined] = asyncio.Queue(config.queue_samples)
+        self._queue: asyncio.Queue[Sample | Quarantined | Acknowledge] = asyncio.Queue(
+            config.queue_samples
+        )
         self._stop = asyncio.Event()
         self._recorder: RecorderThread | None = None
         self._to_publish: dict[str, dict[str, object]] = {}
@@ -325,7 +373,7 @@ class Service:
         if self._recorder is not None:
             self._recorder.put("event", (t, kind, source, detail))
 
-    async def _deliver(self, item: Sample | Quarantined) -> None:
+    async def _deliver(self, item: Sample | Quarantined | Acknowledge) -> None:
         try:
             self._queue.put_nowait(item)
             return
@@ -339,13 +387,17 @@ class Service:
         source = item.source
         self._event(self.clock(), "backpressure", source, f"waited {waited:.3f} s for queue space")
 
-    def _take(self, items: list[Sample | Quarantined]) -> None:
+    def _take(self, items: list[Sample | Quarantined | Acknowledge]) -> None:
         samples: list[Sample] = []
         quarantined: list[Quarantined] = []
+        acks: list[Acknowledge] = []
         touched: dict[str, LiveVessel] = {}
         for item in items:
             if isinstance(item, Quarantined):
                 quarantined.append(item)
+                continue
+            if isinstance(item, Acknowledge):
+                acks.append(item)
                 continue
             vessel = self.vessels.get(item.vessel)
             if vessel is None:
@@ -381,6 +433,8 @@ class Service:
             self._recorder.put("samples", samples)
         if quarantined:
             self._recorder.put("quarantined", quarantined)
+        if acks:  # behind the rows they cover: sent once those are committed
+            self._recorder.put("acks", acks)
         self._flush_to_recorder()
 
     def _steps(self, vessel: LiveVessel, steps: list[Any]) -> None:
@@ -520,7 +574,8 @@ class Service:
             vessel.resume(earlier.get(name, []))
         self._recorder = await asyncio.to_thread(
             RecorderThread, self.log_path, self.config.text, vessels_meta,
-            self.config.commit_interval_s, self.stats,
+            self.config.commit_interval_s, self.stats, asyncio.get_running_loop(),
+            _ack_early(self.config.mqtt),
         )  # fmt: skip
         self._recorder.start()
         self._event(self.clock(), "start", "service", f"ebullio {__version__}")
@@ -547,7 +602,7 @@ class Service:
                     await consumer
                 with contextlib.suppress(asyncio.CancelledError):
                     await retuner
-                leftovers: list[Sample | Quarantined] = []
+                leftovers: list[Sample | Quarantined | Acknowledge] = []
                 while not self._queue.empty():
                     leftovers.append(self._queue.get_nowait())
                 self._take(leftovers)
