@@ -215,18 +215,46 @@ async def _run_service(config, log_path: str, for_s: float | None):
 
 def cmd_verify(args: argparse.Namespace) -> int:
     """Check a recorder log's hash chain; exit 1 when it is broken."""
+    import os
+
     from monitor.recorder import verify
 
-    result = verify(args.log)
+    key = None
+    if args.key_env:
+        if not os.environ.get(args.key_env):
+            print(f"ebullio verify: the environment variable {args.key_env!r} is not set",
+                  file=sys.stderr)  # fmt: skip
+            return 2
+        key = os.environ[args.key_env].encode("utf-8")
+    head = None
+    if args.head:
+        try:
+            head = json.loads(Path(args.head).read_text(encoding="utf-8"))
+        except (OSError, ValueError) as exc:
+            print(f"ebullio verify: cannot read the head {args.head}: {exc}", file=sys.stderr)
+            return 2
+        if not isinstance(head, dict):
+            print(f"ebullio verify: {args.head} is not a JSON object", file=sys.stderr)
+            return 2
+    result = verify(args.log, head=head, key=key)
+    if result["state"] == "not_a_log":
+        if args.json:
+            print(json.dumps(result, allow_nan=False))
+        print(f"ebullio verify: {result['reason']}", file=sys.stderr)
+        return 2
     if args.json:
         print(json.dumps(result, allow_nan=False))
     else:
-        state = "intact" if result["ok"] else "BROKEN"
+        words = {"intact": "intact", "tampered": "ALTERED", "damaged": "DAMAGED"}
         counts = f"{result['blocks']} blocks, {result['samples']} samples"
-        print(f"{args.log}: hash chain {state}: {counts}, {result['quarantined']} quarantined")
+        print(f"{args.log}: {words[str(result['state'])]}: {counts}, "
+              f"{result['quarantined']} quarantined")  # fmt: skip
+        if result["head_checked"] is None and result["ok"]:
+            print("no chain head to check against: blocks removed from the end would not show")
         if not result["ok"]:
-            print(f"first bad block: {result['first_bad_block']}; "
-                  f"{result.get('reason', 'no reason given')}")  # fmt: skip
+            where = result["first_bad_block"]
+            print((f"first bad block: {where}; " if where is not None else "")
+                  + str(result.get("reason") or "no reason given"))  # fmt: skip
     return 0 if result["ok"] else 1
 
 
@@ -398,12 +426,21 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
     ver = verbs.add_parser(
         "verify",
         help="check that a recorder log was not altered",
-        description="Recompute the SHA-256 chain over every committed block of a recorder log. "
-        "Exits 1 when a block does not match, naming the first bad block.",
-        epilog="example: ebullio verify logs/lab.sqlite --json",
+        description="Recompute the SHA-256 chain over every committed block of a recorder log, "
+        "check that the log reaches its chain head (the LOG.head file the recorder keeps, or "
+        "--head) so removed trailing blocks are seen, and run SQLite's own quick_check. "
+        "Exits 0 when intact, 1 when altered or damaged (saying which), 2 when LOG is "
+        "missing or not a recorder log.",
+        epilog="example: ebullio verify logs/lab.sqlite --key-env EBULLIO_LOG_KEY --json",
     )
     ver.add_argument("log", metavar="LOG", help="recorder (SQLite) log")
     ver.add_argument("--json", action="store_true", help="print one JSON object")
+    ver.add_argument(
+        "--head", metavar="FILE", help="a chain head kept elsewhere (JSON, as in LOG.head)"
+    )
+    ver.add_argument(
+        "--key-env", metavar="NAME", help="environment variable holding the head's signing key"
+    )
     ver.set_defaults(func=cmd_verify)
 
     fleet = verbs.add_parser(

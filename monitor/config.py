@@ -21,6 +21,7 @@ An example, with every table::
 
     [recorder]
     commit_interval_s = 1.0           # readings are acknowledged after each commit
+    key_env = "EBULLIO_LOG_KEY"       # optional: signs the chain head kept beside the log
     queue_samples = 100000            # the bounded queue between sources and consumers
 
     [[instruments]]                   # a serial line logger
@@ -152,6 +153,8 @@ class RigConfig:
     vessels: tuple[VesselSpec, ...]
     commit_interval_s: float = 1.0
     queue_samples: int = 100_000
+    #: signs the log's chain head (HMAC-SHA-256), from ``[recorder] key_env``; never logged
+    log_key: bytes | None = field(default=None, repr=False)
 
 
 class _Table:
@@ -264,9 +267,15 @@ def parse_config(text: str, file: str, environ: Mapping[str, str]) -> RigConfig:
     mqtt = _mqtt(top.table("mqtt"), environ)
     recorder = top.table("recorder")
     commit_interval_s, queue_samples = 1.0, 100_000
+    log_key: bytes | None = None
     if recorder is not None:
         commit_interval_s = recorder.number("commit_interval_s", 1.0, lo=0.05, hi=60.0)
         queue_samples = int(recorder.number("queue_samples", 100_000, lo=100, hi=1e8))
+        key_env = recorder.string("key_env")
+        if key_env is not None:
+            if not environ.get(key_env):
+                raise recorder.fail("key_env", f"the environment variable {key_env!r} is not set")
+            log_key = environ[key_env].encode("utf-8")
         recorder.done()
     instruments = {}
     for table in top.tables("instruments"):
@@ -303,6 +312,7 @@ def parse_config(text: str, file: str, environ: Mapping[str, str]) -> RigConfig:
         vessels=tuple(vessels),
         commit_interval_s=commit_interval_s,
         queue_samples=queue_samples,
+        log_key=log_key,
     )
 
 

@@ -60,6 +60,7 @@ would slow the writer and grow the file.
 from __future__ import annotations
 
 import hashlib
+import hmac
 import json
 import logging
 import math
@@ -447,9 +448,11 @@ class Recorder:
         version: str,
         config_text: str | None = None,
         clock: Callable[[], float] = time.time,
+        key: bytes | None = None,
     ) -> None:
         self.path = Path(path)
         self._clock = clock
+        self._key = key  # signs the head file (HMAC-SHA-256) when given
         self._pending: dict[str, list[Row]] = {name: [] for name in HASHED_TABLES}
         self._count = 0
         self.last_block: int | None = None
@@ -729,7 +732,26 @@ class Recorder:
             rows.clear()
         self._count = 0
         self.last_block = block
+        self._write_head(block, digest, committed_t)
         return block
+
+    def _write_head(self, block: int, digest: str, committed_t: float) -> None:
+        """Keep the chain's head beside the log (:func:`head_path`), replaced atomically.
+
+        Written after the block is durable, so the file never names a block the log
+        lacks; a log cut short (its last blocks removed) then fails :func:`verify`.
+        With a key the head is signed, so it cannot be rewritten to match a cut log
+        without the key. A head that cannot be written is logged, never raised: the
+        readings come first.
+        """
+        head = head_record(block, digest, committed_t, self._key)
+        target = head_path(self.path)
+        temporary = target.with_name(target.name + ".tmp")
+        try:
+            temporary.write_text(json.dumps(head) + "\n", encoding="utf-8")
+            os.replace(temporary, target)
+        except OSError as exc:
+            LOG.warning("%s: cannot write the chain head (%s)", target, exc)
 
     def close(self) -> None:
         """Commit what is pending, then close the file (closing twice does nothing)."""
@@ -1011,20 +1033,75 @@ def _verify_chain(conn: sqlite3.Connection) -> tuple[list[tuple[int, str]], str 
     return problems, head
 
 
-def verify(path: str | os.PathLike[str]) -> dict[str, object]:
+def head_path(log: str | os.PathLike[str]) -> Path:
+    """Return where a log's chain head is kept: ``<log>.head`` beside it."""
+    log = Path(log)
+    return log.with_name(log.name + ".head")
+
+
+def _head_signature(key: bytes, block: int, digest: str) -> str:
+    return hmac.new(key, f"ebullio-head:{block}:{digest}".encode(), hashlib.sha256).hexdigest()
+
+
+def head_record(
+    block: int, digest: str, committed_t: float, key: bytes | None
+) -> dict[str, object]:
+    """Return the head file's JSON object: block, hash, commit time, and ``hmac`` with a key."""
+    head: dict[str, object] = {"block": block, "hash": digest, "committed_t": committed_t}
+    if key:
+        head["hmac"] = _head_signature(key, block, digest)
+    return head
+
+
+def _check_head(
+    conn: sqlite3.Connection, head: Mapping[str, object], key: bytes | None, where: str
+) -> str | None:
+    """Return why the log does not reach ``head`` (or its signature fails), None if it does."""
+    block, digest = head.get("block"), head.get("hash")
+    if type(block) is not int or not isinstance(digest, str):
+        return f"{where} is not a chain head (it needs an integer 'block' and a 'hash')"
+    if key:
+        signature = head.get("hmac")
+        if not isinstance(signature, str) or not hmac.compare_digest(
+            signature, _head_signature(key, block, digest)
+        ):
+            return f"{where} does not carry a valid signature for this key: it was altered"
+    row = conn.execute("SELECT hash FROM blocks WHERE block = ?", (block,)).fetchone()
+    if row is None:
+        last = conn.execute("SELECT max(block) FROM blocks").fetchone()[0] or 0
+        return (f"the log ends at block {last} but {where} records block {block}: "
+                f"blocks {last + 1} to {block} were removed")  # fmt: skip
+    stored = row[0].decode("ascii", "replace") if isinstance(row[0], bytes) else row[0]
+    if stored != digest:
+        return f"block {block} does not have the hash {where} records: it was rewritten"
+    return None
+
+
+def verify(
+    path: str | os.PathLike[str],
+    head: Mapping[str, object] | None = None,
+    key: bytes | None = None,
+) -> dict[str, object]:
     """Return the result of checking a log's hash chain; never raises for a bad file.
 
     Keys: ``ok``; ``samples``, ``quarantined`` and ``blocks`` (row counts, None when
     they cannot be read); ``first_bad_block`` (the lowest block with a problem, or
     None); ``reason`` (the first problem in a sentence, None when ok); ``problems``
     (up to 20 sentences, lowest block first); ``head_hash`` (the last block's hash,
-    to keep elsewhere against a rewritten last block). The file is opened read-only.
-    A file that is not SQLite, not a recorder log or that SQLite finds corrupt gives
-    ``ok`` False with the reason.
+    to keep elsewhere against a rewritten last block); ``state``: ``intact``,
+    ``tampered`` (the chain or the head disagrees with the rows), ``damaged`` (SQLite's
+    own ``quick_check`` finds the file corrupt: a disk or copy fault, not an edit of
+    rows) or ``not_a_log`` (missing, not SQLite, not a recorder log); ``head_checked``:
+    where the head that was checked came from (``given``, the ``<log>.head`` file, or
+    None: without one, removed trailing blocks cannot be seen). ``head`` is a head to
+    check against (a JSON object as :func:`head_record` makes, kept elsewhere or read
+    from the broker); else the ``.head`` file beside the log is used when present.
+    With ``key`` the head's signature must hold. The file is opened read-only.
     """
     result: dict[str, object] = {
-        "ok": False, "samples": None, "quarantined": None, "blocks": None,
-        "first_bad_block": None, "reason": None, "problems": [], "head_hash": None,
+        "ok": False, "state": "not_a_log", "samples": None, "quarantined": None,
+        "blocks": None, "first_bad_block": None, "reason": None, "problems": [],
+        "head_hash": None, "head_checked": None,
     }  # fmt: skip
     try:
         conn = _open_reader(path)
@@ -1032,29 +1109,62 @@ def verify(path: str | os.PathLike[str]) -> dict[str, object]:
         result["reason"] = str(exc)
         result["problems"] = [str(exc)]
         return result
+    where = "the given head"
+    if head is None:
+        side = head_path(path)
+        if side.exists():
+            where = f"the head file {side.name}"
+            try:
+                head = json.loads(side.read_text(encoding="utf-8"))
+            except (OSError, ValueError) as exc:
+                head = {"unreadable": str(exc)}
+            if not isinstance(head, Mapping):
+                head = {}
+    try:
+        damage = [r[0] for r in conn.execute("PRAGMA quick_check").fetchall()]
+    except sqlite3.Error as exc:
+        damage = [str(exc)]
+    if damage != ["ok"]:
+        result["state"] = "damaged"
+        found = "; ".join(map(str, damage[:3]))
+        result["reason"] = (f"{path}: SQLite finds the file damaged ({found}); "
+                            "a disk or copy fault, not an edit of its rows")  # fmt: skip
+        result["problems"] = [result["reason"]]
+        conn.close()
+        return result
     try:
         conn.text_factory = bytes  # hash text as its stored bytes; bad UTF-8 cannot raise
         result["samples"] = _count(conn, "samples")
         result["quarantined"] = _count(conn, "quarantine")
         result["blocks"] = _count(conn, "blocks")
-        problems, head = _verify_chain(conn)
+        problems, head_hash = _verify_chain(conn)
+        if head is not None:
+            result["head_checked"] = "given" if where == "the given head" else head_path(path).name
+            cut = _check_head(conn, head, key, where)
+            if cut is not None:
+                problems.append((math.inf, cut))  # type: ignore[arg-type]
     except sqlite3.Error as exc:
         LOG.warning("verify %s: SQLite reports %s", path, exc)
+        result["state"] = "damaged"
         result["reason"] = f"{path}: SQLite cannot read the log ({exc})"
         result["problems"] = [result["reason"]]
         return result
     except (AttributeError, TypeError, ValueError) as exc:  # a row of the wrong shape
+        result["state"] = "tampered"
         result["reason"] = f"{path}: a row does not have the recorder's layout ({exc})"
         result["problems"] = [result["reason"]]
         return result
     finally:
         conn.close()
-    result["head_hash"] = head
+    result["head_hash"] = head_hash
     if problems:
         problems.sort(key=lambda p: p[0])
-        result["first_bad_block"] = problems[0][0]
+        first = problems[0][0]
+        result["state"] = "tampered"
+        result["first_bad_block"] = first if math.isfinite(first) else None
         result["reason"] = problems[0][1]
         result["problems"] = [p[1] for p in problems[:_MAX_PROBLEMS]]
     else:
         result["ok"] = True
+        result["state"] = "intact"
     return result

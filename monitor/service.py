@@ -209,6 +209,7 @@ class RecorderThread:
         self, path: str, config_text: str | None, vessels: Mapping[str, Mapping[str, object]],
         commit_interval_s: float, stats: Stats,
         loop: asyncio.AbstractEventLoop | None = None, ack_early: int = 0,
+        key: bytes | None = None,
     ) -> None:  # fmt: skip
         self._queue: queue.SimpleQueue[tuple[str, Any] | None] = queue.SimpleQueue()
         self._loop = loop  # where acknowledgements are sent from (the sources' loop)
@@ -218,7 +219,7 @@ class RecorderThread:
         self._stats = stats
         self._error: BaseException | None = None
         # open here so a bad path fails before the sources start; then hand it over
-        self._recorder = Recorder(path, version=__version__, config_text=config_text)
+        self._recorder = Recorder(path, version=__version__, config_text=config_text, key=key)
         for vessel, metadata in vessels.items():
             self._recorder.add_vessel(vessel, dict(metadata))
         self._recorder.commit()
@@ -575,7 +576,7 @@ class Service:
         self._recorder = await asyncio.to_thread(
             RecorderThread, self.log_path, self.config.text, vessels_meta,
             self.config.commit_interval_s, self.stats, asyncio.get_running_loop(),
-            _ack_early(self.config.mqtt),
+            _ack_early(self.config.mqtt), self.config.log_key,
         )  # fmt: skip
         self._recorder.start()
         self._event(self.clock(), "start", "service", f"ebullio {__version__}")

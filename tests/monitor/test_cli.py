@@ -145,3 +145,34 @@ def test_numeric_options_are_checked(argv, needle, capsys) -> None:
     err = capsys.readouterr().err
     assert needle in err
     assert "Traceback" not in err
+
+
+def test_verify_says_intact_altered_damaged_or_not_a_log(tmp_path, capsys) -> None:
+    """Issue 14: a missing or non-SQLite file was reported as a broken chain with the
+    exit status of tampering, and a log cut short passed."""
+    import sqlite3
+
+    from monitor.recorder import Recorder
+
+    assert main(["verify", str(tmp_path / "nowhere.sqlite")]) == 2
+    assert "cannot be read" in capsys.readouterr().err
+    text = tmp_path / "notes.txt"
+    text.write_text("not a log\n", encoding="utf-8")
+    assert main(["verify", str(text)]) == 2
+    assert "not an SQLite file" in capsys.readouterr().err
+    path = tmp_path / "log.sqlite"
+    with Recorder(path, version="0.1.0") as rec:
+        for k in range(3):
+            rec.add_event(1_767_225_600.0 + k, "note", "test", f"row {k}")
+            rec.commit()
+    assert main(["verify", str(path)]) == 0
+    assert ": intact:" in capsys.readouterr().out
+    conn = sqlite3.connect(path)
+    conn.execute("DELETE FROM events WHERE block = (SELECT max(block) FROM blocks)")
+    conn.execute("DELETE FROM blocks WHERE block = (SELECT max(block) FROM blocks)")
+    conn.commit()
+    conn.close()
+    assert main(["verify", str(path)]) == 1
+    out = capsys.readouterr().out
+    assert "ALTERED" in out
+    assert "were removed" in out

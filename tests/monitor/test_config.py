@@ -182,6 +182,12 @@ def test_the_example_in_the_module_docstring_is_a_valid_configuration() -> None:
     cfg = parse_config(
         textwrap.dedent(example),
         "docstring",
-        {"EBULLIO_MQTT_USER": "u", "EBULLIO_MQTT_PASSWORD": "p"},
+        {
+            "EBULLIO_MQTT_USER": "u",
+            "EBULLIO_MQTT_PASSWORD": "p",
+            "EBULLIO_LOG_KEY": "s3cret-for-test",
+        },
     )
     assert [v.id for v in cfg.vessels] == ["urn-3", "heater-7"]
+    assert cfg.log_key == b"s3cret-for-test"
+    assert "s3cret" not in repr(cfg)  # the key is never printed

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import json
 import math
 import os
 import selectors
@@ -365,8 +366,9 @@ def sql(path: Path, statement: str, params: tuple = ()) -> None:
 def test_verify_passes_a_good_log(log: Path):
     result = verify(log)
     assert result == {
-        "ok": True, "samples": 20, "quarantined": 1, "blocks": 3, "first_bad_block": None,
-        "reason": None, "problems": [], "head_hash": result["head_hash"],
+        "ok": True, "state": "intact", "samples": 20, "quarantined": 1, "blocks": 3,
+        "first_bad_block": None, "reason": None, "problems": [],
+        "head_hash": result["head_hash"], "head_checked": "log.sqlite.head",
     }  # fmt: skip
     assert len(result["head_hash"]) == 64
 
@@ -493,7 +495,8 @@ def test_a_flipped_page_header_gives_a_reason_not_an_exception(tmp_path: Path):
     path.write_bytes(bytes(data))
     result = verify(path)
     assert result["ok"] is False
-    assert "SQLite cannot read" in result["reason"]
+    assert result["state"] == "damaged"  # told apart from an edit of rows
+    assert "SQLite finds the file damaged" in result["reason"]
     with pytest.raises(LogFormatError, match="SQLite cannot read"):
         list(read_samples(path))
 
@@ -675,3 +678,58 @@ def test_two_writers_on_one_file_interleave_whole_chained_blocks(tmp_path: Path)
     assert (result["blocks"], result["samples"]) == (12, 25)
     assert [s["version"] for s in sessions(path)] == ["a", "b"]
     assert len(list(read_samples(path, vessel="a"))) == 15
+
+
+def _remove_last_block(path: Path) -> None:
+    """Cut the log's last block away, rows and block row alike (what issue 14's probe did)."""
+    conn = sqlite3.connect(path)
+    last = conn.execute("SELECT max(block) FROM blocks").fetchone()[0]
+    for table in ("samples", "quarantine", "estimates", "flags", "events", "runs", "blocks"):
+        conn.execute(f"DELETE FROM {table} WHERE block = ?", (last,))
+    conn.commit()
+    conn.close()
+
+
+def test_a_log_cut_short_fails_against_its_head(log: Path) -> None:
+    """Issue 14: removing the last block passed verify. The recorder keeps the chain's
+    head beside the log at every commit, and verify checks the log reaches it."""
+    from monitor.recorder import head_path
+
+    head = json.loads(head_path(log).read_text(encoding="utf-8"))
+    assert head["block"] == 3
+    _remove_last_block(log)
+    result = verify(log)
+    assert result["ok"] is False
+    assert result["state"] == "tampered"
+    assert "ends at block 2" in result["reason"]
+    assert "blocks 3 to 3 were removed" in result["reason"]
+    # a head kept elsewhere (copied off the broker, say) does the same
+    head_path(log).unlink()
+    assert verify(log)["ok"] is True  # without a head, a cut log cannot be told apart
+    assert verify(log)["head_checked"] is None
+    assert "were removed" in verify(log, head=head)["reason"]
+
+
+def test_a_signed_head_cannot_be_rewritten_without_the_key(tmp_path: Path) -> None:
+    from monitor.recorder import head_path, head_record
+
+    path = tmp_path / "signed.sqlite"
+    key = b"a key of our own for the test"
+    with Recorder(path, version="0.1.0", clock=fake_clock(), key=key) as rec:
+        rec.add_samples(kettle_samples(5))
+        rec.commit()
+        rec.add_samples(kettle_samples(5, start=T0 + 5))
+        rec.commit()
+    assert verify(path, key=key)["ok"] is True
+    assert verify(path, key=b"another key")["ok"] is False
+    _remove_last_block(path)
+    # someone rewrites the head to match the cut log, but has no key
+    conn = sqlite3.connect(path)
+    block, digest = conn.execute("SELECT block, hash FROM blocks ORDER BY block DESC").fetchone()
+    conn.close()
+    forged = head_record(block, digest, T0, None)
+    head_path(path).write_text(json.dumps(forged), encoding="utf-8")
+    result = verify(path, key=key)
+    assert result["ok"] is False
+    assert "does not carry a valid signature" in result["reason"]
+    assert verify(path)["ok"] is True  # unsigned, the forged head passes: hence the key
