@@ -36,6 +36,8 @@ header { background: #123; color: #fff; display: flex; gap: 1rem; align-items: b
   flex-wrap: wrap; }
 header h1 { font-size: 1.3rem; margin: 0; }
 footer { font-size: .85rem; border-top: 2px solid #D55E00; background: #fff7f0; }
+.integrity-failed { margin: .6rem 1.2rem; padding: .3rem .8rem; border: 3px double #a11;
+  background: #fff; color: #a11; font-weight: 600; }
 .view { margin-bottom: 1.5rem; }
 .figures { display: flex; flex-wrap: wrap; gap: .6rem; margin: .6rem 0; }
 .figure { background: #fff; border: 1px solid #ddd; padding: .4rem .7rem; min-width: 9rem; }
@@ -107,6 +109,45 @@ def waiting_page(vessel: str | None, run: str | None) -> str:
     )
 
 
+class IntegrityWatch:
+    """Checks the board's recorder logs in a thread of its own, at start and then every
+    ``every_s``; :meth:`warnings` gives the sentences to show (no I/O in a callback).
+
+    A whole-chain check of a long log takes seconds, so it never runs in a request.
+    """
+
+    def __init__(self, paths: list[str], every_s: float = 600.0) -> None:
+        self._paths = paths
+        self._every_s = every_s
+        self._checks: list[dict[str, object]] = []
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="board-integrity", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        from monitor.logs import log_integrity
+
+        while True:
+            checks = []
+            for path in self._paths:
+                try:
+                    checks.append(log_integrity(path))
+                except Exception as exc:  # a log that cannot be read is said so, not raised
+                    checks.append({"file": path, "state": "damaged", "reason": str(exc)})
+            with self._lock:
+                self._checks = checks
+            if self._stop.wait(self._every_s):
+                return
+
+    def warnings(self) -> list[str]:
+        """Return one sentence per log that is not intact (none before the first check)."""
+        from monitor.logs import integrity_warnings
+
+        with self._lock:
+            return integrity_warnings(self._checks)
+
+
 def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = ()) -> Dash:
     """Return the board over the log at ``log_path``, refreshing every ``poll_ms`` ms.
 
@@ -115,6 +156,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
     """
     logs = [log_path, *more_logs]
     memo = Memo()
+    watch = IntegrityWatch(logs)
     jobs = Jobs()  # slow work (a run replayed), away from the request threads
 
     def csv_replay(path: str) -> dict:
@@ -131,6 +173,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
     app.layout = html.Div([
         html.Header([html.H1("ebullio board"), html.Span(f"log: {first['log']}",
                                                          id=ids.LOG_NAME)]),
+        html.Div(id=ids.INTEGRITY, className="integrity-failed", hidden=True),
         html.Main([fleet.layout(), vessel.layout(first),
                    maintenance.layout(list(first.get("vessels") or [])),
                    replay.layout([Path(p).name for p in logs])]),
@@ -145,6 +188,14 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
     )
     def poll(_n: int | None, chosen: str | None) -> dict:
         return data.load_snapshot(log_path, chosen, csv_replay=csv_replay)
+
+    @app.callback(
+        Output(ids.INTEGRITY, "children"), Output(ids.INTEGRITY, "hidden"),
+        Input(ids.POLL, "n_intervals"),
+    )  # fmt: skip
+    def integrity(_n: int | None) -> tuple[list, bool]:
+        lines = watch.warnings()
+        return [html.P(line) for line in lines], not lines
 
     fleet.register(app)
     vessel.register(

@@ -11,6 +11,7 @@ VESSEL_READINGS = "vessel-readings-chart"
 VESSEL_ESTIMATES = "vessel-estimates-chart"
 FLEET_TABLE = "fleet-table"
 LOG_NAME = "log-name"
+INTEGRITY = "log-integrity"  # the banner shown when a log fails its integrity check
 MAINT_PICK = "maintenance-pick"
 MAINT_CHART = "maintenance-chart"
 MAINT_REPORTS = "maintenance-reports"

@@ -177,7 +177,17 @@ def cmd_replay(args: argparse.Namespace) -> int:
     else:
         print(summary_table(result))
         print(SAFETY_NOTE)
-    return 0
+    return _say_integrity(result["integrity"])  # type: ignore[arg-type]
+
+
+def _say_integrity(checks: list[dict[str, object]]) -> int:
+    """Print a warning for each recorder log that is not intact; return 1 if any, else 0."""
+    from monitor.logs import integrity_warnings
+
+    warnings = integrity_warnings(checks)
+    for line in warnings:
+        print(f"ebullio: {line}", file=sys.stderr)
+    return 1 if warnings else 0
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -264,23 +274,27 @@ def cmd_export(args: argparse.Namespace) -> int:
 
     out_path = Path(args.csv)
     out_path.parent.mkdir(parents=True, exist_ok=True)
+    from monitor.logs import log_integrity
+
     with open(out_path, "w", encoding="utf-8", newline="") as out:
         rows = export_csv(args.log, out, args.vessel)
     print(f"wrote {rows} rows to {out_path}", file=sys.stderr)
-    return 0
+    return _say_integrity([log_integrity(args.log)])
 
 
 def cmd_fleet(args: argparse.Namespace) -> int:
     """Print every vessel in the logs, worst first, with its drift status."""
     from monitor.drift import fleet_rows, fleet_table
 
-    rows = fleet_rows(replay(args.logs, progress=sys.stderr))
+    result = replay(args.logs, progress=sys.stderr)
+    rows = fleet_rows(result)
     if args.json:
-        print(json.dumps({"vessels": rows}, indent=2, allow_nan=False))
+        print(json.dumps({"vessels": rows, "integrity": result["integrity"]}, indent=2,
+                         allow_nan=False))  # fmt: skip
     else:
         print(fleet_table(rows))
         print(SAFETY_NOTE)
-    return 0
+    return _say_integrity(result["integrity"])  # type: ignore[arg-type]
 
 
 def cmd_report(args: argparse.Namespace) -> int:
@@ -298,7 +312,9 @@ def cmd_report(args: argparse.Namespace) -> int:
         pdf = out.with_suffix(".pdf")
         print_pdf(out, pdf)
         print(f"printed it to {pdf}", file=sys.stderr)
-    return 0
+    from monitor.logs import log_integrity
+
+    return _say_integrity([log_integrity(args.log)])
 
 
 def _add_scenario_options(p: argparse.ArgumentParser, seed: int) -> None:

@@ -38,6 +38,33 @@ def _rejected(path: str) -> list[Rejected]:
     return out
 
 
+def log_integrity(path: str | Path) -> dict[str, object]:
+    """Return what can be said of a log's integrity: ``file``, ``state``, ``reason``.
+
+    A recorder log is checked as ``ebullio verify`` does (:func:`monitor.recorder.verify`:
+    ``intact``, ``tampered`` or ``damaged``); a CSV log carries no hash chain, so its
+    state is ``unchecked``. ``replay``, ``fleet``, ``report``, ``export`` and the board
+    say so when a recorder log is not intact.
+    """
+    from monitor.recorder import verify
+
+    if not is_recorder_log(path):
+        return {"file": str(path), "state": "unchecked",
+                "reason": "a CSV log carries no hash chain"}  # fmt: skip
+    result = verify(path)
+    return {"file": str(path), "state": result["state"], "reason": result["reason"]}
+
+
+def integrity_warnings(checks: list[dict[str, object]]) -> list[str]:
+    """Return one sentence per recorder log that is not intact (for terminals and pages)."""
+    return [
+        f"WARNING: {c['file']} failed its integrity check ({c['state']}): {c['reason']} "
+        "The figures from it come from a log that was altered or damaged."
+        for c in checks
+        if c["state"] not in ("intact", "unchecked")
+    ]
+
+
 def read_log(path: str | Path, vessel: str | None = None) -> list[InterchangeLog]:
     """Return the log at ``path`` as interchange logs: one per vessel for SQLite, one for CSV.
 

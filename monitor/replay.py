@@ -487,7 +487,7 @@ def replay(
     Writes per-step estimates to ``estimates_out`` when given, and progress lines to
     ``progress`` for long logs.
     """
-    from monitor.logs import read_log  # here: monitor.logs builds on this module
+    from monitor.logs import log_integrity, read_log  # here: monitor.logs builds on this module
 
     logs = [log for p in paths for log in read_log(p)]
     runs, quarantined = split_runs(logs)
@@ -518,6 +518,7 @@ def replay(
     return {
         "version": __version__,
         "files": list(paths),
+        "integrity": [log_integrity(p) for p in paths],
         "runs": results,
         "quarantined": [q.as_dict() for q in quarantined],
     }

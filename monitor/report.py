@@ -155,13 +155,21 @@ def build_report(log_path: str, vessel: str | None = None, run_label: str | None
     integrity_rows: list[tuple[str, str]] = [("log file", html.escape(str(log_path))),
                                              ("file SHA-256", file_sha256(log_path))]  # fmt: skip
     config_text = None
+    banner = ""
     if is_recorder_log(log_path):
         check = verify(log_path)
         state = (
             "verified: every block matches"
             if check["ok"]
-            else (f"FAILED at block {check['first_bad_block']}: {check.get('reason', '')}")
+            else (f"FAILED ({check['state']}): {check.get('reason', '')}")
         )
+        if not check["ok"]:
+            banner = (
+                "<div class='caution' id='integrity-failed'><b>This log failed its integrity "
+                f"check ({html.escape(str(check['state']))}).</b> "
+                f"{html.escape(str(check.get('reason') or ''))} The figures below come from "
+                "a log that was altered or damaged: do not rely on them.</div>"
+            )
         integrity_rows += [
             ("hash chain", f"<b class='{'ok' if check['ok'] else 'bad'}'>"
                            f"{html.escape(state)}</b>"),
@@ -252,6 +260,7 @@ li.warning, li.alarm {{ color: #b3261e; }}
 pre {{ background: #f5f5f5; padding: .6rem; overflow-x: auto; }}
 </style></head><body>
 <h1>{html.escape(title)}</h1>
+{banner}
 <p>Made {made} from <code>{html.escape(Path(log_path).name)}</code>; runs of this vessel in
 the log: {html.escape(", ".join(labels))}.</p>
 <div class="caution"><b>Caution.</b> {html.escape(SAFETY_TEXT)}</div>

@@ -519,3 +519,26 @@ def test_jobs_once_closed_take_no_more_work_and_do_not_hold_the_process() -> Non
         assert all(t.daemon for t in watchers)  # the interpreter will not wait for them
     finally:
         gate.set()
+
+
+def test_the_board_warns_of_a_log_that_failed_its_integrity_check(live_log, tmp_path) -> None:
+    """Issue 14: the board showed an altered log as if nothing were wrong."""
+    import sqlite3
+    import time
+
+    from dashboard.app import IntegrityWatch
+
+    altered = tmp_path / "altered.sqlite"
+    shutil.copy(live_log, altered)
+    conn = sqlite3.connect(altered)
+    conn.execute("UPDATE samples SET value = value + 5 WHERE id = 50")
+    conn.commit()
+    conn.close()
+    watch = IntegrityWatch([str(live_log), str(altered)])
+    deadline = time.monotonic() + 30.0
+    while not watch.warnings() and time.monotonic() < deadline:
+        time.sleep(0.1)
+    (line,) = watch.warnings()  # the intact log says nothing
+    assert "altered.sqlite failed its integrity check (tampered)" in line
+    app = create_app(str(altered), poll_ms=60_000)
+    assert "log-integrity" in str(app.layout)  # the banner's place on every page

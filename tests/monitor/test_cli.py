@@ -176,3 +176,41 @@ def test_verify_says_intact_altered_damaged_or_not_a_log(tmp_path, capsys) -> No
     out = capsys.readouterr().out
     assert "ALTERED" in out
     assert "were removed" in out
+
+
+def test_replay_fleet_report_and_export_say_when_a_log_was_altered(tmp_path, capsys) -> None:
+    """Issue 14: these exited 0 on a tampered log and said nothing."""
+    import sqlite3
+    from dataclasses import replace
+
+    from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+    from monitor.recorder import Recorder
+
+    scenario = replace(kettle_scenario(), duration_s=300.0)
+    path = tmp_path / "lab.sqlite"
+    with Recorder(path, version="0.1.0") as rec:
+        rec.add_vessel(scenario.vessel, scenario_metadata(scenario, 3))
+        for batch in SimulatedRig(scenario, seed=3).run():
+            rec.add_samples(batch)
+        rec.commit()
+    checks = {
+        "replay": ["replay", str(path), "--json"],
+        "fleet": ["fleet", str(path), "--json"],
+        "report": ["report", str(path), "--out", str(tmp_path / "r.html")],
+        "export": ["export", str(path), "--csv", str(tmp_path / "e.csv")],
+    }
+    for argv in checks.values():  # intact: quiet, exit 0
+        assert main(argv) == 0
+    capsys.readouterr()
+    conn = sqlite3.connect(path)
+    conn.execute("UPDATE samples SET value = value + 5 WHERE id = 100")
+    conn.commit()
+    conn.close()
+    for verb, argv in checks.items():
+        assert main(argv) == 1, verb
+        captured = capsys.readouterr()
+        assert "failed its integrity check (tampered)" in captured.err, verb
+        if verb in ("replay", "fleet"):
+            (check,) = json.loads(captured.out)["integrity"]
+            assert check["state"] == "tampered"
+    assert "integrity-failed" in (tmp_path / "r.html").read_text(encoding="utf-8")

@@ -61,7 +61,8 @@ def test_a_tampered_log_says_its_integrity_check_failed(log) -> None:
     with sqlite3.connect(log) as conn:
         conn.execute("UPDATE samples SET value = value + 1 WHERE id = 100")
     page = build_report(str(log))
-    assert "FAILED at block" in page
+    assert "FAILED (tampered)" in page
+    assert "integrity-failed" in page  # the banner at the top
     assert "verified: every block matches" not in page
 
 
