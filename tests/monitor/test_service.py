@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import os
 import random
 from dataclasses import replace
 
@@ -279,4 +280,63 @@ def test_a_failure_in_one_vessels_processing_leaves_the_others_going(tmp_path, m
     events = [e for e in read_events(log) if e["kind"] == "vessel_fault"]
     assert len(events) == 3
     assert all("injected for the test" in e["detail"] for e in events)
+    assert verify(log)["ok"]
+
+
+def test_an_impossible_serial_reading_is_set_aside_and_both_vessels_go_on(tmp_path) -> None:
+    """Issue 14: a well-formed line with power_w=1e200 from the line logger on a real
+    pseudo-terminal, beside a second vessel on another source. The reading is recorded
+    as a fault (its value kept in the quarantine), and both vessels keep estimating."""
+    from drivers.emulators.line_logger import LineLoggerEmulator, logger_bindings, open_pty_pair
+    from drivers.serial_line import SerialLineDriver
+    from drivers.simulator import FastClock
+    from tests.drivers.test_serial_line import _raw_kettle
+
+    scenario = replace(_raw_kettle(120.0), vessel="serial-kettle")
+    t0 = scenario.start_epoch_s
+    inject = {40: b"t=%.3f power_w=1e200 cj_c=24.0\r\n" % (t0 + 39.5)}
+    spec, bindings = logger_bindings(scenario.vessel, "K")
+    master_fd, slave_path = open_pty_pair()
+    other, other_samples, other_meta = kettle(seed=5, duration_s=120.0)
+    serial_meta = {**scenario_metadata(scenario, 7), "element_sensor": "yes"}
+    config = replace(
+        config_for(other, other_meta),
+        vessels=(VesselSpec(other, other_meta, True, False),
+                 VesselSpec(scenario.vessel, serial_meta, True, False)),
+    )  # fmt: skip
+    log = tmp_path / "serial.sqlite"
+
+    def serial_source():
+        return SerialLineDriver(f"serial://{slave_path}", spec=spec, bindings=bindings)
+
+    async def scenario_run():
+        service = Service(
+            config, str(log),
+            extra_sources={"serial": serial_source,
+                           "other": lambda: ListDriver(other_samples, False)},
+        )  # fmt: skip
+        emulator = LineLoggerEmulator(SimulatedRig(scenario, 7), master_fd, FastClock())
+        task = asyncio.create_task(service.run())
+        await service.started.wait()
+        await asyncio.sleep(0.5)  # the port is open before the logger prints
+        await emulator.run(inject=inject)
+        async with asyncio.timeout(20):
+            while service.vessels[scenario.vessel].steps < 115:
+                await asyncio.sleep(0.05)
+        service.stop()
+        return await task
+
+    try:
+        asyncio.run(scenario_run())
+    finally:
+        os.close(master_fd)
+    by_vessel: dict[str, list[float]] = {}
+    for row in read_estimates(log):
+        by_vessel.setdefault(row["vessel"], []).append(row["t"] - t0)
+    assert max(by_vessel[scenario.vessel]) > 100.0  # went on well past the bad line
+    assert len(by_vessel[other]) > 100
+    faults = [s for s in read_samples(log) if s.quality == "fault"]
+    assert [(s.vessel, s.channel) for s in faults] == [(scenario.vessel, "power")]
+    (kept,) = [q for q in read_quarantine(log) if b"1e+200" in q["raw"]]
+    assert "above the vessel's" in kept["reason"]
     assert verify(log)["ok"]
