@@ -49,7 +49,13 @@ from paho.mqtt.subscribeoptions import SubscribeOptions
 
 from drivers.channels import Acknowledge, Quarantined
 from drivers.errors import ConfigError, DriverError, FrameError
-from drivers.payloads import DEFAULT_MAX_AHEAD_S, check_prefix, is_vessel_id, parse_message
+from drivers.payloads import (
+    DEFAULT_MAX_AHEAD_S,
+    LOG_LEVEL,
+    check_prefix,
+    is_vessel_id,
+    parse_message,
+)
 from drivers.sample import Sample
 
 logger = logging.getLogger(__name__)
@@ -495,10 +501,18 @@ class MqttPublisher:
         await _disconnect(client, self.source)
 
     async def _publish(self, vessel: str, leaf: str, value: object, qos: int = QOS) -> None:
+        await self._publish_topic(f"{self.prefix}/{_check_vessel(vessel)}/{leaf}", value, qos)
+
+    async def publish_head(self, head: Mapping[str, object]) -> None:
+        """Publish the log's chain head (JSON object) retained at QoS 1 on
+        ``<prefix>/_log/chain_head``: a copy away from the log's disk, so a log cut
+        short fails ``ebullio verify --head``."""
+        await self._publish_topic(f"{self.prefix}/{LOG_LEVEL}/chain_head", dict(head), QOS)
+
+    async def _publish_topic(self, topic: str, value: object, qos: int) -> None:
         client = self._client
         if client is None:
             raise DriverError(f"{self.source}: use the publisher inside 'async with'")
-        topic = f"{self.prefix}/{_check_vessel(vessel)}/{leaf}"
         payload = encode_json(value)
         try:
             await client.publish(topic, payload, qos=qos, retain=True)

@@ -14,7 +14,8 @@ Topics under a prefix (``ebullio`` unless configured; it may have several levels
   monitor than one per channel.
 * ``<prefix>/<vessel>/estimate`` and ``<prefix>/<vessel>/flags`` are what our own
   publisher writes; they are not readings and are ignored (:func:`parse_message`
-  returns an empty list), never quarantined.
+  returns an empty list), never quarantined. So is ``<prefix>/_log/chain_head``, the
+  recorder's chain head after each commit (retained; ``_log`` cannot be a vessel id).
 
 Anything else is refused with :class:`~drivers.errors.FrameError`, which carries the
 raw payload for the quarantine and says what was wrong: a payload that is not UTF-8,
@@ -58,7 +59,9 @@ CHANNEL_COLUMNS: dict[str, str] = {
 COLUMN_CHANNELS: dict[str, str] = {column: role for role, column in CHANNEL_COLUMNS.items()}
 
 #: Topic leaves our own publisher writes; a subscriber to ``<prefix>/+/+`` sees them too.
-PUBLISHED_LEAVES = frozenset({"estimate", "flags"})
+PUBLISHED_LEAVES = frozenset({"estimate", "flags", "chain_head"})
+#: The topic level under the prefix where the log's own messages go (not a vessel id).
+LOG_LEVEL = "_log"
 #: Topic leaf of the multi-channel payload.
 READING_LEAF = "reading"
 

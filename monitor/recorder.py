@@ -456,6 +456,8 @@ class Recorder:
         self._pending: dict[str, list[Row]] = {name: [] for name in HASHED_TABLES}
         self._count = 0
         self.last_block: int | None = None
+        #: the chain head after the last commit (:func:`head_record`), None before one
+        self.last_head: dict[str, object] | None = None
         #: samples not added again by ``add_samples(..., skip_repeats=True)``
         self.repeats_skipped = 0
         self._latest_t: dict[tuple[object, object], float] = {}  # (vessel, channel) -> t
@@ -745,6 +747,7 @@ class Recorder:
         readings come first.
         """
         head = head_record(block, digest, committed_t, self._key)
+        self.last_head = head
         target = head_path(self.path)
         temporary = target.with_name(target.name + ".tmp")
         try:

@@ -210,11 +210,14 @@ class RecorderThread:
         commit_interval_s: float, stats: Stats,
         loop: asyncio.AbstractEventLoop | None = None, ack_early: int = 0,
         key: bytes | None = None,
+        on_head: Callable[[dict[str, object]], None] | None = None,
     ) -> None:  # fmt: skip
         self._queue: queue.SimpleQueue[tuple[str, Any] | None] = queue.SimpleQueue()
         self._loop = loop  # where acknowledgements are sent from (the sources' loop)
         self._acks: list[Acknowledge] = []  # queued behind rows not yet committed
         self._ack_early = ack_early  # commit at once when this many acks wait (0: never)
+        self._on_head = on_head  # called in the loop's thread with each new chain head
+        self._head_sent: object = None
         self._interval_s = commit_interval_s
         self._stats = stats
         self._error: BaseException | None = None
@@ -261,19 +264,20 @@ class RecorderThread:
                 if early or time.monotonic() >= deadline:
                     if rec.commit() is not None:
                         self._stats.blocks += 1
-                    self._acknowledge()
+                    self._after_commit()
                     deadline = time.monotonic() + self._interval_s
             if rec.commit() is not None:
                 self._stats.blocks += 1
-            self._acknowledge()
+            self._after_commit()
         except BaseException as exc:  # kept and raised again in the loop by close()
             self._error = exc
             log.exception("recorder: writing the log failed")
         finally:
             rec.close()
 
-    def _acknowledge(self) -> None:
-        """Send the acknowledgements of everything committed so far, in arrival order.
+    def _after_commit(self) -> None:
+        """Send the acknowledgements of everything committed so far, in arrival order, and
+        hand a new chain head to the publisher.
 
         Called right after a commit, so every acknowledgement queued before it covers
         rows that are on disk now. They are sent from the loop's thread (the MQTT
@@ -282,10 +286,16 @@ class RecorderThread:
         """
         acks, self._acks = self._acks, []
         self._stats.repeats_skipped = self._recorder.repeats_skipped
-        if not acks or self._loop is None:
+        head = self._recorder.last_head
+        new_head = self._on_head is not None and head is not self._head_sent
+        if (not acks and not new_head) or self._loop is None:
             return
         try:
-            self._loop.call_soon_threadsafe(_send_acks, acks)
+            if acks:
+                self._loop.call_soon_threadsafe(_send_acks, acks)
+            if new_head:
+                self._head_sent = head
+                self._loop.call_soon_threadsafe(self._on_head, head)  # type: ignore[arg-type]
         except RuntimeError:  # the loop has closed: nothing is acknowledged, all redelivered
             log.warning("recorder: %d acknowledgements not sent (the loop had stopped)", len(acks))
 
@@ -362,6 +372,7 @@ class Service:
         self._estimate_rows: list[dict[str, object]] = []
         self._flag_rows: list[dict[str, object]] = []
         self._flags_sent: dict[str, tuple[str, ...]] = {}
+        self._head_to_publish: dict[str, object] | None = None  # the newest chain head
         self._publish_ready = asyncio.Event()
         self._faulted: set[str] = set()  # vessels whose failure has been logged in full
         self.started = asyncio.Event()
@@ -369,6 +380,11 @@ class Service:
     def stop(self) -> None:
         """Ask the service to stop cleanly (safe to call from a signal handler)."""
         self._stop.set()
+
+    def _new_head(self, head: dict[str, object]) -> None:
+        """Take the chain head after a commit (in the loop's thread) for the publisher."""
+        self._head_to_publish = head
+        self._publish_ready.set()
 
     def _event(self, t: float, kind: str, source: str, detail: str) -> None:
         if self._recorder is not None:
@@ -547,17 +563,27 @@ class Service:
                         self._publish_ready.clear()
                         estimates, self._to_publish = self._to_publish, {}
                         flags, self._flags_to_publish = self._flags_to_publish, {}
+                        head, self._head_to_publish = self._head_to_publish, None
                         try:
-                            # all at once: each flags publish waits for its own PUBACK
-                            await asyncio.gather(
+                            # all at once: each flags publish waits for its own PUBACK. Every
+                            # outcome is collected (return_exceptions), so a lost link leaves
+                            # no failed future unretrieved; the first failure is raised.
+                            outcomes = await asyncio.gather(
                                 *(pub.publish_estimate(v, r) for v, r in estimates.items()),
                                 *(pub.publish_flags(v, f) for v, f in flags.items()),
+                                *([pub.publish_head(head)] if head is not None else []),
+                                return_exceptions=True,
                             )
+                            failed = [o for o in outcomes if isinstance(o, BaseException)]
+                            if failed:
+                                raise failed[0]
                         except DriverError:
                             for v, r in estimates.items():  # send again after reconnecting
                                 self._to_publish.setdefault(v, r)
                             for v, f in flags.items():
                                 self._flags_to_publish.setdefault(v, f)
+                            if self._head_to_publish is None:
+                                self._head_to_publish = head
                             raise
                         self.stats.published += len(estimates)
             except DriverError as exc:
@@ -576,7 +602,7 @@ class Service:
         self._recorder = await asyncio.to_thread(
             RecorderThread, self.log_path, self.config.text, vessels_meta,
             self.config.commit_interval_s, self.stats, asyncio.get_running_loop(),
-            _ack_early(self.config.mqtt), self.config.log_key,
+            _ack_early(self.config.mqtt), self.config.log_key, self._new_head,
         )  # fmt: skip
         self._recorder.start()
         self._event(self.clock(), "start", "service", f"ebullio {__version__}")

@@ -346,3 +346,36 @@ def test_kill_9_loses_no_acknowledged_reading_and_records_none_twice(mosquitto, 
     assert sorted(set(water)) == list(range(n)), sorted(set(range(n)) - set(water))[:20]
     assert len(water) == n  # none recorded twice
     assert verify(log)["ok"]
+
+
+def test_the_chain_head_is_published_retained_and_checks_the_log(mosquitto, tmp_path) -> None:
+    """Issue 14: a copy of the chain head away from the log's disk (the broker)."""
+    import time
+
+    t0 = time.time() - 60.0
+    config = parse_config(rig_toml(mosquitto.url), "rig.toml", {})
+    log = tmp_path / "head.sqlite"
+
+    async def scenario():
+        service = Service(config, str(log))
+        task = asyncio.create_task(service.run())
+        await service.started.wait()
+        await asyncio.sleep(0.3)
+        await publish(mosquitto.url, [("lab/urn-1/reading", reading(i, t0)) for i in range(20)])
+        await wait_for(lambda: service.stats.samples >= 60 and service.stats.blocks >= 3)
+        await asyncio.sleep(0.5)
+        service.stop()
+        await task
+        host, port = mosquitto.url.removeprefix("mqtt://").split(":")
+        async with aiomqtt.Client(host, int(port), identifier="test-auditor") as client:
+            await client.subscribe("lab/_log/chain_head", qos=1)
+            async with asyncio.timeout(10):
+                async for message in client.messages:
+                    return json.loads(message.payload)
+        return None  # not reached: the retained head arrives or the timeout raises
+
+    head = asyncio.run(scenario())
+    assert head["block"] >= 2
+    assert len(head["hash"]) == 64
+    assert verify(log, head=head)["ok"]
+    assert verify(log, head={**head, "block": head["block"] + 50})["ok"] is False
