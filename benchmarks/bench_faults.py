@@ -16,7 +16,8 @@ Parts (each a key of the JSON, each with ``ok`` for its target):
 ``broker_restart``
     The broker (persistence on, saved on every change) is killed with SIGKILL and
     started again under the same stream. Target: nothing lost or doubled, the gap and
-    the link loss recorded as events.
+    the link loss recorded as events, and the service publishing estimates again within
+    ``RESUME_WITHIN_S`` of the restart (``estimates_back_after_restart_s``).
 ``fuzz_mqtt`` and ``fuzz_serial``
     Two vessels: one takes fuzzed input interleaved with good readings (random bytes,
     truncated and mangled JSON, non-finite and extreme numbers, numbers Python's
@@ -71,6 +72,9 @@ from monitor.service import Service  # noqa: E402
 from tests.support.mosquitto import MosquittoBroker  # noqa: E402
 
 PREFIX = "fault"
+#: Estimates must come again this soon (s) after a broker that was down 1 s is back: the
+#: reconnect backoff's first three waits add up to 3.5 s at most, and one more second.
+RESUME_WITHIN_S = 4.5
 T0 = 1_767_225_600.0
 
 
@@ -112,7 +116,7 @@ def stream(url: str, n: int, rate_hz: float, done: threading.Event) -> None:
                 async with aiomqtt.Client(host, int(port), identifier="fault-publisher") as c:
                     began = time.monotonic() - i / rate_hz
                     while i < n:
-                        await c.publish(f"{PREFIX}/urn-1/reading", reading(i), qos=1)
+                        await c.publish(f"{PREFIX}/urn-1/reading", reading(i), qos=1, timeout=1.0)
                         i += 1
                         await asyncio.sleep(max(0.0, began + i / rate_hz - time.monotonic()))
             except aiomqtt.MqttError:
@@ -187,6 +191,7 @@ def part_broker_restart(work: Path) -> dict[str, object]:
         broker.kill()
         time.sleep(1.0)
         broker.restart()
+        back_s = first_live_estimate_s(broker.url, time.monotonic())
         done.wait(timeout=120)
         wait_all(log, n)
     finally:
@@ -197,7 +202,31 @@ def part_broker_restart(work: Path) -> dict[str, object]:
     kinds = [e["kind"] for e in read_events(log)]
     events = {k: kinds.count(k) for k in ("link_lost", "gap")}
     ok = counts["missing"] == 0 and counts["duplicates"] == 0 and events["gap"] >= 1
-    return {"published": n, **counts, "events": events, "ok": ok}
+    ok = ok and back_s is not None and back_s <= RESUME_WITHIN_S
+    return {"published": n, **counts, "events": events,
+            "estimates_back_after_restart_s": back_s, "ok": ok}  # fmt: skip
+
+
+def first_live_estimate_s(url: str, since: float, patience_s: float = 60.0) -> float | None:
+    """Return seconds from ``since`` to the first estimate the service publishes anew
+    (not the broker's retained copy), or None within ``patience_s``."""
+
+    async def run() -> float | None:
+        host, port = url.removeprefix("mqtt://").split(":")
+        deadline = since + patience_s
+        while time.monotonic() < deadline:
+            try:
+                async with aiomqtt.Client(host, int(port), identifier="fault-watcher") as c:
+                    await c.subscribe(f"{PREFIX}/urn-1/estimate", qos=0)
+                    async with asyncio.timeout(max(deadline - time.monotonic(), 0.1)):
+                        async for message in c.messages:
+                            if not message.retain:
+                                return round(time.monotonic() - since, 2)
+            except (aiomqtt.MqttError, TimeoutError):
+                await asyncio.sleep(0.1)
+        return None
+
+    return asyncio.run(run())
 
 
 def fuzz_payload(rng: random.Random, t: float) -> bytes:

@@ -71,6 +71,11 @@ QOS = 1
 #: 2026-12-02 note measured 750 → 850 estimates a second at QoS 0). Flags, rare and
 #: acted on, stay at QoS 1.
 ESTIMATE_QOS = 0
+#: How long (s) a publish may wait for its PUBACK before the link counts as lost. A
+#: broker killed mid-publish sends nothing, and aiomqtt's own default of the client's
+#: 10 s timeout held every estimate back that long after a broker restart (9.4 s in
+#: bench_faults.py, 2026-12-05).
+PUBLISH_TIMEOUT_S = 2.0
 #: In-flight calls before aiomqtt warns; its default of 10 warns on every burst.
 PENDING_CALLS_THRESHOLD = 10_000
 #: Largest session expiry MQTT 5 can express (s); 0xFFFFFFFF means "never expires".
@@ -515,7 +520,7 @@ class MqttPublisher:
             raise DriverError(f"{self.source}: use the publisher inside 'async with'")
         payload = encode_json(value)
         try:
-            await client.publish(topic, payload, qos=qos, retain=True)
+            await client.publish(topic, payload, qos=qos, retain=True, timeout=PUBLISH_TIMEOUT_S)
         except aiomqtt.MqttError as exc:
             raise DriverError(f"{self.source}: cannot publish on {topic}: {exc}") from exc
 
