@@ -391,7 +391,8 @@ class MqttDriver:
                 )
             )
         except FrameError as exc:
-            logger.warning("%s: quarantined a message: %s", self.source, exc)
+            # told at a bounded rate by the service (every item is in the quarantine)
+            logger.debug("%s: quarantined a message: %s", self.source, exc)
             return [Quarantined(received_t, self.source, topic, str(exc), raw)]
 
     async def samples(self) -> AsyncIterator[Sample | Quarantined | Acknowledge]:

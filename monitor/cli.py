@@ -378,7 +378,7 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
         description="The embedded default: a simulated kettle heated to the boil, read through "
         "the real drivers (a thermocouple logger on a pseudo-terminal, a Modbus TCP power "
         "meter on 127.0.0.1), with the live estimator's figures (phase, time to boil with its "
-        "90 %% interval, water mass, UA, element conductance) shown in the terminal, and "
+        "90 % interval, water mass, UA, element conductance) shown in the terminal, and "
         "everything recorded to an SQLite log.",
         epilog="example: ebullio demo --speed 20 --out out/demo.sqlite",
     )

@@ -698,22 +698,28 @@ VERDICT_MARK = {"trusted": "✓ trusted", "doubtful": "✕ doubtful: not judged"
 
 def fleet_table(rows: Sequence[Mapping[str, object]]) -> str:
     """Return the fleet rows as a plain text table (doubtful last runs spelt out)."""
-    header = f"{'vessel':<14} {'status':<8} {'scaling':>8} {'runs':>5} {'since base':>10} " \
-             f"{'not judged':>10}  {'last run':<26} {'last verdict':<21} flags"  # fmt: skip
-    lines = [header, "-" * len(header)]
+    from monitor.tables import text_table
+
+    headers = ["vessel", "status", "scaling", "runs", "since base", "not judged", "last run",
+               "last verdict", "flags"]  # fmt: skip
+    cells, reasons = [], []
     for r in rows:
         index = r["scaling_index"]
-        scaling = f"{index:8.2f}" if isinstance(index, float) else f"{'-':>8}"
         last = f"{r['last_run']} {r['last_start_utc'] or ''}".strip()
-        verdict = VERDICT_TEXT.get(str(r.get("last_verdict")), "-")
-        lines.append(
-            f"{r['vessel']!s:<14} {r['status']!s:<8} {scaling} {r['runs']:>5} "
-            f"{r['runs_since_baseline']:>10} {r.get('not_judged_runs', 0):>10}  {last:<26} "
-            f"{verdict:<21} {', '.join(r['flags']) or '-'}"  # type: ignore[arg-type]
-            + (f"  ({r['note']})" if r.get("note") else "")
-        )
-        for reason in r.get("last_verdict_reasons") or []:  # type: ignore[union-attr]
-            lines.append(f"{'':<14} why not judged: {reason}")
+        flags = ", ".join(r["flags"]) or "-"  # type: ignore[arg-type]
+        cells.append([
+            str(r["vessel"]), str(r["status"]),
+            f"{index:.2f}" if isinstance(index, float) else "-",
+            str(r["runs"]), str(r["runs_since_baseline"]), str(r.get("not_judged_runs", 0)),
+            last, VERDICT_TEXT.get(str(r.get("last_verdict")), "-"),
+            flags + (f"  ({r['note']})" if r.get("note") else ""),
+        ])  # fmt: skip
+        reasons.append(list(r.get("last_verdict_reasons") or []))  # type: ignore[call-overload]
+    table = text_table(headers, cells, right="  >>>>")
+    lines = table[:2]
+    for line, why in zip(table[2:], reasons, strict=True):
+        lines.append(line)
+        lines += [f"    why not judged: {reason}" for reason in why]
     return "\n".join(lines)
 
 

@@ -102,6 +102,13 @@ from monitor.contracts import (
 )
 
 _log = logging.getLogger("ebullio.estimator")
+
+
+def _a(word: str) -> str:
+    """Return the indefinite article for ``word`` ("an element", "a water")."""
+    return "an" if word[:1].lower() in "aeiou" else "a"
+
+
 #: Channels whose missing readings the filter watches (a NaN is passed on for them).
 _WATCHED = frozenset(("water", "element"))
 
@@ -1590,8 +1597,9 @@ class VesselEstimator:
                     Flag(
                         f"{name}_outlier",
                         Level.NOTICE,
-                        f"A {name} reading of {value:g} °C was {miss:.0f} standard "
-                        "deviations from the model: set aside as a gross error.",
+                        f"{_a(name).capitalize()} {name} reading of {value:g} °C was "
+                        f"{miss:.0f} standard deviations from the model: set aside as a "
+                        "gross error.",
                         {"reading_c": value, "nis": nis, "innovation_c": nu, "weight": 0.0},
                     )
                 )
@@ -1618,8 +1626,9 @@ class VesselEstimator:
                     Flag(
                         f"{name}_outlier",
                         Level.NOTICE,
-                        f"A {name} reading of {value:g} °C was {miss:.1f} standard "
-                        f"deviations from the model: used at {weight:.0%} weight.",
+                        f"{_a(name).capitalize()} {name} reading of {value:g} °C was "
+                        f"{miss:.1f} standard deviations from the model: used at "
+                        f"{weight:.0%} weight.",
                         {"reading_c": value, "nis": nis, "innovation_c": nu, "weight": weight},
                     )
                 )

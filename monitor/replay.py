@@ -534,24 +534,29 @@ def summary_table(result: dict[str, object]) -> str:
             return f"{entry:.{digits}f}"
         return "-" if entry is None else str(entry)
 
-    lines = []
-    header = (f"{'vessel':<12} {'run':>4} {'heat-up s':>9} {'energy Wh':>9} {'water kg':>15} "
-              f"{'UA W/K':>15} {'G W/K':>13} {'loss kWh/24h':>15} {'eff.':>5}  "
-              f"{'verdict':<21} flags")  # fmt: skip
-    lines.append(header)
-    lines.append("-" * len(header))
+    from monitor.tables import text_table
+
+    headers = ["vessel", "run", "heat-up s", "energy Wh", "water kg", "UA W/K", "G W/K",
+               "loss kWh/24h", "eff.", "verdict", "flags"]  # fmt: skip
+    cells, reasons = [], []
     for run in result["runs"]:  # type: ignore[union-attr]
-        flags = ", ".join(f"{f['name']}({f['level']})" for f in run["flags"]) or "-"
+        flags = [f"{f['name']}({f['level']})" for f in run["flags"]]
+        # the drift flags against the vessel's earlier runs, as the fleet shows them
+        flags += [f"drift {f['name']}({f['level']})" for f in run.get("drift") or []]
         verdict = verdict_of(run)
-        lines.append(
-            f"{run['vessel']:<12} {run['run']:>4} {fmt(run['heat_up_s'], 0):>9} "
-            f"{fmt(run['energy_wh'], 1):>9} {fmt(run['water_mass_kg'], 3):>15} "
-            f"{fmt(run['ua_w_per_k'], 3):>15} {fmt(run['element_conductance_w_per_k'], 1):>13} "
-            f"{fmt(run['standing_loss_kwh_per_24h'], 2):>15} {fmt(run['efficiency'], 3):>5}  "
-            f"{VERDICT_TEXT[str(verdict['status'])]:<21} {flags}"
-        )
-        for reason in verdict["reasons"]:  # type: ignore[attr-defined]
-            lines.append(f"{'':<12} {'':>4} why not judged: {reason}")
+        cells.append([
+            str(run["vessel"]), str(run["run"]), fmt(run["heat_up_s"], 0),
+            fmt(run["energy_wh"], 1), fmt(run["water_mass_kg"], 3), fmt(run["ua_w_per_k"], 3),
+            fmt(run["element_conductance_w_per_k"], 1), fmt(run["standing_loss_kwh_per_24h"], 2),
+            fmt(run["efficiency"], 3), VERDICT_TEXT[str(verdict["status"])],
+            ", ".join(flags) or "-",
+        ])  # fmt: skip
+        reasons.append(list(verdict["reasons"]))  # type: ignore[call-overload]
+    table = text_table(headers, cells, right=" >>>>>>>>")
+    lines = table[:2]
+    for line, why in zip(table[2:], reasons, strict=True):
+        lines.append(line)
+        lines += [f"    why not judged: {reason}" for reason in why]
     quarantined = result["quarantined"]
     if quarantined:
         lines.append(f"{len(quarantined)} rows set aside:")  # type: ignore[arg-type]

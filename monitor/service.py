@@ -82,6 +82,9 @@ log = logging.getLogger("ebullio.service")
 #: core (judgement: room for the recorder thread's hold on the interpreter lock).
 FIT_CPU_SHARE = 0.15
 FIT_RETUNE_S = 2.0
+#: At most one log line per source this often (s) about input set aside: a publisher
+#: gone wrong must not flood the service's log. Every item is in the log's quarantine.
+QUARANTINE_NOTE_S = 10.0
 
 #: A driver factory: called for every (re)connection, returns an unentered driver.
 DriverFactory = Callable[[], Any]
@@ -375,6 +378,9 @@ class Service:
         self._head_to_publish: dict[str, object] | None = None  # the newest chain head
         self._publish_ready = asyncio.Event()
         self._faulted: set[str] = set()  # vessels whose failure has been logged in full
+        # set-aside input not yet told in the service's log, by source: (count, latest reason)
+        self._untold: dict[str, tuple[int, str]] = {}
+        self._told_at: dict[str, float] = {}
         self.started = asyncio.Event()
 
     def stop(self) -> None:
@@ -445,6 +451,8 @@ class Service:
             self._isolated(vessel, None, lambda v=vessel: self._steps(v, v.assembler.flush()))
         self.stats.samples += len(samples)
         self.stats.quarantined += len(quarantined)
+        if quarantined or self._untold:
+            self._tell_quarantine(quarantined)
         assert self._recorder is not None
         if samples:
             self._recorder.put("samples", samples)
@@ -453,6 +461,22 @@ class Service:
         if acks:  # behind the rows they cover: sent once those are committed
             self._recorder.put("acks", acks)
         self._flush_to_recorder()
+
+    def _tell_quarantine(self, items: list[Quarantined], *, now: float | None = None,
+                         everything: bool = False) -> None:  # fmt: skip
+        """Log set-aside input at a bounded rate: one line per source per
+        ``QUARANTINE_NOTE_S`` with the count since the last line and the latest reason
+        (the first item of a source is told at once). ``everything`` tells the rest."""
+        for q in items:
+            count, _ = self._untold.get(q.source, (0, ""))
+            self._untold[q.source] = (count + 1, q.reason)
+        now = time.monotonic() if now is None else now
+        for source, (count, reason) in list(self._untold.items()):
+            if everything or now - self._told_at.get(source, -math.inf) >= QUARANTINE_NOTE_S:
+                words = "%s: %d input(s) set aside since the last note, the latest because %s"
+                log.warning(words + " (all kept in the log's quarantine)", source, count, reason)
+                self._told_at[source] = now
+                del self._untold[source]
 
     def _steps(self, vessel: LiveVessel, steps: list[Any]) -> None:
         for step in steps:
@@ -638,6 +662,7 @@ class Service:
                         vessel, None, lambda v=vessel: self._steps(v, v.assembler.finish())
                     )
                 self._flush_to_recorder()
+                self._tell_quarantine([], everything=True)
                 self._record_runs()
                 await self._flush_publish(publisher)
         finally:

@@ -214,3 +214,26 @@ def test_one_run_that_cannot_be_replayed_leaves_the_others(monkeypatch, capsys):
     assert runs[("heater-1", "1")]["standing_loss_kwh_per_24h"] is not None
     assert main(["replay", KETTLE, KETTLE]) == 0  # the text table too
     assert "replay_failed" in capsys.readouterr().out
+
+
+def test_the_text_tables_keep_their_columns_and_show_drift():
+    """Issue 15: the fleet table's columns were pushed by a long time stamp, and the
+    replay table left the drift flags out."""
+    from monitor.drift import fleet_table
+    from monitor.tables import text_table
+
+    lines = text_table(["id", "n", "note"], [["a-very-long-vessel-id", "7", "x"], ["b", "12", "y"]],
+                       right=" >")  # fmt: skip
+    assert lines[3].startswith("b" + " " * 20 + "  ")  # padded to the widest id
+    assert lines[2].index("7") == lines[3].index("12") + 1  # right-aligned numbers
+    result = replay([KETTLE])
+    result["runs"][0]["drift"] = [{"name": "scaling", "level": "warning", "message": "m"}]
+    from monitor.replay import summary_table
+
+    assert "drift scaling(warning)" in summary_table(result)
+    row = {"vessel": "heater-with-a-long-name-12", "status": "warning", "scaling_index": 0.8,
+           "runs": 12, "runs_since_baseline": 7, "not_judged_runs": 1, "last_run": "12",
+           "last_start_utc": "2026-01-01T00:00:00+00:00", "last_verdict": "trusted",
+           "flags": ["scaling"]}  # fmt: skip
+    table = fleet_table([row, {**row, "vessel": "k1", "runs": 3}]).splitlines()
+    assert table[2].index("trusted") == table[3].index("trusted")

@@ -340,3 +340,47 @@ def test_an_impossible_serial_reading_is_set_aside_and_both_vessels_go_on(tmp_pa
     (kept,) = [q for q in read_quarantine(log) if b"1e+200" in q["raw"]]
     assert "above the vessel's" in kept["reason"]
     assert verify(log)["ok"]
+
+
+def test_set_aside_input_is_told_at_a_bounded_rate(tmp_path, caplog) -> None:
+    """Issue 15: every quarantined message logged its own warning, so a publisher gone
+    wrong flooded the service's log. Now one line per source per QUARANTINE_NOTE_S."""
+    import logging
+
+    import monitor.service as svc
+
+    vessel, _samples, meta = kettle(duration_s=10.0)
+    service = Service(config_for(vessel, meta), str(tmp_path / "q.sqlite"))
+
+    def bad(k: int, source: str = "mqtt://broker") -> Quarantined:
+        return Quarantined(1_767_225_600.0 + k, source, "topic x", f"reason {k}", b"?")
+
+    with caplog.at_level(logging.WARNING, logger="ebullio.service"):
+        service._tell_quarantine([bad(0)], now=100.0)  # the first is told at once
+        service._tell_quarantine([bad(k) for k in range(1, 500)], now=101.0)
+        service._tell_quarantine([bad(500, "serial:///dev/ttyUSB0")], now=102.0)
+        service._tell_quarantine([], now=100.0 + svc.QUARANTINE_NOTE_S)
+        service._tell_quarantine([bad(501)], now=111.0)
+        service._tell_quarantine([], now=112.0, everything=True)  # as the service stops
+    lines = [r.getMessage() for r in caplog.records]
+    assert len(lines) == 4
+    assert lines[0].startswith("mqtt://broker: 1 input(s) set aside")
+    assert lines[1].startswith("serial:///dev/ttyUSB0: 1 input(s)")
+    assert lines[2].startswith("mqtt://broker: 499 input(s) set aside")
+    assert "reason 499" in lines[2]
+    assert lines[3].startswith("mqtt://broker: 1 input(s)")
+    assert "reason 501" in lines[3]
+
+
+def test_small_wording_fixes() -> None:
+    """Issue 15's smaller items: the demo's help and the outlier flags' article."""
+    import subprocess
+    import sys
+
+    from monitor.estimator import _a
+
+    assert (_a("element"), _a("water")) == ("an", "a")
+    out = subprocess.run([sys.executable, "-m", "monitor.cli", "demo", "--help"],
+                         capture_output=True, text=True, check=True).stdout  # fmt: skip
+    assert "90 %" in out
+    assert "%%" not in out
