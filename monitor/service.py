@@ -378,6 +378,7 @@ class Service:
         self._head_to_publish: dict[str, object] | None = None  # the newest chain head
         self._publish_ready = asyncio.Event()
         self._faulted: set[str] = set()  # vessels whose failure has been logged in full
+        self._element_told: set[str] = set()  # vessels told their element readings go unused
         # set-aside input not yet told in the service's log, by source: (count, latest reason)
         self._untold: dict[str, tuple[int, str]] = {}
         self._told_at: dict[str, float] = {}
@@ -478,6 +479,20 @@ class Service:
                 self._told_at[source] = now
                 del self._untold[source]
 
+    def _tell_unused_element(self, vessel: LiveVessel, t: float) -> None:
+        """Say once per vessel that element readings arrive but are not used."""
+        if vessel.vessel in self._element_told:
+            return
+        self._element_told.add(vessel.vessel)
+        words = (
+            f"vessel {vessel.vessel}: its readings carry an element temperature, but it is "
+            "configured without an element thermocouple (element_sensor = false): the "
+            "one-node model is used and the element readings are only recorded. Set "
+            "element_sensor = true in its [[vessels]] table to use them."
+        )
+        log.warning("%s", words)
+        self._event(t, "config_notice", vessel.vessel, words)
+
     def _steps(self, vessel: LiveVessel, steps: list[Any]) -> None:
         for step in steps:
             self._step(vessel, step)
@@ -515,6 +530,8 @@ class Service:
 
     def _step(self, vessel: LiveVessel, step: Any) -> None:
         self.stats.steps += 1
+        if "element" in step.values and not vessel.config.has_element_sensor:
+            self._tell_unused_element(vessel, step.t)
         e = vessel.step(step)
         if vessel.ended:  # a run ended: its summary and drift flags go in the log now
             assert self._recorder is not None

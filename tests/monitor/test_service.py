@@ -384,3 +384,22 @@ def test_small_wording_fixes() -> None:
                          capture_output=True, text=True, check=True).stdout  # fmt: skip
     assert "90 %" in out
     assert "%%" not in out
+
+
+def test_element_readings_for_a_one_node_vessel_are_said_once(tmp_path, caplog) -> None:
+    """Issue 15: an MQTT vessel whose messages carry element readings was estimated
+    one-node, silently, unless element_sensor = true was set."""
+    import logging
+
+    vessel, samples, meta = kettle(duration_s=60.0)
+    assert any(s.channel == "element" for s in samples)
+    config = replace(config_for(vessel, meta), vessels=(VesselSpec(vessel, meta, False, True),))
+    log = tmp_path / "one-node.sqlite"
+    service = Service(config, str(log), extra_sources={"rig": lambda: ListDriver(samples, False)})
+    with caplog.at_level(logging.WARNING, logger="ebullio.service"):
+        asyncio.run(run_until(service, lambda: service.stats.samples >= len(samples)))
+    told = [r.getMessage() for r in caplog.records if "element_sensor = true" in r.getMessage()]
+    assert len(told) == 1
+    events = [e for e in read_events(log) if e["kind"] == "config_notice"]
+    assert len(events) == 1
+    assert vessel in events[0]["source"]
