@@ -15,7 +15,7 @@ without its credentials, and no password is ever logged or put into a message.
 
 Delivery: readings and flags at QoS 1; estimates at QoS 0 (:data:`ESTIMATE_QOS`).
 With a ``client_id`` the driver keeps a persistent session (MQTT 5 needs
-``clean_start`` off *and* a session expiry interval, see shared/NOTES.md), so
+``clean_start`` off *and* a session expiry interval, or nothing queued is delivered), so
 messages published while it was away are delivered when a new driver with the same
 ``client_id`` connects, for up to ``session_expiry_s``. The broker must be allowed
 to queue them: Mosquitto's default ``max_queued_messages``

@@ -1,4 +1,4 @@
-"""What the estimator hands on: estimates, forecasts and flags (see shared/DESIGN.md).
+"""What the estimator hands on: estimates, forecasts and flags (docs/mqtt.md, docs/run-summary.md).
 
 Small frozen objects with units in their names. Boards, reports, replay and the
 MQTT publisher all read these and nothing else of the estimator.

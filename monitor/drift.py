@@ -102,7 +102,7 @@ MAD_TO_SD = 1.4826
 
 #: Fewer usable water readings than this and a run is not judged: a minute of 1 Hz
 #: readings; the first minute of a heat-up is where the element's capacity and the
-#: sensors' lags dominate (shared/DESIGN.md), so less says nothing on G or C. Clean
+#: sensors' lags dominate (see monitor/estimator.py), so less says nothing on G or C. Clean
 #: kettle runs had 200-480.
 VERDICT_MIN_WATER_READINGS = 60
 #: Largest relative std (std / value) of a run's tracked figures before it is doubtful.

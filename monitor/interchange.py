@@ -1,6 +1,6 @@
 """The CSV interchange format: read and write logs that people and other tools can open.
 
-Layout (see shared/DESIGN.md):
+Layout (docs/csv-format.md describes it for users):
 
 * optional metadata lines before the header, ``# key: value``;
 * one header row: ``time_s`` (seconds from the start) or ``time`` (ISO 8601 with
@@ -30,7 +30,7 @@ from drivers.errors import LogFormatError
 from drivers.payloads import CHANNEL_COLUMNS as ROLE_COLUMNS
 from drivers.sample import PLAIN_NUMBER, Sample
 
-#: Channel roles the CSV interchange format carries (shared/DESIGN.md), in column order.
+#: Channel roles the CSV interchange format carries (docs/csv-format.md), in column order.
 INTERCHANGE_ROLES = ("water", "water_top", "element", "ambient", "power", "energy", "voltage",
                      "current", "pressure")  # fmt: skip
 #: CSV column for each channel role, with the unit in its name (the MQTT keys' naming).

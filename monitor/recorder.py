@@ -40,9 +40,10 @@ The hash chain
     bytes for a text (UTF-8) or a blob. The length prefix already makes the encoding
     unambiguous, so blobs are hashed as their bytes, not as hex (half the bytes to
     hash). The block header is in the hash too, so a changed commit time or row
-    count is caught. The last block can be rewritten together with its hash without
-    breaking the chain: to guard against that, keep ``verify()``'s ``head_hash``
-    somewhere else (a report, a ticket).
+    count is caught. The last blocks can be cut, or the last one rewritten together
+    with its hash, without breaking the chain: the chain head kept beside the log
+    (``LOG.head``, signed with a key when one is configured) and published on MQTT
+    guards against that (:func:`verify`; docs/recorder.md).
 
 What SQLite stores, and so what reads back
     SQLite cannot store NaN: a NaN value is stored as NULL and reads back as NaN

@@ -1,7 +1,7 @@
 """Replay recorded logs through the estimator: runs, per-step estimates and run summaries.
 
-A log is a CSV interchange file (shared/DESIGN.md). Each vessel's rows are split
-into runs:
+A log is a CSV interchange file (docs/csv-format.md) or a recorder log
+(docs/recorder.md). Each vessel's rows are split into runs:
 
 * at every change of the ``run`` column, when there is one;
 * otherwise at a cold start: a gap of more than :data:`RUN_GAP_S` between rows, or

@@ -212,6 +212,10 @@ def test_one_run_that_cannot_be_replayed_leaves_the_others(monkeypatch, capsys):
     assert bad["verdict"]["status"] == "doubtful"
     assert runs[("kettle-1", "1")]["water_mass_kg"] is not None
     assert runs[("heater-1", "1")]["standing_loss_kwh_per_24h"] is not None
+    import jsonschema  # the failed run's summary still follows the documented schema
+
+    schema = json.loads((LOGS.parent / "docs" / "run-summary.schema.json").read_text("utf-8"))
+    jsonschema.validate(result, schema)
     assert main(["replay", KETTLE, KETTLE]) == 0  # the text table too
     assert "replay_failed" in capsys.readouterr().out
 
@@ -237,3 +241,19 @@ def test_the_text_tables_keep_their_columns_and_show_drift():
            "flags": ["scaling"]}  # fmt: skip
     table = fleet_table([row, {**row, "vessel": "k1", "runs": 3}]).splitlines()
     assert table[2].index("trusted") == table[3].index("trusted")
+
+
+def test_replay_json_follows_the_documented_schema(capsys):
+    """Issue 15: the run-summary JSON is documented in docs/ with a JSON Schema."""
+    import jsonschema
+
+    schema = json.loads((LOGS.parent / "docs" / "run-summary.schema.json").read_text("utf-8"))
+    jsonschema.Draft202012Validator.check_schema(schema)
+    logs = sorted(str(p) for p in LOGS.glob("*.csv"))
+    result = _json(logs, capsys)
+    jsonschema.validate(result, schema)
+    assert len(result["runs"]) >= 3
+    broken = json.loads(json.dumps(result))
+    broken["runs"][0]["verdict"]["status"] = "fine"  # not a verdict: the schema says so
+    with pytest.raises(jsonschema.ValidationError):
+        jsonschema.validate(broken, schema)
