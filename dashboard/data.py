@@ -258,7 +258,7 @@ def replay_csv(path: str) -> dict[str, object]:
     """
     from monitor.drift import drift_over_runs
     from monitor.interchange import read_csv
-    from monitor.replay import split_runs
+    from monitor.runs import split_runs
 
     log = read_csv(path)
     runs, _ = split_runs([log])
@@ -322,7 +322,7 @@ def split_log(path: str, vessel: str | None = None) -> list:
     as ``ebullio replay``; a fleet's log is not read whole to replay one vessel).
     """
     from monitor.logs import read_log
-    from monitor.replay import split_runs
+    from monitor.runs import split_runs
 
     return split_runs(read_log(path, vessel))[0]
 

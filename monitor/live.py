@@ -52,7 +52,7 @@ from monitor.contracts import Estimate, finite_or_none
 from monitor.drift import VesselDrift, run_checks
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
-from monitor.replay import REFILL_WINDOW_S, RUN_GAP_S, Run, _starts_run, estimator_figures
+from monitor.runs import RunSplitter, estimator_figures
 
 #: How long (s) the latest reading of a channel may stand in for one an instant lacks.
 HOLD_S: dict[str, float] = {
@@ -235,10 +235,8 @@ class LiveVessel:
         self.steps = 0
         #: One entry per run so far: label, first and last step (Unix s).
         self.runs: list[dict[str, object]] = []
-        self._run: Run | None = None
-        self._previous_s: float | None = None
+        self._runs = RunSplitter()  # the one rule, as a replay splits runs
         self._previous_row: LogRow | None = None
-        self._window: list[tuple[float, float]] = []
         #: The vessel's drift trackers, fed each run's summary as the run ends.
         self.drift = VesselDrift(vessel, self.metadata)
         #: Summaries of the runs that have ended, until the service takes them.
@@ -291,11 +289,11 @@ class LiveVessel:
         """Return the estimate after one step (None while the filter is not yet initialised)."""
         row = LogRow(step.line, step.time_s, step.values, step.vessel)
         carried: LogRow | None = None
-        if self._run is None or _starts_run(row, self._run, self._previous_s, self._window):
-            refill = self._run is not None and step.time_s - (self._previous_s or 0.0) <= RUN_GAP_S
-            carried = self._previous_row if refill else None
+        start = self._runs.take(row)
+        if start is not None:
+            carried = self._previous_row if start == "refill" else None
             self.run_number += 1
-            ended = self.end_run() if self._run is not None else None
+            ended = self.end_run() if start != "first" else None
             if ended is not None:
                 self.ended.append(ended)
             self.latest = None
@@ -303,10 +301,8 @@ class LiveVessel:
             self._start_c = None
             self._run_steps = 0
             self.runs.append({"run": str(self.run_number), "start_t": step.t, "end_t": step.t})
-            self._run = Run(self.vessel, self.run_number, str(self.run_number), [], None)  # type: ignore[arg-type]
             self.estimator = self._fresh or self._new_estimator()
             self._fresh = None
-            self._window.clear()
         assert self.estimator is not None
         if carried is not None:
             self.estimator.step(carried.time_s, carried.values)
@@ -314,12 +310,7 @@ class LiveVessel:
         self.steps += 1
         self._run_steps += 1
         self.runs[-1]["end_t"] = step.t
-        self._previous_s = row.time_s
         self._previous_row = row
-        if "water" in row.values:
-            self._window.append((row.time_s, row.values["water"]))
-            while self._window and row.time_s - self._window[0][0] > REFILL_WINDOW_S:
-                self._window.pop(0)
         if estimate is not None:
             self.latest = estimate
             totals = self.estimator.totals

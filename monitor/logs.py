@@ -25,7 +25,7 @@ from monitor.interchange import (
 )
 from monitor.live import logs_from_steps, steps_from_samples
 from monitor.recorder import is_recorder_log, read_quarantine, read_samples, read_vessels
-from monitor.replay import split_runs
+from monitor.runs import split_runs
 
 
 def _rejected(path: str) -> list[Rejected]:
