@@ -74,12 +74,13 @@ def _latest(row: tuple | None) -> dict[str, object] | None:
     return latest
 
 
-def _columns(rows: list[tuple]) -> dict[str, list]:
-    """Return estimate rows (columns _EST_KEYS, then anything) as columns, phase left out.
+def _columns(rows: list[tuple], phase: bool = False) -> dict[str, list]:
+    """Return estimate rows (columns _EST_KEYS, then anything) as columns; the phase
+    only when asked for (the replay view's cards show it, the live charts do not).
 
     The callers thin the rows first (:func:`chart_data`, :func:`replay_one`).
     """
-    return {k: [r[i] for r in rows] for i, k in enumerate(_EST_KEYS) if k != "phase"}
+    return {k: [r[i] for r in rows] for i, k in enumerate(_EST_KEYS) if phase or k != "phase"}
 
 
 def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
@@ -311,7 +312,7 @@ def replay_one(
         pts = [p for p in pts if p[1] is not None]
         t, y = envelope([p[0] for p in pts], [p[1] for p in pts])
         series[channel] = {"t": t, "y": y}
-    return {"series": series, "estimates": _columns(rows),
+    return {"series": series, "estimates": _columns(rows, phase=True),
             "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
 
 

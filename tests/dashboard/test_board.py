@@ -358,6 +358,9 @@ def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) ->
     early, late = latest_at(detail, start + 20.0), latest_at(detail, start + 200.0)
     assert late["water_c"] > early["water_c"] + 10.0  # the kettle heats (our scenario)
     assert str(cards) != str(cards_later)
+    # issue 15: the phase card always showed "-" (the phase was left out of the replay)
+    assert late["phase"] == "heating"
+    assert "heating" in str(cards_later)
 
 
 def test_the_board_exports_one_run_as_csv(live_log) -> None:
