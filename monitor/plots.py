@@ -24,6 +24,14 @@ UNITS = {"element_conductance_w_per_k": "W/K", "ua_w_per_k": "W/K",
          "heating_power_at_rated_voltage_w": "W"}  # fmt: skip
 
 
+#: Why a tracked figure can be missing from every run, said in its empty panel.
+NOT_MEASURED = {
+    "heating_power_at_rated_voltage_w": "not measured: it needs voltage and current readings",
+    "element_conductance_w_per_k": "not measured: it needs an element thermocouple",
+    "ua_w_per_k": "not estimated in these runs",
+}
+
+
 def band_edges(
     mean: Sequence[float | None], std: Sequence[float | None]
 ) -> tuple[list[float | None], list[float | None]]:
@@ -148,5 +156,13 @@ def history_figure(
         if edge is not None and any(off):
             span = edge[1] - edge[0]
             fig.update_yaxes(range=[edge[0] - 0.1 * span, edge[1] + 0.1 * span], row=row, col=1)
+    for row, rule in enumerate(RULES, start=1):  # an empty panel says why it is empty
+        if runs and all(figure(r, rule.key) is None for r in runs):
+            axis = "" if row == 1 else str(row)
+            fig.add_annotation(
+                text=NOT_MEASURED.get(rule.key, "no value in these runs"),
+                xref=f"x{axis} domain", yref=f"y{axis} domain", x=0.5, y=0.5,
+                showarrow=False, font={"color": "#555555"},
+            )  # fmt: skip
     fig.update_xaxes(categoryorder="array", categoryarray=labels)
     return fig

@@ -545,3 +545,18 @@ def test_the_board_warns_of_a_log_that_failed_its_integrity_check(live_log, tmp_
     assert "altered.sqlite failed its integrity check (tampered)" in line
     app = create_app(str(altered), poll_ms=60_000)
     assert "log-integrity" in str(app.layout)  # the banner's place on every page
+
+
+def test_an_empty_maintenance_panel_says_why() -> None:
+    """Issue 15: on a kettle log (no voltage or current readings) the panel of the power
+    at the rated voltage was empty without a word."""
+    from monitor.plots import history_figure
+
+    runs = [{"run": str(k), "verdict": {"status": "trusted", "reasons": []},
+             "ua_w_per_k": {"value": 1.0 + 0.01 * k, "std": 0.1},
+             "element_conductance_w_per_k": {"value": 50.0, "std": 1.0}}
+            for k in range(1, 4)]  # fmt: skip
+    notes = [a.text for a in history_figure(runs, {}).layout.annotations]
+    assert "not measured: it needs voltage and current readings" in notes
+    assert not any("element thermocouple" in n for n in notes)  # that panel has points
+    assert not [a for a in history_figure([], {}).layout.annotations if "measured" in a.text]
