@@ -158,11 +158,11 @@ def history_figure(
             fig.update_yaxes(range=[edge[0] - 0.1 * span, edge[1] + 0.1 * span], row=row, col=1)
     for row, rule in enumerate(RULES, start=1):  # an empty panel says why it is empty
         if runs and all(figure(r, rule.key) is None for r in runs):
-            axis = "" if row == 1 else str(row)
+            low, high = fig.layout[f"yaxis{'' if row == 1 else row}"].domain
             fig.add_annotation(
                 text=NOT_MEASURED.get(rule.key, "no value in these runs"),
-                xref=f"x{axis} domain", yref=f"y{axis} domain", x=0.5, y=0.5,
-                showarrow=False, font={"color": "#555555"},
+                xref="paper", yref="paper", x=0.5, y=(low + high) / 2.0,
+                showarrow=False, font={"color": "#555555", "size": 14},
             )  # fmt: skip
     fig.update_xaxes(categoryorder="array", categoryarray=labels)
     return fig

@@ -131,8 +131,12 @@ def layout(log_names: list[str]) -> html.Section:
                          options=[{"label": n, "value": i} for i, n in enumerate(log_names)]),
             dcc.Dropdown(id=ids.REPLAY_RUN, clearable=False, placeholder="pick a run"),
         ], className="pickers"),
-        html.Div(dcc.Slider(id=ids.REPLAY_SCRUB, min=0, max=1, step=1, value=0,
-                            updatemode="drag"), className="scrubber"),
+        html.Div([
+            # the box beside the slider takes seconds; the marks under it are minutes
+            html.Label("Position in the run, s from its start (marks in minutes)",
+                       htmlFor=ids.REPLAY_SCRUB, className="status"),
+            dcc.Slider(id=ids.REPLAY_SCRUB, min=0, max=1, step=1, value=0, updatemode="drag"),
+        ], className="scrubber"),
         html.Div(id=ids.REPLAY_STATUS, className="status", role="status"),
         dcc.Interval(id=ids.REPLAY_WAIT, interval=700, disabled=True),
         html.Div(id=ids.REPLAY_FIGURES, className="figures"),

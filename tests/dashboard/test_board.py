@@ -560,3 +560,12 @@ def test_an_empty_maintenance_panel_says_why() -> None:
     assert "not measured: it needs voltage and current readings" in notes
     assert not any("element thermocouple" in n for n in notes)  # that panel has points
     assert not [a for a in history_figure([], {}).layout.annotations if "measured" in a.text]
+
+
+def test_the_scrub_box_says_its_unit() -> None:
+    """Issue 15: the replay view's scrub box took seconds with no unit beside an axis in
+    minutes."""
+    from dashboard.views.replay import layout
+
+    text = str(layout(["a.sqlite"]))
+    assert "s from its start (marks in minutes)" in text
