@@ -258,6 +258,12 @@ li.warning, li.alarm {{ color: #b3261e; }}
 .verdict-doubtful {{ border: 2px dashed #555; padding: .2rem 1rem; background: #f4f4f4; }}
 .caution {{ border: 2px solid #b3261e; padding: .6rem 1rem; background: #fff6f5; }}
 pre {{ background: #f5f5f5; padding: .6rem; overflow-x: auto; }}
+@media print {{
+  .modebar-container, .modebar {{ display: none !important; }}
+  .plotly-graph-div, table, .caution, .verdict-doubtful {{ break-inside: avoid;
+    page-break-inside: avoid; }}
+  h2 {{ break-after: avoid; page-break-after: avoid; }}
+}}
 </style></head><body>
 <h1>{html.escape(title)}</h1>
 {banner}

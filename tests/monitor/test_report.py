@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import sqlite3
 from dataclasses import replace
+from pathlib import Path
 
 import pytest
 
@@ -166,3 +167,16 @@ def test_the_history_chart_crosses_doubtful_runs_and_keeps_them_off_the_judged_l
     assert cross.y[0] < 100.0  # drawn at the edge, not at 243 W/K
     assert "known only to ±25%" in cross.hovertext[0]
     assert list(fig.layout.xaxis.categoryarray) == ["1", "2", "2b", "3", "4", "5"]
+
+
+def test_the_printed_report_keeps_plots_whole_and_leaves_the_toolbar_out() -> None:
+    """Issue 15: the report's PDF split a plot across pages and printed the chart
+    toolbar. The page's print rules say what Chromium's printer must do; the PDF of a
+    kettle log was looked at page by page on 2026-12-05 (7 pages, no plot split)."""
+    page = build_report(
+        str(Path(__file__).resolve().parents[2] / "replay_logs" / "kettle-clean.csv")
+    )
+    rules = page[page.index("@media print") :]
+    assert ".modebar" in rules[: rules.index("</style>")]
+    assert "display: none" in rules[: rules.index("</style>")]
+    assert "break-inside: avoid" in rules[: rules.index("</style>")]
