@@ -11,6 +11,7 @@ import argparse
 import asyncio
 import base64
 import hmac
+import logging
 import os
 import sys
 import threading
@@ -21,13 +22,28 @@ from monitor import cli
 LOOPBACK = ("127.0.0.1", "localhost", "::1")
 
 
-def serve_board(log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None, more_logs=()):
+def serve_board(
+    log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None, more_logs=(),
+    access_log: str | None = None,
+):  # fmt: skip
     """Start the board over ``log_path`` in a thread; return the (werkzeug) server.
 
     ``auth`` is (user, password) for basic auth, or None; ``more_logs`` are offered in
-    the replay view too. Raises EbullioError when the port cannot be had.
+    the replay view too. The web server's request lines go to the file ``access_log``,
+    and nowhere without one (they buried the demo's live table). Raises EbullioError
+    when the port cannot be had.
     """
     from werkzeug.serving import make_server
+
+    requests = logging.getLogger("werkzeug")
+    requests.propagate = False  # never onto the terminal
+    if access_log is not None:
+        handler = logging.FileHandler(access_log, encoding="utf-8")
+        handler.setFormatter(logging.Formatter("%(asctime)s %(message)s"))
+        requests.addHandler(handler)
+        requests.setLevel(logging.INFO)
+    else:
+        requests.setLevel(logging.WARNING)  # errors still reach the handlers, if any
 
     from dashboard.app import create_app
 
@@ -78,7 +94,7 @@ def cmd_board(args: argparse.Namespace) -> int:
     """Serve the board over a log (read-only) until Ctrl-C or SIGTERM."""
     auth = _login_for(args.host, args.no_auth)
     server = serve_board(args.log, args.host, args.port, int(args.poll_s * 1000), auth,
-                         more_logs=args.more)  # fmt: skip
+                         more_logs=args.more, access_log=args.access_log)  # fmt: skip
     print(f"ebullio board: http://{args.host}:{server.server_port}/ over {args.log} "
           "(Ctrl-C stops it)", file=sys.stderr, flush=True)  # fmt: skip
     try:
@@ -110,7 +126,8 @@ def cmd_demo_with_board(args: argparse.Namespace) -> int:
     servers: list = []
 
     def start() -> None:
-        servers.append(serve_board(args.out, "127.0.0.1", args.board_port))
+        servers.append(serve_board(args.out, "127.0.0.1", args.board_port,
+                                   access_log=args.access_log))  # fmt: skip
         print(f"demo: the board is at http://127.0.0.1:{servers[0].server_port}/", flush=True)
 
     async def after() -> None:
@@ -133,6 +150,8 @@ def extend(verbs, parsers) -> None:
         "--board-port", type=cli.port_option, default=8050, help="board port (default 8050)"
     )
     demo.add_argument("--no-board", action="store_true", help="run without the web board")
+    demo.add_argument("--access-log", metavar="FILE",
+                      help="write the board's web requests here (default: not kept)")  # fmt: skip
     demo.set_defaults(func=cmd_demo_with_board)
     brd = verbs.add_parser(
         "board",
@@ -155,6 +174,8 @@ def extend(verbs, parsers) -> None:
         help="refresh every N s (default 2)",
     )
     brd.add_argument("--no-auth", action="store_true", help="no login even beyond loopback")
+    brd.add_argument("--access-log", metavar="FILE",
+                     help="write the web requests here (default: not kept)")  # fmt: skip
     brd.set_defaults(func=cmd_board)
 
 

@@ -200,7 +200,7 @@ def test_demo_serves_the_board_and_stops_on_sigint(tmp_path) -> None:
     out = tmp_path / "demo.sqlite"
     proc = subprocess.Popen(
         [sys.executable, "-m", "dashboard.cli", "demo", "--speed", "60", "--duration-s", "60",
-         "--board-port", "0", "--out", str(out)],
+         "--board-port", "0", "--out", str(out), "--access-log", str(tmp_path / "web.log")],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
     )  # fmt: skip
     try:
@@ -223,7 +223,12 @@ def test_demo_serves_the_board_and_stops_on_sigint(tmp_path) -> None:
     finally:
         if proc.poll() is None:
             proc.kill()
-        proc.communicate()
+        rest_out, rest_err = proc.communicate()
+    # issue 15: the web server's request lines buried the demo's live table; they go
+    # to the access log now, and none reach the terminal
+    assert '"GET / HTTP/1.1" 200' in (tmp_path / "web.log").read_text(encoding="utf-8")
+    terminal = "".join(lines) + rest_out + rest_err
+    assert "GET /" not in terminal
 
 
 def test_board_help_and_refusing_an_open_host_without_a_login(live_log) -> None:
