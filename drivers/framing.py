@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 from datetime import datetime
 
 from drivers.errors import ConfigError, FrameError
+from drivers.sample import PLAIN_NUMBER
 
 #: Default longest line, in bytes before its newline (a trailing CR counted).
 DEFAULT_MAX_LINE_BYTES = 1024
@@ -35,7 +36,6 @@ DEFAULT_MAX_AHEAD_S = 300.0
 FRAMINGS = ("csv", "keyvalue", "regex")
 
 _DEFAULT_PAIR_SPLIT = re.compile(r"[\s,]+")
-_UNIX_SECONDS = re.compile(r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?")
 
 
 # ---------------------------------------------------------------------------
@@ -360,7 +360,7 @@ def instrument_time(
         raise FrameError(f"time field {name!r} is missing from the line")
     text = fields[name]
     raw = text.encode("utf-8", "backslashreplace")
-    if _UNIX_SECONDS.fullmatch(text):
+    if PLAIN_NUMBER.fullmatch(text):  # Unix seconds, as every number on a line
         t = float(text)
     else:
         try:

@@ -299,9 +299,13 @@ def cmd_fleet(args: argparse.Namespace) -> int:
 
 def cmd_report(args: argparse.Namespace) -> int:
     """Write the audit report of one run as a self-contained HTML file."""
+    from monitor.logs import log_integrity
+    from monitor.recorder import is_recorder_log, verify
     from monitor.report import build_report
 
-    page = build_report(args.log, args.vessel, args.run)
+    # one pass over the chain for both the report's integrity section and the warning
+    verified = verify(args.log) if is_recorder_log(args.log) else None
+    page = build_report(args.log, args.vessel, args.run, verified=verified)
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(page, encoding="utf-8")
@@ -312,9 +316,7 @@ def cmd_report(args: argparse.Namespace) -> int:
         pdf = out.with_suffix(".pdf")
         print_pdf(out, pdf)
         print(f"printed it to {pdf}", file=sys.stderr)
-    from monitor.logs import log_integrity
-
-    return _say_integrity([log_integrity(args.log)])
+    return _say_integrity([log_integrity(args.log, verified)])
 
 
 def _add_scenario_options(p: argparse.ArgumentParser, seed: int) -> None:

@@ -115,9 +115,7 @@ class _Undecodable(str):
 
 def _decoded_lines(handle: Iterable[bytes]) -> Iterator[str]:
     """Yield a binary file's lines as text; a line that is not UTF-8 as :class:`_Undecodable`."""
-    for number, raw in enumerate(handle, start=1):
-        if number == 1 and raw.startswith(b"\xef\xbb\xbf"):
-            raw = raw[3:]  # the byte-order mark some editors write
+    for raw in handle:  # a byte-order mark decodes to U+FEFF: read_csv_text drops it
         try:
             yield raw.decode("utf-8")
         except UnicodeDecodeError as exc:
@@ -145,7 +143,7 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
     rejected: list[Rejected] = []
     for number, raw in lines:
         if number == 1 and raw.startswith("\ufeff"):
-            raw = raw[1:]  # a byte-order mark, in text already decoded
+            raw = raw[1:]  # the byte-order mark some editors write
         text = raw.strip()
         if not text:
             continue

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 import time
+from collections.abc import Mapping
 from datetime import datetime
 from pathlib import Path
 from typing import TextIO
@@ -38,20 +39,23 @@ def _rejected(path: str) -> list[Rejected]:
     return out
 
 
-def log_integrity(path: str | Path) -> dict[str, object]:
+def log_integrity(
+    path: str | Path, verified: Mapping[str, object] | None = None
+) -> dict[str, object]:
     """Return what can be said of a log's integrity: ``file``, ``state``, ``reason``.
 
     A recorder log is checked as ``ebullio verify`` does (:func:`monitor.recorder.verify`:
     ``intact``, ``tampered`` or ``damaged``); a CSV log carries no hash chain, so its
     state is ``unchecked``. ``replay``, ``fleet``, ``report``, ``export`` and the board
-    say so when a recorder log is not intact.
+    say so when a recorder log is not intact. ``verified`` is a :func:`verify` result of
+    ``path`` already at hand (the report makes one), so the chain is not read twice.
     """
     from monitor.recorder import verify
 
     if not is_recorder_log(path):
         return {"file": str(path), "state": "unchecked",
                 "reason": "a CSV log carries no hash chain"}  # fmt: skip
-    result = verify(path)
+    result = verify(path) if verified is None else verified
     return {"file": str(path), "state": result["state"], "reason": result["reason"]}
 
 

@@ -116,7 +116,12 @@ def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
     return fig
 
 
-def build_report(log_path: str, vessel: str | None = None, run_label: str | None = None) -> str:
+def build_report(
+    log_path: str,
+    vessel: str | None = None,
+    run_label: str | None = None,
+    verified: Mapping[str, object] | None = None,
+) -> str:
     """Return the audit report of one run of one vessel as a self-contained HTML page.
 
     ``vessel`` may be left out when the log holds one; ``run_label`` defaults to the
@@ -157,7 +162,7 @@ def build_report(log_path: str, vessel: str | None = None, run_label: str | None
     config_text = None
     banner = ""
     if is_recorder_log(log_path):
-        check = verify(log_path)
+        check = verify(log_path) if verified is None else verified
         state = (
             "verified: every block matches"
             if check["ok"]

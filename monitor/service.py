@@ -67,7 +67,7 @@ from drivers.errors import DriverError, EbullioError
 from drivers.sample import Quality, ReadingLimits, Sample
 from monitor import __version__
 from monitor.batchfit import FitBudget, warm_up
-from monitor.config import Instrument, RigConfig, driver_settings
+from monitor.config import Instrument, MqttSettings, RigConfig, driver_settings
 from monitor.live import LiveVessel, estimate_message
 from monitor.recorder import Recorder, estimate_record
 
@@ -131,7 +131,7 @@ class Stats:
     backpressure_s: float = 0.0
     blocks: int = 0
     repeats_skipped: int = 0  # readings a broker delivered again, recorded once
-    fits_deferred: int = 0  # steps at which a due heat-up fit waited for FIT_CPU_SHARE
+    fits_deferred: int = 0  # steps at which a due heat-up fit waited for the fit budget
     fit_cpu_s: float = 0.0
 
     def as_dict(self) -> dict[str, float]:
@@ -310,10 +310,10 @@ class RecorderThread:
             raise EbullioError(f"the recorder failed: {self._error}") from self._error
 
 
-def _ack_early(mqtt: Any) -> int:
+def _ack_early(mqtt: MqttSettings | None) -> int:
     """Return how many waiting acknowledgements make the recorder commit at once: half
     the broker's in-flight window (``[mqtt] inflight_window``; 0 for no limit: never)."""
-    window = getattr(mqtt, "inflight_window", 0) if mqtt is not None else 0
+    window = mqtt.inflight_window if mqtt is not None else 0
     return max(window // 2, 1) if window else 0
 
 

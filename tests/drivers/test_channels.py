@@ -115,6 +115,7 @@ def test_parse_number_accepts_numbers_and_padded_text() -> None:
 def test_reading_limits_know_what_no_instrument_could_give() -> None:
     from drivers.sample import ReadingLimits
 
+    # our own limits (judgement): 4x the rating by default, a noise band of 2 % of that
     limits = ReadingLimits.from_metadata({"rated_power_w": 2000})
     assert limits.max_power_w == 8000.0  # 4x the rating by default
     for channel, value, needle in [

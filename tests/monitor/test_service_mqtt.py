@@ -45,6 +45,17 @@ async def publish(url: str, payloads: list[tuple[str, bytes]]) -> None:
             await client.publish(topic, payload, qos=1)
 
 
+async def retained(url: str, topic: str, identifier: str) -> dict:
+    """Return the JSON message a new subscriber to ``topic`` gets first (the retained one)."""
+    host, port = url.removeprefix("mqtt://").split(":")
+    async with aiomqtt.Client(host, int(port), identifier=identifier) as client:
+        await client.subscribe(topic, qos=1)
+        async with asyncio.timeout(10):
+            async for message in client.messages:
+                return json.loads(message.payload)
+    raise AssertionError(f"no message on {topic}")  # not reached: the timeout raises first
+
+
 async def wait_for(condition, timeout_s: float = 15.0) -> None:
     async with asyncio.timeout(timeout_s):
         while not condition():
@@ -69,13 +80,7 @@ def test_readings_are_recorded_estimated_and_published_back(mosquitto, tmp_path)
         await publish(mosquitto.url, payloads)
         await wait_for(lambda: service.stats.samples >= 90 and service.stats.quarantined >= 1)
         await wait_for(lambda: service.stats.published >= 1)
-        host, port = mosquitto.url.removeprefix("mqtt://").split(":")
-        async with aiomqtt.Client(host, int(port), identifier="test-board") as client:
-            await client.subscribe("lab/urn-1/estimate", qos=1)
-            async with asyncio.timeout(10):
-                async for message in client.messages:
-                    estimate = json.loads(message.payload)
-                    break
+        estimate = await retained(mosquitto.url, "lab/urn-1/estimate", "test-board")
         service.stop()
         return await task, estimate
 
@@ -366,13 +371,7 @@ def test_the_chain_head_is_published_retained_and_checks_the_log(mosquitto, tmp_
         await asyncio.sleep(0.5)
         service.stop()
         await task
-        host, port = mosquitto.url.removeprefix("mqtt://").split(":")
-        async with aiomqtt.Client(host, int(port), identifier="test-auditor") as client:
-            await client.subscribe("lab/_log/chain_head", qos=1)
-            async with asyncio.timeout(10):
-                async for message in client.messages:
-                    return json.loads(message.payload)
-        return None  # not reached: the retained head arrives or the timeout raises
+        return await retained(mosquitto.url, "lab/_log/chain_head", "test-auditor")
 
     head = asyncio.run(scenario())
     assert head["block"] >= 2
