@@ -71,7 +71,7 @@ import sqlite3
 import struct
 import time
 import urllib.parse
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Collection, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 from types import TracebackType
 
@@ -459,7 +459,7 @@ class Recorder:
         self.last_block: int | None = None
         #: the chain head after the last commit (:func:`head_record`), None before one
         self.last_head: dict[str, object] | None = None
-        #: samples not added again by ``add_samples(..., skip_repeats=True)``
+        #: samples not added again by ``add_samples(..., once_from=...)``
         self.repeats_skipped = 0
         self._latest_t: dict[tuple[object, object], float] = {}  # (vessel, channel) -> t
         _check_existing(self.path)
@@ -530,17 +530,18 @@ class Recorder:
         self._count += len(rows)
         return len(rows)
 
-    def add_samples(self, samples: Iterable[Sample], *, skip_repeats: bool = False) -> int:
+    def add_samples(self, samples: Iterable[Sample], *, once_from: Collection[str] = ()) -> int:
         """Return how many samples were added to the pending block.
 
         The whole batch is checked first: a sample with a non-finite time or a
         field of the wrong type raises ValueError and nothing of the batch is added.
-        With ``skip_repeats`` a sample the log already holds (pending or committed:
-        the same vessel, channel, time and value) is not added again and is counted in
-        :attr:`repeats_skipped`: a broker that delivers a QoS 1 message again after a
-        crash or a lost link (the live service acknowledges only after the commit) has
-        its readings recorded once. Only a sample not later than its channel's latest
-        is looked up, so the cost is in the rare repeats, not in every sample.
+        A sample from a source in ``once_from`` that the log already holds (pending or
+        committed: the same vessel, channel, time and value) is not added again and is
+        counted in :attr:`repeats_skipped`: a broker that delivers a QoS 1 message
+        again after a crash or a lost link (the live service acknowledges only after
+        the commit) has its readings recorded once. Other sources' samples are all
+        kept, twins included. Only a sample not later than its channel's latest is
+        looked up, so the cost is in the rare repeats, not in every sample.
         """
         rows = []
         for s in samples:
@@ -559,11 +560,11 @@ class Recorder:
             if quality not in _QUALITIES:
                 raise ValueError(f"sample quality {quality!r} is not one of {list(_QUALITIES)}")
             rows.append((t, vessel, channel, value, quality, source))
-        if skip_repeats:
-            rows = self._without_repeats(rows)
+        if once_from:
+            rows = self._without_repeats(rows, once_from)
         return self._add("samples", rows)
 
-    def _without_repeats(self, rows: list[Row]) -> list[Row]:
+    def _without_repeats(self, rows: list[Row], once_from: Collection[str]) -> list[Row]:
         kept: list[Row] = []
         latest = self._latest_t
         for row in rows:
@@ -574,7 +575,7 @@ class Recorder:
                     "SELECT max(t) FROM samples WHERE vessel = ? AND channel = ?", key
                 ).fetchone()[0]
                 last = -math.inf if found is None else found
-            if t <= last and self._holds(row, kept):  # type: ignore[operator]
+            if t <= last and row[5] in once_from and self._holds(row, kept):  # type: ignore[operator]
                 self.repeats_skipped += 1
                 continue
             latest[key] = max(last, t)  # type: ignore[type-var]

@@ -35,7 +35,7 @@ Shape (all in one asyncio loop, except the recorder's SQLite writes)::
   :mod:`monitor.recorder`). MQTT readings are acknowledged to the broker only after
   the commit that holds them (:class:`~drivers.channels.Acknowledge`, sent from the
   loop's thread), so a crash loses nothing acknowledged: the broker delivers the rest
-  again and the recorder records each reading once (``skip_repeats``). When half the
+  again and the recorder records each reading once (``once_from``). When half the
   broker's in-flight window (``[mqtt] inflight_window``) waits, it commits at once.
 * **Publisher.** The latest estimate of each vessel, and its flags when they change,
   are published retained on ``<prefix>/<vessel>/estimate`` and ``.../flags``. When the
@@ -214,12 +214,14 @@ class RecorderThread:
         loop: asyncio.AbstractEventLoop | None = None, ack_early: int = 0,
         key: bytes | None = None,
         on_head: Callable[[dict[str, object]], None] | None = None,
+        redelivering: frozenset[str] = frozenset(),
     ) -> None:  # fmt: skip
         self._queue: queue.SimpleQueue[tuple[str, Any] | None] = queue.SimpleQueue()
         self._loop = loop  # where acknowledgements are sent from (the sources' loop)
         self._acks: list[Acknowledge] = []  # queued behind rows not yet committed
         self._ack_early = ack_early  # commit at once when this many acks wait (0: never)
         self._on_head = on_head  # called in the loop's thread with each new chain head
+        self.redelivering = redelivering  # sources that may deliver a reading again
         self._head_sent: object = None
         self._interval_s = commit_interval_s
         self._stats = stats
@@ -242,7 +244,9 @@ class RecorderThread:
     def _run(self) -> None:
         rec = self._recorder
         adders = {
-            "samples": lambda rows: rec.add_samples(rows, skip_repeats=True),
+            # a reading a source may deliver again (MQTT, acknowledged after the commit)
+            # is recorded once; every other source's samples are all kept
+            "samples": lambda rows: rec.add_samples(rows, once_from=self.redelivering),
             "acks": lambda acks: self._acks.extend(acks),  # self._acks is replaced on send
             "quarantined": rec.add_quarantined,
             "estimates": rec.add_estimates,
@@ -285,7 +289,7 @@ class RecorderThread:
         Called right after a commit, so every acknowledgement queued before it covers
         rows that are on disk now. They are sent from the loop's thread (the MQTT
         client is not thread-safe); one whose link has gone sends nothing, and the
-        broker delivers that message again (recorded once: ``skip_repeats``).
+        broker delivers that message again (recorded once: ``once_from``).
         """
         acks, self._acks = self._acks, []
         self._stats.repeats_skipped = self._recorder.repeats_skipped
@@ -315,6 +319,16 @@ def _ack_early(mqtt: MqttSettings | None) -> int:
     the broker's in-flight window (``[mqtt] inflight_window``; 0 for no limit: never)."""
     window = mqtt.inflight_window if mqtt is not None else 0
     return max(window // 2, 1) if window else 0
+
+
+def _redelivering(mqtt: MqttSettings | None) -> frozenset[str]:
+    """Return the sources that may deliver a reading again: the MQTT driver's (the
+    ``source`` it stamps on its samples), none without a broker."""
+    if mqtt is None:
+        return frozenset()
+    from drivers.mqtt import parse_mqtt_url
+
+    return frozenset([parse_mqtt_url(mqtt.url).source])
 
 
 def _send_acks(acks: list[Acknowledge]) -> None:
@@ -644,6 +658,7 @@ class Service:
             RecorderThread, self.log_path, self.config.text, vessels_meta,
             self.config.commit_interval_s, self.stats, asyncio.get_running_loop(),
             _ack_early(self.config.mqtt), self.config.log_key, self._new_head,
+            _redelivering(self.config.mqtt),
         )  # fmt: skip
         self._recorder.start()
         self._event(self.clock(), "start", "service", f"ebullio {__version__}")

@@ -733,3 +733,22 @@ def test_a_signed_head_cannot_be_rewritten_without_the_key(tmp_path: Path) -> No
     assert result["ok"] is False
     assert "does not carry a valid signature" in result["reason"]
     assert verify(path)["ok"] is True  # unsigned, the forged head passes: hence the key
+
+
+def test_a_reading_delivered_again_is_recorded_once_and_only_from_such_a_source(tmp_path):
+    """A broker may deliver a QoS 1 reading again; a meter polled twice in one instant
+    gives two equal readings that are both real. Only the first kind is recorded once."""
+    path = tmp_path / "once.sqlite"
+    broker, meter = "mqtt://127.0.0.1:1883", "modbus+tcp://127.0.0.1:502"
+    reading = Sample(T0, "kettle-1", "water", 20.5, Quality.OK, broker)
+    polled = Sample(T0, "kettle-1", "power", 2000.0, Quality.OK, meter)
+    with Recorder(path, version="0.1.0", clock=fake_clock()) as rec:
+        assert rec.add_samples([reading, polled, polled], once_from={broker}) == 3
+        rec.commit()
+        # after a crash the broker sends the reading again: the log already holds it
+        assert rec.add_samples([reading, polled], once_from={broker}) == 1
+        rec.commit()
+        assert rec.repeats_skipped == 1
+    got = [(s.channel, s.source) for s in read_samples(path)]
+    assert got.count(("water", broker)) == 1
+    assert got.count(("power", meter)) == 3
