@@ -87,12 +87,13 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
     """Return, per vessel, its last recorded run and the state of its drift checks.
 
     ``runs`` are the log's run rows in order (summaries parsed). Each vessel gets its
-    last run's label and times, that run's drift flags and verdict
+    last run's label and times, that run's own flags, its drift flags, its status (the
+    worst level of the two, as ``ebullio fleet`` gives it) and verdict
     (:func:`monitor.drift.verdict_of`: trusted, or doubtful and not judged, with the
     reasons), and the scaling index (1 - G/G0) of the latest scaling flag among all
     its runs, if any.
     """
-    from monitor.drift import verdict_of
+    from monitor.drift import verdict_of, worst_level
 
     out: dict[str, dict[str, object]] = {}
     for row in runs:
@@ -105,8 +106,10 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
         for f in drift:
             if f.get("name") == "scaling":
                 state["scaling_index"] = (f.get("evidence") or {}).get("scaling_index")
+        flags = [f for f in summary.get("flags") or [] if isinstance(f, dict)]
         state.update(run=row["run"], start_t=row["start_t"], end_t=row.get("end_t"),
-                     drift=drift, verdict=verdict_of(summary))  # fmt: skip
+                     drift=drift, flags=flags, verdict=verdict_of(summary),
+                     status=worst_level([*flags, *drift]))  # fmt: skip
     return out
 
 

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from monitor.drift import VERDICT_MARK
+from monitor.drift import LEVEL_RANK, VERDICT_MARK, worst_level  # the one ranking of levels
 
-LEVEL_RANK = {"alarm": 3, "warning": 2, "notice": 1}
+__all__ = ["LEVEL_RANK", "VERDICT_MARK", "worst_level"]
 
 #: The live charts' look (our own: white ground, light grid, plain axis lines).
 CHART_GROUND = {
@@ -43,12 +43,6 @@ def duration_text(seconds: float | None) -> str:
     if hours:
         return f"{hours} h {minutes:02d} min"
     return f"{minutes} min {secs:02d} s" if minutes else f"{secs} s"
-
-
-def worst_level(flags: list[dict] | None) -> str:
-    """Return the worst level among flags ('ok' when none is above nothing)."""
-    best = max((LEVEL_RANK.get(str(f.get("level")), 0) for f in flags or []), default=0)
-    return {3: "alarm", 2: "warning", 1: "notice"}.get(best, "ok")
 
 
 def iso_minutes(epoch_s: float | None) -> str:

@@ -638,7 +638,16 @@ def run_checks(run: Mapping[str, object], metadata: Mapping[str, object]) -> lis
     return flags
 
 
-_LEVEL_RANK = {None: 0, "notice": 1, "warning": 2, "alarm": 3}
+#: How flag levels rank, worst highest (``ok``: no flag at all).
+LEVEL_RANK = {"ok": 0, "notice": 1, "warning": 2, "alarm": 3}
+
+
+def worst_level(flags: Iterable[Mapping[str, object]] | None) -> str:
+    """Return the worst level among flags, or ``ok`` when there is none: a vessel's status
+    in ``ebullio fleet``, on the board and in the report alike."""
+    best = max((LEVEL_RANK.get(str(f.get("level")), 0) for f in flags or []), default=0)
+    return {3: "alarm", 2: "warning", 1: "notice"}.get(best, "ok")
+
 
 
 def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
@@ -657,8 +666,6 @@ def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
     for vessel, runs in by_vessel.items():
         last = runs[-1]
         flags = [*last.get("flags", []), *last.get("drift", [])]  # type: ignore[misc]
-        worst = max((f.get("level") for f in flags), key=lambda lv: _LEVEL_RANK.get(lv, 0),
-                    default=None)  # fmt: skip
         scaling = None
         for run in runs:
             for f in run.get("drift", []):  # type: ignore[union-attr]
@@ -673,7 +680,7 @@ def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
             notes.append("last run doubtful: not judged")
         rows.append({
             "vessel": vessel,
-            "status": worst or "ok",
+            "status": worst_level(flags),
             "flags": sorted({str(f["name"]) for f in flags}),
             "scaling_index": scaling,
             "last_run": last.get("run"),
@@ -685,7 +692,7 @@ def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
             "not_judged_runs": len(runs) - trusted,
             "note": "; ".join(notes),
         })  # fmt: skip
-    rows.sort(key=lambda r: (-_LEVEL_RANK.get(r["status"], 0), str(r["vessel"])))  # type: ignore[arg-type]
+    rows.sort(key=lambda r: (-LEVEL_RANK[str(r["status"])], str(r["vessel"])))
     return rows
 
 

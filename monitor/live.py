@@ -35,9 +35,9 @@ values and it is counted in :attr:`InstantAssembler.out_of_order`.
 
 :class:`LiveVessel` then splits the steps into runs as :mod:`monitor.replay` does
 (a fresh filter after a long gap or a refill) and steps the vessel's estimator.
-Live and replayed estimates agree step for step, with one exception: on a refill a
-replay moves the reading just before the split into the new run, while live it was
-already stepped in the old run (it is also stepped in the new one).
+Live and replayed estimates agree step for step. A replay of a recorder log takes
+each session's samples (one process of the service) through fresh assemblers, as the
+process did, and starts a new run at each session.
 """
 
 from __future__ import annotations
@@ -52,7 +52,7 @@ from monitor.contracts import Estimate, finite_or_none
 from monitor.drift import VesselDrift, run_checks
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
-from monitor.runs import RunSplitter, estimator_figures
+from monitor.runs import OpenRun, RunSplitter
 
 #: How long (s) the latest reading of a channel may stand in for one an instant lacks.
 HOLD_S: dict[str, float] = {
@@ -210,7 +210,14 @@ def logs_from_steps(
 
 
 class LiveVessel:
-    """One vessel's live filter: steps in, estimates out, a fresh filter at each new run."""
+    """One vessel's live filter: steps in, estimates out, a fresh filter at each new run.
+
+    The runs are split by the one rule (:class:`monitor.runs.RunSplitter`) and each is
+    stepped as a replay steps it (:class:`monitor.runs.OpenRun`), so the run summaries
+    the service records are the ones ``ebullio replay`` gives of the same log. A new
+    process starts a new run (its first step), as a replay of a recorder log starts
+    one at every session that recorded samples.
+    """
 
     def __init__(
         self,
@@ -226,36 +233,45 @@ class LiveVessel:
         self.config = VesselConfig.from_metadata(vessel, self.metadata, has_element_sensor)
         self.settings = settings
         self.assembler = InstantAssembler(vessel)
-        self.estimator: VesselEstimator | None = None
         # Built now, not at the first reading: the first filter of a process builds the
         # water-property tables (about half a second), which would stall a live loop.
         self._fresh: VesselEstimator | None = self._new_estimator()
         self.run_number = 0
-        self.latest: Estimate | None = None
+        self.run: OpenRun | None = None
         self.steps = 0
-        #: One entry per run so far: label, first and last step (Unix s).
-        self.runs: list[dict[str, object]] = []
         self._runs = RunSplitter()  # the one rule, as a replay splits runs
-        self._previous_row: LogRow | None = None
+        self._held: LogRow | None = None  # a cold reading held back a step (step())
+        self._held_t = 0.0
         #: The vessel's drift trackers, fed each run's summary as the run ends.
         self.drift = VesselDrift(vessel, self.metadata)
         #: Summaries of the runs that have ended, until the service takes them.
         self.ended: list[dict[str, object]] = []
-        self._at_heat_up: Estimate | None = None
-        self._start_c: float | None = None
-        self._run_steps = 0
+        #: (Unix s, label) of each run begun, until the service records them
+        self.begun: list[tuple[float, str]] = []
 
     def _new_estimator(self) -> VesselEstimator:
         return VesselEstimator(self.config, self.settings, fit_budget=self.fit_budget)
 
-    def resume(self, earlier: list[Mapping[str, object]]) -> None:
+    @property
+    def estimator(self) -> VesselEstimator | None:
+        """The current run's filter (None before the first step)."""
+        return self.run.estimator if self.run is not None else None
+
+    @property
+    def latest(self) -> Estimate | None:
+        """The current run's newest estimate (None before one)."""
+        return self.run.latest if self.run is not None else None
+
+    def resume(self, earlier: list[Mapping[str, object]], last_label: int = 0) -> None:
         """Carry on from runs an earlier session recorded (their summaries, oldest first).
 
         Their figures feed the drift trackers, so the baseline survives a restart (a
         doubtful run, by its recorded verdict or, in a summary without one, by
         :func:`monitor.drift.run_verdict`, is passed over as it was live), and run labels
-        go on from the highest numbered one.
+        go on from the highest numbered one, or ``last_label``, the highest run begun
+        (a run whose process was killed has no summary).
         """
+        self.run_number = max(self.run_number, last_label)
         for summary in earlier:
             self.drift.observe(summary)
             label = str(summary.get("run", ""))
@@ -265,60 +281,62 @@ class LiveVessel:
     def end_run(self) -> dict[str, object] | None:
         """Return the summary of the current run as it ends (None before any estimate).
 
-        Its figures are :func:`monitor.replay.estimator_figures` of the live filter, its
-        ``verdict`` included; its ``drift`` flags compare them with the vessel's earlier
-        runs, or say that a doubtful run was not judged.
+        It is :meth:`monitor.runs.OpenRun.summary` of the live filter, ``verdict``
+        included, with ``source`` "live"; its ``drift`` flags compare its figures with
+        the vessel's earlier runs, or say that a doubtful run was not judged.
         """
-        if self.estimator is None or self.latest is None or not self.runs:
+        self.finish()
+        if self.run is None or self.run.latest is None:
             return None
-        run = self.runs[-1]
-        cfg = self.estimator.config
-        summary: dict[str, object] = {
-            "source": "live", "vessel": self.vessel, "run": run["run"],
-            "start_t": run["start_t"], "end_t": run["end_t"], "steps": self._run_steps,
-            "model": "two-node" if cfg.has_element_sensor else "one-node",
-            "target_c": self.estimator.target_c,
-            "start_water_c": finite_or_none(self._start_c),
-        }  # fmt: skip
-        summary |= estimator_figures(self.estimator, self.latest, self._at_heat_up, self._start_c)
+        summary: dict[str, object] = {"source": "live"} | self.run.summary()
         flags = self.drift.observe(summary) + run_checks(summary, self.metadata)
         summary["drift"] = [f.as_dict() for f in flags]
         return summary
 
     def step(self, step: Step) -> Estimate | None:
-        """Return the estimate after one step (None while the filter is not yet initialised)."""
+        """Return the estimate after one step (None while the filter is not yet
+        initialised, or while the step is held back).
+
+        A water reading far below the recent ones (:attr:`monitor.runs.RunSplitter.cold`)
+        is held back one step: the next reading tells whether it was the first of a
+        refill, and so of a new run, or a spike within this one. So the old run's filter
+        never takes the cold water, as the replay's does not.
+        """
         row = LogRow(step.line, step.time_s, step.values, step.vessel)
-        carried: LogRow | None = None
         start = self._runs.take(row)
+        held, self._held = self._held, None
         if start is not None:
-            carried = self._previous_row if start == "refill" else None
-            self.run_number += 1
+            if start != "refill" and held is not None:
+                self._step_run(held)  # it was a spike in the old run after all
+                held = None
             ended = self.end_run() if start != "first" else None
             if ended is not None:
                 self.ended.append(ended)
-            self.latest = None
-            self._at_heat_up = None
-            self._start_c = None
-            self._run_steps = 0
-            self.runs.append({"run": str(self.run_number), "start_t": step.t, "end_t": step.t})
-            self.estimator = self._fresh or self._new_estimator()
+            self.run_number += 1
+            label = str(self.run_number)
+            self.run = OpenRun(
+                self.vessel, label, self.config, self.metadata, step.t - step.time_s,
+                estimator=self._fresh or self._new_estimator(),
+            )  # fmt: skip
             self._fresh = None
-        assert self.estimator is not None
-        if carried is not None:
-            self.estimator.step(carried.time_s, carried.values)
-        estimate = self.estimator.step(row.time_s, row.values)
+            self.begun.append((step.t if held is None else self._held_t, label))
+        if held is not None:
+            self._step_run(held)  # a spike in this run, or the refill's first reading
+        if self._runs.cold and start is None:
+            self._held, self._held_t = row, step.t
+            return None
+        return self._step_run(row)
+
+    def _step_run(self, row: LogRow) -> Estimate | None:
+        assert self.run is not None
         self.steps += 1
-        self._run_steps += 1
-        self.runs[-1]["end_t"] = step.t
-        self._previous_row = row
-        if estimate is not None:
-            self.latest = estimate
-            totals = self.estimator.totals
-            if self._at_heat_up is None and totals.heat_up_done_s is not None:
-                self._at_heat_up = estimate
-            if self._start_c is None and totals.heat_up_start_c is not None:
-                self._start_c = totals.heat_up_start_c
-        return estimate
+        return self.run.step(row)
+
+    def finish(self) -> None:
+        """Step a reading still held back into the run it came in (the stream ended)."""
+        held, self._held = self._held, None
+        if held is not None:
+            self._step_run(held)
 
 
 def estimate_message(vessel: LiveVessel, e: Estimate, t: float) -> dict[str, object]:

@@ -1,9 +1,11 @@
 """Read any log ebullio writes, CSV interchange or the recorder's SQLite, and export to CSV.
 
 A recorder log holds samples in arrival order; :func:`read_log` turns them into
-one :class:`~monitor.interchange.InterchangeLog` per vessel with the very steps the
-live service took (:mod:`monitor.live`), the vessel's recorded metadata, and every
-quarantined input as a rejected line (``line`` 0: the SQLite row id is in the reason).
+one :class:`~monitor.interchange.InterchangeLog` per vessel and session (a process of
+the live service) with the very steps the live service took (:mod:`monitor.live`), the
+vessel's recorded metadata, and every quarantined input as a rejected line (``line``
+0: the SQLite row id is in the reason). So a replay starts a new run where the live
+service started one at a restart, and numbers the runs as it did.
 """
 
 from __future__ import annotations
@@ -12,11 +14,13 @@ import math
 import time
 from collections.abc import Mapping
 from datetime import datetime
+from itertools import groupby
 from pathlib import Path
 from typing import TextIO
 
 from drivers.errors import LogFormatError
 from monitor.interchange import (
+    CHANNEL_COLUMNS,
     InterchangeLog,
     LogRow,
     Rejected,
@@ -25,7 +29,12 @@ from monitor.interchange import (
     write_csv,
 )
 from monitor.live import logs_from_steps, steps_from_samples
-from monitor.recorder import is_recorder_log, read_quarantine, read_samples, read_vessels
+from monitor.recorder import (
+    is_recorder_log,
+    read_quarantine,
+    read_samples_by_session,
+    read_vessels,
+)
 from monitor.runs import split_runs
 
 
@@ -85,8 +94,12 @@ def read_log(path: str | Path, vessel: str | None = None) -> list[InterchangeLog
                 raise LogFormatError(f"{path}: an SQLite file, but not an ebullio recorder log")
         return [read_csv(path)]
     metadata = read_vessels(path)
-    samples = read_samples(path, vessel)
-    logs = logs_from_steps(steps_from_samples(enumerate(samples)), metadata, path)
+    logs: list[InterchangeLog] = []
+    # each session (one process of the service) through fresh assemblers, as it ran live
+    numbered = enumerate(read_samples_by_session(path, vessel))
+    for _, group in groupby(numbered, key=lambda item: item[1][0]):
+        steps = steps_from_samples((position, sample) for position, (_, sample) in group)
+        logs += logs_from_steps(steps, metadata, path)
     rejected = _rejected(path)
     if logs:
         logs[0].rejected.extend(rejected)
@@ -113,22 +126,37 @@ def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> 
     naming the vessels when it is needed, or when the vessel is not in the log.
     """
     logs = [g for g in read_log(log_path) if g.rows]
-    names = [str(g.metadata.get("vessel", "")) for g in logs]
+    names = list(dict.fromkeys(str(g.metadata.get("vessel", "")) for g in logs))
     if vessel is None:
-        if len(logs) != 1:
+        if len(names) != 1:
             raise LogFormatError(
                 f"{log_path}: holds vessels {', '.join(names) or '(none)'}; say which with --vessel"
             )
-        chosen = logs[0]
-    else:
-        if vessel not in names:
-            raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(names)}")
-        chosen = logs[names.index(vessel)]
-    metadata = dict(chosen.metadata)
+        vessel = names[0]
+    elif vessel not in names:
+        raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(names)}")
+    mine = [g for g in logs if str(g.metadata.get("vessel", "")) == vessel]
+    chosen = mine[0]
+    metadata = dict(mine[-1].metadata)
     if chosen.start_epoch_s is not None:
         metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
     metadata["exported_from"] = Path(str(log_path)).name
-    return write_csv(out, _csv_rows(chosen.rows), metadata, chosen.channels)
+    if len(mine) == 1:
+        return write_csv(out, _csv_rows(chosen.rows), metadata, chosen.channels)
+    # several sessions of the service: one time axis, and each row's run written out so
+    # the file splits into the same runs (a refill's first cold reading goes once, with
+    # the run it ends)
+    runs, _ = split_runs(mine)
+    base = chosen.start_epoch_s or 0.0
+    rows: dict[int, LogRow] = {}
+    for run in runs:
+        shift = (run.log.start_epoch_s or 0.0) - base
+        for r in run.rows:
+            key = id(r)
+            if key not in rows:
+                rows[key] = LogRow(r.line, r.time_s + shift, r.values, vessel, run.label)
+    channels = [c for c in CHANNEL_COLUMNS if any(c in g.channels for g in mine)]
+    return write_csv(out, _csv_rows(list(rows.values())), metadata, channels, with_vessel=True)
 
 
 def export_run_csv(log_path: str | Path, out: TextIO, vessel: str, run_label: str) -> int:

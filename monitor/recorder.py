@@ -60,6 +60,7 @@ would slow the writer and grow the file.
 
 from __future__ import annotations
 
+import bisect
 import hashlib
 import hmac
 import json
@@ -884,6 +885,36 @@ def read_samples(path: str | os.PathLike[str], vessel: str | None = None) -> Ite
         params = (vessel,)
     _open_reader(path).close()  # refuse a wrong file now, not at the first next()
     return _samples_from(path, _rows(path, sql + " ORDER BY id", params))
+
+
+def read_samples_by_session(
+    path: str | os.PathLike[str], vessel: str | None = None
+) -> Iterator[tuple[int, Sample]]:
+    """Return an iterator of (session, sample) in recorded order, one vessel or all.
+
+    ``session`` counts the processes of the live service that wrote the log (a
+    ``sessions`` row with the configuration, 0 for samples before the first one):
+    a restart of the service is where the live filters started afresh, so a replay
+    starts afresh there too. A writer that recorded no configuration (``replay
+    --record``) is not a session of the service.
+    """
+    sql = "SELECT block FROM sessions WHERE config_text IS NOT NULL ORDER BY block"
+    starts = [b for (b,) in _rows(path, sql)]
+    sql = "SELECT block, id, t, vessel, channel, value, quality, source FROM samples"
+    params: tuple[object, ...] = ()
+    if vessel is not None:
+        sql += " WHERE vessel = ?"
+        params = (vessel,)
+    rows = _rows(path, sql + " ORDER BY id", params)
+    blocks: list[int] = []
+
+    def without_block() -> Iterator[tuple]:
+        for row in rows:
+            blocks.append(row[0])
+            yield row[1:]
+
+    for sample in _samples_from(path, without_block()):
+        yield bisect.bisect_right(starts, blocks.pop()), sample
 
 
 def _load_json(path: object, table: str, row_id: int, text: str) -> object:

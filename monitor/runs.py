@@ -19,16 +19,18 @@ filter at the end, the same live and in a replay. Users' description: docs/csv-f
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable
+from collections import Counter
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
 from drivers.errors import LogFormatError
 from monitor import batchfit
-from monitor.contracts import Estimate, Estimated, finite_or_none
+from monitor.batchfit import FitBudget
+from monitor.contracts import Estimate, Estimated, Level, finite_or_none
 from monitor.drift import run_verdict
-from monitor.estimator import VesselEstimator
-from monitor.interchange import InterchangeLog, LogRow
+from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.interchange import InterchangeLog, LogRow, iso_utc
 
 #: A gap between readings longer than this (s) starts a new run.
 RUN_GAP_S = 900.0
@@ -63,12 +65,12 @@ class Run:
     number: int
     label: str
     rows: list[LogRow]
-    log: InterchangeLog | None  # None live: the service's runs have no file
+    log: InterchangeLog
 
     @property
     def quarantined(self) -> int:
         """Return how many rejected lines of the log lie inside this run."""
-        if not self.rows or self.log is None:
+        if not self.rows:
             return 0
         lo, hi = self.rows[0].line, self.rows[-1].line
         return sum(1 for r in self.log.rejected if lo <= r.line <= hi)
@@ -90,6 +92,9 @@ class RunSplitter:
     """
 
     def __init__(self) -> None:
+        #: whether the row just taken lay far below the recent median: the first reading
+        #: of a refill, or a spike (the next row tells which)
+        self.cold = False
         self._open = False
         self._label: str | None = None
         self._previous_s: float | None = None
@@ -117,6 +122,7 @@ class RunSplitter:
         return start
 
     def _begins(self, row: LogRow) -> bool:
+        self.cold = False
         if row.run is not None:
             return row.run != self._label
         if self._previous_s is not None and row.time_s - self._previous_s > RUN_GAP_S:
@@ -125,15 +131,20 @@ class RunSplitter:
         # median, so a single spike (either way) or a draw-off's cooling does not split
         water_c = row.values.get("water")
         window = self._window
-        if water_c is None or len(window) < 3:
+        if water_c is None or not math.isfinite(water_c) or len(window) < 3:
             return False
         recent = sorted(w for _, w in window[:-1])
         median = recent[len(recent) // 2]
-        return median - water_c > REFILL_DROP_K and median - window[-1][1] > REFILL_DROP_K
+        self.cold = median - water_c > REFILL_DROP_K
+        return self.cold and median - window[-1][1] > REFILL_DROP_K
 
 
 def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quarantined]]:
     """Return the runs of every vessel across the logs, and the rows set aside.
+
+    Each vessel's runs are numbered 1, 2, ... across the logs (a label from a ``run``
+    column replaces the number). At a refill the row before the split begins the new
+    run (the live service holds such a row back a step to see which run it is in).
 
     Raises LogFormatError naming the file and column when a required column is missing.
     """
@@ -151,9 +162,9 @@ def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quaranti
             start = splitters.setdefault(vessel, RunSplitter()).take(row)
             current = open_runs.get(vessel)
             if start is not None:
-                carried = (
-                    [current.rows.pop()] if start == "refill" and current and current.rows else []
-                )
+                # at a refill the reading before the split is the first of the cold water
+                refill = start == "refill" and current is not None and current.rows
+                carried = [current.rows.pop()] if refill else []
                 counters[vessel] = counters.get(vessel, 0) + 1
                 current = Run(
                     vessel, counters[vessel], row.run or str(counters[vessel]), carried, log
@@ -257,3 +268,243 @@ def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
             "water_sensor_tau_s": fit.value(batchfit.LN_TAU_W),
         },
     }
+
+
+#: How long (s) the element must have been off before element and water should agree.
+REST_AFTER_S = 300.0
+#: Fewest rest readings for the element-minus-water figure.
+REST_READINGS_MIN = 30
+
+
+class _MeanSd:
+    """A running mean and its rough standard error (Welford), for the electrical figures.
+
+    Readings one second apart are correlated, so the standard error is computed as if
+    only one in ten were independent: an honest, if rough, allowance.
+    """
+
+    __slots__ = ("m2", "mean", "n")
+
+    def __init__(self) -> None:
+        self.n, self.mean, self.m2 = 0, 0.0, 0.0
+
+    def add(self, value: float) -> None:
+        self.n += 1
+        delta = value - self.mean
+        self.mean += delta / self.n
+        self.m2 += delta * (value - self.mean)
+
+    def figure(self) -> dict[str, float] | None:
+        if not self.n:
+            return None
+        if self.n < 2:
+            return {"value": self.mean, "std": 0.0}
+        var = max(0.0, self.m2 / (self.n - 1))
+        return {"value": self.mean, "std": math.sqrt(var / max(1.0, self.n / 10.0))}
+
+
+class _Electrical:
+    """The run's electrical figures, gathered row by row (kept small: no row is held).
+
+    ``heating_power_w``: mean power (W) while on (above half the rating, or 100 W
+    without one). Where voltage is logged, ``element_resistance_ohm`` = V²/P (Ω), and,
+    with ``rated_voltage_v`` in the metadata, ``heating_power_at_rated_voltage_w`` =
+    P·(V_rated/V)²: the power the element would give at its rated voltage, which mains
+    wander does not move (a resistive element; common practice, no source).
+    ``rest_element_minus_water_k``: the median element minus water reading (K) once the
+    element has been off for :data:`REST_AFTER_S`, with the spread (IQR/1.349) as its std:
+    at rest both thermocouples sit in still water and should agree to well under a
+    kelvin, so a steady difference is a sensor or cold-junction fault, not physics. The
+    differences are counted to the millikelvin, so a week at rest costs little memory.
+    """
+
+    def __init__(self, metadata: Mapping[str, object]) -> None:
+        def number(key: str) -> float | None:
+            value = metadata.get(key)
+            return float(value) if isinstance(value, int | float) and value > 0 else None
+
+        rated_w, self.rated_v = number("rated_power_w"), number("rated_voltage_v")
+        self.on_w = 0.5 * rated_w if rated_w else 100.0
+        self.power, self.ohms, self.at_rated = _MeanSd(), _MeanSd(), _MeanSd()
+        self.rest = Counter[int]()  # element minus water at rest, in mK
+        self._off_since: float | None = None
+
+    def add(self, row: LogRow) -> None:
+        values = row.values
+        p = values.get("power")
+        if p is not None and math.isfinite(p) and p >= 0.1 * self.on_w:
+            self._off_since = None
+            if p >= self.on_w:
+                self.power.add(p)
+                v = values.get("voltage")
+                if v is not None and math.isfinite(v) and v > 0.0:
+                    self.ohms.add(v * v / p)
+                    if self.rated_v:
+                        self.at_rated.add(p * (self.rated_v / v) ** 2)
+            return
+        if self._off_since is None:
+            self._off_since = row.time_s
+        e, w = values.get("element"), values.get("water")
+        if row.time_s - self._off_since < REST_AFTER_S or e is None or w is None:
+            return
+        if math.isfinite(e) and math.isfinite(w):
+            self.rest[round((e - w) * 1000.0)] += 1
+
+    def _rest_figure(self) -> dict[str, float] | None:
+        n = sum(self.rest.values())
+        if n < REST_READINGS_MIN:
+            return None
+        ordered = sorted(self.rest.items())
+
+        def at(rank: int) -> float:  # the rank-th smallest difference (0-based), in K
+            seen = 0
+            for mk, count in ordered:
+                seen += count
+                if seen > rank:
+                    return mk / 1000.0
+            return ordered[-1][0] / 1000.0
+
+        spread = at((3 * n) // 4) - at(n // 4)
+        return {"value": at(n // 2), "std": spread / 1.349, "n": float(n)}
+
+    def figures(self) -> dict[str, object]:
+        return {
+            "rest_element_minus_water_k": self._rest_figure(),
+            "heating_power_w": self.power.figure(),
+            "element_resistance_ohm": self.ohms.figure(),
+            "heating_power_at_rated_voltage_w": self.at_rated.figure(),
+        }
+
+
+#: A summary's figures when there are none (nothing estimated, or the replay failed).
+NO_FIGURES: dict[str, object] = {
+    "water_mass_kg": None, "heat_capacity_j_per_k": None, "ua_w_per_k": None,
+    "element_conductance_w_per_k": None, "standing_loss_kwh_per_24h": None,
+    "standing_loss_at_c": None, "heat_up_s": None, "energy_wh": None, "efficiency": None,
+}  # fmt: skip
+
+
+def has_element_sensor(metadata: Mapping[str, object], channels: Iterable[str],
+                       rows: Iterable[LogRow]) -> bool:  # fmt: skip
+    """Return whether a logged vessel's filter is two-node: as the log says (a live log
+    records what the live filter was built with), else whether element readings came."""
+    declared = metadata.get("element_sensor")
+    if declared in ("yes", "no"):
+        return declared == "yes"
+    return "element" in channels and any("element" in r.values for r in rows)
+
+
+class OpenRun:
+    """One run while its rows are stepped: its own fresh filter and what its summary needs.
+
+    The live service (:class:`monitor.live.LiveVessel`) and the replay
+    (:func:`monitor.replay.replay_run`) both step a run through this, and both take its
+    :meth:`summary`, so a run has the same figures live and replayed.
+    ``start_epoch_s`` turns the rows' times (s from the vessel's first step) into Unix
+    time. ``estimator`` may be a filter built beforehand (the live service builds the
+    first one early); it must be fresh.
+    """
+
+    def __init__(
+        self,
+        vessel: str,
+        label: str,
+        config: VesselConfig,
+        metadata: Mapping[str, object],
+        start_epoch_s: float,
+        *,
+        settings: EstimatorSettings | None = None,
+        fit_budget: FitBudget | None = None,
+        estimator: VesselEstimator | None = None,
+    ) -> None:
+        self.vessel, self.label = vessel, label
+        self.start_epoch_s = start_epoch_s
+        self.estimator = estimator or VesselEstimator(config, settings, fit_budget=fit_budget)
+        self.latest: Estimate | None = None
+        self.steps = 0
+        self.first: LogRow | None = None
+        self.last: LogRow | None = None
+        self._at_heat_up: Estimate | None = None
+        self._start_c: float | None = None
+        self._electrical = _Electrical(metadata)
+        self._ambient = _MeanSd()
+
+    def step(self, row: LogRow) -> Estimate | None:
+        """Step the run's filter with one row; return its estimate (None before one)."""
+        estimate = self.estimator.step(row.time_s, row.values)
+        self.steps += 1
+        if self.first is None:
+            self.first = row
+        self.last = row
+        self._electrical.add(row)
+        ambient = row.values.get("ambient")
+        if ambient is not None and math.isfinite(ambient):
+            self._ambient.add(ambient)
+        if estimate is not None:
+            self.latest = estimate
+            totals = self.estimator.totals
+            if self._at_heat_up is None and totals.heat_up_done_s is not None:
+                self._at_heat_up = estimate
+            if self._start_c is None and totals.heat_up_start_c is not None:
+                self._start_c = totals.heat_up_start_c
+        return estimate
+
+    def summary(self, quarantined_rows: int = 0) -> dict[str, object]:
+        """Return the run's summary (docs/run-summary.md) as it stands now.
+
+        Which instant each figure is taken at: ``water_mass_kg`` and
+        ``heat_capacity_j_per_k`` the end of the first heat-up (the water reaching the
+        target), where C is best known and nothing has boiled away yet, else the end of
+        the run; ``element_conductance_w_per_k`` when the first heat-up passed 80 % of its
+        rise, before boiling at the element changes the film, else as for the mass;
+        ``ua_w_per_k`` and the standing loss the end of the run (cooling and standby carry
+        most of the information on losses); ``efficiency`` the heat taken up by water and
+        vessel over the heat-up (C times the rise of the filtered water temperature) over
+        the electrical energy in it; ``energy_wh`` the whole run; ``heat_up_s`` from the
+        first heating to reaching the target.
+        """
+        est, cfg = self.estimator, self.estimator.config
+        first_s = self.first.time_s if self.first is not None else None
+        last_s = self.last.time_s if self.last is not None else None
+        base: dict[str, object] = {
+            "vessel": self.vessel,
+            "run": self.label,
+            "start_s": first_s,
+            "end_s": last_s,
+            "start_t": None if first_s is None else self.start_epoch_s + first_s,
+            "end_t": None if last_s is None else self.start_epoch_s + last_s,
+            "start_utc": None if first_s is None else iso_utc(self.start_epoch_s + first_s),
+            "steps": self.steps,
+            "quarantined_rows": quarantined_rows,
+            "rejected_readings": est.totals.rejected_readings,
+            "boiling_point_c": est.boiling_point_c,
+            "target_c": est.target_c,
+            "pressure_kpa": cfg.pressure_kpa,
+            "model": "two-node" if cfg.has_element_sensor else "one-node",
+            "water_sensor_tau_s": cfg.water_sensor_tau_s,
+        }
+        if self.latest is None:
+            return base | NO_FIGURES | {
+                "energy_wh": est.totals.energy_j / 3600.0,
+                "flags": [{"name": "no_water_reading", "level": str(Level.WARNING),
+                           "message": "The run has no usable water temperature, so nothing "
+                           "could be estimated."}],
+                "verdict": run_verdict({}),
+            }  # fmt: skip
+        ambient = self._ambient.figure()
+        figures = estimator_figures(est, self.latest, self._at_heat_up, self._start_c)
+        if quarantined_rows:
+            flags = figures["flags"]
+            assert isinstance(flags, list)
+            flags.append({"name": "quarantined_rows", "level": str(Level.NOTICE),
+                          "message": f"{quarantined_rows} rows of this run could not be used "
+                          "and were set aside (see 'quarantined')."})  # fmt: skip
+        return (
+            base
+            | self._electrical.figures()
+            | {
+                "start_water_c": finite_or_none(self._start_c),
+                "ambient_c": ambient["value"] if ambient else None,
+            }
+            | figures
+        )

@@ -551,6 +551,9 @@ class Service:
             assert self._recorder is not None
             self._recorder.put("runs", [_run_row(r) for r in vessel.ended])
             vessel.ended = []
+        for t, label in vessel.begun:  # kept, so a restart numbers on after a killed run
+            self._event(t, RUN_BEGUN, vessel.vessel, label)
+        vessel.begun.clear()
         if e is None:
             return
         self.stats.estimates += 1
@@ -650,10 +653,10 @@ class Service:
     async def run(self) -> Stats:
         """Run until :meth:`stop`; return the counters. The log is closed on return."""
         vessels_meta = {v.id: v.metadata for v in self.config.vessels}
-        earlier = await asyncio.to_thread(_earlier_runs, self.log_path)
+        earlier, begun = await asyncio.to_thread(_earlier_runs, self.log_path)
         await asyncio.to_thread(warm_up)  # the fit's kernels compiled before any reading
         for name, vessel in self.vessels.items():
-            vessel.resume(earlier.get(name, []))
+            vessel.resume(earlier.get(name, []), begun.get(name, 0))
         self._recorder = await asyncio.to_thread(
             RecorderThread, self.log_path, self.config.text, vessels_meta,
             self.config.commit_interval_s, self.stats, asyncio.get_running_loop(),
@@ -749,21 +752,32 @@ async def _cancel_all(tasks: list[asyncio.Task[None]], patience_s: float = 10.0)
             deadline = time.monotonic() + patience_s
 
 
+#: The event kind recorded as a vessel's run begins (source: the vessel; detail: its label).
+RUN_BEGUN = "run_begun"
+
+
 def _run_row(summary: dict[str, object]) -> dict[str, object]:
     """Return the recorder's ``runs`` row of a live run summary."""
     return {"vessel": summary["vessel"], "run": summary["run"], "start_t": summary["start_t"],
             "end_t": summary["end_t"], "summary": summary}  # fmt: skip
 
 
-def _earlier_runs(path: str) -> dict[str, list[dict[str, object]]]:
-    """Return the run summaries an existing log holds, by vessel (none for a new log)."""
-    from monitor.recorder import is_recorder_log, read_runs
+def _earlier_runs(path: str) -> tuple[dict[str, list[dict[str, object]]], dict[str, int]]:
+    """Return the live run summaries an existing log holds, by vessel, and each vessel's
+    highest run number begun (a ``run_begun`` event; a killed process left no summary)."""
+    from monitor.recorder import is_recorder_log, read_events, read_runs
 
     if not os.path.exists(path) or not is_recorder_log(path):
-        return {}
+        return {}, {}
     out: dict[str, list[dict[str, object]]] = {}
     for row in read_runs(path):
         summary = row.get("summary")
         if isinstance(summary, dict) and summary.get("source") == "live":
             out.setdefault(str(row["vessel"]), []).append(summary)
-    return out
+    begun: dict[str, int] = {}
+    for event in read_events(path):
+        label = str(event.get("detail"))
+        if event.get("kind") == RUN_BEGUN and label.isdigit():
+            vessel = str(event.get("source"))
+            begun[vessel] = max(begun.get(vessel, 0), int(label))
+    return out, begun

@@ -133,7 +133,10 @@ def test_runs_split_on_run_column_and_at_a_refill():
     rows += [f"{t},{20 + t / 2},2000" for t in range(100)]  # up to 69.5 °C
     rows += [f"{t},{15 + (t - 100) / 2},2000" for t in range(100, 150)]  # emptied and refilled
     runs, _ = split_runs([_log("\n".join(rows) + "\n")])
+    # the first cold reading (t = 100 s) is seen as a refill only at the second, and
+    # goes with the new run
     assert [len(r.rows) for r in runs] == [100, 50]
+    assert runs[1].rows[0].time_s == 100.0
 
 
 def test_bad_rows_are_counted_and_reported(tmp_path, capsys):
