@@ -649,7 +649,6 @@ def worst_level(flags: Iterable[Mapping[str, object]] | None) -> str:
     return {3: "alarm", 2: "warning", 1: "notice"}.get(best, "ok")
 
 
-
 def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
     """Return one row per vessel from a replay result, worst first.
 
