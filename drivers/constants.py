@@ -5,8 +5,8 @@ from here, so a figure is written, sourced and checked once. It sits in ``driver
 the bottom layer, so that the simulated rig and the thermocouple code may use it
 as well as ``monitor/`` (``drivers/`` imports nothing from ``monitor/``). Names end in their
 unit (``_K``, ``_KPA``, ``_J_PER_KG_K``...). A value marked "exact" is fixed by a
-definition rather than measured. Sources are the ones gathered in
-``shared/reference/REFERENCE.md`` (§ numbers given beside each group).
+definition rather than measured. The published source is named beside each group
+or value.
 """
 
 from __future__ import annotations
@@ -17,13 +17,13 @@ from __future__ import annotations
 # scale, kept by ITS-90.
 ZERO_CELSIUS_K = 273.15
 
-# --- Radiation (REFERENCE §4.1) ---------------------------------------------------
+# --- Radiation (CODATA 2018) -----------------------------------------------------
 
 # Stefan–Boltzmann constant σ, W/(m²·K⁴). CODATA 2018; exact since the 2019 SI
 # (2π⁵k⁴/(15h³c²) with h, k and c exact).
 STEFAN_BOLTZMANN_W_PER_M2_K4 = 5.670374419e-8
 
-# --- Gravity and pressure (REFERENCE §3) -------------------------------------------
+# --- Gravity and pressure (CGPM; ICAO Doc 7488) ------------------------------------
 
 # Standard acceleration of gravity g0, m/s², exact by convention (CGPM 1901); also
 # the g0 of the ICAO standard atmosphere (ICAO Doc 7488).
@@ -33,7 +33,7 @@ STANDARD_GRAVITY_M_PER_S2 = 9.80665
 # sea-level pressure p0.
 STANDARD_PRESSURE_KPA = 101.325
 
-# --- ICAO standard atmosphere, troposphere (ICAO Doc 7488, 3rd ed. 1993; REFERENCE §3)
+# --- ICAO standard atmosphere, troposphere (ICAO Doc 7488, 3rd ed. 1993; ISO 2533)
 
 # Sea-level temperature T0, K.
 ISA_SEA_LEVEL_TEMPERATURE_K = 288.15
@@ -46,7 +46,7 @@ ISA_SEA_LEVEL_PRESSURE_PA = 101325.0
 ISA_LAPSE_RATE_K_PER_M = 0.0065
 
 # Specific gas constant of dry air R, J/(kg·K): R* = 8314.32 J/(kmol·K) divided by
-# M = 28.9644 kg/kmol, as ICAO Doc 7488 states it (R* and M from memory, see §3).
+# M = 28.9644 kg/kmol, as ICAO Doc 7488 states it (R* and M from memory, no source checked).
 ISA_AIR_GAS_CONSTANT_J_PER_KG_K = 287.05287
 
 # Earth radius r0 used to convert geometric to geopotential altitude,

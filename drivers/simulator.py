@@ -16,7 +16,7 @@ always tested against a world it does not assume:
   a path that bypasses the water (``ElementSpec.to_room_w_per_k``; 0 by default);
 * the wall loses heat to the room by natural convection,
   h_c = 1.42·(ΔT/L)^¼ W/(m²·K) (simplified laminar form for air, from memory,
-  see shared/reference/REFERENCE.md §4.3), and by grey-body radiation,
+  no source checked), and by grey-body radiation,
   ε·σ·A·(T_s⁴ - T_a⁴);
 * at the boiling point of the site pressure the water is clamped and surplus heat
   evaporates water at the latent heat, so the mass falls;
@@ -248,7 +248,7 @@ class Scenario:
     altitude_m: float | None = None
     scale_mm: float = 0.0
     tank_heat_capacity_j_per_k: float = 0.0  # metal in good contact with the water, J/K
-    scale_conductivity_w_per_m_k: float = 1.2  # porous scale, inside 0.5-2.9 (REFERENCE §5.1)
+    scale_conductivity_w_per_m_k: float = 1.2  # porous scale, inside 0.5-2.9 (from memory)
     mains_wander_v: float = 2.5  # sd of the mains voltage about its rating, V
     mains_tau_s: float = 120.0
     ambient_wander_k: float = 0.3

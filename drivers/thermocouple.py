@@ -13,8 +13,8 @@ Sources
     The reference functions E(t) and their approximate inverses t(E), with the error band
     of each inverse range, are those of NIST Monograph 175 (1993) as published in NIST
     Standard Reference Database 60; IEC 60584-1 adopts the same functions. The coefficients
-    below were transcribed from the project's shared/reference/REFERENCE.md §1.2, and the
-    tests reproduce its §1.3 check values with them.
+    below are the NIST SRD 60 sets, and the tests check them against values computed
+    from those functions and against NIST table values (the latter from memory).
 
 Cold-junction compensation (CJC)
     A thermocouple only reports the difference E_meas = E(t_hot) − E(t_cj). Compensation is
@@ -77,7 +77,7 @@ __all__ = [
 DEFAULT_OPEN_CIRCUIT_MV = 100.0
 
 # --------------------------------------------------------------------------------------------
-# Coefficients, NIST SRD 60 via shared/reference/REFERENCE.md §1.2.
+# Coefficients: NIST SRD 60 (NIST Monograph 175), as adopted by IEC 60584-1.
 # Forward sets: c0, c1, ... with E = Σ c_i t^i (E in mV, t in °C, reference junction 0 °C).
 # Inverse sets: d0, d1, ... with t90 = Σ d_i E^i.
 # --------------------------------------------------------------------------------------------
@@ -411,7 +411,7 @@ class ThermocoupleTable:
         return max(self.emf_max_mv, self.inverse[-1].emf_hi_mv)
 
 
-# Ranges and NIST inverse error bands: NIST SRD 60 via shared/reference/REFERENCE.md §1.2.
+# Ranges and NIST inverse error bands: NIST SRD 60 (NIST Monograph 175).
 _TABLE_LIST = (
     ThermocoupleTable(
         "B",

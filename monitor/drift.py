@@ -34,9 +34,10 @@ Sequential detection: a one-sided tabular CUSUM (Page 1954) per rule
 
     with reference value ``k`` = 0.5 and decision interval ``h`` = 5 (in σ units).
     While the figure sits exactly at the tolerance, z has mean 0, and this one-sided
-    scheme's in-control average run length is about 938 runs (REFERENCE.md §7.3,
-    Siegmund's approximation for k = 0.5, h = 5). A clean vessel sits well inside
-    the tolerance, where z is strongly negative and false alarms are far rarer.
+    scheme's in-control average run length is about 938 runs (computed with Siegmund's
+    approximation for k = 0.5, h = 5; the scheme is Page (1954), CUSUM). A clean vessel
+    sits well inside the tolerance, where z is strongly negative and false alarms are far
+    rarer.
     A sustained shift of 1 σ past the tolerance is caught in about 10 runs, and a
     large one in one or two. One noisy run adds at most ``z - k`` and decays after.
 
@@ -73,7 +74,8 @@ from monitor.contracts import Level
 
 #: How many trusted runs make a baseline by default.
 BASELINE_RUNS = 5
-#: Scale thermal conductivity range, W/(m·K): REFERENCE.md §5.1 (plausible 0.5-2.9).
+#: Plausible scale thermal conductivity range, W/(m·K), from memory, no source checked
+#: (Pezzin et al., COMSOL Conference 2013, take 2.2 for CaCO₃).
 SCALE_CONDUCTIVITY_W_PER_M_K = (0.5, 2.9)
 #: CUSUM reference value and decision interval, in standard deviations (module docstring).
 CUSUM_K = 0.5
@@ -454,7 +456,8 @@ def scale_thickness_range_mm(
 
     A layer of thickness δ and conductivity k adds a series resistance δ/(k·A):
     1/G - 1/G0 = δ/(k·A), so δ = k·A·(1/G - 1/G0), over the plausible k range
-    :data:`SCALE_CONDUCTIVITY_W_PER_M_K` (REFERENCE.md §5.1-5.2). Raises ValueError
+    :data:`SCALE_CONDUCTIVITY_W_PER_M_K` (series resistances, common practice, no source).
+    Raises ValueError
     for a non-positive conductance or area.
     """
     if conductance_w_per_k <= 0.0 or baseline_w_per_k <= 0.0 or element_area_m2 <= 0.0:
@@ -585,7 +588,7 @@ def drift_over_runs(
 
 
 #: Element and water readings at rest may differ by this much (K) before ``sensor`` is
-#: raised: two type K class 1 thermocouples may each be 1.5 K out (REFERENCE.md §8),
+#: raised: two type K class 1 thermocouples may each be 1.5 K out (IEC 60584-1),
 #: but a pair in one vessel usually agrees far better; past 1.5 K one of them is suspect.
 SENSOR_DISAGREEMENT_K = 1.5
 #: Default fill tolerance as a fraction of the configured fill.

@@ -112,7 +112,9 @@ def _a(word: str) -> str:
 #: Channels whose missing readings the filter watches (a NaN is passed on for them).
 _WATCHED = frozenset(("water", "element"))
 
-#: χ² with one degree of freedom at 99.9 % (REFERENCE.md §7.4: 10.8276).
+#: χ² with one degree of freedom at 99.9 % (scipy.stats.chi2.ppf(0.999, 1)); the NIS test
+#: on it is in Bar-Shalom, Li and Kirubarajan, Estimation with Applications to Tracking and
+#: Navigation, ch. 5.
 NIS_GATE_999 = 10.8276
 #: Two-sided normal quantile for a 90 % interval (scipy.stats.norm.ppf(0.95)).
 Z_90 = 1.6448536269514722

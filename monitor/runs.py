@@ -38,8 +38,8 @@ RUN_GAP_S = 900.0
 REFILL_DROP_K = 10.0
 #: ... of the readings of the last this many seconds.
 REFILL_WINDOW_S = 30.0
-#: Room temperature of the standing-loss figure, °C (common storage-heater test practice,
-#: from memory; see shared/reference/REFERENCE.md §6).
+#: Room temperature of the standing-loss figure, °C (the ambient of the storage-heater
+#: standing-loss test in EN 60379 / IEC 60379:1987, from memory, no source checked).
 STANDING_LOSS_ROOM_C = 20.0
 
 

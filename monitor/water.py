@@ -130,7 +130,7 @@ ALTITUDE_MAX_M = 11000.0  # geometric, m (inside the ICAO troposphere)
 # --- IF97 region 4 (saturation line) ---------------------------------------------------
 
 # Coefficients n1…n10 of the IF97 saturation equations 30 and 31: IAPWS R7-97(2012)
-# Table 34 (the table number from memory), values via REFERENCE §2.1. They are
+# Table 34 (the table number from memory). They are
 # equation coefficients, not physical constants, so they live beside the equation
 # rather than in drivers.constants.
 _N1, _N2, _N3, _N4, _N5, _N6, _N7, _N8, _N9, _N10 = (

@@ -23,9 +23,10 @@ def k_water(**changes: object) -> ChannelBinding:
 
 
 def test_millivolts_with_the_cold_junction_at_zero_give_the_table_temperature() -> None:
-    # REFERENCE.md §1 table: type K E(100 °C) = 4.0962 mV. The conversion inverts the
-    # reference function exactly, so it lands on 100 °C (not on the inverse polynomial's
-    # 99.963 °C for 4.096 mV, which carries that polynomial's own error).
+    # NIST SRD 60 type K function (NIST Monograph 175, IEC 60584-1): E(100 °C) = 4.0962 mV.
+    # The conversion inverts the reference function exactly, so it lands on 100 °C (not on
+    # the inverse polynomial's 99.963 °C for 4.096 mV, which carries that polynomial's own
+    # error).
     samples, problems = bind_fields({"ch1": "4.0962", "cj": "0"}, [k_water()], T, "test")
     assert problems == []
     assert samples[0].value == pytest.approx(100.0, abs=0.005)
@@ -34,7 +35,7 @@ def test_millivolts_with_the_cold_junction_at_zero_give_the_table_temperature() 
 
 
 def test_cold_junction_compensation_adds_the_junctions_emf() -> None:
-    # REFERENCE.md §1 table: K E(25 °C) = 1.0002 mV, E(100 °C) = 4.0962 mV,
+    # NIST SRD 60 type K function: E(25 °C) = 1.0002 mV, E(100 °C) = 4.0962 mV,
     # so a hot end at 100 °C with the cold end at 25 °C reads 3.0960 mV.
     samples, _ = bind_fields({"ch1": "3.0960", "cj": "25.0"}, [k_water()], T, "test")
     assert samples[0].value == pytest.approx(100.0, abs=0.02)

@@ -220,9 +220,10 @@ def test_temperatures_round_trip_through_the_pty(pty: Pty) -> None:
     hottest_c = 0.0
     for s in samples:
         if s.channel in ("water", "element"):
-            # 1 µV rounding of the EMF is 0.012 K at ~41 µV/K (REFERENCE.md §1.3, Seebeck
-            # coefficient of type K) and 0.01 K rounding of the cold junction 0.005 K: 0.05 K
-            # bounds the round trip with room for the inverse polynomial.
+            # 1 µV rounding of the EMF is 0.012 K at ~41 µV/K (type K Seebeck coefficient,
+            # derivative of the NIST SRD 60 reference function) and 0.01 K rounding of the
+            # cold junction 0.005 K: 0.05 K bounds the round trip with room for the inverse
+            # polynomial.
             assert s.value == pytest.approx(truth_by_key[(s.t, s.channel)], abs=0.05)
             hottest_c = max(hottest_c, s.value)
         else:

@@ -74,11 +74,12 @@ def test_same_seed_same_log_other_seed_other_log():
 @pytest.mark.parametrize(
     ("pressure_kpa", "boiling_c"),
     [
-        # REFERENCE.md §2.2 [computed: iapws IF97]: 99.974 °C at 101.325 kPa
+        # IAPWS R7-97(2012) (IF97), computed with iapws 1.5.5: 99.974 °C at 101.325 kPa
         (101.325, 99.974),
-        # REFERENCE.md §3, ICAO atmosphere at 2000 m geopotential: 79495.2 Pa → 93.315 °C
+        # ICAO Doc 7488 / ISO 2533 atmosphere at 2000 m geopotential: 79495.2 Pa, boiling at
+        # 93.315 °C (IAPWS-95 as computed by the iapws 1.5.5 package)
         (79.4952, 93.315),
-        # REFERENCE.md §3, 5000 m: 54019.9 Pa → 83.255 °C
+        # same sources, 5000 m: 54019.9 Pa → 83.255 °C
         (54.0199, 83.255),
     ],
 )
@@ -109,7 +110,7 @@ def test_boiling_clamp_holds_at_site_boiling_point(pressure_kpa, boiling_c):
 def test_scale_lowers_conductance_by_series_resistance(scale_mm):
     scenario = kettle_scenario(scale_mm=scale_mm, scale_conductivity_w_per_m_k=1.2)
     # G = A / (1/h + δ/k), by hand with h = 3000 W/(m²·K), A = 0.018 m², k = 1.2 W/(m·K)
-    # (series thermal resistances, common practice, no source; REFERENCE.md §5.2 form)
+    # (series thermal resistances, common practice, no source)
     want = 0.018 / (1.0 / 3000.0 + scale_mm / 1000.0 / 1.2)
     assert scenario.element_conductance_w_per_k() == pytest.approx(want, rel=1e-12)
     # and inside a run the element-to-water flow over the temperature gap shows it
@@ -168,8 +169,8 @@ def test_thermostat_cycles_and_draws_cool_the_tank():
 
 
 def test_effective_ua_is_a_few_tenths_for_a_kettle():
-    # REFERENCE.md §4.3: a kettle's side walls alone give UA ≈ 0.4-0.7 W/K (their
-    # estimate, not sourced); our kettle at 90 °C in a 20 °C room should land there.
+    # A kettle's side walls alone give UA ≈ 0.4-0.7 W/K (an estimate from h ≈ 7-12 W/(m²·K)
+    # on about 0.06 m², no published source); our kettle at 90 °C in a 20 °C room should land there.
     ua = effective_ua_w_per_k(kettle_scenario(), 90.0, 20.0)
     assert 0.4 < ua < 0.8
 
@@ -187,8 +188,8 @@ def test_raw_thermocouple_millivolts_convert_back():
             continue  # a dropout
         t_c = thermocouple.temperature_c("K", by_b["water_emf"], by_b["cold_junction"])
         true_lagged = raw._lagged["water"]
-        # 1 µV of rounding is about 0.025 K for type K near 25-100 °C (REFERENCE.md §1.3,
-        # Seebeck 40-41 µV/K); the cold junction is reported to 0.01 K
+        # 1 µV of rounding is about 0.025 K for type K near 25-100 °C (Seebeck 40-41 µV/K,
+        # derivative of the NIST SRD 60 function); the cold junction is reported to 0.01 K
         assert t_c == pytest.approx(true_lagged, abs=0.06)
         assert by_a["ambient"] == pytest.approx(by_b["ambient"])
 
@@ -269,7 +270,8 @@ def test_urls_and_scenarios_are_checked():
 
 
 def test_saturation_matches_iapws_reference():
-    # REFERENCE.md §2.2 [computed: iapws IF97]: T_b = 99.974 °C, h_fg = 2256.54 kJ/kg at 1 atm
+    # IAPWS R7-97(2012) (IF97), computed with iapws 1.5.5: T_b = 99.974 °C,
+    # h_fg = 2256.54 kJ/kg at 1 atm
     t_sat_c, h_fg = saturation(101.325)
     assert t_sat_c == pytest.approx(99.974, abs=5e-4)
     assert h_fg == pytest.approx(2256.54e3, rel=1e-5)

@@ -1,7 +1,9 @@
 """Tests of the ITS-90 thermocouple functions in drivers/thermocouple.py.
 
-Check values come from shared/reference/REFERENCE.md; each carries its source. "REF" below
-means that file.
+Each check value names its source beside it. "NIST SRD 60" is NIST Standard Reference
+Database 60: the ITS-90 thermocouple reference functions and tables of NIST Monograph 175
+(1993), the same functions IEC 60584-1 adopts. "Computed" means evaluated from those functions
+and rounded as shown.
 """
 
 from __future__ import annotations
@@ -32,7 +34,7 @@ from drivers.thermocouple import (
 # --------------------------------------------------------------------------------------------
 
 # E(t) in mV to 4 decimals, reference junction 0 °C.
-# Source: computed from the NIST SRD 60 functions, via REF §1.3 (table "t → E(t)").
+# Source: computed from the NIST SRD 60 reference functions.
 TABLE_4DP = {
     "K": [(-270, -6.4577), (-200, -5.8914), (-100, -3.5536), (0, 0.0), (25, 1.0002),
           (100, 4.0962), (200, 8.1385), (300, 12.2086), (400, 16.3971), (500, 20.6443),
@@ -53,8 +55,8 @@ TABLE_4DP = {
           (1820, 13.8203)],
 }  # fmt: skip
 
-# NIST table values to 3 decimals. Source: NIST tables (from memory), via REF §1.3
-# ("compared against NIST table values (from memory)"); softer checks.
+# NIST table values to 3 decimals. Source: NIST SRD 60 tables, from memory, no source
+# checked; softer checks.
 NIST_3DP_FROM_MEMORY = [
     ("K", -100, -3.554), ("K", 100, 4.096), ("K", 500, 20.644), ("K", 1000, 41.276),
     ("J", 100, 5.269), ("J", 760, 42.919), ("J", 1200, 69.553),
@@ -62,11 +64,11 @@ NIST_3DP_FROM_MEMORY = [
     ("E", 100, 6.319), ("E", 1000, 76.373),
     ("N", 100, 2.774), ("N", 1300, 47.513),
     ("R", 1000, 10.506), ("S", 1000, 9.587), ("B", 1000, 4.834),
-    ("S", 1768.0, 18.693),  # REF §1.3: "Use 1768.0 °C → 18.693 for a rounded table test"
+    ("S", 1768.0, 18.693),  # NIST SRD 60 function at 1768.0 °C, rounded to 3 decimals
 ]  # fmt: skip
 
 # Reference range limits, °C and EMF rounded to 3 decimals.
-# Source: NIST SRD 60, via REF §1.4 ("Range limits").
+# Source: NIST SRD 60 (range of each reference function).
 RANGE_LIMITS = {
     "K": (-270.0, 1372.0, -6.458, 54.886),
     "J": (-210.0, 1200.0, -8.095, 69.553),
@@ -100,8 +102,8 @@ def test_emf_rounds_to_nist_3_decimal_table_value(
 @pytest.mark.parametrize(
     ("tc_type", "t_c", "expected_mv", "tol_mv"),
     [
-        # REF §1.3 text: "S ... at 1768 °C: it gives 18.69251 mV", "R at 1768 °C gives
-        # 21.10148", "At 1768.1 °C the function gives 18.6935 mV" (computed, NIST SRD 60).
+        # Computed from the NIST SRD 60 functions: S 18.69251 mV and R 21.10148 mV at
+        # 1768 °C, S 18.6935 mV at 1768.1 °C.
         ("S", 1768.0, 18.69251, 6e-6),
         ("R", 1768.0, 21.10148, 6e-6),
         ("S", 1768.1, 18.6935, 6e-5),
@@ -122,7 +124,7 @@ def test_range_limits_match_nist(tc_type: str) -> None:
 
 @pytest.mark.parametrize(
     ("tc_type", "t_lo", "t_hi"),
-    # Source: NIST SRD 60, via REF §1.4 ("R and S −50…1768.1; B 0…1820").
+    # Source: NIST SRD 60 (R and S from −50 to 1768.1 °C, B from 0 to 1820 °C).
     [("R", -50.0, 1768.1), ("S", -50.0, 1768.1), ("B", 0.0, 1820.0)],
 )
 def test_noble_metal_range_limits(tc_type: str, t_lo: float, t_hi: float) -> None:
@@ -151,10 +153,10 @@ def test_inverse_range_limits_agree_with_forward_function(tc_type: str) -> None:
 
 
 def test_k_exponential_term_applies_only_above_zero() -> None:
-    # REF §1.1: the a0·exp(a1·(t − a2)²) term belongs to 0 < t ≤ 1372 °C only.
+    # NIST SRD 60: the a0·exp(a1·(t − a2)²) term belongs to 0 < t ≤ 1372 °C only.
     k_low, k_high = reference_table("K").forward
     assert k_low.exponential is None
-    assert k_high.exponential == (1.185976e-01, -1.183432e-04, 1.269686e02)  # REF §1.1
+    assert k_high.exponential == (1.185976e-01, -1.183432e-04, 1.269686e02)  # NIST SRD 60
     without = dataclasses.replace(k_high, exponential=None)
     # At 127 °C the term is at its peak, a0 = 0.1186 mV; dropping it must show.
     assert k_high.emf_mv(126.9686) - without.emf_mv(126.9686) == pytest.approx(0.1185976)
@@ -172,7 +174,7 @@ def test_tables_are_immutable() -> None:
 # --------------------------------------------------------------------------------------------
 
 # Plain inverse polynomial results, °C.
-# Source: computed from the NIST SRD 60 inverse polynomials, via REF §1.3 "Inverse spot checks".
+# Source: computed from the NIST SRD 60 inverse polynomials.
 INVERSE_SPOT_CHECKS = [
     ("K", -5.891, -199.933), ("K", -3.554, -100.004), ("K", 1.000, 24.984),
     ("K", 4.096, 99.963), ("K", 20.644, 499.980), ("K", 41.276, 999.987),
@@ -207,7 +209,7 @@ def test_each_inverse_polynomial_stays_in_its_nist_band(tc_type: str) -> None:
         errors = [rng.t90_c(emf_mv(tc_type, t)) - t for t in _grid(rng.t_lo_c, rng.t_hi_c)]
         assert min(errors) >= rng.error_lo_c - BAND_ALLOWANCE_C, (tc_type, rng.t_lo_c)
         assert max(errors) <= rng.error_hi_c + BAND_ALLOWANCE_C, (tc_type, rng.t_lo_c)
-        # Sanity on the band itself: it is at most 0.06 °C (REF §1.2, K 500…1372 °C).
+        # Sanity on the band itself: it is at most 0.06 °C (NIST SRD 60, K 500…1372 °C).
         assert max(abs(e) for e in errors) <= 0.06
 
 
@@ -296,13 +298,14 @@ def test_overlapping_ranges_use_the_higher_tighter_range(tc_type: str, t_c: floa
 
 
 def test_type_b_is_not_inverted_below_0_291_mv() -> None:
-    # NIST SRD 60, via REF §1.4: "B's inverse is only valid ≥ 0.291 mV, i.e. ≥ 250 °C".
-    assert temperature_c("B", 0.291) == pytest.approx(250.0, abs=0.5)  # REF §1.4 "≥ 250 °C"
+    # NIST SRD 60: type B's inverse polynomial starts at 0.291 mV, that is 250 °C.
+    assert temperature_c("B", 0.291) == pytest.approx(250.0, abs=0.5)  # NIST SRD 60
     for e in (0.29, 0.1, 0.0, -0.0002):
         with pytest.raises(ThermocoupleRangeError, match=r"type B.*not inverted below 0\.291"):
             temperature_c("B", e)
     # The reason: E(t) of type B dips below zero and comes back, so an EMF there has two
-    # temperatures. REF §1.3: B 0 → 0.0000 mV; E(t) is negative just above 0 °C.
+    # temperatures. NIST SRD 60 function: B gives 0.0000 mV at 0 °C and is negative just
+    # above it.
     assert emf_mv("B", 20.0) < 0.0 < emf_mv("B", 60.0)
 
 
@@ -313,11 +316,11 @@ def test_type_b_is_not_inverted_below_0_291_mv() -> None:
 
 def test_cjc_type_k_100_c_with_cold_junction_at_25_c() -> None:
     measured = emf_mv("K", 100.0) - emf_mv("K", 25.0)
-    # REF §1.3 table: E_K(100) = 4.0962, E_K(25) = 1.0002 mV.
+    # Computed from the NIST SRD 60 function: E_K(100) = 4.0962, E_K(25) = 1.0002 mV.
     assert measured == pytest.approx(4.0962 - 1.0002, abs=1.2e-4)
     assert temperature_c("K", measured, cold_junction_c=25.0) == pytest.approx(100.0, abs=1e-6)
     plain = temperature_c("K", measured, cold_junction_c=25.0, polish=False)
-    assert -0.05 <= plain - 100.0 <= 0.04  # REF §1.2, K 0…500 °C band
+    assert -0.05 <= plain - 100.0 <= 0.04  # NIST SRD 60 error band, K 0…500 °C
 
 
 @pytest.mark.parametrize(
@@ -334,8 +337,9 @@ def test_adding_temperatures_would_be_wrong(tc_type: str, hot_c: float, cj_c: fl
 
 
 def test_cold_junction_error_propagates_through_seebeck_ratio() -> None:
-    # REF §8.2 [derived]: an error δt_cj shows at the hot end as ≈ δt_cj·S(t_cj)/S(t_hot),
-    # ≈ 0.98·δt_cj for type K at 100 °C hot / 25 °C cold.
+    # First-order error propagation, derived here, no published source: an error δt_cj
+    # shows at the hot end as ≈ δt_cj·S(t_cj)/S(t_hot), ≈ 0.98·δt_cj for type K at 100 °C
+    # hot / 25 °C cold.
     measured = emf_mv("K", 100.0) - emf_mv("K", 25.0)
     delta_cj = 0.5
     shift = temperature_c("K", measured, 25.0 + delta_cj) - temperature_c("K", measured, 25.0)
@@ -488,7 +492,7 @@ def test_fault_reading_must_carry_nan() -> None:
 # --------------------------------------------------------------------------------------------
 
 # dE/dt in µV/K at 0 / 25 / 100 °C. Source: computed (numerical derivative of the NIST SRD 60
-# functions), via REF §1.3 "Seebeck coefficient".
+# functions).
 SEEBECK = {
     "K": (39.450, 40.518, 41.369),
     "J": (50.381, 51.752, 54.361),
@@ -511,11 +515,11 @@ def test_seebeck_reference_values(tc_type: str, t_c: float, expected: float) -> 
 
 
 def test_seebeck_at_zero_equals_c1_where_ranges_meet_smoothly() -> None:
-    # REF §1.3: "The K value at 0 °C equals c1 of the −270…0 range (0.0394501 mV/K)".
+    # NIST SRD 60: at 0 °C the K slope is c1 of the −270…0 °C set, 0.0394501 mV/K.
     assert seebeck_uv_per_k("K", 0.0) == pytest.approx(39.450128025, abs=1e-4)
-    # Type N is the exception: its two ranges have different c1 (REF §1.2: 2.6159105962E-02
+    # Type N is the exception: its two ranges have different c1 (NIST SRD 60: 2.6159105962E-02
     # below 0 °C, 2.5929394601E-02 above), so the slope has a kink; at 0 °C we give the mean,
-    # which is REF's numerically computed 26.044.
+    # which is 26.044 by numerical derivative of the NIST SRD 60 functions.
     assert seebeck_uv_per_k("N", -1e-9) == pytest.approx(26.159105962, abs=1e-4)
     assert seebeck_uv_per_k("N", 1e-9) == pytest.approx(25.929394601, abs=1e-4)
     assert seebeck_uv_per_k("N", 0.0) == pytest.approx((26.159105962 + 25.929394601) / 2)

@@ -49,9 +49,10 @@ def test_simulate_at_altitude_boils_lower(tmp_path):
     out = tmp_path / "high.csv"
     main(["simulate", "--altitude-m", "2000", "--duration-s", "400", "--out", str(out)])
     log = read_csv(out)
-    # REFERENCE.md §3: 2000 m → 79.5 kPa, boiling point 93.32 °C (IF97 on the ICAO
-    # atmosphere). We take the elevation as geometric; geometric and geopotential
-    # 2000 m differ by 6 Pa there, which leaves 93.32 °C either way.
+    # ICAO Doc 7488 / ISO 2533 standard atmosphere: 2000 m → 79.5 kPa; boiling point
+    # 93.32 °C there, computed from IAPWS R7-97(2012) (IF97). We take the elevation as
+    # geometric; geometric and geopotential 2000 m differ by 6 Pa there, which leaves
+    # 93.32 °C either way.
     assert log.metadata["boiling_point_c"] == pytest.approx(93.32, abs=0.02)
     assert max(r.values["water"] for r in log.rows if "water" in r.values) < 93.32 + 0.5
 

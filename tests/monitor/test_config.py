@@ -75,7 +75,7 @@ def test_a_good_configuration_loads_with_everything_in_place(tmp_path) -> None:
     path = tmp_path / "rig.toml"
     path.write_text(GOOD, encoding="utf-8")
     cfg = load_config(path, ENV)
-    # ICAO standard atmosphere (REFERENCE.md §3), computed by monitor.water
+    # ICAO Doc 7488 / ISO 2533 standard atmosphere, computed by monitor.water
     assert cfg.pressure_kpa == pytest.approx(pressure_at_altitude_kpa(350.0))
     assert cfg.mqtt is not None
     assert (cfg.mqtt.username, cfg.mqtt.password) == ("operator", "s3cret")

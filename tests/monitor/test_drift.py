@@ -107,7 +107,7 @@ def test_a_run_verdict_names_each_sign_of_a_failed_estimate() -> None:
 
 def test_scale_thickness_follows_the_series_resistance() -> None:
     # 1/G - 1/G0 = 1/40 - 1/50 = 0.005 K/W; δ = k·A·0.005 with A = 0.018 m²:
-    # k = 0.5 -> 0.045 mm, k = 2.9 -> 0.261 mm (arithmetic on REFERENCE.md §5.1's range)
+    # k = 0.5 -> 0.045 mm, k = 2.9 -> 0.261 mm (k range from memory, no source checked)
     lo, hi = scale_thickness_range_mm(40.0, 50.0, 0.018)  # type: ignore[misc]
     assert lo == pytest.approx(0.045)
     assert hi == pytest.approx(0.261)

@@ -118,8 +118,9 @@ def test_steady_state():
 
 
 def test_time_to_boil_closed_form_reference_case():
-    # REFERENCE.md §7.2 (derived there): UA 2 W/K, C 4300 J/K, P 2000 W, T_a 20 °C,
-    # T0 15 °C, T_b 99.97 °C → t_b = 189.92 s; the lossless value C·ΔT/P = 182.69 s.
+    # Closed form of the first-order heating curve, derived here (no published source):
+    # UA 2 W/K, C 4300 J/K, P 2000 W, T_a 20 °C, T0 15 °C, T_b 99.97 °C → t_b = 189.92 s;
+    # the lossless value C·ΔT/P = 182.69 s.
     got = model.time_to_target((15.0,), 99.97, HEAT, ONE)
     assert got.reachable
     assert got.seconds == pytest.approx(189.92, abs=0.01)

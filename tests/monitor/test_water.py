@@ -1,10 +1,9 @@
 """Tests for monitor.water against published figures and against iapws itself.
 
-Sources are named beside each check value. "REFERENCE" is
-shared/reference/REFERENCE.md. IAPWS-95 figures (REFERENCE §2.2 and §3) are not
-what IF97 gives, so those checks carry a tolerance sized from the IF97-vs-IAPWS-95
-difference, stated beside them; IF97's own verification tables are matched to
-their nine significant digits.
+Sources are named beside each check value. IAPWS-95 figures (computed with the iapws
+1.5.5 package) are not what IF97 gives, so those checks carry a tolerance sized from
+the IF97-vs-IAPWS-95 difference, stated beside them; IF97's own verification tables
+(IAPWS R7-97(2012)) are matched to their nine significant digits.
 """
 
 from __future__ import annotations
@@ -108,14 +107,14 @@ def grid() -> Grid:
     )
 
 
-# --- IAPWS-IF97 verification values (IAPWS R7-97(2012), via REFERENCE §2.1) -------------
+# --- IAPWS-IF97 verification values (IAPWS R7-97(2012)) ----------------------------------
 # These check the iapws routines the tables are built from, and our own eq. 31.
 
 
 @pytest.mark.parametrize(
     ("t_k", "p_mpa"),
     [
-        # IAPWS R7-97(2012) Table 35, via REFERENCE §2.1
+        # IAPWS R7-97(2012) Table 35
         (300.0, 0.353658941e-2),
         (500.0, 0.263889776e1),
         (600.0, 0.123443146e2),
@@ -128,7 +127,7 @@ def test_iapws_saturation_pressure_matches_if97_table_35(t_k: float, p_mpa: floa
 @pytest.mark.parametrize(
     ("p_mpa", "t_k"),
     [
-        # IAPWS R7-97(2012) Table 36, via REFERENCE §2.1
+        # IAPWS R7-97(2012) Table 36
         (0.1, 0.372755919e3),
         (1.0, 0.453035632e3),
         (10.0, 0.584149488e3),
@@ -141,14 +140,14 @@ def test_saturation_temperature_matches_if97_table_36(p_mpa: float, t_k: float) 
 
 
 def test_boiling_point_at_100_kpa_matches_if97_table_36() -> None:
-    # IAPWS R7-97(2012) Table 36: T_s(0.1 MPa) = 372.755919 K, via REFERENCE §2.1
+    # IAPWS R7-97(2012) Table 36: T_s(0.1 MPa) = 372.755919 K
     assert water.boiling_point_c(100.0) == pytest.approx(372.755919 - 273.15, abs=1e-6)
 
 
 @pytest.mark.parametrize(
     ("t_k", "p_mpa", "v_m3_per_kg", "h_kj_per_kg", "cp_kj_per_kg_k"),
     [
-        # IAPWS R7-97(2012) Table 5, via REFERENCE §2.1
+        # IAPWS R7-97(2012) Table 5
         (300.0, 3.0, 0.100215168e-2, 0.115331273e3, 0.417301218e1),
         (300.0, 80.0, 0.971180894e-3, 0.184142828e3, 0.401008987e1),
         (500.0, 3.0, 0.120241800e-2, 0.975542239e3, 0.465580682e1),
@@ -178,22 +177,22 @@ def test_iapws_internals_agree_with_iapws97(t_c: float) -> None:
         assert (r["cp"], r["v"], r["h"]) == pytest.approx((s.cp, s.v, s.h), rel=1e-12)
 
 
-# --- Water at 1 atm (REFERENCE §2.2) -------------------------------------------------
+# --- Water at 1 atm (IAPWS formulations, computed with iapws 1.5.5) -------------------
 
 
 def test_normal_boiling_point() -> None:
-    # 99.974 °C: IF97 T_s(0.101325 MPa), computed with iapws 1.5.5, REFERENCE §2.2
+    # 99.974 °C: IAPWS R7-97(2012) (IF97) T_s(0.101325 MPa), computed with iapws 1.5.5
     assert water.boiling_point_c(STANDARD_PRESSURE_KPA) == pytest.approx(99.974, abs=5e-4)
 
 
 def test_latent_heat_at_one_atm() -> None:
-    # 2256.54 kJ/kg IF97 (computed, iapws 1.5.5), REFERENCE §2.2: ±0.005 rounding.
+    # 2256.54 kJ/kg, IAPWS R7-97(2012) (IF97) computed with iapws 1.5.5: ±0.005 rounding.
     assert water.latent_heat_j_per_kg(STANDARD_PRESSURE_KPA) == pytest.approx(2256.54e3, abs=5.0)
-    # 2256.47 kJ/kg IAPWS-95, REFERENCE §2.2; IF97 is 0.07 kJ/kg (3e-5) above it.
+    # 2256.47 kJ/kg, IAPWS-95 as computed by iapws 1.5.5; IF97 is 0.07 kJ/kg (3e-5) above it.
     assert water.latent_heat_j_per_kg(STANDARD_PRESSURE_KPA) == pytest.approx(2256.47e3, rel=5e-5)
 
 
-# IAPWS-95 liquid at 1 atm, REFERENCE §2.2 table (computed there with iapws 1.5.5).
+# IAPWS-95 liquid at 1 atm, as computed by the iapws 1.5.5 package.
 # IF97 region 1 differs from IAPWS-95 along this isobar by up to 1.5e-5 in density and
 # 5.3e-4 in c_p (at 60 °C), computed here with iapws 1.5.5 for both formulations;
 # the tolerances are those differences plus the table's rounding.
@@ -221,7 +220,7 @@ def test_specific_heat_matches_iapws95_at_one_atm(t_c: float, cp_kj: float) -> N
 
 
 def test_specific_heat_at_20_and_25_c_closely() -> None:
-    # 4.1841 and 4.1813 kJ/(kg·K), IAPWS-95, REFERENCE §2.2. IF97 is 1.7e-4 and 1.4e-4
+    # 4.1841 and 4.1813 kJ/(kg·K), IAPWS-95 as computed by iapws 1.5.5. IF97 is 1.7e-4 and 1.4e-4
     # above them (computed, iapws 1.5.5), so here a tighter 2.5e-4.
     assert water.specific_heat_j_per_kg_k(20.0) == pytest.approx(4184.1, rel=2.5e-4)
     assert water.specific_heat_j_per_kg_k(25.0) == pytest.approx(4181.3, rel=2.5e-4)
@@ -249,14 +248,14 @@ def test_mean_specific_heat_is_the_enthalpy_rise_over_the_temperature_rise() -> 
 
 
 def test_saturated_liquid_at_one_atm() -> None:
-    # ρ 958.37 kg/m³ and c_p 4.2156 kJ/(kg·K), IAPWS-95, REFERENCE §2.2.
+    # ρ 958.37 kg/m³ and c_p 4.2156 kJ/(kg·K), IAPWS-95 as computed by iapws 1.5.5.
     tb = water.boiling_point_c(STANDARD_PRESSURE_KPA)
     assert water.density_kg_per_m3(tb) == pytest.approx(958.37, rel=2e-5)
     assert water.specific_heat_j_per_kg_k(tb) == pytest.approx(4215.6, rel=6e-4)
 
 
 def test_density_maximum_near_4_c() -> None:
-    # 999.975 kg/m³ at 3.98 °C, IAPWS-95, REFERENCE §2.2; IF97 puts it at 3.96 °C
+    # 999.975 kg/m³ at 3.98 °C, IAPWS-95 as computed by iapws 1.5.5; IF97 puts it at 3.96 °C
     # (computed, iapws 1.5.5).
     t = np.linspace(2.0, 6.0, 4001)
     rho = water.density_kg_per_m3(t)
@@ -266,7 +265,7 @@ def test_density_maximum_near_4_c() -> None:
 
 def test_heating_energy_from_15_c_to_boiling() -> None:
     # 355.98 kJ/kg from 15 °C to saturated liquid at 1 atm (and 335.05 kJ/kg from
-    # 20 °C), IAPWS-95, REFERENCE §2.2. IF97 gives 1.9e-4 and 2.2e-4 less (its c_p is
+    # 20 °C), IAPWS-95 as computed by iapws 1.5.5. IF97 gives 1.9e-4 and 2.2e-4 less (its c_p is
     # below IAPWS-95's over most of the range, see above), so 3e-4.
     tb = water.boiling_point_c(STANDARD_PRESSURE_KPA)
     assert water.heating_energy_j(1.0, 15.0, tb) == pytest.approx(355.98e3, rel=3e-4)
@@ -300,13 +299,13 @@ def test_enthalpy_reference_state() -> None:
     assert water.specific_enthalpy_j_per_kg(0.01) == pytest.approx(103.2, abs=0.5)
 
 
-# --- ICAO standard atmosphere and boiling point at altitude (REFERENCE §3) ---------------
+# --- Standard atmosphere (ICAO Doc 7488 / ISO 2533) and boiling point at altitude --------
 
 
 @pytest.mark.parametrize(
     ("h_geopotential_m", "p_pa"),
     [
-        # REFERENCE §3 table, column "p, H = geopotential" (computed there)
+        # computed from the ICAO Doc 7488 / ISO 2533 troposphere formula at geopotential H
         (0.0, 101325.0),
         (500.0, 95460.8),
         (1000.0, 89874.6),
@@ -327,8 +326,8 @@ def test_pressure_at_geopotential_altitude(h_geopotential_m: float, p_pa: float)
 @pytest.mark.parametrize(
     ("z_m", "p_pa"),
     [
-        # REFERENCE §3 table, column "p, z = geometric": the PyPI `ambiance` 1.3.1
-        # package (ICAO 1993), which takes geometric height.
+        # At geometric height z, as computed by the PyPI `ambiance` 1.3.1 package
+        # (ICAO Doc 7488, 1993).
         (500.0, 95461.3),
         (1000.0, 89876.3),
         (2000.0, 79501.4),
@@ -341,21 +340,21 @@ def test_pressure_at_geometric_altitude(z_m: float, p_pa: float) -> None:
 
 
 def test_pressure_at_1000_m_matches_mathworks_atmosisa() -> None:
-    # 1000 m geopotential → 8.9875e4 Pa, MathWorks atmosisa doc, via REFERENCE §3.
+    # 1000 m geopotential → 8.9875e4 Pa, MathWorks atmosisa doc (R2021a).
     p_kpa = water.pressure_at_altitude_kpa(_geometric_from_geopotential_m(1000.0))
     assert p_kpa * PA_PER_KPA == pytest.approx(8.9875e4, abs=5.0)
 
 
 def test_isa_pressure_exponent() -> None:
-    # g0/(R·L) = 5.255880, REFERENCE §3 (computed there).
+    # g0/(R·L) = 5.255880, computed by us from the ICAO Doc 7488 constants.
     assert pytest.approx(5.255880, abs=1e-6) == water._ISA_EXPONENT
 
 
 @pytest.mark.parametrize(
     ("h_geopotential_m", "t_b_2dp", "t_b_iapws95", "h_fg_kj_iapws95"),
     [
-        # REFERENCE §3: T_b at p(H) to 2 decimals (IF97), the more precise IAPWS-95
-        # boiling points and the IAPWS-95 h_fg at those pressures.
+        # At the ICAO Doc 7488 / ISO 2533 pressure p(H): T_b to 2 decimals from IAPWS
+        # R7-97(2012) (IF97), then T_b and h_fg from IAPWS-95, all computed.
         (1000.0, 96.65, 96.649, 2265.22),
         (2000.0, 93.32, 93.315, 2273.91),
         (5000.0, 83.25, 83.255, 2299.76),
@@ -374,7 +373,8 @@ def test_boiling_point_at_altitude(
 
 
 def test_boiling_point_falls_about_3_3_k_per_1000_m() -> None:
-    # "about −3.3 K of boiling point per 1000 m near sea level", REFERENCE §3.
+    # Roughly 3.3 K lower per 1000 m near sea level: our reading of the ICAO atmosphere
+    # with IF97 boiling points (computed), not a published figure.
     drop = water.boiling_point_c(water.pressure_at_altitude_kpa(0.0)) - water.boiling_point_c(
         water.pressure_at_altitude_kpa(1000.0)
     )
@@ -557,7 +557,7 @@ def test_enthalpy_rises_with_temperature(t: float, dt: float) -> None:
 @settings(deadline=None, max_examples=200)
 @given(t=st.floats(4.1, 149.99), dt=st.floats(1e-4, 10.0))
 def test_density_falls_with_temperature_above_4_c(t: float, dt: float) -> None:
-    # Above the density maximum (≈ 4 °C, REFERENCE §2.2) water expands on heating.
+    # Above the density maximum (≈ 4 °C, IAPWS-95 via iapws 1.5.5) water expands on heating.
     t2 = min(t + dt, 150.0)
     assert water.density_kg_per_m3(t2) < water.density_kg_per_m3(t)
 
@@ -637,7 +637,7 @@ def test_range_ends_are_accepted() -> None:
     assert water.boiling_point_c(water.P_MAX_KPA) == pytest.approx(151.83, abs=0.01)
     assert water.latent_heat_j_per_kg(water.P_MIN_KPA) > water.latent_heat_j_per_kg(500.0)
     assert water.pressure_at_altitude_kpa(water.ALTITUDE_MIN_M) > STANDARD_PRESSURE_KPA
-    # Just above the 22.632 kPa of the 11 000 m geopotential layer base (REFERENCE §3),
+    # Just above the 22.632 kPa of the 11 000 m geopotential layer base (ICAO Doc 7488),
     # since 11 000 m geometric is 10 981 m geopotential.
     assert 22.632 < water.pressure_at_altitude_kpa(water.ALTITUDE_MAX_M) < 22.8
     assert water.heating_energy_j(0.0, 20.0, 90.0) == 0.0
