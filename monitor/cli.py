@@ -14,6 +14,7 @@ import asyncio
 import json
 import logging
 import sys
+import time
 from pathlib import Path
 
 from drivers.errors import EbullioError
@@ -151,8 +152,35 @@ async def _demo(args: argparse.Namespace) -> int:
     return 0
 
 
+#: Where the demo records when no --out is given (the next free demo-N.sqlite beside it
+#: when this one holds readings too recent for a demo at speed to follow).
+DEMO_LOG = "out/demo.sqlite"
+
+
+def _demo_log(args: argparse.Namespace) -> str:
+    """Return the demo's log: ``--out``, or :data:`DEMO_LOG` unless a demo at this speed
+    would have to slow down to follow its readings; then the next free ``demo-N.sqlite``."""
+    from monitor.demo import demo_start_s
+    from monitor.recorder import last_sample_t
+
+    if args.out is not None:
+        return str(args.out)
+    base = Path(DEMO_LOG)
+    path, n = base, 1
+    duration_s = _scenario_from(args).duration_s
+    while demo_start_s(time.time(), duration_s, args.speed, last_sample_t(path))[1]:
+        n += 1
+        path = base.with_name(f"{base.stem}-{n}{base.suffix}")
+    if path != base:
+        print(f"demo: {base} holds readings from a demo a few minutes ago, so this one records "
+              f"to {path} and runs at full speed (--out {base} adds to it, no faster than "
+              "real time)")  # fmt: skip
+    return str(path)
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     """Run the simulated rig in (accelerated) real time and show it live."""
+    args.out = _demo_log(args)
     return asyncio.run(_demo(args))
 
 
@@ -398,7 +426,10 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
         help="print every N simulated s",
     )
     demo.add_argument(
-        "--out", default="out/demo.sqlite", help="SQLite log (default out/demo.sqlite)"
+        "--out",
+        default=None,
+        help=f"SQLite log (default {DEMO_LOG}, or the next free demo-N.sqlite beside it when "
+        "it holds readings from a demo a few minutes ago)",
     )
     demo.set_defaults(func=cmd_demo)
     rep = verbs.add_parser(

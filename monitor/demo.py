@@ -9,7 +9,14 @@ configuration (the demo writes one and records it in the log).
 
 Time: the rig runs ``speed`` times faster than real time. The logger stamps its
 lines with the simulated clock and the drivers are handed the same clock, so the
-log reads as if the run had happened at real speed. The clock follows the logger:
+log reads as if the run had happened at real speed. That clock starts in the past
+(:func:`demo_start_s`), so no reading is ever stamped ahead of the wall clock: a
+45 s demo at 20x records 15 minutes that end about when it does. When the log
+already holds readings after that start (a demo a few minutes earlier), the new
+demo starts just after them instead, and wherever its clock would then pass the
+wall clock the rig waits: it runs at real time until it is behind again. A new
+demo is a new session of the service, so its readings are a new run, live and in
+a replay. The clock follows the logger:
 it is the time of the line last written plus the real time since at speed, never
 past the next line. When the machine is busy and the logger is late, the rig
 pauses (:meth:`PacedClock.slip`) instead of catching up in a burst of lines, so a
@@ -37,15 +44,45 @@ from dataclasses import replace
 
 from drivers.emulators.line_logger import LineLoggerEmulator, open_pty_pair, render_line
 from drivers.emulators.power_meter import PowerMeterEmulator
+from drivers.errors import EbullioError
 from drivers.sample import Sample
 from drivers.simulator import PacedClock, Scenario, SimulatedRig, scenario_metadata
 from monitor.config import VESSEL_NUMBERS, RigConfig, parse_config
+from monitor.interchange import iso_utc
+from monitor.recorder import last_sample_t
 from monitor.service import Service, Stats
 
 #: Channels the simulated logger prints; the rest of the rig's readings go to the meter.
 LOGGER_CHANNELS = ("water_emf", "element_emf", "cold_junction", "ambient")
 METER_KEYS = {"power": "power_w", "energy": "energy_wh", "voltage": "voltage_v",
               "current": "current_a"}  # fmt: skip
+
+
+#: Seconds between the newest reading already in the log and a demo's first one (at
+#: most: never later than now).
+AFTER_LAST_S = 1.0
+
+
+def demo_start_s(
+    now_s: float, duration_s: float, speed: float, last_t: float | None
+) -> tuple[float, bool]:
+    """Return the Unix time (s) of a demo's first reading, and whether it must wait for
+    the wall clock.
+
+    The start is ``duration_s`` of simulated time, less the ``duration_s / speed`` of
+    real time it takes, before ``now_s``, so the readings end when the demo does and
+    are never stamped ahead of the wall clock. ``last_t`` is the newest reading the
+    log holds (None for a new log): a start before it moves to :data:`AFTER_LAST_S`
+    after it (but not past ``now_s``), and then the demo must not run ahead of the wall
+    clock (True). A log whose newest reading is later than ``now_s`` gives a start after
+    ``now_s``, which the demo refuses.
+    """
+    start = now_s - duration_s * (1.0 - 1.0 / speed)
+    if last_t is None or last_t + AFTER_LAST_S <= start:
+        return start, False
+    if last_t > now_s:
+        return last_t + AFTER_LAST_S, True
+    return min(last_t + AFTER_LAST_S, now_s), True
 
 
 def demo_scenario(scenario: Scenario) -> Scenario:
@@ -156,9 +193,21 @@ async def run_demo(
 ) -> tuple[Stats, RigConfig]:
     """Run the demo to the end of the scenario (or SIGINT/SIGTERM); return counters and config."""
     scenario = demo_scenario(scenario)
+    last_t = await asyncio.to_thread(last_sample_t, log_path)
+    start_s, capped = demo_start_s(time.time(), scenario.duration_s, speed, last_t)
+    if start_s > time.time():
+        raise EbullioError(
+            f"{log_path}: its newest reading ({iso_utc(last_t or 0.0)}) is later than now, "
+            "so a demo's readings cannot follow it without being stamped in the future; "
+            "give another --log"
+        )
+    if capped:
+        say(f"demo: {log_path} has readings up to {iso_utc(last_t or 0.0)}, so this run starts "
+            "after them and runs no faster than real time until it is behind the clock "
+            "(for full speed give another --log)")  # fmt: skip
     # simulated time starts when the rig does, once the service is listening; until
-    # then the clock is the wall clock (the meter reads zeros)
-    base = {"wall": time.time(), "mono": time.monotonic(), "speed": 1.0}
+    # then the clock stands at the start (the meter reads zeros)
+    base = {"wall": start_s, "mono": time.monotonic(), "speed": 0.0}
     # Once the rig runs, the clock follows the logger: it is the simulated time of the
     # instant last written plus the real time since then at speed, but never past the
     # next instant. A busy machine that makes the logger late makes the clock late
@@ -169,8 +218,10 @@ async def run_demo(
     def sim_now() -> float:
         if "t" in written:
             ahead = (time.monotonic() - written["mono"]) * speed
-            return written["t"] + min(ahead, 0.999 * step_s)
-        return base["wall"] + (time.monotonic() - base["mono"]) * base["speed"]
+            now = written["t"] + min(ahead, 0.999 * step_s)
+        else:
+            now = base["wall"] + (time.monotonic() - base["mono"]) * base["speed"]
+        return min(now, time.time())  # never ahead of the wall clock
 
     # A real meter's energy counter climbs through an interval, so the counter is
     # set at each read from the power of the interval under way (not held as a step).
@@ -223,6 +274,9 @@ async def run_demo(
                 for upcoming in (*instants, None):
                     at_s = batch[0].t - scenario.start_epoch_s if batch else 0.0
                     await clock.wait_until(at_s)
+                    ahead_s = base["wall"] + at_s - time.time()
+                    if ahead_s > 0.0:  # never a reading stamped ahead of the wall clock
+                        await asyncio.sleep(ahead_s)
                     clock.slip(at_s)  # a stall pauses the rig rather than bunching its lines
                     if stopping.is_set() or task.done():
                         break

@@ -887,6 +887,16 @@ def read_samples(path: str | os.PathLike[str], vessel: str | None = None) -> Ite
     return _samples_from(path, _rows(path, sql + " ORDER BY id", params))
 
 
+def last_sample_t(path: str | os.PathLike[str]) -> float | None:
+    """Return the time stamp (Unix s) of the sample recorded last, or None for a file that
+    does not exist yet, is not a recorder log, or holds no sample."""
+    if not os.path.exists(path) or not is_recorder_log(path):
+        return None
+    for (t,) in _rows(path, "SELECT t FROM samples ORDER BY id DESC LIMIT 1"):
+        return float(t)
+    return None
+
+
 def read_samples_by_session(
     path: str | os.PathLike[str], vessel: str | None = None
 ) -> Iterator[tuple[int, Sample]]:

@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
+import time
+from pathlib import Path
 
 import pytest
 
@@ -215,3 +218,64 @@ def test_replay_fleet_report_and_export_say_when_a_log_was_altered(tmp_path, cap
             (check,) = json.loads(captured.out)["integrity"]
             assert check["state"] == "tampered"
     assert "integrity-failed" in (tmp_path / "r.html").read_text(encoding="utf-8")
+
+
+def _demo(out: Path | None, duration_s: int, cwd: Path | None = None) -> str:
+    command = [sys.executable, "-m", "monitor.cli", "demo", "--speed", "30",
+               "--duration-s", str(duration_s), "--every-s", "600"]  # fmt: skip
+    if out is not None:
+        command += ["--out", str(out)]
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[2])}
+    proc = subprocess.run(command, capture_output=True, text=True, timeout=120, check=False,
+                          cwd=cwd, env=env)  # fmt: skip
+    assert proc.returncode == 0, proc.stderr
+    return proc.stdout
+
+
+def test_demo_start_is_in_the_past_or_just_after_the_logs_last_reading() -> None:
+    from monitor.demo import AFTER_LAST_S, demo_start_s
+
+    # 300 s at 30x take 10 s: the readings start 290 s before now, so they end now
+    assert demo_start_s(1000.0, 300.0, 30.0, None) == (pytest.approx(710.0), False)
+    assert demo_start_s(1000.0, 300.0, 30.0, 500.0) == (pytest.approx(710.0), False)
+    # a log with readings up to 900 s: start just after them, held to the wall clock
+    assert demo_start_s(1000.0, 300.0, 30.0, 900.0) == (900.0 + AFTER_LAST_S, True)
+    assert demo_start_s(1000.0, 300.0, 30.0, 999.9) == (1000.0, True)
+    start, capped = demo_start_s(1000.0, 300.0, 30.0, 1200.0)  # readings from the future
+    assert capped
+    assert start > 1000.0
+
+
+def test_a_second_demo_into_one_log_is_a_new_run_after_the_first(tmp_path) -> None:
+    """Issue 15: readings never stamped ahead of the wall clock; a second demo into the
+    same log starts after the first's readings, as run 2, live and in a replay."""
+    from monitor.recorder import read_runs, read_samples_by_session
+
+    out = tmp_path / "twice.sqlite"
+    _demo(out, 60)
+    first_done = time.time()
+    said = _demo(out, 8)  # follows readings that end about now: held to real time
+    second_done = time.time()
+    assert "no faster than real time" in said
+    sessions: dict[int, list[float]] = {}
+    for session, sample in read_samples_by_session(out):
+        sessions.setdefault(session, []).append(sample.t)
+    (a, b) = sessions.values()
+    assert max(a) <= first_done
+    assert max(b) <= second_done
+    assert min(b) > max(a)
+    assert min(a) < first_done - 50.0  # 60 s of readings that end when the demo did
+    assert [r["run"] for r in read_runs(out) if r["summary"]["source"] == "live"] == ["1", "2"]
+    replayed = subprocess.run(
+        [sys.executable, "-m", "monitor.cli", "replay", str(out), "--json"],
+        capture_output=True, text=True, timeout=60, check=True,
+    )  # fmt: skip
+    assert [r["run"] for r in json.loads(replayed.stdout)["runs"]] == ["1", "2"]
+
+
+def test_the_default_demo_log_moves_aside_rather_than_slowing_down(tmp_path) -> None:
+    _demo(None, 30, cwd=tmp_path)
+    said = _demo(None, 30, cwd=tmp_path)
+    assert "records to out/demo-2.sqlite" in said
+    assert (tmp_path / "out" / "demo.sqlite").exists()
+    assert (tmp_path / "out" / "demo-2.sqlite").exists()
