@@ -31,7 +31,10 @@ samples give the same steps again when a log is replayed:
 
 An instant whose time is not after the vessel's last step (two sources stamping the
 same second, a clock stepping back) is not stepped: its readings update the latest
-values and it is counted in :attr:`InstantAssembler.out_of_order`.
+values and it is counted in :attr:`InstantAssembler.out_of_order`. An instant of
+faults alone (every reading of its own NaN) waits for the next instant with water: it
+is stepped first if that one is later, and counted out of order if not, so a fault
+stamped ahead by a wrong clock never holds back the good readings after it.
 
 :class:`LiveVessel` then splits the steps into runs as :mod:`monitor.replay` does
 (a fresh filter after a long gap or a refill) and steps the vessel's estimator.
@@ -97,6 +100,7 @@ class InstantAssembler:
         self._position = 0
         self._energy: tuple[float, float] | None = None  # last separate counter reading
         self._pending: list[tuple[float, dict[str, float], int]] = []
+        self._faulty: tuple[float, dict[str, float], int] | None = None  # see _emit
 
     def feed(self, sample: Sample, position: int = 0) -> list[Step]:
         """Return the steps closed by ``sample``'s arrival, then take ``sample`` in."""
@@ -123,13 +127,16 @@ class InstantAssembler:
             for channel, (seen_t, value) in self._latest.items():
                 if channel not in values and t - seen_t <= HOLD_S.get(channel, 0.0):
                     values[channel] = value
-            if self._energy is not None and "energy" not in values:
-                self._pending.append((t, values, self._position))  # wait for the counter
-                while self._pending and t - self._pending[0][0] > ENERGY_WAIT_S:
-                    steps += self._emit(*self._pending.pop(0))
+            held, self._faulty = self._faulty, None
+            if held is not None:
+                if held[0] < t:
+                    steps += self._take(*held)
+                else:  # a good reading after it is older: the fault's stamp was wrong
+                    self.out_of_order += 1
+            if all(math.isnan(v) for v in group.values()):
+                self._faulty = (t, values, self._position)  # decided at the next instant
             else:
-                steps += self.finish()
-                steps += self._emit(t, values, self._position)
+                steps += self._take(t, values, self._position)
         elif "energy" in group and math.isfinite(group["energy"]):
             steps += self._close_intervals(t, group["energy"])
         for channel, value in group.items():
@@ -137,11 +144,31 @@ class InstantAssembler:
                 self._latest[channel] = (t, value)
         return steps
 
-    def finish(self) -> list[Step]:
-        """Return the instants still waiting for an energy reading, stepped without one."""
+    def _take(self, t: float, values: dict[str, float], position: int) -> list[Step]:
+        """Step one instant with water, or keep it waiting for the energy counter."""
+        steps: list[Step] = []
+        if self._energy is not None and "energy" not in values:
+            self._pending.append((t, values, position))  # wait for the counter
+            while self._pending and t - self._pending[0][0] > ENERGY_WAIT_S:
+                steps += self._emit(*self._pending.pop(0))
+        else:
+            steps += self._drain()
+            steps += self._emit(t, values, position)
+        return steps
+
+    def _drain(self) -> list[Step]:
         steps: list[Step] = []
         while self._pending:
             steps += self._emit(*self._pending.pop(0))
+        return steps
+
+    def finish(self) -> list[Step]:
+        """Return the instants still waiting for an energy reading, stepped without one,
+        and an instant of faults alone still held back (the stream has ended)."""
+        steps = self._drain()
+        held, self._faulty = self._faulty, None
+        if held is not None:
+            steps += self._emit(*held)
         return steps
 
     def _close_intervals(self, t: float, energy_wh: float) -> list[Step]:

@@ -37,9 +37,29 @@ def test_an_instant_closes_when_the_time_stamp_changes_and_carries_recent_power(
 def test_energy_is_never_carried_and_faults_pass_as_nan() -> None:
     a = InstantAssembler("k1")
     a.feed(s(0.5, "water", math.nan, Quality.FAULT))
-    (step,) = a.feed(s(1.0, "energy", 10.0))  # the first counter reading: nothing waited
-    assert set(step.values) == {"water"}
+    # faults alone wait for the next instant with water, to see that it is later
+    assert a.feed(s(1.0, "energy", 10.0)) == []
+    a.feed(s(1.5, "water", 21.0))
+    a.feed(s(1.5, "energy", 10.1))
+    step, after = a.flush() + a.finish()
+    assert set(step.values) == {"water"}  # the counter read after it is not carried back
     assert math.isnan(step.values["water"])
+    assert (step.time_s, after.time_s) == (0.0, 1.0)
+
+
+def test_a_fault_stamped_ahead_does_not_hold_back_the_good_readings_after_it() -> None:
+    """Issue 14's fuzz found it: a fault-only instant from a clock 300 s ahead was
+    stepped, and the good readings after it counted out of order."""
+    a = InstantAssembler("k1")
+    steps = []
+    for t in (1.0, 2.0, 3.0):
+        steps += a.feed(s(t, "water", 20.0 + t))
+    steps += a.feed(s(300.0, "water", math.nan, Quality.FAULT))
+    for t in (4.0, 5.0):
+        steps += a.feed(s(t, "water", 20.0 + t))
+    steps += a.flush() + a.finish()
+    assert [st.t - T0 for st in steps] == [1.0, 2.0, 3.0, 4.0, 5.0]
+    assert a.out_of_order == 1  # the fault, not the four readings after it
 
 
 def test_an_instant_not_after_the_last_step_is_counted_not_stepped() -> None:
