@@ -21,7 +21,7 @@ from drivers.errors import ConfigError
 
 #: URL scheme -> "module:class" of its handler. A constant: handlers are registered here.
 HANDLERS: dict[str, str] = {
-    "sim": "drivers.simulator:SimulatedRigDriver",
+    "sim": "drivers.simworld:SimulatedRigDriver",
     "serial": "drivers.serial_line:SerialLineDriver",
     "modbus+tcp": "drivers.modbus:ModbusMeterDriver",
     "modbus+rtu": "drivers.modbus:ModbusMeterDriver",

@@ -17,7 +17,7 @@ import sys
 from pathlib import Path
 
 from drivers.errors import EbullioError
-from drivers.simulator import (
+from drivers.simworld import (
     SimulatedRig,
     scenario_by_name,
     scenario_metadata,

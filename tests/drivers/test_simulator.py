@@ -13,7 +13,7 @@ import pytest
 
 from drivers import thermocouple
 from drivers.errors import ConfigError, DriverError
-from drivers.simulator import (
+from drivers.simworld import (
     DrawOff,
     ElementSpec,
     FastClock,

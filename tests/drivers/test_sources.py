@@ -7,7 +7,7 @@ import asyncio
 import pytest
 
 from drivers.errors import ConfigError
-from drivers.simulator import FastClock, SimulatedRigDriver
+from drivers.simworld import FastClock, SimulatedRigDriver
 from drivers.sources import open_source
 
 
