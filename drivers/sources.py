@@ -21,7 +21,7 @@ from drivers.errors import ConfigError
 
 #: URL scheme -> "module:class" of its handler. A constant: handlers are registered here.
 HANDLERS: dict[str, str] = {
-    "sim": "drivers.simworld:SimulatedRigDriver",
+    "sim": "drivers.sim:SimulatedRigDriver",
     "serial": "drivers.serial_line:SerialLineDriver",
     "modbus+tcp": "drivers.modbus:ModbusMeterDriver",
     "modbus+rtu": "drivers.modbus:ModbusMeterDriver",

@@ -7,7 +7,8 @@ import asyncio
 import pytest
 
 from drivers.errors import ConfigError
-from drivers.simworld import FastClock, SimulatedRigDriver
+from drivers.sim import SimulatedRigDriver
+from drivers.simworld import FastClock
 from drivers.sources import open_source
 
 
