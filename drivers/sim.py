@@ -11,6 +11,7 @@ from collections.abc import AsyncIterator
 from dataclasses import replace
 
 from drivers.errors import DriverError
+from drivers.registry import DriverKind
 from drivers.sample import Sample
 from drivers.simworld import (
     Clock,
@@ -58,3 +59,9 @@ class SimulatedRigDriver:
             await self.clock.wait_until(self.rig.elapsed_s)
             for sample in batch:
                 yield sample
+
+
+#: The driver registry's entry (drivers/registry.py). Opened from code and tests only:
+#: no configuration table names a ``sim://`` URL (``ebullio demo`` and ``simulate``
+#: drive the rig themselves).
+DRIVER = DriverKind("sim", ("sim",), SimulatedRigDriver)
