@@ -48,7 +48,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from drivers.simulator import Scenario, SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import Scenario, SimulatedRig, kettle_scenario, scenario_metadata
 from monitor import drift as drift_module
 from monitor.drift import VesselDrift, run_checks
 from monitor.interchange import InterchangeLog, rows_from_samples

@@ -52,7 +52,7 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.stats import chi2
 
-from drivers.simulator import (
+from drivers.simworld import (
     DrawOff,
     KettleSwitch,
     Scenario,

@@ -369,7 +369,7 @@ async def fuzz_serial(work: Path, count: int) -> dict[str, object]:
 def part_tamper(work: Path) -> dict[str, object]:
     from dataclasses import replace as dc_replace
 
-    from drivers.simulator import SimulatedRig, kettle_scenario
+    from drivers.simworld import SimulatedRig, kettle_scenario
     from monitor.recorder import Recorder
 
     base = work / "tamper-base.sqlite"

@@ -45,7 +45,7 @@ import aiomqtt
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from drivers.simulator import SimulatedRig, kettle_scenario  # noqa: E402
+from drivers.simworld import SimulatedRig, kettle_scenario  # noqa: E402
 from monitor.recorder import verify  # noqa: E402
 from tests.support.mosquitto import MosquittoBroker  # noqa: E402
 

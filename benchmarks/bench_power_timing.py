@@ -27,7 +27,7 @@ from __future__ import annotations
 import argparse
 import json
 
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.estimator import VesselConfig, VesselEstimator
 
 FILL_KG = 1.2  # the simulator's default kettle fill (our own scenario)

@@ -10,7 +10,7 @@ import platform
 import time
 import timeit
 
-from drivers.simulator import SimulatedRig, kettle_scenario, water_heater_scenario
+from drivers.simworld import SimulatedRig, kettle_scenario, water_heater_scenario
 from monitor import model
 
 

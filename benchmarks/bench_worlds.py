@@ -82,7 +82,7 @@ Scores (relative errors are (estimate − truth)/truth; statistics are of |error
     ``element_conductance_at_80pct``: G at the 80 % instant, runs with an element
     thermocouple, against the rig's conductance at that instant (film and scale).
     ``ua_after_10min_cooling``: kettles, UA 600 s after the switch-off, against
-    ``drivers.simulator.effective_ua_w_per_k`` at the mean true water and room
+    ``drivers.simworld.effective_ua_w_per_k`` at the mean true water and room
     temperatures of those 600 s: the steady loss conductance with the element off,
     that is the wall's convection and radiation, plus the lid's two conductances
     in series, plus the water-to-element conductance in series with the element's
@@ -132,7 +132,7 @@ import numpy as np
 from scipy.optimize import brentq, least_squares
 from scipy.signal import lfilter
 
-from drivers.simulator import (
+from drivers.simworld import (
     ElementSpec,
     KettleSwitch,
     LidSpec,

@@ -42,14 +42,16 @@ import math
 import time
 from collections.abc import AsyncIterator, Callable, Sequence
 from dataclasses import dataclass
+from dataclasses import fields as dataclass_fields
 from types import TracebackType
-from typing import Self
+from typing import Any, Self
 from urllib.parse import urlsplit
 
 from pymodbus.client import AsyncModbusSerialClient, AsyncModbusTcpClient
 from pymodbus.exceptions import ConnectionException, ModbusException
 
 from drivers.channels import ChannelBinding, Quarantined, bind_fields
+from drivers.config_table import ConfigTable
 from drivers.errors import ConfigError, DriverError, FrameError
 from drivers.registers import (
     EnergyToPower,
@@ -62,6 +64,7 @@ from drivers.registers import (
     words_for,
     words_to_bytes,
 )
+from drivers.registry import INSTRUMENTS, DriverKind
 from drivers.sample import Quality, Sample
 from drivers.urls import query_options
 
@@ -547,3 +550,49 @@ class ModbusMeterDriver:
                 )
             )
         return items
+
+
+def read_table(table: ConfigTable) -> dict[str, Any]:
+    """Return the driver options of a Modbus meter's ``[[instruments]]`` table.
+
+    Keys: ``registers`` (a list of :class:`~drivers.registers.RegisterSpec` tables;
+    required), ``poll_s`` (0.001-3600, default 1), ``timeout_s`` (0.01-60, default 1)
+    and ``power_from_energy`` (a register's name: mean power from that energy counter).
+    Returns ``registers``, ``poll_s``, ``timeout_s`` and ``derive_power_from``.
+    """
+    poll_s = table.number("poll_s", 1.0, lo=0.001, hi=3600.0)
+    timeout_s = table.number("timeout_s", 1.0, lo=0.01, hi=60.0)
+    power_from = table.string("power_from_energy")
+    listed = table.get("registers")
+    if not isinstance(listed, list) or not listed:
+        raise table.fail("registers", "a Modbus instrument needs a list of registers")
+    keys = {f.name for f in dataclass_fields(RegisterSpec)}
+    registers: list[RegisterSpec] = []
+    for i, reg in enumerate(listed):
+        where = f"registers[{i}]"
+        if not isinstance(reg, dict):
+            raise table.fail(where, "must be a table")
+        unknown = sorted(set(reg) - keys)
+        if unknown:
+            known = ", ".join(sorted(keys))
+            raise table.fail(f"{where}.{unknown[0]}", f"unknown key (keys: {known})")
+        try:
+            registers.append(RegisterSpec(**reg))
+        except (TypeError, ConfigError) as exc:
+            raise table.fail(where, str(exc)) from None
+    try:
+        check_register_map(registers)
+    except ConfigError as exc:
+        raise table.fail("registers", str(exc)) from None
+    if power_from is not None and power_from not in {r.name for r in registers}:
+        raise table.fail("power_from_energy", f"{power_from!r} is not one of the registers")
+    return {
+        "registers": registers,
+        "poll_s": poll_s,
+        "timeout_s": timeout_s,
+        "derive_power_from": power_from,
+    }
+
+
+#: The driver registry's entry (drivers/registry.py).
+DRIVER = DriverKind("modbus", SCHEMES, ModbusMeterDriver, read_table, INSTRUMENTS)

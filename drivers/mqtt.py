@@ -56,6 +56,7 @@ from drivers.payloads import (
     is_vessel_id,
     parse_message,
 )
+from drivers.registry import MQTT, DriverKind
 from drivers.sample import Sample
 
 logger = logging.getLogger(__name__)
@@ -536,3 +537,8 @@ class MqttPublisher:
         if isinstance(flags, str | bytes) or not all(isinstance(f, Mapping) for f in flags):
             raise TypeError("flags are a sequence of mappings")
         await self._publish(vessel, "flags", list(flags))
+
+
+#: The driver registry's entry (drivers/registry.py). Its URL is configured in ``[mqtt]``,
+#: which monitor/config.py reads itself: the estimates are published there too.
+DRIVER = DriverKind("mqtt", tuple(DEFAULT_PORTS), MqttDriver, configured_in=MQTT)

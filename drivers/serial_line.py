@@ -15,21 +15,24 @@ import logging
 import time
 from collections.abc import AsyncIterator, Callable, Sequence
 from dataclasses import dataclass
-from typing import Self
+from typing import Any, Self
 from urllib.parse import unquote, urlsplit
 
 import serial
 
 from drivers.channels import ChannelBinding, Quarantined, bind_fields
+from drivers.config_table import ConfigTable
 from drivers.errors import ConfigError, DriverError, FrameError
 from drivers.framing import (
     DEFAULT_MAX_AHEAD_S,
     DEFAULT_MAX_LINE_BYTES,
+    FRAMINGS,
     LineFramer,
     LineSpec,
     instrument_time,
     parse_line,
 )
+from drivers.registry import INSTRUMENTS, DriverKind
 from drivers.sample import Sample
 from drivers.urls import query_options
 
@@ -339,3 +342,35 @@ class SerialLineDriver:
             reason = f"no bound field in the line (fields found: {names})"
             out.append(self._quarantine(received_t, n, reason, frame))
         return out
+
+
+def read_table(table: ConfigTable) -> dict[str, Any]:
+    """Return the driver options of a serial instrument's ``[[instruments]]`` table.
+
+    Keys: ``framing`` (csv, keyvalue or regex; required), ``fields``, ``pattern``,
+    ``time_field``, ``delimiter``, ``pair_separator`` and ``key_separator``
+    (:class:`~drivers.framing.LineSpec`), and ``max_line_bytes`` (16-65536, default
+    1024). Returns ``spec`` and ``max_line_bytes``.
+    """
+    framing = table.string("framing", required=True)
+    if framing not in FRAMINGS:
+        raise table.fail("framing", f"{framing!r} is not one of {', '.join(FRAMINGS)}")
+    layout: dict[str, Any] = {"framing": framing}
+    for key in ("pattern", "time_field", "delimiter", "pair_separator", "key_separator"):
+        if table.has(key):
+            layout[key] = table.string(key)
+    if table.has("fields"):
+        fields = table.get("fields")
+        if not isinstance(fields, list) or not all(isinstance(f, str) for f in fields):
+            raise table.fail("fields", 'must be a list of field names ("" skips one)')
+        layout["fields"] = tuple(fields)
+    max_line = table.number("max_line_bytes", DEFAULT_MAX_LINE_BYTES, lo=16, hi=65536)
+    try:
+        spec = LineSpec(**layout)
+    except ConfigError as exc:
+        raise table.fail_here(str(exc)) from None
+    return {"spec": spec, "max_line_bytes": int(max_line)}
+
+
+#: The driver registry's entry (drivers/registry.py).
+DRIVER = DriverKind("serial", ("serial",), SerialLineDriver, read_table, INSTRUMENTS)

@@ -18,7 +18,7 @@ import time
 from pathlib import Path
 
 from drivers.errors import EbullioError
-from drivers.simulator import (
+from drivers.simworld import (
     SimulatedRig,
     scenario_by_name,
     scenario_metadata,

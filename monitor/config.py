@@ -56,9 +56,9 @@ An example, with every table::
 
     [[vessels.channels]]
     instrument = "modbus+tcp://192.0.2.10:502?unit=1"
-    field = "power"                   # a register name
-    role = "power"
-    unit = "W"
+    field = "energy"                  # a register name: the counter, from which
+    role = "energy"                   # power_from_energy gives this vessel its power
+    unit = "Wh"
 
     [[vessels]]
     id = "heater-7"                   # no channels: it publishes on MQTT itself
@@ -74,7 +74,6 @@ sensor time constants) is recorded in the log with its samples.
 
 from __future__ import annotations
 
-import math
 import os
 import tomllib
 from collections.abc import Mapping
@@ -83,7 +82,9 @@ from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
 
+from drivers import registry
 from drivers.channels import ChannelBinding
+from drivers.config_table import ConfigTable
 from drivers.errors import ConfigError, EbullioError
 from monitor import water
 
@@ -98,9 +99,6 @@ VESSEL_NUMBERS = (
     "water_sensor_tau_s",
     "element_sensor_tau_s",
 )
-
-SERIAL_SCHEMES = ("serial",)
-MODBUS_SCHEMES = ("modbus+tcp", "modbus+rtu")
 
 
 @dataclass(frozen=True)
@@ -123,10 +121,16 @@ class MqttSettings:
 
 @dataclass(frozen=True)
 class Instrument:
-    """One instrument: its URL, its kind, the driver options and the channels read from it."""
+    """One instrument: its URL, its kind, the driver options and the channels read from it.
+
+    ``kind`` names the driver that reads the URL (``drivers.registry``: ``serial``,
+    ``modbus``); ``options`` are that driver's keyword options as its ``read_table``
+    gave them. The driver is ``drivers.registry.open_source(url, bindings=bindings,
+    clock=..., **options)``.
+    """
 
     url: str
-    kind: str  # "serial" or "modbus"
+    kind: str
     options: dict[str, Any]
     bindings: tuple[ChannelBinding, ...] = ()
 
@@ -157,91 +161,6 @@ class RigConfig:
     log_key: bytes | None = field(default=None, repr=False)
 
 
-class _Table:
-    """A TOML table being read: knows its dotted path and which keys were used."""
-
-    def __init__(self, data: object, path: str, file: str) -> None:
-        if not isinstance(data, dict):
-            raise ConfigError(f"{file}: {path or 'the file'}: expected a table")
-        self.data: dict[str, Any] = data
-        self.path = path
-        self.file = file
-        self.used: set[str] = set()
-
-    def where(self, key: str) -> str:
-        return f"{self.path}.{key}" if self.path else key
-
-    def fail(self, key: str, reason: str) -> ConfigError:
-        return ConfigError(f"{self.file}: {self.where(key)}: {reason}")
-
-    def has(self, key: str) -> bool:
-        return key in self.data
-
-    def get(self, key: str, default: Any = None) -> Any:
-        self.used.add(key)
-        return self.data.get(key, default)
-
-    def string(self, key: str, default: str | None = None, *, required: bool = False) -> Any:
-        value = self.get(key, default)
-        if value is None:
-            if required:
-                raise self.fail(key, "is required")
-            return None
-        if not isinstance(value, str) or not value.strip():
-            raise self.fail(key, f"must be a non-empty string, not {value!r}")
-        return value
-
-    def number(
-        self,
-        key: str,
-        default: float | None = None,
-        *,
-        required: bool = False,
-        lo: float | None = None,
-        hi: float | None = None,
-        positive: bool = False,
-    ) -> Any:
-        value = self.get(key, default)
-        if value is None:
-            if required:
-                raise self.fail(key, "is required")
-            return None
-        if isinstance(value, bool) or not isinstance(value, int | float):
-            raise self.fail(key, f"must be a number, not {value!r}")
-        value = float(value)
-        if not math.isfinite(value):
-            raise self.fail(key, "must be finite")
-        if positive and value <= 0.0:
-            raise self.fail(key, f"must be above zero, not {value:g}")
-        if (lo is not None and value < lo) or (hi is not None and value > hi):
-            raise self.fail(key, f"{value:g} is outside {lo:g} to {hi:g}")
-        return value
-
-    def boolean(self, key: str, default: bool) -> bool:
-        value = self.get(key, default)
-        if not isinstance(value, bool):
-            raise self.fail(key, f"must be true or false, not {value!r}")
-        return value
-
-    def tables(self, key: str) -> list[_Table]:
-        value = self.get(key, [])
-        if not isinstance(value, list):
-            raise self.fail(key, "must be a list of tables")
-        return [_Table(item, f"{self.where(key)}[{i}]", self.file) for i, item in enumerate(value)]
-
-    def table(self, key: str) -> _Table | None:
-        if key not in self.data:
-            return None
-        return _Table(self.get(key), self.where(key), self.file)
-
-    def done(self) -> None:
-        """Raise for keys that were never read (misspelt or unknown)."""
-        unknown = sorted(set(self.data) - self.used)
-        if unknown:
-            known = ", ".join(sorted(self.used)) or "none"
-            raise self.fail(unknown[0], f"unknown key (keys read here: {known})")
-
-
 def load_config(path: str | Path, environ: Mapping[str, str] | None = None) -> RigConfig:
     """Return the checked configuration in the TOML file at ``path``.
 
@@ -262,7 +181,7 @@ def parse_config(text: str, file: str, environ: Mapping[str, str]) -> RigConfig:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{file}: not valid TOML: {exc}") from None
-    top = _Table(data, "", file)
+    top = ConfigTable(data, "", file)
     pressure_kpa = _site(top.table("site"))
     mqtt = _mqtt(top.table("mqtt"), environ)
     recorder = top.table("recorder")
@@ -316,7 +235,7 @@ def parse_config(text: str, file: str, environ: Mapping[str, str]) -> RigConfig:
     )
 
 
-def _site(site: _Table | None) -> float:
+def _site(site: ConfigTable | None) -> float:
     if site is None:
         return 101.325
     if site.has("pressure_kpa") and site.has("altitude_m"):
@@ -329,13 +248,14 @@ def _site(site: _Table | None) -> float:
     return water.pressure_at_altitude_kpa(altitude) if altitude is not None else 101.325
 
 
-def _mqtt(table: _Table | None, environ: Mapping[str, str]) -> MqttSettings | None:
+def _mqtt(table: ConfigTable | None, environ: Mapping[str, str]) -> MqttSettings | None:
     if table is None:
         return None
     url = table.string("url", required=True)
     parts = urlsplit(url)
-    if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
-        raise table.fail("url", f"{url!r} is not an mqtt:// or mqtts:// URL with a host")
+    if _kind_of(url, registry.MQTT) is None or not parts.hostname:
+        shown = " or ".join(f"{s}://" for s in _schemes(registry.MQTT))
+        raise table.fail("url", f"{url!r} is not an {shown} URL with a host")
     if parts.username or parts.password:
         raise table.fail("url", "put no credentials in the URL; name them with username_env")
     prefix = table.string("prefix", "ebullio")
@@ -366,44 +286,40 @@ def _mqtt(table: _Table | None, environ: Mapping[str, str]) -> MqttSettings | No
     return settings
 
 
-def _instrument(table: _Table) -> Instrument:
+def _kind_of(url: str, configured_in: str) -> registry.DriverKind | None:
+    """Return the registry's driver for ``url`` if it is one configured in
+    ``configured_in`` (``[[instruments]]`` or ``[mqtt]``), else None."""
+    try:
+        kind = registry.driver_kind(url)
+    except ConfigError:
+        return None
+    return kind if kind.configured_in == configured_in else None
+
+
+def _schemes(configured_in: str) -> tuple[str, ...]:
+    """Return the URL schemes of the drivers configured in ``configured_in``, sorted (for
+    messages: every driver module is imported)."""
+    kinds = registry.driver_kinds(configured_in)
+    return tuple(sorted(scheme for kind in kinds for scheme in kind.schemes))
+
+
+def _instrument(table: ConfigTable) -> Instrument:
+    """Return the instrument of an ``[[instruments]]`` table: its driver (found in the
+    driver registry by the URL's scheme) reads the table's other keys."""
     url = table.string("url", required=True)
-    scheme = urlsplit(url).scheme
-    options: dict[str, Any] = {}
-    if scheme in SERIAL_SCHEMES:
-        kind = "serial"
-        framing = table.string("framing", required=True)
-        if framing not in ("csv", "keyvalue", "regex"):
-            raise table.fail("framing", f"{framing!r} is not one of csv, keyvalue, regex")
-        options["framing"] = framing
-        for key in ("pattern", "time_field", "delimiter", "pair_separator", "key_separator"):
-            if table.has(key):
-                options[key] = table.string(key)
-        if table.has("fields"):
-            fields = table.get("fields")
-            if not isinstance(fields, list) or not all(isinstance(f, str) for f in fields):
-                raise table.fail("fields", 'must be a list of field names ("" skips one)')
-            options["fields"] = tuple(fields)
-        options["max_line_bytes"] = int(table.number("max_line_bytes", 1024, lo=16, hi=65536))
-    elif scheme in MODBUS_SCHEMES:
-        kind = "modbus"
-        options["poll_s"] = table.number("poll_s", 1.0, lo=0.001, hi=3600.0)
-        options["timeout_s"] = table.number("timeout_s", 1.0, lo=0.01, hi=60.0)
-        options["power_from_energy"] = table.string("power_from_energy")
-        registers = table.get("registers")
-        if not isinstance(registers, list) or not registers:
-            raise table.fail("registers", "a Modbus instrument needs a list of registers")
-        options["registers"] = registers
-    else:
-        known = ", ".join(f"{s}://" for s in (*SERIAL_SCHEMES, *MODBUS_SCHEMES))
+    kind = _kind_of(url, registry.INSTRUMENTS)
+    if kind is None or kind.read_table is None:
+        known = registry.shown_schemes(_schemes(registry.INSTRUMENTS))
+        mqtt = registry.shown_schemes(_schemes(registry.MQTT))
         raise table.fail("url", f"no instrument driver for {url!r}; known schemes: {known} "
-                         "(MQTT sources go in [mqtt])")  # fmt: skip
+                         f"({mqtt} sources go in [mqtt])")  # fmt: skip
+    options = kind.read_table(table)
     table.done()
-    return Instrument(url, kind, options)
+    return Instrument(url, kind.name, options)
 
 
 def _vessel(
-    table: _Table, pressure_kpa: float, instruments: Mapping[str, Instrument], has_mqtt: bool
+    table: ConfigTable, pressure_kpa: float, instruments: Mapping[str, Instrument], has_mqtt: bool
 ) -> tuple[VesselSpec, list[tuple[str, ChannelBinding]]]:
     vessel_id = table.string("id", required=True)
     if any(c in vessel_id for c in "/+#") or vessel_id != vessel_id.strip():
@@ -447,7 +363,7 @@ def _vessel(
                 gain=ch.number("gain", 1.0),
             )
         except ConfigError as exc:
-            raise ConfigError(f"{ch.file}: {ch.path}: {exc}") from None
+            raise ch.fail_here(str(exc)) from None
         ch.done()
         channels.append((url, binding))
     roles = {b.role for _, b in channels}
@@ -469,47 +385,9 @@ def _vessel(
 
 
 def _check_driver_options(inst: Instrument, file: str) -> None:
-    """Build the instrument's driver settings once, so a bad option fails before the start."""
+    """Build the instrument's driver once (not entered), so that a bad option, or a
+    channel its driver cannot read, fails before anything starts."""
     try:
-        driver_settings(inst)
+        registry.open_source(inst.url, bindings=inst.bindings, **inst.options)
     except EbullioError as exc:
         raise ConfigError(f"{file}: instrument {inst.url!r}: {exc}") from None
-
-
-def driver_settings(inst: Instrument) -> dict[str, Any]:
-    """Return the keyword arguments of the instrument's driver (besides url and clock)."""
-    if inst.kind == "serial":
-        from drivers.framing import LineSpec
-
-        o = dict(inst.options)
-        max_line = o.pop("max_line_bytes")
-        try:
-            spec = LineSpec(**o)
-        except TypeError as exc:
-            raise ConfigError(f"framing options: {exc}") from None
-        return {"spec": spec, "bindings": inst.bindings, "max_line_bytes": max_line}
-    from drivers.registers import RegisterSpec
-
-    registers = []
-    for i, reg in enumerate(inst.options["registers"]):
-        if not isinstance(reg, dict):
-            raise ConfigError(f"registers[{i}] must be a table")
-        try:
-            registers.append(RegisterSpec(**reg))
-        except TypeError as exc:
-            raise ConfigError(f"registers[{i}]: {exc}") from None
-    names = {r.name for r in registers}
-    for b in inst.bindings:
-        if b.field not in names:
-            raise ConfigError(f"channel {b.vessel}/{b.role} reads register {b.field!r}, "
-                              f"which is not in the register map")  # fmt: skip
-    power_from = inst.options["power_from_energy"]
-    if power_from is not None and power_from not in names:
-        raise ConfigError(f"power_from_energy names {power_from!r}, not a register")
-    return {
-        "registers": registers,
-        "bindings": inst.bindings,
-        "poll_s": inst.options["poll_s"],
-        "timeout_s": inst.options["timeout_s"],
-        "derive_power_from": power_from,
-    }

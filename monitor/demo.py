@@ -1,6 +1,6 @@
 """``ebullio demo``: the live service over a simulated rig that speaks real instrument protocols.
 
-The rig is simulated (:mod:`drivers.simulator`), but nothing after it is: a
+The rig is simulated (:mod:`drivers.simworld`), but nothing after it is: a
 simulated thermocouple logger prints its lines into a pseudo-terminal, which the
 serial line driver reads; a simulated power meter answers Modbus TCP on
 127.0.0.1, which the Modbus driver polls; the service records everything to an
@@ -46,7 +46,7 @@ from drivers.emulators.line_logger import LineLoggerEmulator, open_pty_pair, ren
 from drivers.emulators.power_meter import PowerMeterEmulator
 from drivers.errors import EbullioError
 from drivers.sample import Sample
-from drivers.simulator import PacedClock, Scenario, SimulatedRig, scenario_metadata
+from drivers.simworld import PacedClock, Scenario, SimulatedRig, scenario_metadata
 from monitor.config import VESSEL_NUMBERS, RigConfig, parse_config
 from monitor.interchange import iso_utc
 from monitor.recorder import last_sample_t

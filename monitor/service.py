@@ -8,10 +8,11 @@ Shape (all in one asyncio loop, except the recorder's SQLite writes)::
                                                                                  └──► MQTT publisher
 
 * **Sources.** Each instrument, and the MQTT broker when the configuration has one,
-  runs in its own named task under :func:`supervise`: it opens a fresh driver,
-  forwards what the driver yields, and when the driver raises
-  :class:`~drivers.errors.DriverError` it records a ``link_lost`` event, waits a
-  capped, jittered, exponential backoff (:class:`Backoff`) and opens a new driver.
+  runs in its own named task under :func:`supervise`: it opens a fresh driver
+  (:func:`drivers.registry.open_source`), forwards what the driver yields, and when
+  the driver raises :class:`~drivers.errors.DriverError` it records a ``link_lost``
+  event, waits a capped, jittered, exponential backoff (:class:`Backoff`) and opens
+  a new driver.
   When the link is back it records a ``gap`` event from the last item before the loss
   to the first one after it, so the log shows the gap as a gap.
 * **Back-pressure.** The queue holds ``[recorder] queue_samples`` items. When it is
@@ -64,10 +65,11 @@ from urllib.parse import urlsplit, urlunsplit
 
 from drivers.channels import Acknowledge, Quarantined
 from drivers.errors import DriverError, EbullioError
+from drivers.registry import open_source
 from drivers.sample import Quality, ReadingLimits, Sample
 from monitor import __version__
 from monitor.batchfit import FitBudget, warm_up
-from monitor.config import Instrument, MqttSettings, RigConfig, driver_settings
+from monitor.config import Instrument, MqttSettings, RigConfig
 from monitor.live import LiveVessel, estimate_message
 from monitor.recorder import Recorder, estimate_record
 
@@ -151,15 +153,8 @@ def public_url(url: str) -> str:
 
 
 def instrument_factory(inst: Instrument, clock: Callable[[], float]) -> DriverFactory:
-    """Return a factory of fresh drivers for a configured instrument."""
-    settings = driver_settings(inst)
-    if inst.kind == "serial":
-        from drivers.serial_line import SerialLineDriver
-
-        return lambda: SerialLineDriver(inst.url, clock=clock, **settings)
-    from drivers.modbus import ModbusMeterDriver
-
-    return lambda: ModbusMeterDriver(inst.url, clock=clock, **settings)
+    """Return a factory of fresh drivers for a configured instrument (``drivers.registry``)."""
+    return lambda: open_source(inst.url, bindings=inst.bindings, clock=clock, **inst.options)
 
 
 async def supervise(
@@ -368,11 +363,9 @@ class Service:
         }
         mqtt = config.mqtt
         if mqtt is not None and any(v.via_mqtt for v in config.vessels):
-            from drivers.mqtt import MqttDriver
-
             mqtt_vessels = [v.id for v in config.vessels if v.via_mqtt]
             client_id = f"{mqtt.client_id}-in" if mqtt.client_id else None
-            self.sources[public_url(mqtt.url)] = lambda: MqttDriver(
+            self.sources[public_url(mqtt.url)] = lambda: open_source(
                 mqtt.url, prefix=mqtt.prefix, vessels=mqtt_vessels, client_id=client_id,
                 username=mqtt.username, password=mqtt.password,
                 session_expiry_s=mqtt.session_expiry_s, clock=clock, ack_after=True,

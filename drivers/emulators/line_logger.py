@@ -33,7 +33,7 @@ from drivers.channels import ChannelBinding
 from drivers.errors import ConfigError, DriverError
 from drivers.framing import LineSpec
 from drivers.sample import Sample, channel_unit
-from drivers.simulator import Clock, SimulatedRig
+from drivers.simworld import Clock, SimulatedRig
 
 log = logging.getLogger(__name__)
 

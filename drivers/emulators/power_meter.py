@@ -16,7 +16,7 @@ real one. For RTU, give the serial device of one end of a pseudo-terminal pair
 (``modbus+rtu:///tmp/meterA?baud=19200&unit=1``) and the driver the other end.
 
 To wire the simulated rig to the emulator, pass ``on_read``: it is called just before
-every read request is answered, so it can move a :class:`drivers.simulator.SimulatedRig`
+every read request is answered, so it can move a :class:`drivers.simworld.SimulatedRig`
 on and copy its ``power`` and ``energy`` samples into the meter with :meth:`update`.
 
 Addresses not in the map are unmapped: reading them gets exception 2 (illegal data

@@ -19,7 +19,7 @@ from dashboard.app import create_app
 from dashboard.data import chart_data, envelope, load_snapshot
 from dashboard.views.fleet import fleet_rows, render_fleet
 from dashboard.views.vessel import chart_update, figures, render_vessel, vessel_options
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.config import RigConfig, VesselSpec
 from monitor.service import Service
 from tests.monitor.test_service import ListDriver, run_until

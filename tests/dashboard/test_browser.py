@@ -18,7 +18,7 @@ import pytest
 from werkzeug.serving import make_server
 
 from dashboard.app import create_app
-from drivers.simulator import kettle_scenario, run_series, scenario_metadata
+from drivers.simworld import kettle_scenario, run_series, scenario_metadata
 from monitor.config import RigConfig, VesselSpec
 from monitor.service import Service
 from tests.monitor.test_service import ListDriver, run_until
@@ -193,7 +193,7 @@ def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser)
 def test_the_fleet_view_puts_the_vessels_that_need_attention_first(tmp_path, browser) -> None:
     from selenium.webdriver.common.by import By
 
-    from drivers.simulator import SimulatedRig
+    from drivers.simworld import SimulatedRig
 
     # three kettles (our own scenario): "a-clean" is fine; "b-no-room" has no room
     # thermometer (a notice); "c-open-tc" has its element thermocouple open-circuit, read

@@ -24,7 +24,7 @@ from drivers.errors import ConfigError, DriverError
 from drivers.modbus import ModbusMeterDriver, parse_modbus_url
 from drivers.registers import RegisterSpec, counter_modulus, encode, words_to_bytes
 from drivers.sample import Sample
-from drivers.simulator import SimulatedRig, kettle_scenario
+from drivers.simworld import SimulatedRig, kettle_scenario
 
 pytestmark = pytest.mark.timeout(30)
 

@@ -24,7 +24,7 @@ from drivers.errors import ConfigError, DriverError
 from drivers.framing import LineSpec
 from drivers.sample import Quality, Sample
 from drivers.serial_line import SerialLineDriver, parse_serial_url
-from drivers.simulator import FastClock, PacedClock, Scenario, SimulatedRig, kettle_scenario
+from drivers.simworld import FastClock, PacedClock, Scenario, SimulatedRig, kettle_scenario
 
 SEED = 7
 #: Every test's own bound on waiting for the pty, s (each finishes far sooner).

@@ -13,7 +13,8 @@ import pytest
 
 from drivers import thermocouple
 from drivers.errors import ConfigError, DriverError
-from drivers.simulator import (
+from drivers.sim import SimulatedRigDriver
+from drivers.simworld import (
     DrawOff,
     ElementSpec,
     FastClock,
@@ -22,7 +23,6 @@ from drivers.simulator import (
     PacedClock,
     SensorSpec,
     SimulatedRig,
-    SimulatedRigDriver,
     Thermostat,
     effective_ua_w_per_k,
     kettle_scenario,
@@ -187,7 +187,7 @@ def test_raw_thermocouple_millivolts_convert_back():
         if "water_emf" not in by_b:
             continue  # a dropout
         t_c = thermocouple.temperature_c("K", by_b["water_emf"], by_b["cold_junction"])
-        true_lagged = raw._lagged["water"]
+        true_lagged = raw.instruments.lagged["water"]
         # 1 µV of rounding is about 0.025 K for type K near 25-100 °C (Seebeck 40-41 µV/K,
         # derivative of the NIST SRD 60 function); the cold junction is reported to 0.01 K
         assert t_c == pytest.approx(true_lagged, abs=0.06)

@@ -7,8 +7,9 @@ import asyncio
 import pytest
 
 from drivers.errors import ConfigError
-from drivers.simulator import FastClock, SimulatedRigDriver
-from drivers.sources import open_source
+from drivers.registry import open_source
+from drivers.sim import SimulatedRigDriver
+from drivers.simworld import FastClock
 
 
 def test_sim_url_opens_the_simulated_rig():
@@ -28,15 +29,13 @@ def test_unknown_scheme_names_the_known_ones():
 
 
 def test_every_registered_scheme_names_a_driver_class_that_exists():
-    import importlib
+    from drivers.registry import DRIVERS, driver_kind
 
-    from drivers.sources import HANDLERS
-
-    for scheme, target in HANDLERS.items():
-        module, _, name = target.partition(":")
-        cls = getattr(importlib.import_module(module), name)
-        assert callable(cls), scheme
-        assert hasattr(cls, "samples"), scheme
+    for schemes in DRIVERS.values():
+        for scheme in schemes:
+            cls = driver_kind(f"{scheme}://somewhere").factory
+            assert callable(cls), scheme
+            assert hasattr(cls, "samples"), scheme
 
 
 def test_a_modbus_url_opens_the_meter_driver_with_its_options():

@@ -10,7 +10,7 @@ import pytest
 from scipy.linalg import expm
 from scipy.optimize import least_squares
 
-from drivers.simulator import (
+from drivers.simworld import (
     LidSpec,
     SimulatedRig,
     effective_ua_w_per_k,

@@ -187,7 +187,7 @@ def test_replay_fleet_report_and_export_say_when_a_log_was_altered(tmp_path, cap
     import sqlite3
     from dataclasses import replace
 
-    from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+    from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
     from monitor.recorder import Recorder
 
     scenario = replace(kettle_scenario(), duration_s=300.0)

@@ -58,9 +58,9 @@ unit = "degC"
 
 [[vessels.channels]]
 instrument = "modbus+tcp://127.0.0.1:5020?unit=1"
-field = "power"
-role = "power"
-unit = "W"
+field = "energy"
+role = "energy"
+unit = "Wh"
 
 [[vessels]]
 id = "heater-7"
@@ -90,7 +90,9 @@ def test_a_good_configuration_loads_with_everything_in_place(tmp_path) -> None:
     assert heater.has_element_sensor
     serial, meter = cfg.instruments
     assert [b.role for b in serial.bindings] == ["water", "ambient"]
-    assert [b.role for b in meter.bindings] == ["power"]
+    assert [b.role for b in meter.bindings] == ["energy"]
+    assert (serial.kind, meter.kind) == ("serial", "modbus")
+    assert meter.options["derive_power_from"] == "energy"
     assert serial.bindings[0].offset == -0.2
 
 
@@ -135,7 +137,28 @@ def _with(old: str, new: str) -> str:
             ),
             "channels[2].instrument",
         ),
-        (_with('field = "power"', 'field = "watts"'), "register 'watts'"),
+        (_with('field = "energy"', 'field = "watts"'), "register 'watts'"),
+        (
+            _with('power_from_energy = "energy"', 'power_from_energy = "joules"'),
+            "instruments[1].power_from_energy: 'joules' is not one of the registers",
+        ),
+        (
+            _with('unit = "W" },', 'unit = "W", colour = "red" },'),
+            "instruments[1].registers[0].colour: unknown key",
+        ),
+        (
+            # found when the meter's driver is built at load (issue 15): before, the
+            # file loaded and `ebullio run` stopped when it opened the meter
+            _with(
+                'field = "energy"\nrole = "energy"\nunit = "Wh"',
+                'field = "power"\nrole = "power"\nunit = "W"',
+            ),
+            "derive_power_from register 'energy' is bound to no vessel",
+        ),
+        (
+            _with('framing = "keyvalue"', 'framing = "csv"'),
+            "instruments[0]: csv framing needs fields",
+        ),
         (_with("element_sensor = true", "element_sensor = 1"), "vessels[1].element_sensor"),
     ],
 )

@@ -8,7 +8,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.contracts import Level
 from monitor.drift import (
     RULES,

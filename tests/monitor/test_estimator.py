@@ -9,7 +9,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from drivers.simulator import (
+from drivers.simworld import (
     KettleSwitch,
     SimulatedRig,
     effective_ua_w_per_k,

@@ -7,7 +7,7 @@ import io
 import pytest
 
 from drivers.errors import LogFormatError
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.interchange import (
     LogRow,
     read_csv,

@@ -8,7 +8,7 @@ from dataclasses import replace
 import pytest
 
 from drivers.sample import Quality, Sample
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.live import InstantAssembler, LiveVessel, logs_from_steps, steps_from_samples
 from monitor.replay import replay_run, split_runs
 

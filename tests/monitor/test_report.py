@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from drivers.errors import LogFormatError
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.recorder import Recorder
 from monitor.report import build_report
 

@@ -12,7 +12,7 @@ import pytest
 from drivers.channels import Quarantined
 from drivers.errors import DriverError
 from drivers.sample import Sample
-from drivers.simulator import SimulatedRig, kettle_scenario, scenario_metadata
+from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.config import RigConfig, VesselSpec
 from monitor.logs import read_log
 from monitor.recorder import read_estimates, read_events, read_quarantine, read_samples, verify
@@ -213,7 +213,7 @@ def test_runs_are_recorded_when_the_service_stops(tmp_path) -> None:
 
 
 def test_each_run_is_recorded_as_it_ends_with_drift_against_the_earlier_runs(tmp_path) -> None:
-    from drivers.simulator import kettle_scenario, run_series, scenario_metadata
+    from drivers.simworld import kettle_scenario, run_series, scenario_metadata
     from monitor.recorder import read_runs
 
     # five clean runs, then two with 0.14 mm of scale (G about 25 % down in the
@@ -289,7 +289,7 @@ def test_an_impossible_serial_reading_is_set_aside_and_both_vessels_go_on(tmp_pa
     as a fault (its value kept in the quarantine), and both vessels keep estimating."""
     from drivers.emulators.line_logger import LineLoggerEmulator, logger_bindings, open_pty_pair
     from drivers.serial_line import SerialLineDriver
-    from drivers.simulator import FastClock
+    from drivers.simworld import FastClock
     from tests.drivers.test_serial_line import _raw_kettle
 
     scenario = replace(_raw_kettle(120.0), vessel="serial-kettle")
