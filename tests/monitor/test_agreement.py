@@ -16,7 +16,7 @@ from dataclasses import replace
 import pytest
 
 from dashboard.data import list_runs, load_snapshot
-from drivers.simulator import kettle_scenario, run_series, scenario_metadata
+from drivers.simworld import kettle_scenario, run_series, scenario_metadata
 from monitor import cli
 from monitor.recorder import read_runs
 from monitor.report import build_report
