@@ -53,9 +53,23 @@ What SQLite stores, and so what reads back
     standard JSON with sorted keys; a non-finite number in them is written as
     ``null``, because standard JSON has no NaN.
 
-Tables are ``STRICT`` (a value of the wrong type is refused, never converted). There
-is no index besides the ids: replay reads whole tables in id order, and every index
-would slow the writer and grow the file.
+Tables are ``STRICT`` (a value of the wrong type is refused, never converted). Besides
+the ids there are two indices (:data:`INDICES`), for the board's window questions:
+samples by vessel, channel and time, estimates by vessel and time. Replay reads whole
+tables in id order, and every further index would slow the writer and grow the file.
+
+What an estimate row holds
+    The recorder owns the mapping of an estimate to its row, through
+    :mod:`monitor.schema`: :meth:`Recorder.add_estimates` takes the flat form the
+    service also publishes on MQTT, stores :data:`~monitor.schema.ESTIMATE_COLUMNS` in
+    columns and every other key in ``detail`` under its own name; the readers give the
+    flat form back (docs/recorder.md).
+
+Reading
+    ``read_*`` stream or list one table in id order, each on a connection of its own.
+    :class:`LogReader` holds one read-only connection for a reader with many small
+    questions (the board): each is answered from an index, so its cost grows with the
+    answer and not with the log.
 """
 
 from __future__ import annotations
