@@ -76,7 +76,8 @@ def _columns(rows: Sequence[Mapping[str, object]], phase: bool = False) -> dict[
     """Return flat estimates as the charts' columns (:data:`CHART_KEYS`); the phase only
     when asked for (the replay view's cards show it, the live charts do not).
 
-    The callers thin the rows first (:func:`chart_data`, :func:`replay_one`).
+    The caller thins the rows first (:func:`replay_one`; the recorder's reader gives
+    :func:`chart_data` its columns thinned already).
     """
     return {k: [r.get(k) for r in rows] for k in CHART_KEYS if phase or k != "phase"}
 
@@ -177,11 +178,12 @@ def chart_data(
             if t:
                 newest = max(newest, t[-1])
         # a whole window is thinned in the reader; only the newest estimate is read whole
-        est_rows = log.estimates(vessel, since_est, newer_only=newer_only,
-                                 max_rows=None if newer_only else MAX_POINTS)  # fmt: skip
-        newest_row = log.latest_estimate(vessel) if est_rows else None
-    est_t = est_rows[-1]["t"] if est_rows else since_est
-    return {"vessel": vessel, "series": series, "estimates": _columns(est_rows),
+        est = log.estimates(vessel, since_est, newer_only=newer_only,
+                            max_rows=None if newer_only else MAX_POINTS,
+                            keys=[k for k in CHART_KEYS if k != "phase"])  # fmt: skip
+        newest_row = log.latest_estimate(vessel) if est["t"] else None
+    est_t = est["t"][-1] if est["t"] else since_est
+    return {"vessel": vessel, "series": series, "estimates": est,
             "latest": _latest(newest_row), "cursor": {"t": newest, "est_t": est_t}}  # fmt: skip
 
 

@@ -241,13 +241,20 @@ def test_the_log_reader_answers_the_boards_questions(tmp_path: Path):
         assert log.readings("kettle-1", "water", T0 + 8, newer_only=True) == (
             [T0 + 9], [15.0 + 0.125 * 9])  # fmt: skip
         every = log.estimates("kettle-1", T0)
-        assert [r["t"] for r in every] == [T0 + i for i in range(10)]
-        assert set(every[0]) == {"t", "vessel", "phase", *ESTIMATE_COLUMNS}  # no detail
+        assert every["t"] == [T0 + i for i in range(10)]
+        assert list(every) == ["t", "vessel", "phase", *ESTIMATE_COLUMNS]  # no detail
+        assert every["vessel"] == ["kettle-1"] * 10
         # thinned to every 4th (ceil(10 / 3)) by id, and the newest kept
-        thin = log.estimates("kettle-1", T0, max_rows=3)
-        assert [r["water_c"] for r in thin] == [20.0, 24.0, 28.0, 29.0]
-        assert [r["t"] for r in log.estimates("kettle-1", T0 + 7, newer_only=True)] == [
-            T0 + 8, T0 + 9]  # fmt: skip
+        assert log.estimates("kettle-1", T0, max_rows=3)["water_c"] == [20.0, 24.0, 28.0, 29.0]
+        assert log.estimates("kettle-1", T0 + 7, newer_only=True)["t"] == [T0 + 8, T0 + 9]
+        none = log.estimates("kettle-1", T0 + 9, newer_only=True)
+        assert none == {k: [] for k in every}
+        assert log.estimates("kettle-1", T0 + 8, keys=["nis"]) == {
+            "t": [T0 + 8, T0 + 9],
+            "nis": [0.75, 0.75],
+        }
+        with pytest.raises(ValueError, match="no stored columns \\['flags'\\]"):
+            log.estimates("kettle-1", T0, keys=["flags"])  # in detail, not a column
         latest = log.latest_estimate("kettle-1")
         assert (latest["t"], latest["water_c"], latest["run"]) == (T0 + 9, 29.0, "1")
         assert latest["flags"][0]["name"] == "wrong_fill"  # the detail is read for this one
