@@ -42,8 +42,7 @@ from monitor.drift import VERDICT_TEXT, run_verdict, verdict_of
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import LogRow, iso_utc
 from monitor.runs import Run, estimator_figures, split_runs  # the one run model
-from monitor.schema import ESTIMATE_CSV_COLUMNS as ESTIMATE_COLUMNS  # the --estimates header
-from monitor.schema import estimate_csv_row, flatten_estimate
+from monitor.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
 
 _log = logging.getLogger("ebullio.replay")
 
@@ -248,8 +247,8 @@ def _summary(
 
 
 def estimate_row(run: Run, e: Estimate) -> list[str]:
-    """Return one ``--estimates`` CSV row (columns :data:`ESTIMATE_COLUMNS`; time in s from
-    the log's start)."""
+    """Return one ``--estimates`` CSV row (:data:`monitor.schema.ESTIMATE_CSV_COLUMNS`; time
+    in s from the log's start)."""
     return estimate_csv_row(flatten_estimate(e, vessel=run.vessel, run=run.label, t=e.t_s))
 
 
@@ -272,7 +271,7 @@ def replay(
     writer = None
     if estimates_out is not None:
         writer = csv.writer(estimates_out, lineterminator="\n")
-        writer.writerow(ESTIMATE_COLUMNS)
+        writer.writerow(ESTIMATE_CSV_COLUMNS)
     done = 0
     next_report = total // 10 if total >= 50_000 else None
 
