@@ -64,9 +64,9 @@ def make_log(path: str, days: float) -> int:
                              for ch, v in (("water", water), ("element", element),
                                            ("ambient", ambient), ("power", power))])  # fmt: skip
             count += 4
-            detail = {"flags": [], "power_w": power, "target_reason": ""}
-            rec.add_estimates([{
-                "t": t, "vessel": "heater-1", "phase": "heating" if heating else "holding",
+            rec.add_estimates([{  # the flat form (monitor.schema), the figures the board shows
+                "t": t, "vessel": "heater-1", "run": str(i // 86400 + 1),
+                "phase": "heating" if heating else "holding",
                 "water_c": water, "water_mass_kg": 150.0, "water_mass_std": 2.0,
                 "heat_capacity_j_per_k": 6.3e5, "heat_capacity_std": 8e3,
                 "ua_w_per_k": 1.8, "ua_std": 0.1, "element_conductance_w_per_k": 60.0,
@@ -74,7 +74,7 @@ def make_log(path: str, days: float) -> int:
                 "time_to_target_s": 300.0 if heating else None,
                 "time_to_target_lo_s": 250.0 if heating else None,
                 "time_to_target_hi_s": 350.0 if heating else None, "nis": 1.0,
-                "detail": detail}])  # fmt: skip
+                "flags": [], "power_w": power, "target_reason": ""}])  # fmt: skip
             if i % 86400 == 86399:
                 day = i // 86400 + 1
                 g = {"value": 60.0 - day, "std": 1.0}

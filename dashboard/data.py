@@ -1,25 +1,27 @@
 """What the board shows, read from a log: the only module of the board that does I/O.
 
-:func:`load_snapshot` reads a recorder (SQLite) log read-only, so ``ebullio run`` can
-keep writing it (WAL), and returns a JSON-ready snapshot that the views' callbacks
-turn into figures without touching the file. A CSV log is replayed once through the
-estimator instead. Long series are downsampled for display with a min/max envelope
-(:func:`envelope`): each bucket keeps its lowest and highest point, so spikes and
-switch-offs stay visible; every figure on the board is still computed from the full
-data by the estimator.
+:func:`load_snapshot` reads a recorder (SQLite) log read-only through the recorder's
+own reader (:class:`monitor.recorder.LogReader`), so ``ebullio run`` can keep writing
+it (WAL), and returns a JSON-ready snapshot that the views' callbacks turn into
+figures without touching the file. A CSV log is replayed once through the estimator
+instead. Either way an estimate arrives in its one flat form
+(:func:`monitor.schema.flatten_estimate`); this module only picks what the board
+shows of it and shapes it for display: no SQL here. Long series are downsampled for
+display with a min/max envelope (:func:`envelope`): each bucket keeps its lowest and
+highest point, so spikes and switch-offs stay visible; every figure on the board is
+still computed from the full data by the estimator.
 """
 
 from __future__ import annotations
 
-import json
 import math
-import sqlite3
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
 
-from monitor.recorder import is_recorder_log
+from monitor.recorder import LogReader, is_recorder_log
+from monitor.schema import flatten_estimate
 
 #: Points per series sent to the browser at most (about two per horizontal pixel).
 MAX_POINTS = 2400
@@ -52,35 +54,32 @@ def envelope(
     return ts[picked].tolist(), ys[picked].tolist()
 
 
-def _connect(path: str) -> sqlite3.Connection:
-    uri = f"{Path(path).resolve().as_uri()}?mode=ro"
-    return sqlite3.connect(uri, uri=True, timeout=5.0)
+#: What the charts draw of each estimate (names of the one mapping, monitor.schema).
+CHART_KEYS = ("t", "phase", "water_c", "water_mass_kg", "water_mass_std", "ua_w_per_k", "ua_std",
+              "element_conductance_w_per_k", "element_conductance_std", "target_c",
+              "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s")  # fmt: skip
+#: What the figures, the flags and the fleet show of a vessel's newest estimate.
+LATEST_KEYS = (*CHART_KEYS, "flags", "power_w", "target_reason")
 
 
-_EST_KEYS = ("t", "phase", "water_c", "water_mass_kg", "water_mass_std", "ua_w_per_k", "ua_std",
-             "element_conductance_w_per_k", "element_conductance_std", "target_c",
-             "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s")  # fmt: skip
-
-
-def _latest(row: tuple | None) -> dict[str, object] | None:
-    """Return an estimate row (columns _EST_KEYS then detail) as the board's latest figures."""
-    if row is None:
+def _latest(estimate: Mapping[str, object] | None) -> dict[str, object] | None:
+    """Return the part of a flat estimate the board shows as a vessel's latest figures."""
+    if estimate is None:
         return None
-    latest = dict(zip(_EST_KEYS, row[:-1], strict=True))
-    detail = json.loads(row[-1]) if row[-1] else {}
-    latest["flags"] = detail.get("flags", [])
-    latest["power_w"] = detail.get("power_w")
-    latest["target_reason"] = detail.get("target_reason", "")
+    latest = {k: estimate.get(k) for k in LATEST_KEYS}
+    latest["flags"] = latest["flags"] or []
+    latest["target_reason"] = latest["target_reason"] or ""
     return latest
 
 
-def _columns(rows: list[tuple], phase: bool = False) -> dict[str, list]:
-    """Return estimate rows (columns _EST_KEYS, then anything) as columns; the phase
-    only when asked for (the replay view's cards show it, the live charts do not).
+def _columns(rows: Sequence[Mapping[str, object]], phase: bool = False) -> dict[str, list]:
+    """Return flat estimates as the charts' columns (:data:`CHART_KEYS`); the phase only
+    when asked for (the replay view's cards show it, the live charts do not).
 
-    The callers thin the rows first (:func:`chart_data`, :func:`replay_one`).
+    The caller thins the rows first (:func:`replay_one`; the recorder's reader gives
+    :func:`chart_data` its columns thinned already).
     """
-    return {k: [r[i] for r in rows] for i, k in enumerate(_EST_KEYS) if phase or k != "phase"}
+    return {k: [r.get(k) for r in rows] for k in CHART_KEYS if phase or k != "phase"}
 
 
 def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
@@ -114,28 +113,12 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
 
 
 def _sqlite_snapshot(path: str, vessel: str | None) -> dict[str, object]:
-    conn = _connect(path)
-    try:
-        # the vessels the service declared (cheap), else those with samples (a scan)
-        names = [v for (v,) in conn.execute("SELECT DISTINCT vessel FROM vessels ORDER BY vessel")]
-        if not names:
-            names = [v for (v,) in conn.execute("SELECT DISTINCT vessel FROM samples ORDER BY 1")]
-        # each vessel's newest estimate: one probe of the (vessel, t) index per vessel,
-        # where a GROUP BY over the table read every estimate (0.5 s cold on a week)
-        latest: dict[str, object] = {}
-        sql = (f"SELECT {', '.join(_EST_KEYS)}, detail FROM estimates WHERE vessel = ? "
-               "ORDER BY t DESC, id DESC LIMIT 1")  # fmt: skip
-        for name in names:
-            row = conn.execute(sql, (name,)).fetchone()
-            if row is not None:
-                latest[name] = _latest(row)
-        sql = "SELECT vessel, run, start_t, end_t, summary FROM runs ORDER BY id"
-        runs = [{"vessel": v, "run": r, "start_t": s, "end_t": e, "summary": json.loads(j)}
-                for v, r, s, e, j in conn.execute(sql)]  # fmt: skip
-        last = conn.execute("SELECT t FROM samples ORDER BY id DESC LIMIT 1").fetchone()
-        last_t = last[0] if last else None
-    finally:
-        conn.close()
+    with LogReader(path) as log:
+        names = log.vessels()
+        newest = {name: log.latest_estimate(name) for name in names}
+        runs = log.runs()
+        last_t = log.last_sample_t()
+    latest = {name: _latest(e) for name, e in newest.items() if e is not None}
     chosen = vessel if vessel in names else (names[0] if names else None)
     return {"log": Path(path).name, "kind": "recorder", "last_t": last_t, "vessels": names,
             "latest": latest, "runs": run_state(runs), "chosen": chosen}  # fmt: skip
@@ -181,77 +164,30 @@ def chart_data(
     if not is_recorder_log(path):
         detail = (csv_replay or replay_csv)(path)["vessels"].get(vessel) or {}
         return {"vessel": vessel, **detail, "cursor": None}
-    conn = _connect(path)
-    try:
+    newer_only = after is not None
+    with LogReader(path) as log:
         if after is None:
-            # the newest sample of any channel: max(t) per channel is one index probe
-            # each, where max(t) over the vessel would read all its index entries
-            sql = "SELECT max(t) FROM samples WHERE vessel = ? AND channel = ?"
-            ends = [conn.execute(sql, (vessel, ch)).fetchone()[0] for ch in CHANNELS]
-            last = max((e for e in ends if e is not None), default=None)
+            last = log.newest_sample_t(vessel, CHANNELS)
             since = since_est = (last or 0.0) - window_s
-            op = ">="
         else:
-            since, since_est, op = float(after["t"]), float(after["est_t"]), ">"
+            since, since_est = float(after["t"]), float(after["est_t"])
         series: dict[str, object] = {}
         newest = since
         for channel in CHANNELS:
-            rows = conn.execute(
-                f"SELECT t, value FROM samples WHERE vessel = ? AND channel = ? AND t {op} ?"
-                " ORDER BY t", (vessel, channel, since),
-            ).fetchall()  # fmt: skip
-            t, y = [r[0] for r in rows], [r[1] for r in rows]
-            if after is None:
+            t, y = log.readings(vessel, channel, since, newer_only=newer_only)
+            if not newer_only:
                 t, y = envelope(t, y)
             series[channel] = {"t": t, "y": y}
             if t:
                 newest = max(newest, t[-1])
-        # the charts need the figures only; the detail (flags, power) of the newest alone
-        columns = ", ".join(_EST_KEYS)
-        if after is None:
-            # a window is thinned to every n-th estimate (and the newest): find their ids
-            # from the index alone, then read just those rows
-            ids = [i for (i,) in conn.execute(
-                "SELECT id FROM estimates WHERE vessel = ? AND t >= ? ORDER BY t",
-                (vessel, since_est))]  # fmt: skip
-            picked = ids[:: max(1, math.ceil(len(ids) / MAX_POINTS))]
-            if ids and picked[-1] != ids[-1]:
-                picked.append(ids[-1])
-            est_rows = []
-            for start in range(0, len(picked), 500):
-                chunk = picked[start : start + 500]
-                est_rows += conn.execute(
-                    f"SELECT {columns} FROM estimates WHERE id IN "
-                    f"({', '.join('?' * len(chunk))})", chunk).fetchall()  # fmt: skip
-            est_rows.sort(key=lambda r: r[0])
-        else:
-            est_rows = conn.execute(
-                f"SELECT {columns} FROM estimates WHERE vessel = ? AND t > ? ORDER BY t",
-                (vessel, since_est)).fetchall()  # fmt: skip
-        newest_row = conn.execute(
-            f"SELECT {columns}, detail FROM estimates WHERE vessel = ? AND t {op} ?"
-            " ORDER BY t DESC, id DESC LIMIT 1", (vessel, since_est),
-        ).fetchone() if est_rows else None  # fmt: skip
-    finally:
-        conn.close()
-    latest = _latest(newest_row)
-    est_t = est_rows[-1][0] if est_rows else since_est
-    return {"vessel": vessel, "series": series, "estimates": _columns(est_rows),
-            "latest": latest, "cursor": {"t": newest, "est_t": est_t}}  # fmt: skip
-
-
-def _estimate_row(start: float, e) -> tuple:
-    """Return one replayed estimate as a row of _EST_KEYS then the detail JSON."""
-    target = e.target
-    m, g = e.water_mass_kg, e.element_conductance_w_per_k
-    detail = {"flags": [f.as_dict() for f in e.flags], "power_w": e.power_w,
-              "target_reason": target.reason if target else ""}  # fmt: skip
-    return (start + e.t_s, str(e.phase), e.water_c, m.value if m else None,
-            m.std if m else None, e.ua_w_per_k.value, e.ua_w_per_k.std,
-            g.value if g else None, g.std if g else None,
-            target.target_c if target else None,
-            target.eta_s if target else None, target.lo_s if target else None,
-            target.hi_s if target else None, json.dumps(detail))  # fmt: skip
+        # a whole window is thinned in the reader; only the newest estimate is read whole
+        est = log.estimates(vessel, since_est, newer_only=newer_only,
+                            max_rows=None if newer_only else MAX_POINTS,
+                            keys=[k for k in CHART_KEYS if k != "phase"])  # fmt: skip
+        newest_row = log.latest_estimate(vessel) if est["t"] else None
+    est_t = est["t"][-1] if est["t"] else since_est
+    return {"vessel": vessel, "series": series, "estimates": est,
+            "latest": _latest(newest_row), "cursor": {"t": newest, "est_t": est_t}}  # fmt: skip
 
 
 def replay_csv(path: str) -> dict[str, object]:
@@ -293,22 +229,25 @@ def replay_one(
     from monitor.replay import replay_run
 
     start = run.log.start_epoch_s or 0.0
-    rows: list[tuple] = []
+    rows: list[dict[str, object]] = []
     total = max(len(run.rows), 1)
     every = max(1, math.ceil(total / max_points))
     seen = [0, None]  # estimates so far, the newest one
+
+    def flat(e) -> dict[str, object]:
+        return flatten_estimate(e, vessel=run.vessel, run=run.label, t=start + e.t_s)
 
     def keep(_run, e) -> None:
         seen[0] += 1
         seen[1] = e
         if seen[0] % every == 1 or every == 1:
-            rows.append(_estimate_row(start, e))
+            rows.append(flat(e))
         if progress is not None and seen[0] % 2000 == 0:
             progress(seen[0] / total)
 
     summary = replay_run(run, on_estimate=keep)
-    if seen[1] is not None and (not rows or rows[-1][0] != start + seen[1].t_s):
-        rows.append(_estimate_row(start, seen[1]))
+    if seen[1] is not None and (not rows or rows[-1]["t"] != start + seen[1].t_s):
+        rows.append(flat(seen[1]))
     series = {}
     for channel in CHANNELS:
         pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]
@@ -355,20 +294,14 @@ def list_runs(path: str, runs: list | None = None) -> list[dict[str, object]]:
 
 
 def _table_runs(path: str) -> list[dict[str, object]]:
-    """Return the runs in the log's runs table, one per vessel and label (first row kept)."""
-    conn = _connect(path)
-    try:
-        rows = conn.execute(
-            "SELECT vessel, run, start_t, end_t, json_extract(summary, '$.steps') FROM runs "
-            "WHERE end_t IS NOT NULL ORDER BY id"
-        ).fetchall()
-    finally:
-        conn.close()
+    """Return the ended runs of the log's runs table, one per vessel and label (the first
+    row kept), marked ``recorded``, in order of start."""
+    with LogReader(path) as log:
+        rows = log.ended_runs()
     out: dict[tuple[str, str], dict[str, object]] = {}
-    for vessel, label, start_t, end_t, steps in rows:
-        out.setdefault((vessel, str(label)), {"vessel": vessel, "run": str(label),
-                       "start_t": start_t, "end_t": end_t, "steps": steps,
-                       "recorded": True})  # fmt: skip
+    for row in rows:
+        out.setdefault((str(row["vessel"]), str(row["run"])),
+                       {**row, "run": str(row["run"]), "recorded": True})  # fmt: skip
     return sorted(out.values(), key=lambda r: (r["start_t"], r["vessel"]))
 
 

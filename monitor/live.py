@@ -51,7 +51,7 @@ from dataclasses import dataclass
 
 from drivers.sample import Quality, Sample
 from monitor.batchfit import FitBudget
-from monitor.contracts import Estimate, finite_or_none
+from monitor.contracts import Estimate
 from monitor.drift import VesselDrift, run_checks
 from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
@@ -365,51 +365,3 @@ class LiveVessel:
         if held is not None:
             self._step_run(held)
 
-
-def estimate_message(vessel: LiveVessel, e: Estimate, t: float) -> dict[str, object]:
-    """Return an estimate as a flat, JSON-ready message (Unix time ``t``; SI units in keys).
-
-    The service publishes these, retained, on ``<prefix>/<vessel>/estimate``; boards
-    and other systems read them. Values that are not finite are null.
-    """
-
-    def pair(est: object) -> tuple[float | None, float | None]:
-        if est is None:
-            return None, None
-        return finite_or_none(est.value), finite_or_none(est.std)  # type: ignore[attr-defined]
-
-    mass, mass_std = pair(e.water_mass_kg)
-    c, c_std = pair(e.heat_capacity_j_per_k)
-    ua, ua_std = pair(e.ua_w_per_k)
-    g, g_std = pair(e.element_conductance_w_per_k)
-    loss, loss_std = pair(e.standing_loss_w)
-    target = e.target
-    return {
-        "t": t,
-        "vessel": vessel.vessel,
-        "run": vessel.run_number,
-        "phase": str(e.phase),
-        "water_c": finite_or_none(e.water_c),
-        "water_std_c": finite_or_none(e.water_std_c),
-        "element_c": finite_or_none(e.element_c),
-        "ambient_c": finite_or_none(e.ambient_c),
-        "power_w": finite_or_none(e.power_w),
-        "water_mass_kg": mass,
-        "water_mass_std": mass_std,
-        "heat_capacity_j_per_k": c,
-        "heat_capacity_std": c_std,
-        "ua_w_per_k": ua,
-        "ua_std": ua_std,
-        "element_conductance_w_per_k": g,
-        "element_conductance_std": g_std,
-        "standing_loss_w": loss,
-        "standing_loss_std": loss_std,
-        "boiling_point_c": finite_or_none(e.boiling_point_c),
-        "target_c": finite_or_none(target.target_c) if target else None,
-        "time_to_target_s": finite_or_none(target.eta_s) if target else None,
-        "time_to_target_lo_s": finite_or_none(target.lo_s) if target else None,
-        "time_to_target_hi_s": finite_or_none(target.hi_s) if target else None,
-        "boil_off_to_dry_s": finite_or_none(e.boil_off_to_dry_s),
-        "nis": finite_or_none(e.nis),
-        "flags": [f.as_dict() for f in e.flags],
-    }

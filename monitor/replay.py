@@ -36,19 +36,13 @@ from collections.abc import Callable
 from typing import TextIO
 
 from monitor import __version__
-from monitor.contracts import Estimate, Level, finite_or_none
+from monitor.contracts import Estimate, Level
 from monitor.drift import VERDICT_TEXT, verdict_of
 from monitor.estimator import EstimatorSettings, VesselConfig
 from monitor.runs import NO_FIGURES, OpenRun, Run, has_element_sensor, split_runs
+from monitor.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
 
 _log = logging.getLogger("ebullio.replay")
-
-ESTIMATE_COLUMNS = [
-    "time_s", "vessel", "run", "phase", "water_c", "water_mass_kg", "water_mass_std",
-    "heat_capacity_j_per_k", "heat_capacity_std", "ua_w_per_k", "ua_std",
-    "element_conductance_w_per_k", "element_conductance_std", "target_c", "time_to_target_s",
-    "time_to_target_lo_s", "time_to_target_hi_s", "nis",
-]  # fmt: skip
 
 
 def replay_run(
@@ -103,25 +97,10 @@ def _replay_isolated(
         }  # fmt: skip
 
 
-def estimate_row(run: Run, e: Estimate) -> list[object]:
-    """Return one ``--estimates`` CSV row (columns :data:`ESTIMATE_COLUMNS`)."""
-
-    def num(value: float | None) -> str:
-        value = finite_or_none(value)
-        return "" if value is None else repr(round(float(value), 6))
-
-    g = e.element_conductance_w_per_k
-    m = e.water_mass_kg
-    t = e.target
-    return [
-        num(e.t_s), run.vessel, run.label, str(e.phase), num(e.water_c),
-        num(m.value if m else None), num(m.std if m else None),
-        num(e.heat_capacity_j_per_k.value), num(e.heat_capacity_j_per_k.std),
-        num(e.ua_w_per_k.value), num(e.ua_w_per_k.std),
-        num(g.value if g else None), num(g.std if g else None),
-        num(t.target_c if t else None), num(t.eta_s if t else None),
-        num(t.lo_s if t else None), num(t.hi_s if t else None), num(e.nis),
-    ]  # fmt: skip
+def estimate_row(run: Run, e: Estimate) -> list[str]:
+    """Return one ``--estimates`` CSV row (:data:`monitor.schema.ESTIMATE_CSV_COLUMNS`; time
+    in s from the log's start)."""
+    return estimate_csv_row(flatten_estimate(e, vessel=run.vessel, run=run.label, t=e.t_s))
 
 
 def replay(
@@ -143,7 +122,7 @@ def replay(
     writer = None
     if estimates_out is not None:
         writer = csv.writer(estimates_out, lineterminator="\n")
-        writer.writerow(ESTIMATE_COLUMNS)
+        writer.writerow(ESTIMATE_CSV_COLUMNS)
     done = 0
     next_report = total // 10 if total >= 50_000 else None
 

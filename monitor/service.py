@@ -70,8 +70,9 @@ from drivers.sample import Quality, ReadingLimits, Sample
 from monitor import __version__
 from monitor.batchfit import FitBudget, warm_up
 from monitor.config import Instrument, MqttSettings, RigConfig
-from monitor.live import LiveVessel, estimate_message
-from monitor.recorder import Recorder, estimate_record
+from monitor.live import LiveVessel
+from monitor.recorder import Recorder
+from monitor.schema import flag_record, flatten_estimate
 
 log = logging.getLogger("ebullio.service")
 
@@ -550,16 +551,13 @@ class Service:
         if e is None:
             return
         self.stats.estimates += 1
-        record = estimate_message(vessel, e, step.t)
-        assert self._recorder is not None
-        row = estimate_record(e, t=step.t, detail={"run": vessel.run_number})
-        self._estimate_rows.append(row)
+        # one flat form: published as it is, and the recorder's estimates row
+        record = flatten_estimate(e, vessel=vessel.vessel, run=str(vessel.run_number), t=step.t)
+        self._estimate_rows.append(record)
         names = tuple(sorted(f.name for f in e.flags))
         if names != self._flags_sent.get(vessel.vessel):
             self._flags_sent[vessel.vessel] = names
-            self._flag_rows += [
-                {"t": step.t, "vessel": vessel.vessel, **f.as_dict()} for f in e.flags
-            ]
+            self._flag_rows += [flag_record(step.t, vessel.vessel, f) for f in e.flags]
             self._flags_to_publish[vessel.vessel] = record["flags"]  # type: ignore[assignment]
         if vessel.vessel in self._to_publish:
             self.stats.estimates_coalesced += 1

@@ -77,6 +77,23 @@ def test_snapshot_of_a_recorder_log(live_log) -> None:
     assert newer["estimates"]["t"] == []
 
 
+def test_live_and_replayed_estimates_reach_the_board_under_the_same_names(live_log) -> None:
+    """Issue 15: the board draws the one flat form (monitor.schema), whether the recorder
+    gives it back or a replay of a CSV log makes it."""
+    from dashboard.data import CHART_KEYS, LATEST_KEYS, replay_csv
+    from monitor.schema import ESTIMATE_KEYS
+
+    assert set(LATEST_KEYS) <= set(ESTIMATE_KEYS)
+    kettle = Path(__file__).resolve().parents[2] / "replay_logs" / "kettle-clean.csv"
+    replayed = replay_csv(str(kettle))["vessels"]["kettle-1"]
+    live = chart_data(str(live_log), "kettle-a")
+    assert set(replayed["latest"]) == set(live["latest"]) == set(LATEST_KEYS)
+    assert set(live["estimates"]) == set(CHART_KEYS) - {"phase"}
+    assert set(replayed["estimates"]) == set(CHART_KEYS)  # the replay view shows the phase
+    assert live["latest"]["water_mass_kg"] == load_snapshot(str(live_log))["latest"][
+        "kettle-a"]["water_mass_kg"]  # fmt: skip
+
+
 def test_vessel_callbacks_are_pure_functions_of_the_store(live_log) -> None:
     snap = load_snapshot(str(live_log))
     cards, flags = render_vessel(snap)

@@ -26,15 +26,13 @@ from drivers.errors import EbullioError, LogFormatError
 from drivers.sample import Quality, Sample
 from monitor.contracts import Estimate, Estimated, Flag, Level, Phase, TargetForecast
 from monitor.recorder import (
-    ESTIMATE_VALUE_COLUMNS,
     GENESIS_HASH,
     HASH_LABEL,
     HASHED_TABLES,
     TABLE_COLUMNS,
+    LogReader,
     Recorder,
     block_hash,
-    estimate_record,
-    flag_record,
     is_recorder_log,
     read_estimates,
     read_events,
@@ -46,7 +44,7 @@ from monitor.recorder import (
     sessions,
     verify,
 )
-from monitor.replay import ESTIMATE_COLUMNS
+from monitor.schema import ESTIMATE_COLUMNS, flag_record, flatten_estimate
 
 ROOT = Path(__file__).resolve().parents[2]
 T0 = 1_780_000_000.0  # an arbitrary Unix time (2026), common practice, no source
@@ -96,7 +94,8 @@ def log(tmp_path: Path) -> Path:
         rec.add_samples(kettle_samples(10, start=T0 + 10))
         rec.add_quarantined([Quarantined(T0 + 11, "serial:///dev/ttyUSB0", "line 12",
                                          "3 cells where 4 expected", b"12.5,\xff\n")])  # fmt: skip
-        rec.add_estimates([estimate_record(sample_estimate())])
+        rec.add_estimates([flatten_estimate(sample_estimate(), vessel="kettle-1", run="1",
+                                            t=T0 + 30.0)])  # fmt: skip
         rec.add_flags([flag_record(T0 + 30, "kettle-1", sample_estimate().flags[0])])
         rec.add_event(T0 + 12, "gap", "sim://?seed=1", {"missing_s": 2.0})
         rec.add_run("kettle-1", "1", T0, T0 + 19, {"heat_up_s": 12.5})
@@ -126,8 +125,8 @@ def test_every_table_round_trips(log: Path):
     assert (e["target_c"], e["time_to_target_s"], e["time_to_target_lo_s"]) == (100.0, 180.5, 170.0)
     assert e["time_to_target_hi_s"] is None  # infinite "never" bound is stored as NULL
     assert e["nis"] == 0.75
-    assert (e["detail"]["ambient_c"], e["detail"]["element_c"]) == (21.0, None)
-    assert e["detail"]["flags"][0]["name"] == "wrong_fill"
+    assert (e["ambient_c"], e["element_c"], e["run"]) == (21.0, None, "1")
+    assert e["flags"][0]["name"] == "wrong_fill"
     assert list(read_estimates(log, vessel="urn-2")) == []
     assert [r["id"] for r in read_estimates(log, vessel="kettle-1")] == [1]
     (f,) = read_flags(log)
@@ -151,11 +150,16 @@ def test_every_table_round_trips(log: Path):
     assert is_recorder_log(log)
 
 
-def test_estimate_columns_are_replays_minus_time_vessel_and_run():
-    # the table follows monitor.replay's per-step CSV, so an export can map one to the other
-    expected = [c for c in ESTIMATE_COLUMNS if c not in ("time_s", "vessel", "run", "phase")]
-    assert list(ESTIMATE_VALUE_COLUMNS) == expected
-    assert TABLE_COLUMNS["estimates"][:5] == ("id", "block", "t", "vessel", "phase")
+def test_the_estimates_table_keeps_the_layout_of_schema_version_1():
+    # the columns every log of schema version 1 has (monitor/recorder.py as of d67569f):
+    # the one mapping must not move them, or older logs would no longer read or verify
+    assert TABLE_COLUMNS["estimates"] == (
+        "id", "block", "t", "vessel", "phase", "water_c", "water_mass_kg", "water_mass_std",
+        "heat_capacity_j_per_k", "heat_capacity_std", "ua_w_per_k", "ua_std",
+        "element_conductance_w_per_k", "element_conductance_std", "target_c",
+        "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s", "nis", "detail",
+    )  # fmt: skip
+    assert TABLE_COLUMNS["estimates"][5:-1] == ESTIMATE_COLUMNS
 
 
 def test_nan_fault_infinite_and_negative_zero_samples_survive(tmp_path: Path):
@@ -206,6 +210,68 @@ def test_later_vessel_metadata_replaces_earlier(tmp_path: Path):
         "urn": {"nominal_volume_l": 25.0, "pressure_kpa": 95.5},
         "kettle": {"target_c": 100.0},
     }
+
+
+def _estimates_log(path: Path) -> Path:
+    """A log of ten estimates of kettle-1 at T0..T0+9 (water 20..29 °C) with samples on
+    two channels, one of them at T0 + 20, and one open and two ended runs."""
+    e = sample_estimate()
+    with Recorder(path, version="t", clock=fake_clock()) as rec:
+        rec.add_samples(kettle_samples(10))
+        fault = Sample(T0 + 3, "kettle-1", "power", math.nan, Quality.FAULT, "m")
+        rec.add_samples([Sample(T0 + 20, "kettle-1", "power", 2000.0, source="m"), fault])
+        for i in range(10):
+            flat = flatten_estimate(e, vessel="kettle-1", run="1", t=T0 + i)
+            rec.add_estimates([{**flat, "water_c": 20.0 + i}])
+        rec.add_run("kettle-1", "1", T0, T0 + 9, {"steps": 10})
+        rec.add_run("kettle-1", "2", T0 + 10, None, {})
+        rec.add_run("kettle-1", "2", T0 + 10, T0 + 19, {"steps": 9})
+    return path
+
+
+def test_the_log_reader_answers_the_boards_questions(tmp_path: Path):
+    path = _estimates_log(tmp_path / "est.sqlite")
+    with LogReader(path) as log:
+        assert log.vessels() == ["kettle-1"]  # no vessels rows: found from the samples
+        assert log.last_sample_t() == T0 + 3  # the last recorded, not the newest
+        assert log.newest_sample_t("kettle-1", ["water", "power"]) == T0 + 20
+        assert log.newest_sample_t("kettle-1", ["ambient"]) is None
+        t, y = log.readings("kettle-1", "power", T0)
+        assert (t, y) == ([T0 + 3, T0 + 20], [None, 2000.0])  # a fault reads as None
+        assert log.readings("kettle-1", "water", T0 + 8, newer_only=True) == (
+            [T0 + 9], [15.0 + 0.125 * 9])  # fmt: skip
+        every = log.estimates("kettle-1", T0)
+        assert every["t"] == [T0 + i for i in range(10)]
+        assert list(every) == ["t", "vessel", "phase", *ESTIMATE_COLUMNS]  # no detail
+        assert every["vessel"] == ["kettle-1"] * 10
+        # thinned to every 4th (ceil(10 / 3)) by id, and the newest kept
+        assert log.estimates("kettle-1", T0, max_rows=3)["water_c"] == [20.0, 24.0, 28.0, 29.0]
+        assert log.estimates("kettle-1", T0 + 7, newer_only=True)["t"] == [T0 + 8, T0 + 9]
+        none = log.estimates("kettle-1", T0 + 9, newer_only=True)
+        assert none == {k: [] for k in every}
+        assert log.estimates("kettle-1", T0 + 8, keys=["nis"]) == {
+            "t": [T0 + 8, T0 + 9],
+            "nis": [0.75, 0.75],
+        }
+        with pytest.raises(ValueError, match="no stored columns \\['flags'\\]"):
+            log.estimates("kettle-1", T0, keys=["flags"])  # in detail, not a column
+        latest = log.latest_estimate("kettle-1")
+        assert (latest["t"], latest["water_c"], latest["run"]) == (T0 + 9, 29.0, "1")
+        assert latest["flags"][0]["name"] == "wrong_fill"  # the detail is read for this one
+        assert log.latest_estimate("urn-2") is None
+        assert [r["run"] for r in log.runs()] == ["1", "2", "2"]
+        assert log.ended_runs() == [
+            {"vessel": "kettle-1", "run": "1", "start_t": T0, "end_t": T0 + 9, "steps": 10},
+            {"vessel": "kettle-1", "run": "2", "start_t": T0 + 10, "end_t": T0 + 19, "steps": 9},
+        ]
+        assert read_runs(path) == log.runs()
+
+
+def test_the_log_reader_refuses_a_file_that_is_not_a_log(tmp_path: Path):
+    other = tmp_path / "other.csv"
+    other.write_text("time_s,water_c\n0,20\n", encoding="utf-8")
+    with pytest.raises(LogFormatError, match="not an SQLite file"):
+        LogReader(other)
 
 
 # ---------------------------------------------------------------------------------------

@@ -13,7 +13,8 @@ import pytest
 
 from monitor.cli import main
 from monitor.interchange import read_csv_text
-from monitor.replay import ESTIMATE_COLUMNS, replay, split_runs
+from monitor.replay import replay, split_runs
+from monitor.schema import ESTIMATE_CSV_COLUMNS
 
 LOGS = Path(__file__).resolve().parent.parent.parent / "replay_logs"
 KETTLE = str(LOGS / "kettle-clean.csv")
@@ -87,7 +88,7 @@ def test_estimates_columns_and_rows(tmp_path, capsys):
     assert "not a safety device" in text
     with out.open(encoding="utf-8") as handle:
         rows = list(csv.reader(handle))
-    assert rows[0] == ESTIMATE_KEYS == ESTIMATE_COLUMNS
+    assert rows[0] == ESTIMATE_KEYS == list(ESTIMATE_CSV_COLUMNS)
     assert len(rows) == 1 + 901
     heating = [r for r in rows[1:] if r[3] == "heating" and r[14] and r[15] and r[16]]
     assert len(heating) > 150, "time to target with its interval is given while heating"

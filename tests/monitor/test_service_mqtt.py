@@ -8,7 +8,7 @@ import json
 import aiomqtt
 
 from monitor.config import parse_config
-from monitor.recorder import read_events, read_quarantine, read_samples, verify
+from monitor.recorder import read_estimates, read_events, read_quarantine, read_samples, verify
 from monitor.service import Service
 from tests.support.mosquitto import MosquittoBroker
 
@@ -89,6 +89,9 @@ def test_readings_are_recorded_estimated_and_published_back(mosquitto, tmp_path)
     assert estimate["vessel"] == "urn-1"
     assert estimate["water_c"] > 20.0
     assert {"ua_w_per_k", "time_to_target_s", "flags"} <= set(estimate)
+    # the message as the broker kept it is the log's row of that instant, key for key
+    (stored,) = [r for r in read_estimates(log) if r["t"] == estimate["t"]]
+    assert {k: v for k, v in stored.items() if k not in ("id", "block")} == estimate
     reasons = [q["reason"] for q in read_quarantine(log)]
     assert any("not a number" in r for r in reasons)
     # the ghost vessel is not configured, so the driver was not subscribed to it
