@@ -364,4 +364,3 @@ class LiveVessel:
         held, self._held = self._held, None
         if held is not None:
             self._step_run(held)
-
