@@ -34,17 +34,32 @@ TEMPERATURE_UNITS = ("degC", "mV")
 
 @dataclass(frozen=True, slots=True)
 class Quarantined:
-    """Raw input that could not be used: kept verbatim, with where it came from and why.
+    """Input that could not be used, set aside: kept verbatim, with where it came from
+    and why. The one record of set-aside input, live (a driver, the service's checks)
+    and in a read log (a CSV row, a recorder log's quarantine).
 
-    ``t`` is the Unix time (s) it was received; ``raw`` the bytes as they arrived;
-    ``where`` names the source and position (port and line, topic, register).
+    ``t`` is the Unix time (s) it was received, None for a line read from a file;
+    ``source`` the instrument or broker URL, or the file; ``where`` the position in
+    it (port and line, topic, register, ``line 12``); ``raw`` the bytes as they
+    arrived; ``line`` the file's line number (0 when not from a file).
     """
 
-    t: float
+    t: float | None
     source: str
     where: str
     reason: str
     raw: bytes
+    line: int = 0
+
+    @property
+    def text(self) -> str:
+        """The raw input as text (bytes that are not UTF-8 as ``\\xNN``)."""
+        return self.raw.decode("utf-8", "backslashreplace")
+
+    def as_dict(self) -> dict[str, object]:
+        """Return it as a JSON-ready dict (``file`` is the source; docs/run-summary.md)."""
+        return {"file": self.source, "line": self.line, "where": self.where, "t": self.t,
+                "reason": self.reason, "raw": self.text}  # fmt: skip
 
 
 @dataclass(frozen=True, slots=True)

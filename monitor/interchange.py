@@ -26,6 +26,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import TextIO
 
+from drivers.channels import Quarantined
 from drivers.errors import LogFormatError
 from drivers.payloads import CHANNEL_COLUMNS as ROLE_COLUMNS
 from drivers.sample import PLAIN_NUMBER, Sample
@@ -51,13 +52,10 @@ class LogRow:
     run: str | None = None
 
 
-@dataclass(frozen=True, slots=True)
-class Rejected:
-    """A line that could not be used, kept verbatim with where it was and why."""
-
-    line: int
-    raw: str
-    reason: str
+def _aside(name: str, number: int, raw: str, reason: str) -> Quarantined:
+    """Return a line of ``name`` set aside (its text as read; undecodable bytes escaped)."""
+    return Quarantined(None, name, f"line {number}", reason,
+                       raw.encode("utf-8", "surrogateescape"), line=number)  # fmt: skip
 
 
 @dataclass
@@ -68,7 +66,7 @@ class InterchangeLog:
     metadata: dict[str, str | float]
     channels: list[str]
     rows: list[LogRow] = field(default_factory=list)
-    rejected: list[Rejected] = field(default_factory=list)
+    rejected: list[Quarantined] = field(default_factory=list)
     start_epoch_s: float | None = None
 
 
@@ -140,7 +138,7 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
     lines = iter(enumerate(handle, start=1))
     header: list[str] | None = None
     header_line = 0
-    rejected: list[Rejected] = []
+    rejected: list[Quarantined] = []
     for number, raw in lines:
         if number == 1 and raw.startswith("\ufeff"):
             raw = raw[1:]  # the byte-order mark some editors write
@@ -148,7 +146,7 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
         if not text:
             continue
         if isinstance(raw, _Undecodable) and text.startswith("#"):
-            rejected.append(Rejected(number, raw.rstrip("\r\n"), raw.reason))
+            rejected.append(_aside(name, number, raw.rstrip("\r\n"), raw.reason))
             continue
         if text.startswith("#"):
             body = text[1:].strip()
@@ -157,7 +155,7 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
                 metadata[key.strip()] = _parse_meta_value(value.strip())
             elif body:
                 rejected.append(
-                    Rejected(number, raw.rstrip("\r\n"), "metadata line without 'key: value'")
+                    _aside(name, number, raw.rstrip("\r\n"), "metadata line without 'key: value'")
                 )
             continue
         try:
@@ -194,17 +192,18 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
         if not raw.strip() or raw.lstrip().startswith("#"):
             if raw.strip():
                 log.rejected.append(
-                    Rejected(number, raw.rstrip("\r\n"), "metadata line after the header")
+                    _aside(name, number, raw.rstrip("\r\n"), "metadata line after the header")
                 )
             continue
         row, reason = _parse_row(number, raw, header, iso)
         if row is None:
-            log.rejected.append(Rejected(number, raw.rstrip("\r\n"), reason))
+            log.rejected.append(_aside(name, number, raw.rstrip("\r\n"), reason))
             continue
         previous = last_time.get(row.vessel)
         if previous is not None and row.time_s <= previous:
             log.rejected.append(
-                Rejected(
+                _aside(
+                    name,
                     number,
                     raw.rstrip("\r\n"),
                     f"line {number}: time does not move forward "
@@ -225,7 +224,8 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
             log.start_epoch_s = _parse_iso(str(metadata["start_time"]))
         except ValueError:
             log.rejected.append(
-                Rejected(
+                _aside(
+                    name,
                     0,
                     f"# start_time: {metadata['start_time']}",
                     "start_time is not ISO 8601 with a UTC offset",

@@ -13,17 +13,16 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Mapping
-from datetime import datetime
 from itertools import groupby
 from pathlib import Path
 from typing import TextIO
 
+from drivers.channels import Quarantined
 from drivers.errors import LogFormatError
 from monitor.interchange import (
     CHANNEL_COLUMNS,
     InterchangeLog,
     LogRow,
-    Rejected,
     iso_utc,
     read_csv,
     write_csv,
@@ -38,13 +37,15 @@ from monitor.recorder import (
 from monitor.runs import split_runs
 
 
-def _rejected(path: str) -> list[Rejected]:
+def _rejected(path: str) -> list[Quarantined]:
+    """Return a recorder log's quarantine as set-aside records of the log file (the
+    instrument and position it came from in ``where``)."""
     out = []
     for q in read_quarantine(path):
         raw = q["raw"]
-        text = raw.decode("utf-8", "backslashreplace") if isinstance(raw, bytes) else str(raw)
+        data = raw if isinstance(raw, bytes) else str(raw).encode("utf-8", "surrogateescape")
         where = f"quarantine id {q['id']}, {q['source']} {q['location']}"
-        out.append(Rejected(0, text, f"{where}: {q['reason']}"))
+        out.append(Quarantined(float(q["t"]), path, where, str(q["reason"]), data))  # type: ignore[arg-type]
     return out
 
 
@@ -188,6 +189,7 @@ def record_summaries(paths: list[str], result: dict[str, object]) -> int:
     """
     from monitor import __version__
     from monitor.recorder import Recorder
+    from monitor.schema import run_record
 
     if len(paths) != 1 or not is_recorder_log(paths[0]):
         raise LogFormatError("--record needs exactly one recorder (SQLite) log")
@@ -195,10 +197,6 @@ def record_summaries(paths: list[str], result: dict[str, object]) -> int:
     assert isinstance(runs, list)
     with Recorder(paths[0], version=__version__, config_text=None) as rec:
         for run in runs:
-            start = run.get("start_utc")
-            start_t = datetime.fromisoformat(start).timestamp() if start else 0.0
-            length = (run.get("end_s") or 0.0) - (run.get("start_s") or 0.0)
-            rec.add_run(str(run["vessel"]), str(run["run"]), start_t, start_t + length,
-                        {"source": "replay", **run})  # fmt: skip
+            rec.add_run(**run_record({"source": "replay", **run}))
         rec.add_event(time.time(), "summaries", "replay", f"{len(runs)} run summaries")
     return len(runs)

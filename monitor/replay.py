@@ -188,7 +188,7 @@ def summary_table(result: dict[str, object]) -> str:
     if quarantined:
         lines.append(f"{len(quarantined)} rows set aside:")  # type: ignore[arg-type]
         for q in quarantined[:20]:  # type: ignore[index]
-            lines.append(f"  {q['file']} line {q['line']}: {q['reason']}")
+            lines.append(f"  {q['file']} {q['where']}: {q['reason']}")
         if len(quarantined) > 20:  # type: ignore[arg-type]
             lines.append(f"  ... and {len(quarantined) - 20} more (see --json)")  # type: ignore[arg-type]
     return "\n".join(lines)

@@ -24,6 +24,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
+from drivers.channels import Quarantined
 from drivers.errors import LogFormatError
 from monitor import batchfit
 from monitor.batchfit import FitBudget
@@ -41,20 +42,6 @@ REFILL_WINDOW_S = 30.0
 #: Room temperature of the standing-loss figure, °C (the ambient of the storage-heater
 #: standing-loss test in EN 60379 / IEC 60379:1987, from memory, no source checked).
 STANDING_LOSS_ROOM_C = 20.0
-
-
-@dataclass
-class Quarantined:
-    """A row set aside: where it was, why, and the raw text."""
-
-    file: str
-    line: int
-    reason: str
-    raw: str
-
-    def as_dict(self) -> dict[str, object]:
-        """Return the row as a JSON-ready dict."""
-        return {"file": self.file, "line": self.line, "reason": self.reason, "raw": self.raw}
 
 
 @dataclass
@@ -153,7 +140,7 @@ def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quaranti
     counters: dict[str, int] = {}
     for log in logs:
         _check_columns(log)
-        quarantined += [Quarantined(log.path, r.line, r.reason, r.raw) for r in log.rejected]
+        quarantined += log.rejected
         default_vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
         open_runs: dict[str, Run] = {}
         splitters: dict[str, RunSplitter] = {}  # a new file starts every vessel afresh

@@ -227,3 +227,12 @@ def flag_record(t: float, vessel: str, flag: Flag) -> dict[str, object]:
     the recorder's ``flags`` row: ``t``, ``vessel``, ``name``, ``level``, ``message``,
     ``evidence``."""
     return {"t": t, "vessel": vessel, **flag.as_dict()}
+
+
+def run_record(summary: Mapping[str, object]) -> dict[str, object]:
+    """Return the ``runs`` row of a run summary (docs/run-summary.md), live or replayed:
+    the vessel, the run's label, its first and last step (Unix s) and the summary."""
+    start_t = summary.get("start_t")
+    return {"vessel": str(summary["vessel"]), "run": str(summary["run"]),
+            "start_t": float(start_t) if isinstance(start_t, int | float) else 0.0,
+            "end_t": summary.get("end_t"), "summary": dict(summary)}  # fmt: skip

@@ -72,7 +72,7 @@ from monitor.batchfit import FitBudget, warm_up
 from monitor.config import Instrument, MqttSettings, RigConfig
 from monitor.live import LiveVessel
 from monitor.recorder import Recorder
-from monitor.schema import flag_record, flatten_estimate
+from monitor.schema import flag_record, flatten_estimate, run_record
 
 log = logging.getLogger("ebullio.service")
 
@@ -543,7 +543,7 @@ class Service:
         e = vessel.step(step)
         if vessel.ended:  # a run ended: its summary and drift flags go in the log now
             assert self._recorder is not None
-            self._recorder.put("runs", [_run_row(r) for r in vessel.ended])
+            self._recorder.put("runs", [run_record(r) for r in vessel.ended])
             vessel.ended = []
         for t, label in vessel.begun:  # kept, so a restart numbers on after a killed run
             self._event(t, RUN_BEGUN, vessel.vessel, label)
@@ -706,7 +706,7 @@ class Service:
         def end(vessel: LiveVessel) -> None:
             summary = vessel.end_run()
             if summary is not None:
-                rows.append(_run_row(summary | {"ended_by": "stop"}))
+                rows.append(run_record(summary | {"ended_by": "stop"}))
 
         for vessel in self.vessels.values():
             self._isolated(vessel, None, lambda v=vessel: end(v))
@@ -745,12 +745,6 @@ async def _cancel_all(tasks: list[asyncio.Task[None]], patience_s: float = 10.0)
 
 #: The event kind recorded as a vessel's run begins (source: the vessel; detail: its label).
 RUN_BEGUN = "run_begun"
-
-
-def _run_row(summary: dict[str, object]) -> dict[str, object]:
-    """Return the recorder's ``runs`` row of a live run summary."""
-    return {"vessel": summary["vessel"], "run": summary["run"], "start_t": summary["start_t"],
-            "end_t": summary["end_t"], "summary": summary}  # fmt: skip
 
 
 def _earlier_runs(path: str) -> tuple[dict[str, list[dict[str, object]]], dict[str, int]]:

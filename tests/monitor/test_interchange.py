@@ -70,7 +70,7 @@ def test_bad_rows_are_kept_with_line_and_reason_and_reading_goes_on():
     assert "2 cells where the header has 3" in reasons[6]
     assert "bad time 'x'" in reasons[7]
     assert "'water_c' holds 'nan', not a number" in reasons[8]
-    assert next(r.raw for r in log.rejected if r.line == 5) == "1,hot,2000"
+    assert next(r.text for r in log.rejected if r.line == 5) == "1,hot,2000"
 
 
 @pytest.mark.parametrize(
@@ -132,7 +132,7 @@ def test_any_bytes_are_read_and_bad_lines_set_aside_with_where_and_why(tmp_path)
     assert rejected.line == 4
     assert "not UTF-8" in rejected.reason
     assert "0xff" in rejected.reason
-    assert "\\xff" in rejected.raw  # the byte kept, escaped
+    assert "\\xff" in rejected.text  # the byte kept, escaped
     huge = read_csv(
         _file_with(tmp_path, "huge.csv", lambda b: b.replace(b"20.5", b'"' + b"9" * 200_000 + b'"'))
     )

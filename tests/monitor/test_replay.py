@@ -261,3 +261,25 @@ def test_replay_json_follows_the_documented_schema(capsys):
     broken["runs"][0]["verdict"]["status"] = "fine"  # not a verdict: the schema says so
     with pytest.raises(jsonschema.ValidationError):
         jsonschema.validate(broken, schema)
+
+
+def test_set_aside_input_is_one_record_from_a_csv_and_from_a_recorder_log(tmp_path) -> None:
+    """Issue 15: one record type for set-aside input, whatever read it."""
+    from drivers.channels import Quarantined
+    from monitor.recorder import Recorder
+
+    csv_log = tmp_path / "bad.csv"
+    csv_log.write_text("time_s,water_c,power_w\n0,20,0\n1,oops,0\n2,20.1,0\n", encoding="utf-8")
+    (row,) = replay([str(csv_log)])["quarantined"]
+    assert row["file"] == str(csv_log)
+    assert (row["line"], row["where"], row["t"], row["raw"]) == (3, "line 3", None, "1,oops,0")
+    sqlite_log = tmp_path / "bad.sqlite"
+    received_t = 1_767_225_600.0
+    with Recorder(sqlite_log, version="test", config_text=None) as rec:
+        rec.add_quarantined([Quarantined(received_t, "serial:///dev/ttyUSB0", "line 12",
+                                         "not a number", b"water=\xff")])  # fmt: skip
+    (row,) = replay([str(sqlite_log)])["quarantined"]
+    assert row["file"] == str(sqlite_log)
+    assert row["where"] == "quarantine id 1, serial:///dev/ttyUSB0 line 12"
+    assert (row["line"], row["t"], row["reason"]) == (0, received_t, "not a number")
+    assert row["raw"] == "water=\\xff"  # the byte that is not UTF-8, kept and escaped
