@@ -306,24 +306,27 @@ def _table_runs(path: str) -> list[dict[str, object]]:
 
 
 def _pick_run(runs: list, vessel: str, label: str, span: tuple[float, float] | None):
-    """Return the split run of ``vessel`` that overlaps ``span`` most (else labelled ``label``).
+    """Return the split run of ``vessel`` labelled ``label``, else the one that overlaps
+    ``span`` (Unix s) most.
 
-    The live service numbers runs as it goes; the replay numbers them over the whole
-    log, and the two can differ (a restart, say), so a run listed from the runs table
-    is found again by its time span.
+    The live service and the replay number runs alike (:mod:`monitor.runs`), so the
+    label finds the run; the span (Unix s) checks it. A log recorded before they did
+    could number them apart after a restart: there the span decides.
     """
     mine = [r for r in runs if r.vessel == vessel and r.rows]
-    if span is not None and mine:
+    labelled = next((r for r in mine if r.label == label), None)
+    if span is None or not mine:
+        return labelled
 
-        def overlap(r) -> float:
-            start = r.log.start_epoch_s or 0.0
-            lo, hi = start + r.rows[0].time_s, start + r.rows[-1].time_s
-            return min(hi, span[1]) - max(lo, span[0])
+    def overlap(r) -> float:
+        start = r.log.start_epoch_s or 0.0
+        lo, hi = start + r.rows[0].time_s, start + r.rows[-1].time_s
+        return min(hi, span[1]) - max(lo, span[0])
 
-        best = max(mine, key=overlap)
-        if overlap(best) >= 0.0:
-            return best
-    return next((r for r in mine if r.label == label), None)
+    if labelled is not None and overlap(labelled) >= 0.0:
+        return labelled  # the label and the time agree
+    best = max(mine, key=overlap)
+    return best if overlap(best) >= 0.0 else labelled
 
 
 def replay_label(path: str, vessel: str, label: str, span: tuple[float, float]) -> str:
