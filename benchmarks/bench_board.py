@@ -38,7 +38,7 @@ from dashboard.app import create_app
 from dashboard.jobs import Jobs
 from dashboard.views import fleet, maintenance, replay, vessel
 from drivers.sample import Quality, Sample
-from monitor.recorder import Recorder
+from monitor.records.recorder import Recorder
 
 START = 1_790_000_000.0  # 2026-09-20, an arbitrary start for the invented log
 
@@ -64,7 +64,8 @@ def make_log(path: str, days: float) -> int:
                              for ch, v in (("water", water), ("element", element),
                                            ("ambient", ambient), ("power", power))])  # fmt: skip
             count += 4
-            rec.add_estimates([{  # the flat form (monitor.schema), the figures the board shows
+            # the flat form (monitor.records.schema), the figures the board shows
+            rec.add_estimates([{
                 "t": t, "vessel": "heater-1", "run": str(i // 86400 + 1),
                 "phase": "heating" if heating else "holding",
                 "water_c": water, "water_mass_kg": 150.0, "water_mass_std": 2.0,

@@ -30,7 +30,7 @@ Clean runs (``--clean-runs``, over ``--clean-vessels`` vessels)
     none seen in N runs, the 95 % upper bound on the rate is 3/N (the rule of three;
     common practice, no source). The clean runs also give each tracked figure's
     run-to-run repeatability (1.4826·MAD over median, per vessel) and the spread of
-    the run diagnostics that the verdict thresholds in :mod:`monitor.drift` rest on.
+    the run diagnostics that the verdict thresholds in :mod:`monitor.runs.drift` rest on.
 """
 
 from __future__ import annotations
@@ -49,10 +49,10 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from drivers.simworld import Scenario, SimulatedRig, kettle_scenario, scenario_metadata
-from monitor import drift as drift_module
-from monitor.drift import VesselDrift, run_checks
-from monitor.interchange import InterchangeLog, rows_from_samples
-from monitor.replay import replay_run, split_runs
+from monitor.records.interchange import InterchangeLog, rows_from_samples
+from monitor.runs import drift as drift_module
+from monitor.runs.drift import VesselDrift, run_checks
+from monitor.runs.replay import replay_run, split_runs
 
 CHANNELS = ["water", "element", "ambient", "power", "voltage"]
 #: What a catalogue says of the parts (our own nominal figures); the drawn truth differs.

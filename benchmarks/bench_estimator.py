@@ -9,7 +9,7 @@ Run from the repository root:
 Each seed draws one kettle and one storage heater from ``np.random.default_rng(seed)``
 and simulates each once; every model of that vessel (two-node: with the element
 thermocouple, one-node: without it) is fed the same samples, exactly as
-``monitor.replay.replay_run`` feeds a log. Progress goes to stderr, one JSON object
+``monitor.runs.replay.replay_run`` feeds a log. Progress goes to stderr, one JSON object
 to stdout.
 
 Conventions of the output
@@ -62,12 +62,13 @@ from drivers.simworld import (
     scenario_metadata,
     water_heater_scenario,
 )
-from monitor import __version__, transition, water
+from monitor import __version__
 from monitor.cli import SIM_CHANNELS
-from monitor.contracts import Estimate, Estimated
-from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
-from monitor.interchange import read_csv, rows_from_samples, write_csv
-from monitor.replay import replay
+from monitor.estimation.contracts import Estimate, Estimated
+from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.physics import transition, water
+from monitor.records.interchange import read_csv, rows_from_samples, write_csv
+from monitor.runs.replay import replay
 
 KETTLE_DURATION_S = 900.0  # heat-up, boil, switch-off and about ten minutes of cooling
 HEATER_DURATION_S = 10 * 3600.0  # heat-up (up to ~4.5 h for 150 kg) and 4 h of standby
@@ -721,7 +722,7 @@ def write_heater_log(path: Path, days: float, seed: int) -> int:
 
 
 def timed_replay(path: str) -> dict[str, float | int]:
-    """Return seconds, steps and peak RSS of ``monitor.replay.replay`` on one log.
+    """Return seconds, steps and peak RSS of ``monitor.runs.replay.replay`` on one log.
 
     Meant to run in a fresh process, so the peak RSS is the replay's own (plus the
     interpreter and its imports, given separately as ``rss_before_replay_mib``).

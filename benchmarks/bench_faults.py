@@ -60,15 +60,15 @@ sys.path.insert(0, str(ROOT))
 
 from drivers.emulators.line_logger import logger_bindings, open_pty_pair  # noqa: E402
 from drivers.serial_line import SerialLineDriver  # noqa: E402
-from monitor.config import parse_config  # noqa: E402
-from monitor.recorder import (  # noqa: E402
+from monitor.records.recorder import (  # noqa: E402
     head_path,
     read_events,
     read_quarantine,
     read_samples,
     verify,
 )
-from monitor.service import Service  # noqa: E402
+from monitor.rig.config import parse_config  # noqa: E402
+from monitor.rig.service import Service  # noqa: E402
 from tests.support.mosquitto import MosquittoBroker  # noqa: E402
 
 PREFIX = "fault"
@@ -324,7 +324,7 @@ async def fuzz_serial(work: Path, count: int) -> dict[str, object]:
     rng = random.Random(41)
     master_fd, slave_path = open_pty_pair()
     spec, bindings = logger_bindings("line-1", "K")
-    from monitor.config import RigConfig, VesselSpec
+    from monitor.rig.config import RigConfig, VesselSpec
 
     meta: dict[str, str | float] = {"vessel_heat_capacity_j_per_k": 900.0, "rated_power_w": 2000.0}
     config = RigConfig(
@@ -370,7 +370,7 @@ def part_tamper(work: Path) -> dict[str, object]:
     from dataclasses import replace as dc_replace
 
     from drivers.simworld import SimulatedRig, kettle_scenario
-    from monitor.recorder import Recorder
+    from monitor.records.recorder import Recorder
 
     base = work / "tamper-base.sqlite"
     scenario = dc_replace(kettle_scenario(), duration_s=200.0)

@@ -46,7 +46,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from drivers.simworld import SimulatedRig, kettle_scenario  # noqa: E402
-from monitor.recorder import verify  # noqa: E402
+from monitor.records.recorder import verify  # noqa: E402
 from tests.support.mosquitto import MosquittoBroker  # noqa: E402
 
 PREFIX = "bench"

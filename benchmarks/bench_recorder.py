@@ -37,7 +37,7 @@ import numpy as np
 
 from drivers.sample import Sample
 from monitor import __version__
-from monitor.recorder import Recorder, read_samples, verify
+from monitor.records.recorder import Recorder, read_samples, verify
 
 TARGET_SAMPLES_PER_S = 20_000
 CHANNELS = ("water", "water_top", "element", "ambient", "power", "energy",

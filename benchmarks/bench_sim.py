@@ -11,7 +11,7 @@ import time
 import timeit
 
 from drivers.simworld import SimulatedRig, kettle_scenario, water_heater_scenario
-from monitor import model
+from monitor.physics import model
 
 
 def _sim_rate(scenario) -> dict[str, float]:

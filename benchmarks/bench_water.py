@@ -1,4 +1,4 @@
-"""Time monitor.water's fast path against iapws.IAPWS97 and measure its error; print JSON.
+"""Time monitor.physics.water's fast path against iapws.IAPWS97 and measure its error; print JSON.
 
 Run from the repository root:
 
@@ -6,7 +6,7 @@ Run from the repository root:
 
 The output is one JSON object:
 
-- ``import_s``: a fresh interpreter's ``import monitor.water`` (no tables built);
+- ``import_s``: a fresh interpreter's ``import monitor.physics.water`` (no tables built);
 - ``first_call_s``: building every table (includes importing iapws);
 - ``us_per_call``: microseconds per scalar call of each fast function and of the
   equivalent ``iapws.IAPWS97`` computation (best of several repeats, so the figure
@@ -33,7 +33,7 @@ from importlib.metadata import version
 import numpy as np
 
 from drivers.constants import KPA_PER_MPA, STANDARD_PRESSURE_KPA, ZERO_CELSIUS_K
-from monitor import water
+from monitor.physics import water
 
 T_GRID_C = np.round(np.arange(1.0, 100.0 + 1e-9, 0.05), 10)  # 1981 temperatures
 P_GRID_KPA = np.arange(50.0, 110.0 + 1e-9, 2.5)  # 25 pressures
@@ -56,10 +56,9 @@ def _best_us(
 
 
 def _import_seconds() -> float:
-    """Return the seconds a fresh interpreter spends on ``import monitor.water``."""
-    code = (
-        "import time; t = time.perf_counter(); import monitor.water; print(time.perf_counter() - t)"
-    )
+    """Return the seconds a fresh interpreter spends on ``import monitor.physics.water``."""
+    code = ("import time; t = time.perf_counter(); import monitor.physics.water; "
+            "print(time.perf_counter() - t)")
     out = subprocess.run(
         [sys.executable, "-c", code], check=True, capture_output=True, text=True
     ).stdout

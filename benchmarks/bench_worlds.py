@@ -45,7 +45,7 @@ What the estimator is given, and what not
     (the thermostat setpoint; a kettle has none, so the estimator aims at its own
     boiling point for the site pressure). Not the element's capacity, not the
     sensor lags, not the fill or volume, not the noise. Default
-    ``EstimatorSettings()``. It is stepped exactly as ``monitor.replay.replay_run``
+    ``EstimatorSettings()``. It is stepped exactly as ``monitor.runs.replay.replay_run``
     steps a log, ``est.step(t_s, readings)`` once per instant with the channels
     ``water``, ``element``, ``ambient``, ``power``, ``energy`` and ``voltage`` that
     the instant has (a dropout is a missing key).
@@ -145,12 +145,13 @@ from drivers.simworld import (
     kettle_scenario,
     water_heater_scenario,
 )
-from monitor import __version__, water
-from monitor.contracts import Estimate
-from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor import __version__
+from monitor.estimation.contracts import Estimate
+from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.physics import water
 
 KETTLE, HEATER = "kettle", "heater"
-#: The channels the estimator is fed, as monitor.replay feeds a log.
+#: The channels the estimator is fed, as monitor.runs.replay feeds a log.
 CHANNELS = ("water", "element", "ambient", "power", "energy", "voltage")
 DECILES = tuple(round(0.1 * k, 1) for k in range(1, 10))
 FRACTIONS = tuple(sorted((*DECILES, 0.25)))

@@ -27,7 +27,7 @@ from dash import Dash, Input, Output, dcc, html
 from dashboard import data, ids
 from dashboard.jobs import Jobs
 from dashboard.views import fleet, maintenance, replay, vessel
-from monitor.safety import SAFETY_TEXT
+from monitor.reports.safety import SAFETY_TEXT
 
 STYLE = """
 body { font-family: system-ui, sans-serif; margin: 0; color: #1d1d1d; background: #fbfbfa; }
@@ -126,7 +126,7 @@ class IntegrityWatch:
         self._thread.start()
 
     def _run(self) -> None:
-        from monitor.logs import log_integrity
+        from monitor.runs.logs import log_integrity
 
         while True:
             checks = []
@@ -142,7 +142,7 @@ class IntegrityWatch:
 
     def warnings(self) -> list[str]:
         """Return one sentence per log that is not intact (none before the first check)."""
-        from monitor.logs import integrity_warnings
+        from monitor.runs.logs import integrity_warnings
 
         with self._lock:
             return integrity_warnings(self._checks)
@@ -268,7 +268,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         from flask import Response, request
 
         from drivers.errors import EbullioError
-        from monitor.logs import export_run_csv
+        from monitor.runs.logs import export_run_csv
 
         vessel_id, run = request.args.get("vessel", ""), request.args.get("run", "")
         out = io.StringIO()

@@ -1,11 +1,11 @@
 """What the board shows, read from a log: the only module of the board that does I/O.
 
 :func:`load_snapshot` reads a recorder (SQLite) log read-only through the recorder's
-own reader (:class:`monitor.recorder.LogReader`), so ``ebullio run`` can keep writing
+own reader (:class:`monitor.records.recorder.LogReader`), so ``ebullio run`` can keep writing
 it (WAL), and returns a JSON-ready snapshot that the views' callbacks turn into
 figures without touching the file. A CSV log is replayed once through the estimator
 instead. Either way an estimate arrives in its one flat form
-(:func:`monitor.schema.flatten_estimate`); this module only picks what the board
+(:func:`monitor.records.schema.flatten_estimate`); this module only picks what the board
 shows of it and shapes it for display: no SQL here. Long series are downsampled for
 display with a min/max envelope (:func:`envelope`): each bucket keeps its lowest and
 highest point, so spikes and switch-offs stay visible; every figure on the board is
@@ -20,8 +20,8 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.recorder import LogReader, is_recorder_log
-from monitor.schema import flatten_estimate
+from monitor.records.recorder import LogReader, is_recorder_log
+from monitor.records.schema import flatten_estimate
 
 #: Points per series sent to the browser at most (about two per horizontal pixel).
 MAX_POINTS = 2400
@@ -54,7 +54,7 @@ def envelope(
     return ts[picked].tolist(), ys[picked].tolist()
 
 
-#: What the charts draw of each estimate (names of the one mapping, monitor.schema).
+#: What the charts draw of each estimate (names of the one mapping, monitor.records.schema).
 CHART_KEYS = ("t", "phase", "water_c", "water_mass_kg", "water_mass_std", "ua_w_per_k", "ua_std",
               "element_conductance_w_per_k", "element_conductance_std", "target_c",
               "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s")  # fmt: skip
@@ -88,11 +88,11 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
     ``runs`` are the log's run rows in order (summaries parsed). Each vessel gets its
     last run's label and times, that run's own flags, its drift flags, its status (the
     worst level of the two, as ``ebullio fleet`` gives it) and verdict
-    (:func:`monitor.drift.verdict_of`: trusted, or doubtful and not judged, with the
+    (:func:`monitor.runs.drift.verdict_of`: trusted, or doubtful and not judged, with the
     reasons), and the scaling index (1 - G/G0) of the latest scaling flag among all
     its runs, if any.
     """
-    from monitor.drift import verdict_of, worst_level
+    from monitor.runs.drift import verdict_of, worst_level
 
     out: dict[str, dict[str, object]] = {}
     for row in runs:
@@ -196,9 +196,9 @@ def replay_csv(path: str) -> dict[str, object]:
     A CSV log does not change, so the board asks for this once per file (see
     :class:`dashboard.app.Memo`).
     """
-    from monitor.drift import drift_over_runs
-    from monitor.interchange import read_csv
-    from monitor.runs import split_runs
+    from monitor.records.interchange import read_csv
+    from monitor.runs.drift import drift_over_runs
+    from monitor.runs.run import split_runs
 
     log = read_csv(path)
     runs, _ = split_runs([log])
@@ -220,13 +220,13 @@ def replay_csv(path: str) -> dict[str, object]:
 def replay_one(
     run, progress: Callable[[float], None] | None = None, max_points: int = MAX_POINTS
 ) -> dict[str, object]:
-    """Replay one run (monitor.replay.Run): its series, estimates, latest, and summary.
+    """Replay one run (monitor.runs.replay.Run): its series, estimates, latest, and summary.
 
     Every estimate is computed; every n-th is kept for the charts (at most about
     ``max_points``, and always the last), so a week-long run does not hold a week of
     estimate rows. ``progress(fraction)`` is told how far the replay has got.
     """
-    from monitor.replay import replay_run
+    from monitor.runs.replay import replay_run
 
     start = run.log.start_epoch_s or 0.0
     rows: list[dict[str, object]] = []
@@ -259,13 +259,13 @@ def replay_one(
 
 
 def split_log(path: str, vessel: str | None = None) -> list:
-    """Return the runs of a log as the replay splits them (monitor.replay.Run objects).
+    """Return the runs of a log as the replay splits them (monitor.runs.replay.Run objects).
 
     Reads the whole log, or of a recorder log only ``vessel``'s samples (the same path
     as ``ebullio replay``; a fleet's log is not read whole to replay one vessel).
     """
-    from monitor.logs import read_log
-    from monitor.runs import split_runs
+    from monitor.runs.logs import read_log
+    from monitor.runs.run import split_runs
 
     return split_runs(read_log(path, vessel))[0]
 
@@ -309,7 +309,7 @@ def _pick_run(runs: list, vessel: str, label: str, span: tuple[float, float] | N
     """Return the split run of ``vessel`` labelled ``label``, else the one that overlaps
     ``span`` (Unix s) most.
 
-    The live service and the replay number runs alike (:mod:`monitor.runs`), so the
+    The live service and the replay number runs alike (:mod:`monitor.runs.run`), so the
     label finds the run; the span (Unix s) checks it. A log recorded before they did
     could number them apart after a restart: there the span decides.
     """
@@ -346,12 +346,12 @@ def audit_report(
     span: tuple[float, float] | None = None,
     progress: Callable[[float], None] | None = None,  # noqa: ARG001 (the report says none)
 ) -> str:
-    """Return the audit report page of a run (:func:`monitor.report.build_report`).
+    """Return the audit report page of a run (:func:`monitor.reports.report.build_report`).
 
     ``span`` (Unix s) finds a live-recorded run by its time (:func:`replay_label`).
     The board makes it as a job; ``progress`` is not told anything.
     """
-    from monitor.report import build_report
+    from monitor.reports.report import build_report
 
     if span is not None and vessel:
         label = replay_label(path, vessel, label or "", span)
@@ -399,7 +399,7 @@ def run_history(
     board has run already) when given. Otherwise, or when the table holds none with
     figures, the whole log is replayed (the figures come from the full data).
     """
-    from monitor.drift import RULES, baselines_of, verdict_of
+    from monitor.runs.drift import RULES, baselines_of, verdict_of
 
     if is_recorder_log(path):
         runs = _recorded_summaries(path)
@@ -408,7 +408,7 @@ def run_history(
     else:
         runs = []
     if not runs:
-        from monitor.replay import replay
+        from monitor.runs.replay import replay
 
         runs = [r for r in replay([path])["runs"] if isinstance(r, dict)]  # type: ignore[union-attr]
     names = sorted({str(r["vessel"]) for r in runs})
@@ -423,8 +423,8 @@ def run_history(
 
 
 def _recorded_summaries(path: str) -> list[dict[str, object]]:
-    from monitor.interchange import iso_utc
-    from monitor.recorder import read_runs
+    from monitor.records.interchange import iso_utc
+    from monitor.records.recorder import read_runs
 
     found: dict[str, list[dict[str, object]]] = {"replay": [], "live": []}
     for row in read_runs(path):

@@ -1,8 +1,10 @@
-"""The board's wording helpers: levels as words and shapes, durations (colours: monitor.plots)."""
+"""The board's wording helpers: levels as words and shapes, durations.
+
+The colours are monitor.reports.plots's."""
 
 from __future__ import annotations
 
-from monitor.drift import LEVEL_RANK, VERDICT_MARK, worst_level  # the one ranking of levels
+from monitor.runs.drift import LEVEL_RANK, VERDICT_MARK, worst_level  # the one ranking of levels
 
 __all__ = ["LEVEL_RANK", "VERDICT_MARK", "worst_level"]
 
@@ -27,7 +29,7 @@ LEVEL_MARK = {"alarm": "▲ alarm", "warning": "● warning", "notice": "○ not
 def verdict_mark(verdict: dict | None) -> str:
     """Return a run verdict as its mark ('✕ doubtful: not judged'), or '-' for none.
 
-    The marks are monitor.drift.VERDICT_MARK, the report's own.
+    The marks are monitor.runs.drift.VERDICT_MARK, the report's own.
     """
     status = str((verdict or {}).get("status"))
     return VERDICT_MARK.get(status, "-")

@@ -1,6 +1,6 @@
 """Reading a table of the rig configuration (TOML), with errors that name file, key and reason.
 
-:class:`ConfigTable` is what ``monitor/config.py`` reads the whole file with, and what a
+:class:`ConfigTable` is what ``monitor/rig/config.py`` reads the whole file with, and what a
 driver's ``read_table`` (see :mod:`drivers.registry`) reads its ``[[instruments]]``
 table with, so every driver's options are checked and reported the same way. It lives
 in ``drivers/`` because ``drivers/`` may import nothing from ``monitor/``.

@@ -540,5 +540,5 @@ class MqttPublisher:
 
 
 #: The driver registry's entry (drivers/registry.py). Its URL is configured in ``[mqtt]``,
-#: which monitor/config.py reads itself: the estimates are published there too.
+#: which monitor/rig/config.py reads itself: the estimates are published there too.
 DRIVER = DriverKind("mqtt", tuple(DEFAULT_PORTS), MqttDriver, configured_in=MQTT)

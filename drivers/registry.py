@@ -11,7 +11,7 @@ Who asks:
 * :func:`open_source` (``url, **options``) returns a driver, not yet entered (use it
   with ``async with``). The live service opens every source through it: each
   configured instrument and the MQTT broker.
-* ``monitor/config.py`` asks :func:`driver_kind` which driver reads an
+* ``monitor/rig/config.py`` asks :func:`driver_kind` which driver reads an
   ``[[instruments]]`` URL and hands that driver's ``read_table`` the table; the
   ``[mqtt]`` URL must be a driver's whose ``configured_in`` is ``"[mqtt]"``. An
   unknown scheme is refused with the known ones named.
@@ -34,7 +34,7 @@ from drivers.errors import ConfigError
 #: Where a driver's URL is configured: an ``[[instruments]]`` table of its own, read by
 #: its ``read_table``.
 INSTRUMENTS = "[[instruments]]"
-#: ... or the ``[mqtt]`` table, which ``monitor/config.py`` reads itself because the
+#: ... or the ``[mqtt]`` table, which ``monitor/rig/config.py`` reads itself because the
 #: estimates are published there too.
 MQTT = "[mqtt]"
 
@@ -44,7 +44,7 @@ class DriverKind:
     """What the registry knows of one driver, declared as ``DRIVER`` in the driver's module.
 
     * ``name``: a short word for the kind (``serial``, ``modbus``); a configured
-      instrument keeps it (``monitor.config.Instrument.kind``).
+      instrument keeps it (``monitor.rig.config.Instrument.kind``).
     * ``schemes``: the URL schemes it reads, the same as its line in :data:`DRIVERS`.
     * ``factory``: ``factory(url, **options)`` returns a driver, not yet entered: an
       async context manager with ``async def samples()``. An instrument's factory is

@@ -24,10 +24,10 @@ from drivers.simworld import (
     scenario_metadata,
 )
 from monitor import __version__
-from monitor.interchange import rows_from_samples, write_csv
-from monitor.replay import replay, summary_table
-from monitor.safety import SAFETY_NOTE
-from monitor.water import boiling_point_c, pressure_at_altitude_kpa
+from monitor.physics.water import boiling_point_c, pressure_at_altitude_kpa
+from monitor.records.interchange import rows_from_samples, write_csv
+from monitor.reports.safety import SAFETY_NOTE
+from monitor.runs.replay import replay, summary_table
 
 log = logging.getLogger("ebullio")
 
@@ -120,7 +120,7 @@ def cmd_simulate(args: argparse.Namespace) -> int:
 
 
 async def _demo(args: argparse.Namespace) -> int:
-    from monitor.demo import run_demo
+    from monitor.rig.demo import run_demo
 
     scenario = _scenario_from(args)
     print(SAFETY_NOTE)
@@ -160,8 +160,8 @@ DEMO_LOG = "out/demo.sqlite"
 def _demo_log(args: argparse.Namespace) -> str:
     """Return the demo's log: ``--out``, or :data:`DEMO_LOG` unless a demo at this speed
     would have to slow down to follow its readings; then the next free ``demo-N.sqlite``."""
-    from monitor.demo import demo_start_s
-    from monitor.recorder import last_sample_t
+    from monitor.records.recorder import last_sample_t
+    from monitor.rig.demo import demo_start_s
 
     if args.out is not None:
         return str(args.out)
@@ -196,7 +196,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         if estimates is not None:
             estimates.close()
     if args.record:
-        from monitor.logs import record_summaries
+        from monitor.runs.logs import record_summaries
 
         count = record_summaries(args.logs, result)
         print(f"replay: recorded {count} run summaries in {', '.join(args.logs)}", file=sys.stderr)
@@ -210,7 +210,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 def _say_integrity(checks: list[dict[str, object]]) -> int:
     """Print a warning for each recorder log that is not intact; return 1 if any, else 0."""
-    from monitor.logs import integrity_warnings
+    from monitor.runs.logs import integrity_warnings
 
     warnings = integrity_warnings(checks)
     for line in warnings:
@@ -220,7 +220,7 @@ def _say_integrity(checks: list[dict[str, object]]) -> int:
 
 def cmd_run(args: argparse.Namespace) -> int:
     """Run the live service from a rig configuration until SIGINT or SIGTERM."""
-    from monitor.config import load_config
+    from monitor.rig.config import load_config
 
     config = load_config(args.config)
     Path(args.log).parent.mkdir(parents=True, exist_ok=True)
@@ -234,7 +234,7 @@ async def _run_service(config, log_path: str, for_s: float | None):
     """Run the service with signal handlers installed; return its counters."""
     import signal
 
-    from monitor.service import Service
+    from monitor.rig.service import Service
 
     service = Service(config, log_path)
     loop = asyncio.get_running_loop()
@@ -255,7 +255,7 @@ def cmd_verify(args: argparse.Namespace) -> int:
     """Check a recorder log's hash chain; exit 1 when it is broken."""
     import os
 
-    from monitor.recorder import verify
+    from monitor.records.recorder import verify
 
     key = None
     if args.key_env:
@@ -298,11 +298,11 @@ def cmd_verify(args: argparse.Namespace) -> int:
 
 def cmd_export(args: argparse.Namespace) -> int:
     """Write one vessel of a log as a CSV interchange file."""
-    from monitor.logs import export_csv
+    from monitor.runs.logs import export_csv
 
     out_path = Path(args.csv)
     out_path.parent.mkdir(parents=True, exist_ok=True)
-    from monitor.logs import log_integrity
+    from monitor.runs.logs import log_integrity
 
     with open(out_path, "w", encoding="utf-8", newline="") as out:
         rows = export_csv(args.log, out, args.vessel)
@@ -312,7 +312,7 @@ def cmd_export(args: argparse.Namespace) -> int:
 
 def cmd_fleet(args: argparse.Namespace) -> int:
     """Print every vessel in the logs, worst first, with its drift status."""
-    from monitor.drift import fleet_rows, fleet_table
+    from monitor.runs.drift import fleet_rows, fleet_table
 
     result = replay(args.logs, progress=sys.stderr)
     rows = fleet_rows(result)
@@ -327,9 +327,9 @@ def cmd_fleet(args: argparse.Namespace) -> int:
 
 def cmd_report(args: argparse.Namespace) -> int:
     """Write the audit report of one run as a self-contained HTML file."""
-    from monitor.logs import log_integrity
-    from monitor.recorder import is_recorder_log, verify
-    from monitor.report import build_report
+    from monitor.records.recorder import is_recorder_log, verify
+    from monitor.reports.report import build_report
+    from monitor.runs.logs import log_integrity
 
     # one pass over the chain for both the report's integrity section and the warning
     verified = verify(args.log) if is_recorder_log(args.log) else None
@@ -339,7 +339,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     out.write_text(page, encoding="utf-8")
     print(f"wrote the report to {out} ({len(page) // 1024} KiB, opens offline)", file=sys.stderr)
     if args.pdf:
-        from monitor.report import print_pdf
+        from monitor.reports.report import print_pdf
 
         pdf = out.with_suffix(".pdf")
         print_pdf(out, pdf)

@@ -42,7 +42,7 @@ def _module_imports(path: Path, package: str, modules: set[str]) -> set[str]:
 
     ``modules`` are the package's module names, subpackages' included: an import names
     the longest of them it reaches (``from drivers.simworld.rig import X`` is
-    ``drivers.simworld.rig``; ``from monitor import water`` is ``monitor.water``).
+    ``drivers.simworld.rig``; ``from monitor.physics import water`` is ``monitor.physics.water``).
     """
 
     def known(name: str) -> str:
@@ -95,3 +95,36 @@ def test_no_import_circle_inside_a_package(package):
     for module in graph:
         circle = cycle_from(module)
         assert circle is None, " -> ".join(circle)
+
+
+#: ``monitor``'s subpackages from the bottom up (DEVELOPERS.md has the map). A module may
+#: import its own subpackage and those of lower layers only; ``rig`` and ``reports`` share
+#: a layer and import neither each other.
+MONITOR_LAYERS = (("physics",), ("estimation",), ("records",), ("runs",), ("rig", "reports"),
+                  ("cli",))  # fmt: skip
+
+
+def _monitor_part(name: str) -> str:
+    return name.split(".")[1] if name.count(".") else name
+
+
+def test_monitor_subpackages_import_downwards_only():
+    """Issue 15: the layout shows the architecture, with one direction of imports."""
+    level = {part: i for i, layer in enumerate(MONITOR_LAYERS) for part in layer}
+    paths = sorted((ROOT / "monitor").rglob("*.py"))
+    modules = {_module_name(path) for path in paths}
+    placed = {_monitor_part(m) for m in modules} - {"monitor", "__init__"}
+    assert placed <= set(level), f"subpackages or modules not in a layer: {placed - set(level)}"
+    wrong = []
+    for path in paths:
+        name = _module_name(path)
+        own = _monitor_part(name)
+        if own not in level:
+            continue  # monitor/__init__.py
+        for target in _module_imports(path, "monitor", modules):
+            other = _monitor_part(target)
+            if other == own or other not in level:
+                continue
+            if level[other] >= level[own]:
+                wrong.append(f"{name} imports {target}")
+    assert not wrong, "; ".join(wrong)

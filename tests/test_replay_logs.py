@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import main
-from monitor.interchange import read_csv
+from monitor.records.interchange import read_csv
 
 ROOT = Path(__file__).resolve().parent.parent
 LOGS = ROOT / "replay_logs"

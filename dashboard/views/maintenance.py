@@ -18,13 +18,13 @@ from dash import Dash, Input, Output, dcc, html
 
 from dashboard import ids
 from dashboard.theme import verdict_mark
-from monitor import plots
+from monitor.reports import plots
 
 
 def history_figure(history: dict | None) -> go.Figure:
     """Return the vessel's tracked figures across runs, doubtful runs crossed as not judged.
 
-    :func:`monitor.plots.history_figure`, the audit report's own chart.
+    :func:`monitor.reports.plots.history_figure`, the audit report's own chart.
     """
     history = history or {}
     return plots.history_figure(history.get("runs") or [], history.get("baselines") or {},

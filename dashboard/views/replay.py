@@ -19,7 +19,7 @@ from dash import Dash, Input, Output, Patch, State, dcc, html, no_update
 from dashboard import ids
 from dashboard.theme import iso_minutes
 from dashboard.views.vessel import estimates_figure, figures, readings_figure
-from monitor.plots import PALETTE
+from monitor.reports.plots import PALETTE
 
 UIREVISION = "replay-view"
 

@@ -8,8 +8,8 @@ from dash import Dash, Input, Output, Patch, State, dcc, html, no_update
 
 from dashboard import ids
 from dashboard.theme import CHART_GROUND, LEVEL_MARK, chart_axis, duration_text
-from monitor import plots
-from monitor.plots import PALETTE as COLOURS
+from monitor.reports import plots
+from monitor.reports.plots import PALETTE as COLOURS
 
 UIREVISION = "vessel-view"  # constant: the user's zoom survives updates
 

@@ -1,6 +1,6 @@
 """Water for the simulated world, straight from IAPWS-IF97 (``iapws``).
 
-Not from ``monitor/water.py``: ``drivers/`` imports nothing from ``monitor/``, and the
+Not from ``monitor/physics/water.py``: ``drivers/`` imports nothing from ``monitor/``, and the
 simulated world should not share the estimator's shortcuts (its precomputed tables).
 Liquid properties are memoised on a 0.01 K grid.
 """

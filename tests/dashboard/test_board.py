@@ -20,8 +20,8 @@ from dashboard.data import chart_data, envelope, load_snapshot
 from dashboard.views.fleet import fleet_rows, render_fleet
 from dashboard.views.vessel import chart_update, figures, render_vessel, vessel_options
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-from monitor.config import RigConfig, VesselSpec
-from monitor.service import Service
+from monitor.rig.config import RigConfig, VesselSpec
+from monitor.rig.service import Service
 from tests.monitor.test_service import ListDriver, run_until
 
 
@@ -78,10 +78,10 @@ def test_snapshot_of_a_recorder_log(live_log) -> None:
 
 
 def test_live_and_replayed_estimates_reach_the_board_under_the_same_names(live_log) -> None:
-    """Issue 15: the board draws the one flat form (monitor.schema), whether the recorder
+    """Issue 15: the board draws the one flat form (monitor.records.schema), whether the recorder
     gives it back or a replay of a CSV log makes it."""
     from dashboard.data import CHART_KEYS, LATEST_KEYS, replay_csv
-    from monitor.schema import ESTIMATE_KEYS
+    from monitor.records.schema import ESTIMATE_KEYS
 
     assert set(LATEST_KEYS) <= set(ESTIMATE_KEYS)
     kettle = Path(__file__).resolve().parents[2] / "replay_logs" / "kettle-clean.csv"
@@ -572,7 +572,7 @@ def test_the_board_warns_of_a_log_that_failed_its_integrity_check(live_log, tmp_
 def test_an_empty_maintenance_panel_says_why() -> None:
     """Issue 15: on a kettle log (no voltage or current readings) the panel of the power
     at the rated voltage was empty without a word."""
-    from monitor.plots import history_figure
+    from monitor.reports.plots import history_figure
 
     runs = [{"run": str(k), "verdict": {"status": "trusted", "reasons": []},
              "ua_w_per_k": {"value": 1.0 + 0.01 * k, "std": 0.1},

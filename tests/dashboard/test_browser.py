@@ -19,8 +19,8 @@ from werkzeug.serving import make_server
 
 from dashboard.app import create_app
 from drivers.simworld import kettle_scenario, run_series, scenario_metadata
-from monitor.config import RigConfig, VesselSpec
-from monitor.service import Service
+from monitor.rig.config import RigConfig, VesselSpec
+from monitor.rig.service import Service
 from tests.monitor.test_service import ListDriver, run_until
 
 ARTIFACTS = Path(__file__).resolve().parents[2] / "out" / "test-artifacts"

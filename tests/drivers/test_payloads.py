@@ -230,8 +230,8 @@ def test_every_role_has_a_column_with_its_unit():
 
 
 def test_columns_agree_with_the_csv_interchange_format():
-    # The CSV format (monitor/interchange.py) names the same columns for the roles it has.
-    from monitor.interchange import CHANNEL_COLUMNS as CSV_COLUMNS
+    # The CSV format (monitor/records/interchange.py) names the same columns for the roles it has.
+    from monitor.records.interchange import CHANNEL_COLUMNS as CSV_COLUMNS
 
     for role, column in CSV_COLUMNS.items():
         assert CHANNEL_COLUMNS[role] == column

@@ -166,9 +166,9 @@ unit = "W"
 
 
 def test_a_driver_added_to_the_registry_alone_is_configured_and_opened(bench_driver, tmp_path):
-    from monitor.config import parse_config
-    from monitor.recorder import read_samples
-    from monitor.service import Service
+    from monitor.records.recorder import read_samples
+    from monitor.rig.config import parse_config
+    from monitor.rig.service import Service
 
     config = parse_config(BENCH_RIG, "rig.toml", {})
     (inst,) = config.instruments
@@ -207,7 +207,7 @@ def test_a_driver_added_to_the_registry_alone_is_configured_and_opened(bench_dri
 )
 @pytest.mark.usefixtures("bench_driver")
 def test_the_added_drivers_table_is_checked_like_any_other(change, needle):
-    from monitor.config import parse_config
+    from monitor.rig.config import parse_config
 
     with pytest.raises(ConfigError) as caught:
         parse_config(BENCH_RIG.replace(*change), "rig.toml", {})
@@ -217,7 +217,7 @@ def test_the_added_drivers_table_is_checked_like_any_other(change, needle):
 
 @pytest.mark.usefixtures("bench_driver")
 def test_config_names_the_registered_instrument_schemes_for_an_unknown_one():
-    from monitor.config import parse_config
+    from monitor.rig.config import parse_config
 
     text = BENCH_RIG.replace("fake://bench-1", "gpib://3")
     with pytest.raises(ConfigError) as caught:
@@ -230,7 +230,7 @@ def test_config_names_the_registered_instrument_schemes_for_an_unknown_one():
 
 @pytest.mark.parametrize("url", ["mqtt://127.0.0.1:1883", "sim://?seed=1"])
 def test_a_source_that_is_not_an_instrument_is_refused_in_instruments(url):
-    from monitor.config import parse_config
+    from monitor.rig.config import parse_config
 
     text = BENCH_RIG.replace("fake://bench-1", url).replace("frames = 5\n", "")
     with pytest.raises(ConfigError, match=r"instruments\[0\]\.url: no instrument driver"):
@@ -240,8 +240,8 @@ def test_a_source_that_is_not_an_instrument_is_refused_in_instruments(url):
 def test_the_service_opens_the_broker_through_the_registry(monkeypatch):
     """The MQTT source is the registry's too: a stand-in registered for mqtt:// is what
     the service opens, with the options the service gives every broker source."""
-    from monitor.config import parse_config
-    from monitor.service import Service
+    from monitor.rig.config import parse_config
+    from monitor.rig.service import Service
 
     opened: list[tuple[str, dict[str, object]]] = []
 

@@ -18,9 +18,9 @@ import pytest
 from dashboard.data import list_runs, load_snapshot
 from drivers.simworld import kettle_scenario, run_series, scenario_metadata
 from monitor import cli
-from monitor.recorder import read_runs
-from monitor.report import build_report
-from monitor.service import Service
+from monitor.records.recorder import read_runs
+from monitor.reports.report import build_report
+from monitor.rig.service import Service
 from tests.monitor.test_service import ListDriver, config_for, run_until
 
 #: A scenario of our own: a 1.2 kg kettle, 240 s a run.
@@ -131,8 +131,8 @@ def test_live_replay_fleet_report_and_board_agree_run_for_run(tmp_path, capsys) 
 
 @pytest.mark.parametrize("vessel_filter", [None, SCENARIO.vessel])
 def test_a_restart_splits_the_replay_as_it_split_the_live_runs(tmp_path, vessel_filter) -> None:
-    from monitor.logs import read_log
-    from monitor.runs import split_runs
+    from monitor.runs.logs import read_log
+    from monitor.runs.run import split_runs
 
     t0 = SCENARIO.start_epoch_s
     samples = _instants([0.0], t0, 3600.0, 3)

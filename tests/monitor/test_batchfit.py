@@ -17,8 +17,8 @@ from drivers.simworld import (
     kettle_scenario,
     scenario_metadata,
 )
-from monitor import batchfit as bf
-from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.estimation import batchfit as bf
+from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
 
 
 def _theta(ua=1.5, c=5600.0, g=60.0, ce=300.0, tau_w=4.0, t0=15.0, tau_e=1.5, de=0.0):
@@ -327,7 +327,7 @@ def test_compiled_recursion_is_lfilter_bit_for_bit():
     # the same arithmetic in the same order, so the same bits
     from scipy.signal import lfilter
 
-    from monitor import kernels
+    from monitor.physics import kernels
 
     rng = np.random.default_rng(3)
     drive = rng.normal(size=5000) * 40.0

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import main
-from monitor.interchange import read_csv
+from monitor.records.interchange import read_csv
 
 
 def test_simulate_writes_a_log_that_reads_back(tmp_path, capsys):
@@ -103,7 +103,7 @@ def test_demo_runs_live_through_the_real_drivers_and_records(tmp_path):
         capture_output=True, text=True, timeout=60, check=True,
     )  # fmt: skip
     assert json.loads(recorded.stdout)["runs"][0]["water_mass_kg"] == run["water_mass_kg"]
-    from monitor.recorder import read_runs, verify
+    from monitor.records.recorder import read_runs, verify
 
     summaries = [r for r in read_runs(out) if r["summary"].get("source") == "replay"]
     assert [s["summary"]["water_mass_kg"] for s in summaries] == [run["water_mass_kg"]]
@@ -156,7 +156,7 @@ def test_verify_says_intact_altered_damaged_or_not_a_log(tmp_path, capsys) -> No
     exit status of tampering, and a log cut short passed."""
     import sqlite3
 
-    from monitor.recorder import Recorder
+    from monitor.records.recorder import Recorder
 
     assert main(["verify", str(tmp_path / "nowhere.sqlite")]) == 2
     assert "cannot be read" in capsys.readouterr().err
@@ -188,7 +188,7 @@ def test_replay_fleet_report_and_export_say_when_a_log_was_altered(tmp_path, cap
     from dataclasses import replace
 
     from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-    from monitor.recorder import Recorder
+    from monitor.records.recorder import Recorder
 
     scenario = replace(kettle_scenario(), duration_s=300.0)
     path = tmp_path / "lab.sqlite"
@@ -233,7 +233,7 @@ def _demo(out: Path | None, duration_s: int, cwd: Path | None = None) -> str:
 
 
 def test_demo_start_is_in_the_past_or_just_after_the_logs_last_reading() -> None:
-    from monitor.demo import AFTER_LAST_S, demo_start_s
+    from monitor.rig.demo import AFTER_LAST_S, demo_start_s
 
     # 300 s at 30x take 10 s: the readings start 290 s before now, so they end now
     assert demo_start_s(1000.0, 300.0, 30.0, None) == (pytest.approx(710.0), False)
@@ -249,7 +249,7 @@ def test_demo_start_is_in_the_past_or_just_after_the_logs_last_reading() -> None
 def test_a_second_demo_into_one_log_is_a_new_run_after_the_first(tmp_path) -> None:
     """Issue 15: readings never stamped ahead of the wall clock; a second demo into the
     same log starts after the first's readings, as run 2, live and in a replay."""
-    from monitor.recorder import read_runs, read_samples_by_session
+    from monitor.records.recorder import read_runs, read_samples_by_session
 
     out = tmp_path / "twice.sqlite"
     _demo(out, 60)

@@ -5,8 +5,8 @@ from __future__ import annotations
 import pytest
 
 from drivers.errors import ConfigError
-from monitor.config import load_config, parse_config
-from monitor.water import pressure_at_altitude_kpa
+from monitor.physics.water import pressure_at_altitude_kpa
+from monitor.rig.config import load_config, parse_config
 
 GOOD = """
 [site]
@@ -75,7 +75,7 @@ def test_a_good_configuration_loads_with_everything_in_place(tmp_path) -> None:
     path = tmp_path / "rig.toml"
     path.write_text(GOOD, encoding="utf-8")
     cfg = load_config(path, ENV)
-    # ICAO Doc 7488 / ISO 2533 standard atmosphere, computed by monitor.water
+    # ICAO Doc 7488 / ISO 2533 standard atmosphere, computed by monitor.physics.water
     assert cfg.pressure_kpa == pytest.approx(pressure_at_altitude_kpa(350.0))
     assert cfg.mqtt is not None
     assert (cfg.mqtt.username, cfg.mqtt.password) == ("operator", "s3cret")
@@ -198,9 +198,9 @@ def test_a_missing_file_is_a_config_error(tmp_path) -> None:
 def test_the_example_in_the_module_docstring_is_a_valid_configuration() -> None:
     import textwrap
 
-    import monitor.config
+    import monitor.rig.config
 
-    doc = monitor.config.__doc__ or ""
+    doc = monitor.rig.config.__doc__ or ""
     example = doc[doc.index("[site]") - 4 : doc.index("A vessel's metadata")]
     cfg = parse_config(
         textwrap.dedent(example),

@@ -9,8 +9,9 @@ import numpy as np
 import pytest
 
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-from monitor.contracts import Level
-from monitor.drift import (
+from monitor.estimation.contracts import Level
+from monitor.records.interchange import InterchangeLog, rows_from_samples
+from monitor.runs.drift import (
     RULES,
     Cusum,
     VesselDrift,
@@ -23,8 +24,7 @@ from monitor.drift import (
     run_verdict,
     scale_thickness_range_mm,
 )
-from monitor.interchange import InterchangeLog, rows_from_samples
-from monitor.replay import replay_run, split_runs
+from monitor.runs.replay import replay_run, split_runs
 
 SCALING = next(r for r in RULES if r.name == "scaling")
 

@@ -17,8 +17,8 @@ from drivers.simworld import (
     scenario_metadata,
     water_heater_scenario,
 )
-from monitor.contracts import Phase
-from monitor.estimator import (
+from monitor.estimation.contracts import Phase
+from monitor.estimation.estimator import (
     EstimatorSettings,
     FastCore,
     FilterpyCore,
@@ -635,7 +635,7 @@ def test_ua_in_cooling_counts_the_element_path_to_the_room(offset_c):
 def test_a_failure_inside_the_filter_restarts_it_and_says_so(monkeypatch) -> None:
     """Issue 14: an exception inside one vessel's filter stays there; the filter starts
     afresh, the step gives no estimate, and the rest of the run carries the flag."""
-    from monitor.estimator import VesselConfig, VesselEstimator
+    from monitor.estimation.estimator import VesselConfig, VesselEstimator
 
     meta = {"vessel_heat_capacity_j_per_k": 700, "rated_power_w": 2000}
     est = VesselEstimator(VesselConfig.from_metadata("k", meta, False))
@@ -666,7 +666,7 @@ def test_a_failure_inside_the_filter_restarts_it_and_says_so(monkeypatch) -> Non
 
 
 def test_readings_no_instrument_could_give_are_left_out() -> None:
-    from monitor.estimator import VesselConfig, VesselEstimator
+    from monitor.estimation.estimator import VesselConfig, VesselEstimator
 
     meta = {"vessel_heat_capacity_j_per_k": 700, "rated_power_w": 2000}
     est = VesselEstimator(VesselConfig.from_metadata("k", meta, False))

@@ -8,7 +8,7 @@ import pytest
 
 from drivers.errors import LogFormatError
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-from monitor.interchange import (
+from monitor.records.interchange import (
     LogRow,
     read_csv,
     read_csv_text,
@@ -121,7 +121,7 @@ def _file_with(tmp_path, name: str, mangle) -> str:
 def test_any_bytes_are_read_and_bad_lines_set_aside_with_where_and_why(tmp_path) -> None:
     """Issue 14: these gave tracebacks (UnicodeDecodeError, csv field limit) or a
     header error showing '\\ufefftime_s'."""
-    from monitor.interchange import read_csv
+    from monitor.records.interchange import read_csv
 
     bom = read_csv(_file_with(tmp_path, "bom.csv", lambda b: b"\xef\xbb\xbf" + b))
     assert len(bom.rows) == 3

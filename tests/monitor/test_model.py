@@ -11,8 +11,8 @@ from hypothesis import strategies as st
 from scipy.integrate import solve_ivp
 
 from drivers.errors import PhysicsRangeError
-from monitor import model
-from monitor.model import Inputs, VesselParams
+from monitor.physics import model
+from monitor.physics.model import Inputs, VesselParams
 
 # A kettle-sized vessel, invented for these tests (a scenario of our own).
 ONE = VesselParams(ua_w_per_k=2.0, heat_capacity_j_per_k=4300.0)

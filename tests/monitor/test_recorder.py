@@ -24,8 +24,8 @@ from hypothesis import strategies as st
 from drivers.channels import Quarantined
 from drivers.errors import EbullioError, LogFormatError
 from drivers.sample import Quality, Sample
-from monitor.contracts import Estimate, Estimated, Flag, Level, Phase, TargetForecast
-from monitor.recorder import (
+from monitor.estimation.contracts import Estimate, Estimated, Flag, Level, Phase, TargetForecast
+from monitor.records.recorder import (
     GENESIS_HASH,
     HASH_LABEL,
     HASHED_TABLES,
@@ -44,7 +44,7 @@ from monitor.recorder import (
     sessions,
     verify,
 )
-from monitor.schema import ESTIMATE_COLUMNS, flag_record, flatten_estimate
+from monitor.records.schema import ESTIMATE_COLUMNS, flag_record, flatten_estimate
 
 ROOT = Path(__file__).resolve().parents[2]
 T0 = 1_780_000_000.0  # an arbitrary Unix time (2026), common practice, no source
@@ -151,7 +151,7 @@ def test_every_table_round_trips(log: Path):
 
 
 def test_the_estimates_table_keeps_the_layout_of_schema_version_1():
-    # the columns every log of schema version 1 has (monitor/recorder.py as of d67569f):
+    # the columns every log of schema version 1 has (monitor/records/recorder.py as of d67569f):
     # the one mapping must not move them, or older logs would no longer read or verify
     assert TABLE_COLUMNS["estimates"] == (
         "id", "block", "t", "vessel", "phase", "water_c", "water_mass_kg", "water_mass_std",
@@ -614,7 +614,7 @@ def test_a_missing_file_and_a_foreign_sqlite_file(tmp_path: Path):
 WRITER = """
 import sys
 from drivers.sample import Sample
-from monitor.recorder import Recorder
+from monitor.records.recorder import Recorder
 path, per = sys.argv[1], int(sys.argv[2])
 total = 0
 with Recorder(path, version="kill-test") as rec:
@@ -759,7 +759,7 @@ def _remove_last_block(path: Path) -> None:
 def test_a_log_cut_short_fails_against_its_head(log: Path) -> None:
     """Issue 14: removing the last block passed verify. The recorder keeps the chain's
     head beside the log at every commit, and verify checks the log reaches it."""
-    from monitor.recorder import head_path
+    from monitor.records.recorder import head_path
 
     head = json.loads(head_path(log).read_text(encoding="utf-8"))
     assert head["block"] == 3
@@ -777,7 +777,7 @@ def test_a_log_cut_short_fails_against_its_head(log: Path) -> None:
 
 
 def test_a_signed_head_cannot_be_rewritten_without_the_key(tmp_path: Path) -> None:
-    from monitor.recorder import head_path, head_record
+    from monitor.records.recorder import head_path, head_record
 
     path = tmp_path / "signed.sqlite"
     key = b"a key of our own for the test"

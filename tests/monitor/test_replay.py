@@ -12,9 +12,9 @@ from pathlib import Path
 import pytest
 
 from monitor.cli import main
-from monitor.interchange import read_csv_text
-from monitor.replay import replay, split_runs
-from monitor.schema import ESTIMATE_CSV_COLUMNS
+from monitor.records.interchange import read_csv_text
+from monitor.records.schema import ESTIMATE_CSV_COLUMNS
+from monitor.runs.replay import replay, split_runs
 
 LOGS = Path(__file__).resolve().parent.parent.parent / "replay_logs"
 KETTLE = str(LOGS / "kettle-clean.csv")
@@ -198,7 +198,7 @@ def test_replay_function_returns_the_same_as_the_cli(capsys):
 def test_one_run_that_cannot_be_replayed_leaves_the_others(monkeypatch, capsys):
     """Issue 14: a failure replaying one run (outside the filter, which guards itself)
     is that run's summary, and the other runs and the terminal table still come."""
-    import monitor.replay as rp
+    import monitor.runs.replay as rp
 
     original = rp.replay_run
 
@@ -227,8 +227,8 @@ def test_one_run_that_cannot_be_replayed_leaves_the_others(monkeypatch, capsys):
 def test_the_text_tables_keep_their_columns_and_show_drift():
     """Issue 15: the fleet table's columns were pushed by a long time stamp, and the
     replay table left the drift flags out."""
-    from monitor.drift import fleet_table
-    from monitor.tables import text_table
+    from monitor.runs.drift import fleet_table
+    from monitor.runs.tables import text_table
 
     lines = text_table(["id", "n", "note"], [["a-very-long-vessel-id", "7", "x"], ["b", "12", "y"]],
                        right=" >")  # fmt: skip
@@ -236,7 +236,7 @@ def test_the_text_tables_keep_their_columns_and_show_drift():
     assert lines[2].index("7") == lines[3].index("12") + 1  # right-aligned numbers
     result = replay([KETTLE])
     result["runs"][0]["drift"] = [{"name": "scaling", "level": "warning", "message": "m"}]
-    from monitor.replay import summary_table
+    from monitor.runs.replay import summary_table
 
     assert "drift scaling(warning)" in summary_table(result)
     row = {"vessel": "heater-with-a-long-name-12", "status": "warning", "scaling_index": 0.8,
@@ -266,7 +266,7 @@ def test_replay_json_follows_the_documented_schema(capsys):
 def test_set_aside_input_is_one_record_from_a_csv_and_from_a_recorder_log(tmp_path) -> None:
     """Issue 15: one record type for set-aside input, whatever read it."""
     from drivers.channels import Quarantined
-    from monitor.recorder import Recorder
+    from monitor.records.recorder import Recorder
 
     csv_log = tmp_path / "bad.csv"
     csv_log.write_text("time_s,water_c,power_w\n0,20,0\n1,oops,0\n2,20.1,0\n", encoding="utf-8")

@@ -10,8 +10,8 @@ import pytest
 
 from drivers.errors import LogFormatError
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-from monitor.recorder import Recorder
-from monitor.report import build_report
+from monitor.records.recorder import Recorder
+from monitor.reports.report import build_report
 
 
 def recorded_kettle(path, runs: int = 2) -> None:
@@ -117,9 +117,9 @@ def test_report_cli_writes_html_and_pdf(log, tmp_path) -> None:
 
 
 def test_without_an_element_thermocouple_scaling_is_said_to_be_not_judged(tmp_path) -> None:
-    from monitor.drift import fleet_rows
-    from monitor.interchange import read_csv, write_csv
-    from monitor.replay import replay
+    from monitor.records.interchange import read_csv, write_csv
+    from monitor.runs.drift import fleet_rows
+    from monitor.runs.replay import replay
 
     full = tmp_path / "full.csv"
     from monitor.cli import main
@@ -148,7 +148,7 @@ def test_a_doubtful_run_is_marked_in_the_report_with_its_reasons(tmp_path) -> No
 
 
 def test_the_history_chart_crosses_doubtful_runs_and_keeps_them_off_the_judged_line() -> None:
-    from monitor.plots import history_figure
+    from monitor.reports.plots import history_figure
 
     def run(label: str, g: float, std: float) -> dict:
         return {"run": label, "element_conductance_w_per_k": {"value": g, "std": std}}

@@ -12,11 +12,9 @@ from pathlib import Path
 import pytest
 
 from drivers.mqtt import encode_json
-from monitor.contracts import Estimate, Estimated, Flag, Level, Phase, TargetForecast
-from monitor.recorder import LogReader, Recorder, read_estimates
-from monitor.replay import estimate_row
-from monitor.runs import Run
-from monitor.schema import (
+from monitor.estimation.contracts import Estimate, Estimated, Flag, Level, Phase, TargetForecast
+from monitor.records.recorder import LogReader, Recorder, read_estimates
+from monitor.records.schema import (
     ESTIMATE_COLUMNS,
     ESTIMATE_CSV_COLUMNS,
     ESTIMATE_FIELDS,
@@ -24,6 +22,8 @@ from monitor.schema import (
     flatten_estimate,
     join_estimate,
 )
+from monitor.runs.replay import estimate_row
+from monitor.runs.run import Run
 
 ROOT = Path(__file__).resolve().parents[2]
 T0 = 1_780_000_000.0  # an arbitrary Unix time (2026), common practice, no source
@@ -106,7 +106,7 @@ def test_the_column_fields_are_the_csvs_and_the_tables_and_every_field_is_docume
 
 
 def test_a_row_written_before_the_one_mapping_reads_in_the_flat_form():
-    # the detail the service wrote until this change (monitor/recorder.py at d67569f)
+    # the detail the service wrote until this change (monitor/records/recorder.py at d67569f)
     old = {"water_std_c": 0.2, "standing_loss_w": {"value": 12.5, "std": 0.5}, "run": 2,
            "target_reason": "", "flags": []}  # fmt: skip
     flat = join_estimate({"t": T0, "vessel": "k", "phase": "idle", "water_c": 20.0}, old)

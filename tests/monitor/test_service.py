@@ -13,11 +13,17 @@ from drivers.channels import Quarantined
 from drivers.errors import DriverError
 from drivers.sample import Sample
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-from monitor.config import RigConfig, VesselSpec
-from monitor.logs import read_log
-from monitor.recorder import read_estimates, read_events, read_quarantine, read_samples, verify
-from monitor.replay import replay_run, split_runs
-from monitor.service import Backoff, Service, public_url
+from monitor.records.recorder import (
+    read_estimates,
+    read_events,
+    read_quarantine,
+    read_samples,
+    verify,
+)
+from monitor.rig.config import RigConfig, VesselSpec
+from monitor.rig.service import Backoff, Service, public_url
+from monitor.runs.logs import read_log
+from monitor.runs.replay import replay_run, split_runs
 
 
 class ListDriver:
@@ -125,7 +131,7 @@ def test_a_lost_link_is_retried_and_the_gap_recorded(tmp_path) -> None:
 
     log = tmp_path / "gap.sqlite"
     service = Service(config_for(vessel, meta), str(log), extra_sources={"rig": factory})
-    import monitor.service as svc
+    import monitor.rig.service as svc
 
     original = svc.Backoff.next_s
     svc.Backoff.next_s = lambda _self: 0.01  # no need to wait seconds in a test
@@ -192,7 +198,7 @@ def test_public_url_hides_credentials() -> None:
 
 
 def test_runs_are_recorded_when_the_service_stops(tmp_path) -> None:
-    from monitor.recorder import read_runs
+    from monitor.records.recorder import read_runs
 
     vessel, samples, meta = kettle(duration_s=60.0)
     log = tmp_path / "runs.sqlite"
@@ -214,7 +220,7 @@ def test_runs_are_recorded_when_the_service_stops(tmp_path) -> None:
 
 def test_each_run_is_recorded_as_it_ends_with_drift_against_the_earlier_runs(tmp_path) -> None:
     from drivers.simworld import kettle_scenario, run_series, scenario_metadata
-    from monitor.recorder import read_runs
+    from monitor.records.recorder import read_runs
 
     # five clean runs, then two with 0.14 mm of scale (G about 25 % down in the
     # simulator's own element model; our scenario)
@@ -247,7 +253,7 @@ def test_each_run_is_recorded_as_it_ends_with_drift_against_the_earlier_runs(tmp
 
 def test_a_failure_in_one_vessels_processing_leaves_the_others_going(tmp_path, monkeypatch) -> None:
     """Issue 14: whatever fails in one vessel's code past the recorder stays there."""
-    from monitor.live import LiveVessel
+    from monitor.runs.live import LiveVessel
 
     vessel, samples, meta = kettle(duration_s=120.0)
     other = [replace(x, vessel="second") for x in samples]
@@ -347,7 +353,7 @@ def test_set_aside_input_is_told_at_a_bounded_rate(tmp_path, caplog) -> None:
     wrong flooded the service's log. Now one line per source per QUARANTINE_NOTE_S."""
     import logging
 
-    import monitor.service as svc
+    import monitor.rig.service as svc
 
     vessel, _samples, meta = kettle(duration_s=10.0)
     service = Service(config_for(vessel, meta), str(tmp_path / "q.sqlite"))
@@ -377,7 +383,7 @@ def test_small_wording_fixes() -> None:
     import subprocess
     import sys
 
-    from monitor.estimator import _a
+    from monitor.estimation.estimator import _a
 
     assert (_a("element"), _a("water")) == ("an", "a")
     out = subprocess.run([sys.executable, "-m", "monitor.cli", "demo", "--help"],

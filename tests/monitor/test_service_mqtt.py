@@ -7,9 +7,15 @@ import json
 
 import aiomqtt
 
-from monitor.config import parse_config
-from monitor.recorder import read_estimates, read_events, read_quarantine, read_samples, verify
-from monitor.service import Service
+from monitor.records.recorder import (
+    read_estimates,
+    read_events,
+    read_quarantine,
+    read_samples,
+    verify,
+)
+from monitor.rig.config import parse_config
+from monitor.rig.service import Service
 from tests.support.mosquitto import MosquittoBroker
 
 T0 = 1_767_225_600.0
@@ -106,7 +112,7 @@ def test_broker_restart_loses_no_qos1_message_and_the_service_resumes(tmp_path) 
     are delivered too."""
     import time
 
-    import monitor.service as svc
+    import monitor.rig.service as svc
 
     t0 = time.time() - 300.0
     broker = MosquittoBroker(

@@ -7,7 +7,7 @@ import pytest
 from scipy.integrate import solve_ivp
 from scipy.linalg import expm
 
-from monitor import model, transition
+from monitor.physics import model, transition
 
 P_W, AMB_C, UA, C, G, CE = 2000.0, 20.0, 0.7, 5300.0, 54.0, 160.0
 

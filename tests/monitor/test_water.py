@@ -1,4 +1,4 @@
-"""Tests for monitor.water against published figures and against iapws itself.
+"""Tests for monitor.physics.water against published figures and against iapws itself.
 
 Sources are named beside each check value. IAPWS-95 figures (computed with the iapws
 1.5.5 package) are not what IF97 gives, so those checks carry a tolerance sized from
@@ -28,7 +28,7 @@ from drivers.constants import (
     ZERO_CELSIUS_K,
 )
 from drivers.errors import PhysicsRangeError
-from monitor import water
+from monitor.physics import water
 
 P_ATM_MPA = STANDARD_PRESSURE_KPA / KPA_PER_MPA
 LIQUID_FUNCTIONS = [
@@ -37,7 +37,7 @@ LIQUID_FUNCTIONS = [
     water.specific_enthalpy_j_per_kg,
 ]
 
-# Bounds claimed in monitor/water.py's docstring (measured there, rounded up here).
+# Bounds claimed in monitor/physics/water.py's docstring (measured there, rounded up here).
 CLAIM_CP_LINE_REL = 2e-9
 CLAIM_RHO_LINE_REL = 2e-10
 CLAIM_H_LINE_ABS_J_PER_KG = 1e-4
@@ -524,7 +524,7 @@ def test_tables_are_read_only() -> None:
 
 
 def test_import_does_not_load_iapws() -> None:
-    code = "import sys, monitor.water; print('iapws' in sys.modules)"
+    code = "import sys, monitor.physics.water; print('iapws' in sys.modules)"
     out = subprocess.run(
         [sys.executable, "-c", code], check=True, capture_output=True, text=True
     ).stdout

@@ -1,8 +1,8 @@
 """Read any log ebullio writes, CSV interchange or the recorder's SQLite, and export to CSV.
 
 A recorder log holds samples in arrival order; :func:`read_log` turns them into
-one :class:`~monitor.interchange.InterchangeLog` per vessel and session (a process of
-the live service) with the very steps the live service took (:mod:`monitor.live`), the
+one :class:`~monitor.records.interchange.InterchangeLog` per vessel and session (a process of
+the live service) with the very steps the live service took (:mod:`monitor.runs.live`), the
 vessel's recorded metadata, and every quarantined input as a rejected line (``line``
 0: the SQLite row id is in the reason). So a replay starts a new run where the live
 service started one at a restart, and numbers the runs as it did.
@@ -19,7 +19,7 @@ from typing import TextIO
 
 from drivers.channels import Quarantined
 from drivers.errors import LogFormatError
-from monitor.interchange import (
+from monitor.records.interchange import (
     CHANNEL_COLUMNS,
     InterchangeLog,
     LogRow,
@@ -27,14 +27,14 @@ from monitor.interchange import (
     read_csv,
     write_csv,
 )
-from monitor.live import logs_from_steps, steps_from_samples
-from monitor.recorder import (
+from monitor.records.recorder import (
     is_recorder_log,
     read_quarantine,
     read_samples_by_session,
     read_vessels,
 )
-from monitor.runs import split_runs
+from monitor.runs.live import logs_from_steps, steps_from_samples
+from monitor.runs.run import split_runs
 
 
 def _rejected(path: str) -> list[Quarantined]:
@@ -54,13 +54,13 @@ def log_integrity(
 ) -> dict[str, object]:
     """Return what can be said of a log's integrity: ``file``, ``state``, ``reason``.
 
-    A recorder log is checked as ``ebullio verify`` does (:func:`monitor.recorder.verify`:
+    A recorder log is checked as ``ebullio verify`` does (:func:`monitor.records.recorder.verify`:
     ``intact``, ``tampered`` or ``damaged``); a CSV log carries no hash chain, so its
     state is ``unchecked``. ``replay``, ``fleet``, ``report``, ``export`` and the board
     say so when a recorder log is not intact. ``verified`` is a :func:`verify` result of
     ``path`` already at hand (the report makes one), so the chain is not read twice.
     """
-    from monitor.recorder import verify
+    from monitor.records.recorder import verify
 
     if not is_recorder_log(path):
         return {"file": str(path), "state": "unchecked",
@@ -188,8 +188,8 @@ def record_summaries(paths: list[str], result: dict[str, object]) -> int:
     there is exactly one log and it is a recorder log.
     """
     from monitor import __version__
-    from monitor.recorder import Recorder
-    from monitor.schema import run_record
+    from monitor.records.recorder import Recorder
+    from monitor.records.schema import run_record
 
     if len(paths) != 1 or not is_recorder_log(paths[0]):
         raise LogFormatError("--record needs exactly one recorder (SQLite) log")

@@ -47,10 +47,10 @@ from drivers.emulators.power_meter import PowerMeterEmulator
 from drivers.errors import EbullioError
 from drivers.sample import Sample
 from drivers.simworld import PacedClock, Scenario, SimulatedRig, scenario_metadata
-from monitor.config import VESSEL_NUMBERS, RigConfig, parse_config
-from monitor.interchange import iso_utc
-from monitor.recorder import last_sample_t
-from monitor.service import Service, Stats
+from monitor.records.interchange import iso_utc
+from monitor.records.recorder import last_sample_t
+from monitor.rig.config import VESSEL_NUMBERS, RigConfig, parse_config
+from monitor.rig.service import Service, Stats
 
 #: Channels the simulated logger prints; the rest of the rig's readings go to the meter.
 LOGGER_CHANNELS = ("water_emf", "element_emf", "cold_junction", "ambient")

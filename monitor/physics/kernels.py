@@ -1,10 +1,11 @@
 """Compiled arithmetic for the filter's hottest loops (numba, cached to disk).
 
 Only plain array arithmetic lives here; what it means is documented where it is
-used (:class:`monitor.estimator.FastCore`, :mod:`monitor.batchfit`). The filter's
-update is checked against the filterpy reference path by the estimator's tests, to
-1e-9 on every predict and update; the fit's kernels against the matrix exponential
-and ``scipy.optimize.least_squares`` by the batch fit's tests.
+used (:class:`monitor.estimation.estimator.FastCore`,
+:mod:`monitor.estimation.batchfit`). The filter's update is checked against the
+filterpy reference path by the estimator's tests, to 1e-9 on every predict and
+update; the fit's kernels against the matrix exponential and
+``scipy.optimize.least_squares`` by the batch fit's tests.
 
 numba compiles a kernel the first time it is called in a process and keeps the
 machine code in ``__pycache__`` beside this file (``cache=True``), so later
@@ -110,7 +111,7 @@ def modal_response(
 def fit_matrices(theta: np.ndarray, has_element: bool) -> tuple[np.ndarray, np.ndarray]:
     """Return (M, B) of the heat-up fit's model, dx/dt = M x + B [P, T_a].
 
-    θ is :mod:`monitor.batchfit`'s: [ln UA, ln C, ln G, ln C_e, ln τ_w, T₀, ln τ_e,
+    θ is :mod:`monitor.estimation.batchfit`'s: [ln UA, ln C, ln G, ln C_e, ln τ_w, T₀, ln τ_e,
     ΔT_e0] (the last two with an element thermocouple); x = [T_e, T_w, y_w, (y_e)].
     """
     ua, c, g, ce, tau_w = (np.exp(theta[0]), np.exp(theta[1]), np.exp(theta[2]),
@@ -150,7 +151,7 @@ def fit_residuals(
 ) -> np.ndarray:  # fmt: skip
     """Return the heat-up fit's residuals at θ: (y_w - reading)·scale at the grid
     points ``at_w``, the same for the element thermocouple at ``at_e`` (empty
-    without one), then (θ - prior mean)/prior sd. :class:`monitor.batchfit.Residuals`
+    without one), then (θ - prior mean)/prior sd. :class:`monitor.estimation.batchfit.Residuals`
     says what the scales are."""
     m, b = fit_matrices(theta, has_element)
     x, _ = modal_response(m, b, fit_start_state(theta, has_element), h_s, power_w,

@@ -23,17 +23,17 @@ Shape (all in one asyncio loop, except the recorder's SQLite writes)::
   seconds spent, ``backpressure_s``) and recorded as an event, so a slow consumer
   never loses data silently.
 * **Consumer.** Takes everything queued at once, hands samples and quarantined input
-  to the recorder thread, feeds each vessel's :class:`~monitor.live.InstantAssembler`
+  to the recorder thread, feeds each vessel's :class:`~monitor.runs.live.InstantAssembler`
   and, when the queue is empty, closes the open instants and steps the filters.
   Samples of vessels the configuration does not know are quarantined with that reason.
   A value no instrument could give (not finite, a temperature at or below absolute
   zero, a power far above the vessel's; :class:`drivers.sample.ReadingLimits`) is
   recorded as a ``fault`` sample (NaN), its value kept in the quarantine with the
   reason, and never given to the filter. A failure inside one vessel's filter stays
-  with that vessel (:meth:`monitor.estimator.VesselEstimator.step`).
+  with that vessel (:meth:`monitor.estimation.estimator.VesselEstimator.step`).
 * **Recorder thread.** Owns the SQLite connection. It commits one block every
   ``[recorder] commit_interval_s`` (default 1 s); what was committed stays (WAL, see
-  :mod:`monitor.recorder`). MQTT readings are acknowledged to the broker only after
+  :mod:`monitor.records.recorder`). MQTT readings are acknowledged to the broker only after
   the commit that holds them (:class:`~drivers.channels.Acknowledge`, sent from the
   loop's thread), so a crash loses nothing acknowledged: the broker delivers the rest
   again and the recorder records each reading once (``once_from``). When half the
@@ -68,16 +68,16 @@ from drivers.errors import DriverError, EbullioError
 from drivers.registry import open_source
 from drivers.sample import Quality, ReadingLimits, Sample
 from monitor import __version__
-from monitor.batchfit import FitBudget, warm_up
-from monitor.config import Instrument, MqttSettings, RigConfig
-from monitor.live import LiveVessel
-from monitor.recorder import Recorder
-from monitor.schema import flag_record, flatten_estimate, run_record
+from monitor.estimation.batchfit import FitBudget, warm_up
+from monitor.records.recorder import Recorder
+from monitor.records.schema import flag_record, flatten_estimate, run_record
+from monitor.rig.config import Instrument, MqttSettings, RigConfig
+from monitor.runs.live import LiveVessel
 
 log = logging.getLogger("ebullio.service")
 
 #: The share of one core the vessels' heat-up fits may take between them at the start
-#: (:class:`monitor.batchfit.FitBudget`). When many vessels heat up at once their
+#: (:class:`monitor.estimation.batchfit.FitBudget`). When many vessels heat up at once their
 #: fits wait their turn rather than the readings: bench_ingest.py's 1,000 kettles
 #: all heating fell 40 % behind the readings without it (2026-12-05). Every
 #: ``FIT_RETUNE_S`` the share then follows the slack (``FitBudget.retune``): what the
@@ -750,7 +750,7 @@ RUN_BEGUN = "run_begun"
 def _earlier_runs(path: str) -> tuple[dict[str, list[dict[str, object]]], dict[str, int]]:
     """Return the live run summaries an existing log holds, by vessel, and each vessel's
     highest run number begun (a ``run_begun`` event; a killed process left no summary)."""
-    from monitor.recorder import is_recorder_log, read_events, read_runs
+    from monitor.records.recorder import is_recorder_log, read_events, read_runs
 
     if not os.path.exists(path) or not is_recorder_log(path):
         return {}, {}

@@ -1,6 +1,6 @@
 """Exact one-step transitions of the estimator's temperature states, in closed form.
 
-The estimator's temperatures obey the lumped model of :mod:`monitor.model` plus a
+The estimator's temperatures obey the lumped model of :mod:`monitor.physics.model` plus a
 first-order lag for the water thermocouple:
 
     C   · dT_w/dt = G·(T_e - T_w) - UA·(T_w - T_a)        (two nodes)
@@ -10,7 +10,7 @@ first-order lag for the water thermocouple:
 (one node: C·dT_w/dt = P - UA·(T_w - T_a)). With inputs constant over a step the
 system is linear, x' = A x + b, so x(t) = x_eq + e^{A t}·(x(0) - x_eq). The
 filter needs this thousands of times a second, so instead of a general matrix
-exponential (:func:`monitor.model.two_node_transition`, ~30 µs) it is written
+exponential (:func:`monitor.physics.model.two_node_transition`, ~30 µs) it is written
 out here:
 
 * the 2×2 core has real, distinct, negative eigenvalues μ₁ (slow) and μ₂ (fast)
@@ -511,7 +511,7 @@ def one_node_time_to_target(
     """Return the time (s) for one node to reach ``target_c``, or None when it never does.
 
     t = (C/UA)·ln[(T_eq - T_w)/(T_eq - T_target)], T_eq = T_a + P/UA; the fast
-    twin of :func:`monitor.model.time_to_target`.
+    twin of :func:`monitor.physics.model.time_to_target`.
     """
     if water_c >= target_c:
         return 0.0

@@ -19,7 +19,7 @@ with the same names and the same values:
 * the board draws the flat form as the recorder gives it back, or as a replay makes it.
 
 A flag raised on a vessel is stored as :func:`flag_record` gives it; its MQTT form (the
-``flags`` topic, and ``flags`` in an estimate) is :meth:`monitor.contracts.Flag.as_dict`,
+``flags`` topic, and ``flags`` in an estimate) is :meth:`monitor.estimation.contracts.Flag.as_dict`,
 the same without ``t`` and ``vessel``.
 
 Pure: nothing here touches a file, a socket or the clock.
@@ -31,7 +31,7 @@ import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
-from monitor.contracts import Estimate, Estimated, Flag
+from monitor.estimation.contracts import Estimate, Estimated, Flag
 
 __all__ = [
     "ESTIMATE_COLUMNS",
@@ -55,7 +55,7 @@ class EstimateField:
     ``unit`` is the figure's unit as written in docs/mqtt.md (``1`` for a pure number,
     ``text`` for a sentence).
 
-    ``read`` returns the figure from an :class:`~monitor.contracts.Estimate` as a
+    ``read`` returns the figure from an :class:`~monitor.estimation.contracts.Estimate` as a
     float, or None when it is not known or not finite (a text field returns a str).
     ``column`` is True for a figure with a REAL column of its own in the recorder's
     ``estimates`` table and in the ``--estimates`` CSV; the others are kept in the
@@ -223,8 +223,8 @@ def estimate_csv_row(record: Mapping[str, object]) -> list[str]:
 
 
 def flag_record(t: float, vessel: str, flag: Flag) -> dict[str, object]:
-    """Return a :class:`~monitor.contracts.Flag` raised at ``t`` (Unix s) on ``vessel`` as
-    the recorder's ``flags`` row: ``t``, ``vessel``, ``name``, ``level``, ``message``,
+    """Return a :class:`~monitor.estimation.contracts.Flag` raised at ``t`` (Unix s) on
+    ``vessel`` as the recorder's ``flags`` row: ``t``, ``vessel``, ``name``, ``level``, ``message``,
     ``evidence``."""
     return {"t": t, "vessel": vessel, **flag.as_dict()}
 

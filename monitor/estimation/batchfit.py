@@ -23,7 +23,7 @@ uniform grid, so the system is solved exactly in its modal form: with
 M = V·diag(λ)·V⁻¹ (all eigenvalues real and negative: the thermal block is similar
 to a symmetric matrix, the lags are triangular), each mode obeys
 z[k+1] = e^{λh}·z[k] + (e^{λh} - 1)/λ · (V⁻¹B u[k]), a first-order recursion run
-compiled (:func:`monitor.kernels.first_order_recursion`).
+compiled (:func:`monitor.physics.kernels.first_order_recursion`).
 
 The fit is Levenberg-Marquardt (Marquardt's diagonal scaling) on residuals
 (model - reading)/σ with Huber weights held fixed through one fit (IRLS across fits),
@@ -45,7 +45,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from monitor import kernels
+from monitor.physics import kernels
 
 __all__ = [
     "FitData",
@@ -188,7 +188,7 @@ def simulate(theta: np.ndarray, data: FitData) -> tuple[np.ndarray, np.ndarray]:
     """Return (states at every grid point, shape (N+1, n), °C) of the model θ on ``data``.
 
     Columns: T_e, T_w, y_w and y_e (with an element thermocouple). The modal
-    recursion is compiled (:func:`monitor.kernels.modal_response`); a lag equal to
+    recursion is compiled (:func:`monitor.physics.kernels.modal_response`); a lag equal to
     a thermal time constant (a Jordan block) has the water lag's row nudged by 1e-5.
     """
     has_e = data.has_element

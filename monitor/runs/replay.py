@@ -36,11 +36,11 @@ from collections.abc import Callable
 from typing import TextIO
 
 from monitor import __version__
-from monitor.contracts import Estimate, Level
-from monitor.drift import VERDICT_TEXT, verdict_of
-from monitor.estimator import EstimatorSettings, VesselConfig
-from monitor.runs import NO_FIGURES, OpenRun, Run, has_element_sensor, split_runs
-from monitor.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
+from monitor.estimation.contracts import Estimate, Level
+from monitor.estimation.estimator import EstimatorSettings, VesselConfig
+from monitor.records.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
+from monitor.runs.drift import VERDICT_TEXT, verdict_of
+from monitor.runs.run import NO_FIGURES, OpenRun, Run, has_element_sensor, split_runs
 
 _log = logging.getLogger("ebullio.replay")
 
@@ -52,7 +52,7 @@ def replay_run(
 ) -> dict[str, object]:
     """Return the summary of one run (the JSON contract) replayed through a fresh estimator.
 
-    The run is stepped as the live service steps one (:class:`monitor.runs.OpenRun`),
+    The run is stepped as the live service steps one (:class:`monitor.runs.run.OpenRun`),
     so the figures are the ones the live service gave, or would have given.
     """
     meta = run.log.metadata
@@ -98,7 +98,7 @@ def _replay_isolated(
 
 
 def estimate_row(run: Run, e: Estimate) -> list[str]:
-    """Return one ``--estimates`` CSV row (:data:`monitor.schema.ESTIMATE_CSV_COLUMNS`; time
+    """Return one ``--estimates`` CSV row (:data:`monitor.records.schema.ESTIMATE_CSV_COLUMNS`; time
     in s from the log's start)."""
     return estimate_csv_row(flatten_estimate(e, vessel=run.vessel, run=run.label, t=e.t_s))
 
@@ -114,7 +114,10 @@ def replay(
     Writes per-step estimates to ``estimates_out`` when given, and progress lines to
     ``progress`` for long logs.
     """
-    from monitor.logs import log_integrity, read_log  # here: monitor.logs builds on this module
+    from monitor.runs.logs import (  # here: monitor.runs.logs builds on this module
+        log_integrity,
+        read_log,
+    )
 
     logs = [log for p in paths for log in read_log(p)]
     runs, quarantined = split_runs(logs)
@@ -137,7 +140,7 @@ def replay(
             next_report += total // 10
 
     results = [_replay_isolated(run, settings, on_estimate) for run in runs]
-    from monitor.drift import drift_over_runs  # here: monitor.drift reads these summaries
+    from monitor.runs.drift import drift_over_runs  # here: monitor.runs.drift reads these summaries
 
     metadata = {run.vessel: run.log.metadata for run in runs}
     for result, flags in zip(results, drift_over_runs(results, metadata), strict=True):
@@ -161,7 +164,7 @@ def summary_table(result: dict[str, object]) -> str:
             return f"{entry:.{digits}f}"
         return "-" if entry is None else str(entry)
 
-    from monitor.tables import text_table
+    from monitor.runs.tables import text_table
 
     headers = ["vessel", "run", "heat-up s", "energy Wh", "water kg", "UA W/K", "G W/K",
                "loss kWh/24h", "eff.", "verdict", "flags"]  # fmt: skip

@@ -26,12 +26,12 @@ from pathlib import Path
 
 from drivers.channels import Quarantined
 from drivers.errors import LogFormatError
-from monitor import batchfit
-from monitor.batchfit import FitBudget
-from monitor.contracts import Estimate, Estimated, Level, finite_or_none
-from monitor.drift import run_verdict
-from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
-from monitor.interchange import InterchangeLog, LogRow, iso_utc
+from monitor.estimation import batchfit
+from monitor.estimation.batchfit import FitBudget
+from monitor.estimation.contracts import Estimate, Estimated, Level, finite_or_none
+from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.records.interchange import InterchangeLog, LogRow, iso_utc
+from monitor.runs.drift import run_verdict
 
 #: A gap between readings longer than this (s) starts a new run.
 RUN_GAP_S = 900.0
@@ -177,7 +177,7 @@ def estimator_figures(
     ``last`` is the run's last estimate, ``at_heat_up`` the one where the heat-up
     ended (None if it did not) and ``start_c`` the water temperature it started at.
     Used by the replay and, as each run ends, by the live service. ``verdict`` is
-    :func:`monitor.drift.run_verdict` of these figures: ``trusted`` or ``doubtful``
+    :func:`monitor.runs.drift.run_verdict` of these figures: ``trusted`` or ``doubtful``
     with its reasons (a doubtful run is not judged for drift).
     """
     tot, cfg = est.totals, est.config
@@ -216,7 +216,7 @@ def estimator_figures(
         "phase_at_end": str(last.phase),
         "diagnostics": run_diagnostics(est),
     }
-    # the run's verdict (monitor.drift.run_verdict) from these figures, for replay and live
+    # the run's verdict (monitor.runs.drift.run_verdict) from these figures, for replay and live
     figures["verdict"] = run_verdict(figures | {"start_water_c": finite_or_none(start_c)})
     return figures
 
@@ -228,7 +228,7 @@ def run_diagnostics(est: VesselEstimator) -> dict[str, object]:
     ``downweighted_fraction``: of those, set aside or given less weight;
     ``nis_mean``: the mean NIS of the water readings (about 1 when the filter's
     stated uncertainty is right); ``estimator_faults``: how often the filter failed
-    and started afresh (:meth:`monitor.estimator.VesselEstimator.step`); ``fit``: the
+    and started afresh (:meth:`monitor.estimation.estimator.VesselEstimator.step`); ``fit``: the
     heat-up's last batch fit (how many fits, whether it converged, its residual RMS
     in K, the share of readings it down-weighted, its variance inflation s²·f, and
     the element capacity and water sensor lag it found), or None when no heat-up was
@@ -384,8 +384,8 @@ def has_element_sensor(metadata: Mapping[str, object], channels: Iterable[str],
 class OpenRun:
     """One run while its rows are stepped: its own fresh filter and what its summary needs.
 
-    The live service (:class:`monitor.live.LiveVessel`) and the replay
-    (:func:`monitor.replay.replay_run`) both step a run through this, and both take its
+    The live service (:class:`monitor.runs.live.LiveVessel`) and the replay
+    (:func:`monitor.runs.replay.replay_run`) both step a run through this, and both take its
     :meth:`summary`, so a run has the same figures live and replayed.
     ``start_epoch_s`` turns the rows' times (s from the vessel's first step) into Unix
     time. ``estimator`` may be a filter built beforehand (the live service builds the

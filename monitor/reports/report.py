@@ -26,19 +26,19 @@ from plotly.subplots import make_subplots
 
 from drivers.errors import LogFormatError
 from monitor import __version__
-from monitor.contracts import Estimate
-from monitor.drift import (
+from monitor.estimation.contracts import Estimate
+from monitor.estimation.estimator import EstimatorSettings
+from monitor.records.recorder import is_recorder_log, sessions, verify
+from monitor.reports.plots import PALETTE, add_band, history_figure
+from monitor.reports.safety import SAFETY_TEXT
+from monitor.runs.drift import (
     VERDICT_MARK,
     baselines_of,
     drift_over_runs,
     verdict_of,
 )
-from monitor.estimator import EstimatorSettings
-from monitor.logs import read_log
-from monitor.plots import PALETTE, add_band, history_figure
-from monitor.recorder import is_recorder_log, sessions, verify
-from monitor.replay import Run, replay_run, split_runs
-from monitor.safety import SAFETY_TEXT
+from monitor.runs.logs import read_log
+from monitor.runs.replay import Run, replay_run, split_runs
 
 
 def file_sha256(path: str | Path) -> str:

@@ -86,7 +86,7 @@ from drivers import registry
 from drivers.channels import ChannelBinding
 from drivers.config_table import ConfigTable
 from drivers.errors import ConfigError, EbullioError
-from monitor import water
+from monitor.physics import water
 
 #: Vessel keys that go to the estimator and the log's metadata as numbers.
 VESSEL_NUMBERS = (

@@ -60,8 +60,8 @@ tables in id order, and every further index would slow the writer and grow the f
 
 What an estimate row holds
     The recorder owns the mapping of an estimate to its row, through
-    :mod:`monitor.schema`: :meth:`Recorder.add_estimates` takes the flat form the
-    service also publishes on MQTT, stores :data:`~monitor.schema.ESTIMATE_COLUMNS` in
+    :mod:`monitor.records.schema`: :meth:`Recorder.add_estimates` takes the flat form the
+    service also publishes on MQTT, stores :data:`~monitor.records.schema.ESTIMATE_COLUMNS` in
     columns and every other key in ``detail`` under its own name; the readers give the
     flat form back (docs/recorder.md).
 
@@ -94,8 +94,8 @@ from typing import Self
 from drivers.channels import Quarantined
 from drivers.errors import EbullioError, LogFormatError
 from drivers.sample import Quality, Sample
-from monitor.contracts import Level, Phase
-from monitor.schema import ESTIMATE_COLUMNS, join_estimate, split_estimate
+from monitor.estimation.contracts import Level, Phase
+from monitor.records.schema import ESTIMATE_COLUMNS, join_estimate, split_estimate
 
 LOG = logging.getLogger(__name__)
 
@@ -323,7 +323,7 @@ _ESTIMATE_WHAT = {c: f"estimate {c}" for c in ESTIMATE_COLUMNS}
 
 
 def _estimate_row(record: Mapping[str, object]) -> Row:
-    """Return a flat estimate (:func:`monitor.schema.flatten_estimate`) as a table row."""
+    """Return a flat estimate (:func:`monitor.records.schema.flatten_estimate`) as a table row."""
     columns, detail = split_estimate(record)
     for key in ("t", "vessel", "phase"):
         if key not in record:
@@ -588,9 +588,9 @@ class Recorder(_ClosedOnExit):
     def add_estimates(self, records: Iterable[Mapping[str, object]]) -> int:
         """Return how many estimate rows were added.
 
-        Each record is an estimate's flat form (:func:`monitor.schema.flatten_estimate`):
+        Each record is an estimate's flat form (:func:`monitor.records.schema.flatten_estimate`):
         ``t`` (Unix s), ``vessel`` and ``phase`` are required; the fields of
-        :data:`~monitor.schema.ESTIMATE_COLUMNS` go in their columns (missing ones are
+        :data:`~monitor.records.schema.ESTIMATE_COLUMNS` go in their columns (missing ones are
         NULL) and every other key in ``detail`` (JSON) under its own name. A key the flat
         form does not have raises ValueError, and nothing of the batch is added.
         """
@@ -950,10 +950,10 @@ def read_estimates(
 ) -> Iterator[dict[str, object]]:
     """Return an iterator of the estimates in id order, one vessel or all.
 
-    Each is the flat form the service published (:func:`monitor.schema.flatten_estimate`:
+    Each is the flat form the service published (:func:`monitor.records.schema.flatten_estimate`:
     ``t`` Unix s, ``vessel``, ``run``, ``phase``, the figures, ``flags``), with the row's
     ``id`` and ``block``: its columns and its ``detail`` joined
-    (:func:`monitor.schema.join_estimate`).
+    (:func:`monitor.records.schema.join_estimate`).
     """
     _open_reader(path).close()  # refuse a wrong file now, not at the first next()
     return (_flat_estimate(path, r) for r in _dicts(path, "estimates", (), vessel))
@@ -1069,7 +1069,7 @@ class LogReader(_ClosedOnExit):
         """Return the vessel's estimates from ``since`` (Unix s) on, in time order, by column.
 
         ``keys`` are which of the flat form's stored columns to read (``t``, ``vessel``,
-        ``phase`` and :data:`~monitor.schema.ESTIMATE_COLUMNS`; all by default; ``t`` is
+        ``phase`` and :data:`~monitor.records.schema.ESTIMATE_COLUMNS`; all by default; ``t`` is
         always read): the answer has each with one value per estimate. No ``detail``, so
         no flags. Columns, not a dict per estimate, because a chart draws columns and a
         dict per row cost the board's first draw 7 ms in 47. With ``newer_only`` only

@@ -36,7 +36,7 @@ faults alone (every reading of its own NaN) waits for the next instant with wate
 is stepped first if that one is later, and counted out of order if not, so a fault
 stamped ahead by a wrong clock never holds back the good readings after it.
 
-:class:`LiveVessel` then splits the steps into runs as :mod:`monitor.replay` does
+:class:`LiveVessel` then splits the steps into runs as :mod:`monitor.runs.replay` does
 (a fresh filter after a long gap or a refill) and steps the vessel's estimator.
 Live and replayed estimates agree step for step. A replay of a recorder log takes
 each session's samples (one process of the service) through fresh assemblers, as the
@@ -50,12 +50,12 @@ from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass
 
 from drivers.sample import Quality, Sample
-from monitor.batchfit import FitBudget
-from monitor.contracts import Estimate
-from monitor.drift import VesselDrift, run_checks
-from monitor.estimator import EstimatorSettings, VesselConfig, VesselEstimator
-from monitor.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
-from monitor.runs import OpenRun, RunSplitter
+from monitor.estimation.batchfit import FitBudget
+from monitor.estimation.contracts import Estimate
+from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.records.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
+from monitor.runs.drift import VesselDrift, run_checks
+from monitor.runs.run import OpenRun, RunSplitter
 
 #: How long (s) the latest reading of a channel may stand in for one an instant lacks.
 HOLD_S: dict[str, float] = {
@@ -239,8 +239,8 @@ def logs_from_steps(
 class LiveVessel:
     """One vessel's live filter: steps in, estimates out, a fresh filter at each new run.
 
-    The runs are split by the one rule (:class:`monitor.runs.RunSplitter`) and each is
-    stepped as a replay steps it (:class:`monitor.runs.OpenRun`), so the run summaries
+    The runs are split by the one rule (:class:`monitor.runs.run.RunSplitter`) and each is
+    stepped as a replay steps it (:class:`monitor.runs.run.OpenRun`), so the run summaries
     the service records are the ones ``ebullio replay`` gives of the same log. A new
     process starts a new run (its first step), as a replay of a recorder log starts
     one at every session that recorded samples.
@@ -294,7 +294,7 @@ class LiveVessel:
 
         Their figures feed the drift trackers, so the baseline survives a restart (a
         doubtful run, by its recorded verdict or, in a summary without one, by
-        :func:`monitor.drift.run_verdict`, is passed over as it was live), and run labels
+        :func:`monitor.runs.drift.run_verdict`, is passed over as it was live), and run labels
         go on from the highest numbered one, or ``last_label``, the highest run begun
         (a run whose process was killed has no summary).
         """
@@ -308,7 +308,7 @@ class LiveVessel:
     def end_run(self) -> dict[str, object] | None:
         """Return the summary of the current run as it ends (None before any estimate).
 
-        It is :meth:`monitor.runs.OpenRun.summary` of the live filter, ``verdict``
+        It is :meth:`monitor.runs.run.OpenRun.summary` of the live filter, ``verdict``
         included, with ``source`` "live"; its ``drift`` flags compare its figures with
         the vessel's earlier runs, or say that a doubtful run was not judged.
         """
@@ -324,7 +324,7 @@ class LiveVessel:
         """Return the estimate after one step (None while the filter is not yet
         initialised, or while the step is held back).
 
-        A water reading far below the recent ones (:attr:`monitor.runs.RunSplitter.cold`)
+        A water reading far below the recent ones (:attr:`monitor.runs.run.RunSplitter.cold`)
         is held back one step: the next reading tells whether it was the first of a
         refill, and so of a new run, or a spike within this one. So the old run's filter
         never takes the cold water, as the replay's does not.

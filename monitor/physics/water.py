@@ -6,7 +6,7 @@ first property call (or on :func:`build_tables`). A scalar call then costs
 0.4–0.5 µs instead of the ~140 µs of ``iapws.IAPWS97`` (Python 3.11, measured by
 ``benchmarks/bench_water.py``). Importing iapws (it pulls in scipy) and building
 take about 0.4–0.6 s at that first call, not at import, so
-``import monitor.water`` stays at about 0.1 s (numpy).
+``import monitor.physics.water`` stays at about 0.1 s (numpy).
 
 What each function follows
 --------------------------
@@ -334,7 +334,7 @@ def build_tables() -> None:
 def _range_error(name: str, value: float, lo: float, hi: float, unit: str) -> PhysicsRangeError:
     return PhysicsRangeError(
         f"{name} = {value!r} {unit} is outside {lo:g}..{hi:g} {unit}, the range "
-        "monitor.water covers (IAPWS-IF97 tables, ICAO troposphere)"
+        "monitor.physics.water covers (IAPWS-IF97 tables, ICAO troposphere)"
     )
 
 

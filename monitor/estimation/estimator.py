@@ -13,7 +13,7 @@ The parameters are random walks in their logarithms, so they stay positive and
 drift by a set *fraction* per √s (:class:`EstimatorSettings`). Power is an input,
 not a state: each step uses the mean power over the interval (from the energy
 counter when there is one, which makes thermostat cycling exact). Each step is the
-model's exact discretisation (:mod:`monitor.transition`), the water clamped at the
+model's exact discretisation (:mod:`monitor.physics.transition`), the water clamped at the
 site's boiling point with the surplus evaporating water at the latent heat.
 
 Why an EKF, not a UKF
@@ -27,7 +27,7 @@ Why an EKF, not a UKF
 
 Where the parameters come from in a heat-up
     During the first heat-up of a run the parameters are not the filter's own: every
-    ~10 s (then every 5 % of the heating so far) :mod:`monitor.batchfit` fits the
+    ~10 s (then every 5 % of the heating so far) :mod:`monitor.estimation.batchfit` fits the
     two-node model with the element's heat capacity and both sensor lags as
     parameters, over the run from just before switch-on to now, and the filter is
     re-anchored on the fit (its parameters, lags, temperatures and the fit's whole
@@ -91,8 +91,8 @@ import numpy as np
 
 from drivers.errors import ConfigError
 from drivers.sample import ReadingLimits
-from monitor import batchfit, kernels, transition, water
-from monitor.contracts import (
+from monitor.estimation import batchfit
+from monitor.estimation.contracts import (
     Estimate,
     Estimated,
     Flag,
@@ -100,6 +100,7 @@ from monitor.contracts import (
     Phase,
     TargetForecast,
 )
+from monitor.physics import kernels, transition, water
 
 _log = logging.getLogger("ebullio.estimator")
 
@@ -121,7 +122,7 @@ Z_90 = 1.6448536269514722
 #: 1σ, as a fraction, of every parameter between switch-on and the heat-up's first
 #: batch fit (a few seconds): a 0.8 kg kettle read 1.24 kg with a 3 % std there.
 UNFITTED_RELATIVE_SD = 0.3
-#: The filter is re-anchored only on fits whose early factor (monitor.batchfit) is at
+#: The filter is re-anchored only on fits whose early factor (monitor.estimation.batchfit) is at
 #: most this, i.e. that have seen a rise of at least 10 K.
 ANCHOR_EARLY_FACTOR = 1.5
 
@@ -163,10 +164,10 @@ class EstimatorSettings:
     # (benchmarks/bench_estimator.py); revisit on real rig data.
     forecast_model_error: float = 0.015
     # batch fit: during the first heat-up the parameters come from a fit of the
-    # two-node model with both sensor lags over the run so far (monitor.batchfit)
+    # two-node model with both sensor lags over the run so far (monitor.estimation.batchfit)
     batch_fit: bool = True
     # 1σ model error of the fit's time to target, as a fraction of it, beside the
-    # fit's own spread (which carries the structural floor of monitor.batchfit)
+    # fit's own spread (which carries the structural floor of monitor.estimation.batchfit)
     fit_forecast_model_error: float = 0.02
     # and an absolute 1σ, s: the last kelvins before the boil go faster than the lumped
     # model says (nucleate boiling at the element raises G), by about a second.
@@ -236,7 +237,7 @@ class EstimatorSettings:
     # over the std was 1.8 (worst 6.5)
     ua_model_rel_sd: float = 0.02
     # a notice once a due heat-up fit has waited this long for the live service's
-    # CPU budget (monitor.batchfit.FitBudget), s
+    # CPU budget (monitor.estimation.batchfit.FitBudget), s
     fit_wait_notice_s: float = 20.0
 
 
@@ -357,7 +358,7 @@ class FastCore:
            = P - K cᵀ - c Kᵀ + S K Kᵀ,  c = P[:, j]
     The last line is exact for any gain, so it serves the consider updates too
     (some gains zeroed, where the short form P - K S Kᵀ does not hold); it runs
-    compiled (:func:`monitor.kernels.scalar_update`).
+    compiled (:func:`monitor.physics.kernels.scalar_update`).
     """
 
     def __init__(self, x: np.ndarray, p: np.ndarray) -> None:
@@ -765,7 +766,7 @@ class VesselEstimator:
         return self._non_water_capacity() + 4186.0 * 0.7 * volume
 
     def _fit_priors(self, tau_s: float | None, tau_e_s: float | None) -> batchfit.FitPriors:
-        """Return the batch fit's weak priors (θ order of :mod:`monitor.batchfit`)."""
+        """Return the batch fit's weak priors (θ order of :mod:`monitor.estimation.batchfit`)."""
         s, cfg = self.settings, self.config
         rated = cfg.rated_power_w or 2000.0
         ce = self.element_capacity_j_per_k
@@ -849,7 +850,7 @@ class VesselEstimator:
         """Return (f(x), M, S, heat evaporated J) for one step.
 
         M is the temperature block of ∂f/∂x and S the temperatures' derivatives by
-        the log-parameters (when ``sensitivities``; see :mod:`monitor.transition`);
+        the log-parameters (when ``sensitivities``; see :mod:`monitor.physics.transition`);
         both are None when the water is clamped at the boil. Works on plain lists of
         floats: this runs at every filter step.
         """
@@ -946,7 +947,7 @@ class VesselEstimator:
         """Return F = ∂f/∂x, in closed form off the boil.
 
         The temperature block is M and the parameter columns are S (exact, from
-        :mod:`monitor.transition`). Clamped at the boil, or where S could not be
+        :mod:`monitor.physics.transition`). Clamped at the boil, or where S could not be
         formed without losing digits (None), columns are taken by forward differences.
         """
         f = self._eye.copy()

@@ -7,7 +7,7 @@ from collections.abc import Mapping, Sequence
 import plotly.graph_objects as go
 from plotly.subplots import make_subplots
 
-from monitor.drift import RULES, figure, verdict_of
+from monitor.runs.drift import RULES, figure, verdict_of
 
 #: Okabe and Ito's colour-blind-safe colours (a published set; from memory).
 PALETTE = {

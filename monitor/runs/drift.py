@@ -70,7 +70,7 @@ import statistics
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
-from monitor.contracts import Level
+from monitor.estimation.contracts import Level
 
 #: How many trusted runs make a baseline by default.
 BASELINE_RUNS = 5
@@ -95,7 +95,7 @@ MAD_TO_SD = 1.4826
 # room 12-30 °C, thermocouple lags and element capacity drawn apart from the catalogue
 # figures the estimator was given): 394 runs with the filter gating outliers, and 1158
 # (benchmarks/bench_drift.py's 1000 clean runs and 158 of our own) with the Huber
-# down-weighting being added to monitor/estimator.py that day; and over runs made to
+# down-weighting being added to monitor/estimation/estimator.py that day; and over runs made to
 # fail on purpose (8 of each: sensor spikes in 5 % of readings, noise ten times the
 # catalogue figure, an element thermocouple 8 K out, runs cut off at 40 % of the heat-up,
 # lags four to five times the stated ones). None of those made G diverge on our
@@ -104,8 +104,8 @@ MAD_TO_SD = 1.4826
 
 #: Fewer usable water readings than this and a run is not judged: a minute of 1 Hz
 #: readings; the first minute of a heat-up is where the element's capacity and the
-#: sensors' lags dominate (see monitor/estimator.py), so less says nothing on G or C. Clean
-#: kettle runs had 200-480.
+#: sensors' lags dominate (see monitor/estimation/estimator.py), so less says nothing
+#: on G or C. Clean kettle runs had 200-480.
 VERDICT_MIN_WATER_READINGS = 60
 #: Largest relative std (std / value) of a run's tracked figures before it is doubtful.
 #: G: clean runs state 3.0 % (the batch fit's structural floor; largest 3.08 %), the
@@ -707,7 +707,7 @@ VERDICT_MARK = {"trusted": "✓ trusted", "doubtful": "✕ doubtful: not judged"
 
 def fleet_table(rows: Sequence[Mapping[str, object]]) -> str:
     """Return the fleet rows as a plain text table (doubtful last runs spelt out)."""
-    from monitor.tables import text_table
+    from monitor.runs.tables import text_table
 
     headers = ["vessel", "status", "scaling", "runs", "since base", "not judged", "last run",
                "last verdict", "flags"]  # fmt: skip
