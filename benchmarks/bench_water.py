@@ -57,8 +57,10 @@ def _best_us(
 
 def _import_seconds() -> float:
     """Return the seconds a fresh interpreter spends on ``import monitor.physics.water``."""
-    code = ("import time; t = time.perf_counter(); import monitor.physics.water; "
-            "print(time.perf_counter() - t)")
+    code = (
+        "import time; t = time.perf_counter(); import monitor.physics.water; "
+        "print(time.perf_counter() - t)"
+    )
     out = subprocess.run(
         [sys.executable, "-c", code], check=True, capture_output=True, text=True
     ).stdout
