@@ -65,7 +65,8 @@ from drivers.simworld import (
 from monitor import __version__
 from monitor.cli import SIM_CHANNELS
 from monitor.estimation.contracts import Estimate, Estimated
-from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.estimation.estimator import VesselEstimator
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
 from monitor.physics import transition, water
 from monitor.records.interchange import read_csv, rows_from_samples, write_csv
 from monitor.runs.replay import replay

@@ -28,7 +28,8 @@ import argparse
 import json
 
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-from monitor.estimation.estimator import VesselConfig, VesselEstimator
+from monitor.estimation.estimator import VesselEstimator
+from monitor.estimation.settings import VesselConfig
 
 FILL_KG = 1.2  # the simulator's default kettle fill (our own scenario)
 

@@ -147,7 +147,8 @@ from drivers.simworld import (
 )
 from monitor import __version__
 from monitor.estimation.contracts import Estimate
-from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.estimation.estimator import VesselEstimator
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
 from monitor.physics import water
 
 KETTLE, HEATER = "kettle", "heater"

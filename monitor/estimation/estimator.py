@@ -64,16 +64,17 @@ Robustness (:meth:`VesselEstimator._update`)
     lost that sensor's temperature: variance is added to its temperature states (fully
     correlated, so the water and its lagged sensor move together), never a reset, and
     ordinary updates bring it back. The reading noise used is the larger of the setting
-    and a robust estimate from idle readings (:class:`_NoiseTracker`). C is learnt only
-    while the element heats: with no heating power over the step (and on the boil) ln C
+    and a robust estimate from idle readings
+    (:class:`monitor.estimation.sensors.NoiseTracker`). C is learnt only while the element
+    heats: with no heating power over the step (and on the boil) ln C
     has no random walk and zero gain (a consider update). A reading outside the
     plausible range, or one that stays exactly the same while the model moves by more
     than a kelvin, turns that sensor to predict-only with a flag. Gaps are predicted
     across in one exact step with the process noise growing with the gap.
 
-The filter core is written out in numpy (:class:`FastCore`) and checked step by
-step against filterpy's ``ExtendedKalmanFilter`` (:class:`FilterpyCore`), to 1e-9,
-in the tests.
+The filter core is written out in numpy (:class:`monitor.estimation.cores.FastCore`)
+and checked step by step against filterpy's ``ExtendedKalmanFilter``
+(:class:`monitor.estimation.cores.FilterpyCore`), to 1e-9, in the tests.
 """
 
 from __future__ import annotations
@@ -82,14 +83,12 @@ import dataclasses
 import logging
 import math
 import time
-from collections import deque
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from drivers.errors import ConfigError
 from drivers.sample import ReadingLimits
 from monitor.estimation import batchfit
 from monitor.estimation.contracts import (
@@ -100,7 +99,10 @@ from monitor.estimation.contracts import (
     Phase,
     TargetForecast,
 )
-from monitor.physics import kernels, transition, water
+from monitor.estimation.cores import FastCore, FilterpyCore, Layout
+from monitor.estimation.sensors import REST_EXCESS_K, ElementPath, SensorWatch
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
+from monitor.physics import transition, water
 
 _log = logging.getLogger("ebullio.estimator")
 
@@ -113,10 +115,6 @@ def _a(word: str) -> str:
 #: Channels whose missing readings the filter watches (a NaN is passed on for them).
 _WATCHED = frozenset(("water", "element"))
 
-#: χ² with one degree of freedom at 99.9 % (scipy.stats.chi2.ppf(0.999, 1)); the NIS test
-#: on it is in Bar-Shalom, Li and Kirubarajan, Estimation with Applications to Tracking and
-#: Navigation, ch. 5.
-NIS_GATE_999 = 10.8276
 #: Two-sided normal quantile for a 90 % interval (scipy.stats.norm.ppf(0.95)).
 Z_90 = 1.6448536269514722
 #: 1σ, as a fraction, of every parameter between switch-on and the heat-up's first
@@ -125,543 +123,6 @@ UNFITTED_RELATIVE_SD = 0.3
 #: The filter is re-anchored only on fits whose early factor (monitor.estimation.batchfit) is at
 #: most this, i.e. that have seen a rise of at least 10 K.
 ANCHOR_EARLY_FACTOR = 1.5
-
-
-@dataclass(frozen=True)
-class EstimatorSettings:
-    """Tuning of the filter. Random-walk rates are fractions per √s of the parameter."""
-
-    water_noise_sd_c: float = 0.05  # reading noise of the water thermocouple, K
-    element_noise_sd_c: float = 0.3  # reading noise of the element thermocouple, K
-    water_process_sd_c: float = 0.002  # model error in T_w, K per √s
-    element_process_sd_c: float = 0.3  # model error in T_e, K per √s
-    ua_walk: float = 3.0e-4  # ln UA random walk, per √s (1.8 % an hour)
-    capacity_walk: float = 1.0e-4  # ln C random walk, per √s (0.6 % an hour)
-    conductance_walk: float = 1.0e-3  # ln G random walk, per √s
-    ua_prior_w_per_k: float = 1.0
-    ua_prior_ln_sd: float = 0.5
-    capacity_prior_ln_sd: float = 0.7
-    conductance_prior_ln_sd: float = 0.5
-    water_sensor_tau_s: float | None = None  # None: take it from the log, else no lag
-    element_sensor_tau_s: float | None = None  # likewise for the element thermocouple
-    gate_nis: float = NIS_GATE_999
-    # readings in a row more than huber_k sd's out before the sensor's temperatures are
-    # widened (_reacquire)
-    reacquire_after: int = 5
-    stuck_after_s: float = 60.0
-    plausible_c: tuple[float, float] = (-30.0, 400.0)
-    heating_power_w: float = 20.0  # mean power above this counts as heating
-    hold_band_k: float = 8.0  # holding: within this of the setpoint once reached
-    dry_mass_kg: float = 0.1  # below this while boiling: dry-firing alarm
-    forecast: bool = True
-    # one node only: extra model error in T_w while the unmodelled element settles
-    settle_after_switch_s: float = 40.0
-    settle_water_sd_c: float = 0.05  # K per √s
-    # 1σ model error of a time to target, as a fraction of it: the sigma points carry
-    # only the parameters' uncertainty, not the model's own simplifications (the wall
-    # and the element film are not what the lumped model says). 1.5 % was set so the
-    # 90 % interval covers the simulated truth about 90 % of the time
-    # (benchmarks/bench_estimator.py); revisit on real rig data.
-    forecast_model_error: float = 0.015
-    # batch fit: during the first heat-up the parameters come from a fit of the
-    # two-node model with both sensor lags over the run so far (monitor.estimation.batchfit)
-    batch_fit: bool = True
-    # 1σ model error of the fit's time to target, as a fraction of it, beside the
-    # fit's own spread (which carries the structural floor of monitor.estimation.batchfit)
-    fit_forecast_model_error: float = 0.02
-    # and an absolute 1σ, s: the last kelvins before the boil go faster than the lumped
-    # model says (nucleate boiling at the element raises G), by about a second.
-    # Both calibrated on benchmarks/bench_worlds.py (200 runs): with 1 % and 2 s the
-    # 90 % interval covered 0.98 of the kettles' last three deciles (their errors
-    # there a near-constant +1 s, the floor twice that) and 0.88 at 40 %
-    fit_forecast_floor_s: float = 1.0
-    # the lag of the vessel's parts other than the element (lid, wall) behind the water,
-    # and its spread as a share of the correction (_unseen_vessel_capacity_j_per_k):
-    # judgement (a lid of 40-200 J/K on a 0.5-3 W/K path lags 15-400 s), not measured
-    # on a real kettle
-    vessel_part_lag_s: float = 30.0
-    # how long a heating power's deviation from its mean lasts (mains voltage wanders
-    # over minutes; judgement, from memory): the fit's countdown blends the power now
-    # and the heat-up's mean power by it (_fit_forecast)
-    forecast_power_memory_s: float = 300.0
-    vessel_part_lag_rel_sd: float = 0.6
-    water_sensor_tau_prior_s: float = 2.5  # when the log does not give the lag
-    element_sensor_tau_prior_s: float = 1.5
-    # robust updates
-    # Huber threshold, in innovation sd's: beyond it a reading gets weight k/|ν/√S|.
-    # At 2.5 about 1 % of clean readings get a weight a little under one (P(|z| > 2.5)
-    # = 1.2 % for a normal z, common practice, no source), while a reading 10 σ out
-    # moves the state as a 2.5 σ one would. Measured on a kettle world noisier and
-    # slower than the settings (16 seeds, power on time and one sample late, batch
-    # fit off; the worst water-mass error at half the heat-up): k = 2.5 with the bound
-    # below 3.2 %, k = 2 with a bound of 0.05 18 %; on 8 of the seeds, bound 0.05,
-    # k = 1.5 gave 33 % and k = 3 3.5 %.
-    huber_k: float = 2.5
-    # beyond this many innovation sd's a reading is set aside entirely (an 8 K spike
-    # of the water thermocouple is ~100 σ); it still counts towards the run that
-    # widens the temperature uncertainty (reacquire_after)
-    gross_error_sd: float = 30.0
-    # the most one reading may move ln UA, ln C or ln G (3 %; a step has up to two
-    # readings): a jump from 7 to 17 kJ/K, once made in one update, then needs 30
-    # readings, each of which can disagree. On 8 seeds of the world above, k = 2:
-    # 0.1 gave 52 %, 0.05 18 %, 0.03 1.3 %, 0.02 3.4 %; k = 2.5: 0.03 1.3 %, 0.02 2.2 %.
-    max_param_step: float = 0.03
-    # reading noise from idle readings (_NoiseTracker): second differences kept
-    noise_window: int = 600
-    noise_min_count: int = 30  # differences before the estimate is used
-    noise_settle_s: float = 120.0  # idle this long after a switch before counting
-    noise_max_gap_s: float = 60.0  # a longer gap between readings breaks the chain
-    # the element's path to the room, learnt while cooling (_ElementPath): readings
-    # from this long after the switch-off (a few of the element's C_e/G and the
-    # sensors' lags), at least this many, before UA counts the path
-    element_path_settle_s: float = 120.0
-    element_path_min_readings: int = 30
-    element_rest_min_readings: int = 5
-    element_path_min_span_k: float = 10.0  # cooling's excess over the rest's, at least
-    # the element thermocouple's zero from the rest before the first switch-on
-    # (_zeroed): a rest this close to the room, a mismatch up to this (type K's
-    # class 1 tolerance is ±1.5 K, from memory)
-    element_zero_max_excess_k: float = 20.0
-    element_zero_max_c: float = 1.5
-    # 1σ of the element thermocouple's reading against the water's when no rest
-    # reading measured it (two type K junctions: judgement, from memory), and the
-    # floor on a measured one (the water and element are never quite equal at rest)
-    element_mismatch_sd_c: float = 0.5
-    element_rest_floor_sd_c: float = 0.03
-    # 1σ of what the correction leaves out, as a share of it (calibrated below)
-    element_path_model_rel_sd: float = 0.2
-    # 1σ of what the lumped model leaves out of the filter's UA, as a share of it:
-    # cooling, the wall and lid give back heat with lags of their own. On
-    # benchmarks/bench_worlds.py (2026-12-05) the kettles without an element
-    # thermocouple stated 1.2-1.7 % after 10 min of cooling for errors whose RMS
-    # over the std was 1.8 (worst 6.5)
-    ua_model_rel_sd: float = 0.02
-    # a notice once a due heat-up fit has waited this long for the live service's
-    # CPU budget (monitor.estimation.batchfit.FitBudget), s
-    fit_wait_notice_s: float = 20.0
-
-
-@dataclass(frozen=True)
-class VesselConfig:
-    """What the estimator needs to know of a vessel, from config or log metadata."""
-
-    vessel: str
-    vessel_heat_capacity_j_per_k: float = 0.0  # everything not water that follows it
-    element_heat_capacity_j_per_k: float | None = None
-    rated_power_w: float | None = None
-    max_power_w: float | None = None  # above it a power reading is no reading
-    nominal_volume_l: float | None = None
-    target_c: float | None = None
-    pressure_kpa: float = 101.325
-    water_sensor_tau_s: float = 0.0
-    element_sensor_tau_s: float = 0.0
-    has_element_sensor: bool = False
-
-    @classmethod
-    def from_metadata(
-        cls, vessel: str, meta: Mapping[str, object], has_element_sensor: bool
-    ) -> VesselConfig:
-        """Return the config described by a log's ``key: value`` metadata.
-
-        Site pressure comes from ``pressure_kpa`` or else ``altitude_m`` (ICAO
-        atmosphere), else 101.325 kPa. Raises ConfigError naming a bad key.
-        """
-
-        def number(key: str) -> float | None:
-            value = meta.get(key)
-            if value is None or value == "":
-                return None
-            try:
-                out = float(value)  # type: ignore[arg-type]
-            except (TypeError, ValueError):
-                raise ConfigError(f"metadata {key!r} = {value!r} is not a number") from None
-            if not math.isfinite(out):
-                raise ConfigError(f"metadata {key!r} = {value!r} is not finite")
-            return out
-
-        pressure = number("pressure_kpa")
-        altitude = number("altitude_m")
-        if pressure is None:
-            pressure = water.pressure_at_altitude_kpa(altitude) if altitude is not None else 101.325
-        if not water.P_MIN_KPA <= pressure <= water.P_MAX_KPA:
-            raise ConfigError(f"metadata 'pressure_kpa' = {pressure} is outside 1-500 kPa")
-        vessel_c = number("vessel_heat_capacity_j_per_k") or 0.0
-        if vessel_c < 0.0:
-            raise ConfigError("metadata 'vessel_heat_capacity_j_per_k' is negative")
-        return cls(
-            vessel=vessel,
-            vessel_heat_capacity_j_per_k=vessel_c,
-            element_heat_capacity_j_per_k=number("element_heat_capacity_j_per_k"),
-            rated_power_w=number("rated_power_w"),
-            max_power_w=number("max_power_w"),
-            nominal_volume_l=number("nominal_volume_l"),
-            target_c=number("target_c"),
-            pressure_kpa=pressure,
-            water_sensor_tau_s=number("water_sensor_tau_s") or 0.0,
-            element_sensor_tau_s=number("element_sensor_tau_s") or 0.0,
-            has_element_sensor=has_element_sensor,
-        )
-
-
-@dataclass(frozen=True)
-class Layout:
-    """Where each quantity sits in the state vector (None: not in this vessel's model)."""
-
-    water: int
-    element: int | None
-    lagged: int | None
-    element_lagged: int | None
-    ln_ua: int
-    ln_c: int
-    ln_g: int | None
-    size: int
-
-    @classmethod
-    def build(cls, two_node: bool, lagged: bool, element_lagged: bool = False) -> Layout:
-        """Return the layout for a one- or two-node model, with or without sensor lags."""
-        names = ["water"] + (["element"] if two_node else []) + (["lagged"] if lagged else [])
-        names += ["element_lagged"] if two_node and element_lagged else []
-        names += ["ln_ua", "ln_c"] + (["ln_g"] if two_node else [])
-        idx = {name: i for i, name in enumerate(names)}
-        return cls(
-            water=idx["water"],
-            element=idx.get("element"),
-            lagged=idx.get("lagged"),
-            element_lagged=idx.get("element_lagged"),
-            ln_ua=idx["ln_ua"],
-            ln_c=idx["ln_c"],
-            ln_g=idx.get("ln_g"),
-            size=len(names),
-        )
-
-    @property
-    def temperatures(self) -> list[int]:
-        """Return the indices of the temperature states."""
-        return [
-            i for i in (self.water, self.element, self.lagged, self.element_lagged) if i is not None
-        ]
-
-
-# ---------------------------------------------------------------------------
-# The filter cores: the same equations, written out (fast) and through filterpy
-# ---------------------------------------------------------------------------
-
-
-class FastCore:
-    """EKF predict and scalar updates, in numpy and compiled kernels.
-
-    Predict:  x⁻ = f(x),  P⁻ = F P Fᵀ + Q
-    Update of one reading z of state j (H = e_jᵀ, so scalar algebra):
-        ν = z - x_j,   S = P_jj + r,   K = P[:, j] / S
-        x⁺ = x + K ν
-        P⁺ = (I - K H) P (I - K H)ᵀ + K r Kᵀ        Joseph form, which filterpy uses
-           = P - K cᵀ - c Kᵀ + S K Kᵀ,  c = P[:, j]
-    The last line is exact for any gain, so it serves the consider updates too
-    (some gains zeroed, where the short form P - K S Kᵀ does not hold); it runs
-    compiled (:func:`monitor.physics.kernels.scalar_update`).
-    """
-
-    def __init__(self, x: np.ndarray, p: np.ndarray) -> None:
-        self.x = np.array(x, dtype=float)
-        self.P = np.array(p, dtype=float)
-        self._masks: dict[tuple[int, ...], np.ndarray] = {}
-
-    def predict(self, x_new: np.ndarray, f: np.ndarray, q: np.ndarray) -> None:
-        """Set the prior from the propagated state and the Jacobian F."""
-        self.x = x_new
-        self.P = f @ self.P @ f.T + q
-
-    def innovation(self, j: int, z: float, r: float) -> tuple[float, float]:
-        """Return (ν, S) of a reading z of state j with variance r."""
-        return z - self.x[j], self.P[j, j] + r
-
-    def update(self, j: int, z: float, r: float, frozen: tuple[int, ...] = ()) -> None:
-        """Apply a reading z of state j; states in ``frozen`` get zero gain (consider update)."""
-        mask = self._masks.get(frozen)
-        if mask is None:
-            mask = np.zeros(self.x.shape[0], dtype=np.bool_)
-            mask[list(frozen)] = True
-            self._masks[frozen] = mask
-        self.x, self.P = kernels.scalar_update(
-            np.ascontiguousarray(self.x, dtype=float),
-            np.ascontiguousarray(self.P, dtype=float),
-            j,
-            float(z),
-            float(r),
-            mask,
-        )
-
-
-class FilterpyCore:
-    """The same filter through filterpy's ExtendedKalmanFilter (the reference path)."""
-
-    def __init__(self, x: np.ndarray, p: np.ndarray) -> None:
-        from filterpy.kalman import ExtendedKalmanFilter
-
-        n = len(x)
-        self._ekf = ExtendedKalmanFilter(dim_x=n, dim_z=1)
-        self._ekf.x = np.array(x, dtype=float).reshape(n, 1)
-        self._ekf.P = np.array(p, dtype=float)
-        self._next: np.ndarray | None = None
-
-        def predict_x(u: object = 0) -> None:
-            del u
-            self._ekf.x = self._next.reshape(n, 1)
-
-        self._ekf.predict_x = predict_x
-
-    @property
-    def x(self) -> np.ndarray:
-        """Return the state as a flat array."""
-        return self._ekf.x.ravel()
-
-    @property
-    def P(self) -> np.ndarray:  # noqa: N802 (the filter literature's name)
-        """Return the covariance."""
-        return self._ekf.P
-
-    @P.setter
-    def P(self, value: np.ndarray) -> None:  # noqa: N802
-        self._ekf.P = np.array(value, dtype=float)
-
-    def predict(self, x_new: np.ndarray, f: np.ndarray, q: np.ndarray) -> None:
-        """Set the prior through filterpy's predict with our F, Q and f(x)."""
-        self._next = np.array(x_new, dtype=float)
-        self._ekf.F = f
-        self._ekf.Q = q
-        self._ekf.predict()
-
-    def innovation(self, j: int, z: float, r: float) -> tuple[float, float]:
-        """Return (ν, S) of a reading z of state j with variance r."""
-        return z - float(self._ekf.x[j, 0]), float(self._ekf.P[j, j]) + r
-
-    def update(self, j: int, z: float, r: float, frozen: tuple[int, ...] = ()) -> None:
-        """Apply a reading through filterpy's EKF update (no consider update there)."""
-        if frozen:
-            raise NotImplementedError("the filterpy path has no consider update")
-        n = len(self.x)
-        h = np.zeros((1, n))
-        h[0, j] = 1.0
-        self._ekf.update(
-            np.array([z]), HJacobian=lambda _x: h, Hx=lambda x: x[j : j + 1], R=np.array([[r]])
-        )
-
-
-# ---------------------------------------------------------------------------
-# The vessel estimator
-# ---------------------------------------------------------------------------
-
-
-@dataclass
-class _NoiseTracker:
-    """A running robust estimate of one thermocouple's reading noise sd (K), from idle.
-
-    Each idle reading z₂ with the two before it (z₀, z₁ at times t₀ < t₁ < t₂) gives
-    the second difference
-
-        d = (z₂ - z₁) - a (z₁ - z₀),   a = (t₂ - t₁) / (t₁ - t₀)
-
-    which cancels any straight-line drift (an idle vessel cools by a few mK per
-    second, and over three readings its curvature is far below the noise). For white
-    reading noise of sd σ, d has sd σ·√(1 + (1 + a)² + a²) (σ√6 at even spacing); the
-    normalised differences u = d / √(1 + (1 + a)² + a²) of the last ``noise_window``
-    idle readings give σ in two passes: a first scale from the median absolute
-    deviation, 1.4826·MAD(u) (a normal's sd, common practice, no source), then
-    σ̂ = the root mean square of the u within 5 of those scales of their median. The
-    first pass sets the rare spike aside (one spike spoils three differences); the
-    second is nearly as precise as a plain RMS, which the MAD alone is not, and
-    cutting at 5 σ lowers a normal's variance by under 0.01 %. On 12 seeded idle
-    runs of 900 s (tests/monitor/test_estimator.py's noisy kettle) it came within
-    0.92-1.10 of the simulated noise. Limits: the thermocouple's lag smooths the
-    temperature, not noise added after it (the electronics'), which is what this
-    measures; noise entering before the lag, or slow wander, is mostly cancelled and
-    so under-read. Quantisation adds its Δ²/12 to what is measured, as it does to what
-    the filter sees; with noise far below one step most differences are zero and σ̂
-    comes out low, which the setting then floors (the filter uses max(setting, σ̂)).
-    """
-
-    #: new differences between two estimates (about 140 µs each over 600 values, so
-    #: recomputing once a minute at 1 Hz costs a few µs a reading)
-    REFRESH_EVERY = 60
-
-    window: deque[float] = field(default_factory=deque)
-    previous: list[tuple[float, float]] = field(default_factory=list)  # (t_s, z_c)
-    new_since_estimate: int = 0
-    sd_c: float | None = None  # None until noise_min_count differences are in
-
-    def add(self, t_s: float, value_c: float, s: EstimatorSettings) -> None:
-        """Take one idle reading (°C at t_s); refresh the estimate now and then."""
-        prev = self.previous
-        if prev and t_s - prev[-1][0] > s.noise_max_gap_s:
-            prev.clear()
-        prev.append((t_s, value_c))
-        if len(prev) < 3:
-            return
-        (t0, z0), (t1, z1), (t2, z2) = prev[-3:]
-        del prev[0]
-        if not t2 > t1 > t0:  # time must move forward for a difference; start afresh
-            prev[:] = [(t_s, value_c)]
-            return
-        a = (t2 - t1) / (t1 - t0)
-        self.window.append(((z2 - z1) - a * (z1 - z0)) / math.sqrt(1.0 + (1.0 + a) ** 2 + a * a))
-        while len(self.window) > s.noise_window:
-            self.window.popleft()
-        self.new_since_estimate += 1
-        if len(self.window) >= s.noise_min_count and (
-            self.sd_c is None or self.new_since_estimate >= self.REFRESH_EVERY
-        ):
-            d = np.fromiter(self.window, dtype=float, count=len(self.window))
-            d -= np.median(d)
-            mad_sd_c = 1.4826 * float(np.median(np.abs(d)))
-            kept = d[np.abs(d) <= 5.0 * mad_sd_c]
-            self.sd_c = math.sqrt(float(np.mean(kept * kept))) if mad_sd_c > 0.0 else 0.0
-            self.new_since_estimate = 0
-
-    def break_chain(self) -> None:
-        """Forget the last readings: the next difference starts afresh (not idle now)."""
-        self.previous.clear()
-
-
-#: Water within this of the room (K) is at rest, not cooling (common practice, no source).
-REST_EXCESS_K = 3.0
-
-
-@dataclass
-class _GapMoments:
-    """Running sums of the water-minus-element reading gap (K) and the water's excess
-    on the room (K) over a group of instants."""
-
-    n: int = 0
-    gap_sum_c: float = 0.0
-    gap_sq_c2: float = 0.0
-    excess_sum_k: float = 0.0
-
-    def add(self, gap_c: float, excess_k: float) -> None:
-        self.n += 1
-        self.gap_sum_c += gap_c
-        self.gap_sq_c2 += gap_c * gap_c
-        self.excess_sum_k += excess_k
-
-    @property
-    def mean_gap_c(self) -> float:
-        return self.gap_sum_c / self.n
-
-    @property
-    def mean_excess_k(self) -> float:
-        return self.excess_sum_k / self.n
-
-    def mean_var_c2(self, floor_c2: float) -> float:
-        """Return the variance of the mean gap: the gaps' variance (at least
-        ``floor_c2``, the two readings' noise) over half the instants (the lags make
-        neighbours a little alike)."""
-        mean = self.mean_gap_c
-        return max(self.gap_sq_c2 / self.n - mean * mean, floor_c2) / (0.5 * self.n)
-
-
-@dataclass
-class _ElementPath:
-    """The element's own path to the room, learnt from the readings while cooling.
-
-    The filter's two-node model joins the element to the water only, so its UA is
-    the water's path to the room alone. A plate or a sheathed element also loses
-    heat straight to the room: off and settled, it sits a little below the water and
-    draws G·(T_w − T_e) from it, heat the water loses all the same. What a user means
-    by the vessel's UA counts that path too (bench_worlds, 2026-12-05: the kettles
-    with an element thermocouple read UA 12 % low after 10 min of cooling without
-    it, p90 19 %).
-
-    The share ρ = (T_w − T_e)/(T_w − T_a) is close to constant while a vessel cools
-    (both differences fall together), so it is averaged over the cooling from
-    ``element_path_settle_s`` after the switch-off, from the readings (the filter's
-    element state is pulled towards the water by the model that lacks the path):
-      ΔT = (R_w − R_e) + δ + (τ_w − τ_e)·r
-    with δ the element thermocouple's reading above the water's at rest (idle, near
-    room temperature, both in the same water), τ the sensor lags and r the water's
-    mean rate over the window (a lagged sensor reads T − τ·dT/dt on a slope). UA
-    reported = UA + G·ρ.
-    """
-
-    rest: _GapMoments = field(default_factory=_GapMoments)
-    cool: _GapMoments = field(default_factory=_GapMoments)
-    first: tuple[float, float] | None = None  # (t_s, water reading) at the window's start
-    last: tuple[float, float] | None = None
-
-    def at_rest(self, water_c: float, element_c: float, ambient_c: float) -> None:
-        """Take one settled, unheated instant's readings (°C) before heating or near the room."""
-        self.rest.add(water_c - element_c, water_c - ambient_c)
-
-    def cooling(self, t_s: float, water_c: float, element_c: float, ambient_c: float) -> None:
-        """Take one settled cooling instant's readings (°C)."""
-        self.cool.add(water_c - element_c, water_c - ambient_c)
-        if self.first is None:
-            self.first = (t_s, water_c)
-        self.last = (t_s, water_c)
-
-    def rest_zero_c(self, s: EstimatorSettings) -> float | None:
-        """Return the element's mean reading above the water's at rest (K), or None.
-
-        None with fewer than ``element_path_min_readings`` rest readings, a rest more
-        than ``element_zero_max_excess_k`` from the room (the path's own share would
-        be in it) or a mismatch over ``element_zero_max_c``.
-        """
-        rest = self.rest
-        if rest.n < s.element_path_min_readings:
-            return None
-        if abs(rest.mean_excess_k) > s.element_zero_max_excess_k:
-            return None
-        zero = -rest.mean_gap_c
-        return zero if abs(zero) <= s.element_zero_max_c else None
-
-    def restart(self) -> None:
-        """Forget the cooling window (heating began again); the rest is kept."""
-        self.cool = _GapMoments()
-        self.first = self.last = None
-
-    def share(
-        self, lag_diff_s: float, lag_diff_sd_s: float, s: EstimatorSettings
-    ) -> Estimated | None:
-        """Return ρ and its 1σ, or None before ``element_path_min_readings`` readings.
-
-        ``lag_diff_s`` is τ_w − τ_e (s) with its 1σ. The 1σ adds: the rest's mean gap
-        (or ``element_mismatch_sd_c`` with fewer than ``element_rest_min_readings``
-        rest readings), the cooling's mean gap, the lag difference times the rate, and
-        ``element_path_model_rel_sd`` of ρ for what the correction leaves out (the
-        plate's own heat, which lags as the whole vessel cools).
-        """
-        cool, rest = self.cool, self.rest
-        if cool.n < s.element_path_min_readings:
-            return None
-        pair_var = s.water_noise_sd_c**2 + s.element_noise_sd_c**2
-        if rest.n >= s.element_rest_min_readings:
-            # the gap at rest holds the thermocouples' mismatch (and the small share
-            # of the path at the rest's own excess): ρ is the slope between the two
-            rest_gap, rest_excess = rest.mean_gap_c, rest.mean_excess_k
-            rest_var = rest.mean_var_c2(pair_var) + s.element_rest_floor_sd_c**2
-        else:
-            rest_gap, rest_var, rest_excess = 0.0, s.element_mismatch_sd_c**2, 0.0
-        span = cool.mean_excess_k - rest_excess
-        if not span > s.element_path_min_span_k:
-            return None
-        (t0, w0), (t1, w1) = self.first, self.last
-        rate = (w1 - w0) / (t1 - t0) if t1 > t0 else 0.0
-        rho = (cool.mean_gap_c + lag_diff_s * rate - rest_gap) / span
-        var_rise = rest_var + cool.mean_var_c2(pair_var) + (lag_diff_sd_s * rate) ** 2
-        sd = math.sqrt(var_rise / (span * span) + (s.element_path_model_rel_sd * rho) ** 2)
-        return Estimated(rho, sd)
-
-
-@dataclass
-class _SensorWatch:
-    """Per-sensor health bookkeeping (owned by one estimator)."""
-
-    last_value: float | None = None
-    same_since_s: float | None = None
-    model_at_same: float | None = None
-    # readings in a row more than huber_k innovation sd's out (down-weighted or set
-    # aside), and the smallest of their innovations, K
-    missed_in_row: int = 0
-    smallest_miss_c: float = math.inf
-    noise: _NoiseTracker = field(default_factory=_NoiseTracker)
 
 
 @dataclass
@@ -730,7 +191,7 @@ class VesselEstimator:
         self.core: FastCore | FilterpyCore | None = None
         self.t_s: float | None = None
         self.totals = RunTotals()
-        self._watch = {"water": _SensorWatch(), "element": _SensorWatch()}
+        self._watch = {"water": SensorWatch(), "element": SensorWatch()}
         self._last_power_w = 0.0
         self._previous_mean_power_w = 0.0
         self._last_switch_s: float | None = None
@@ -754,7 +215,7 @@ class VesselEstimator:
         self._fit_state: tuple[float, float] | None = None  # (T_e, T_w) of the fit, now
         self._fit_eta_rel_sd = 0.0  # the fit's time-to-target spread over the time itself
         self._fit_anchored_s: float | None = None
-        self._element_path = _ElementPath()
+        self._element_path = ElementPath()
         self._element_zero_c: float | None = None  # set at the first switch-on (_zeroed)
         self._fit_waiting_since_s: float | None = None  # a due fit the budget put off
 
@@ -1117,7 +578,7 @@ class VesselEstimator:
         """Return the readings with the element thermocouple zeroed against the water's.
 
         At the first switch-on, the element's mean reading above the water's at rest
-        (:class:`_ElementPath`, near room temperature) becomes its zero, if there were
+        (:class:`ElementPath`, near room temperature) becomes its zero, if there were
         ``element_path_min_readings`` of them and it is within ``element_zero_max_c``
         (a larger one is a fault for a person, not a zero). Two thermocouples that
         disagree by 0.4 K are within type K's tolerance, yet the filter, whose element
@@ -1140,7 +601,7 @@ class VesselEstimator:
     def _watch_element_path(
         self, t_s: float, power_w: float, readings: Mapping[str, float]
     ) -> None:
-        """Feed :class:`_ElementPath` with the instant's readings (see there)."""
+        """Feed :class:`ElementPath` with the instant's readings (see there)."""
         path = self._element_path
         if self._heating(power_w):
             path.restart()
@@ -1439,7 +900,7 @@ class VesselEstimator:
         t_since_switch = (
             self.t_s - self._last_switch_s if self._last_switch_s is not None else math.inf
         )
-        # idle and settled: the readings' noise can be measured (_NoiseTracker)
+        # idle and settled: the readings' noise can be measured (NoiseTracker)
         self._noise_idle = not heating and not clamped and t_since_switch >= s.noise_settle_s
         if switched_w > 0.0 and lay.element is not None:
             # Only the mean power over the interval is known, not when inside it the
@@ -1723,7 +1184,68 @@ class VesselEstimator:
             if g_est is not None:
                 g_est = Estimated(g_est.value, max(g_est.std, UNFITTED_RELATIVE_SD * g_est.value))
 
-        # phase
+        phase = self._phase(heating, water_c, ambient_c)
+        if phase is Phase.COOLING and g is not None and not fitted:
+            share = self._element_path.share(*self._lag_difference_s(), s)
+            if share is not None:
+                g_sd = g_est.std if g_est is not None else 0.0
+                ua_est = Estimated(
+                    ua + g * share.value,
+                    math.sqrt(ua_est.std**2 + (share.value * g_sd) ** 2 + (g * share.std) ** 2),
+                )
+                ua = ua_est.value
+
+        self._track_heat_up(t_s, heating, water_c, phase, g_est)
+
+        waiting = self._fit_waiting_since_s
+        if waiting is not None and not tot.reached_target and t_s - waiting >= s.fit_wait_notice_s:
+            flags.append(
+                Flag(
+                    "fit_waiting",
+                    Level.NOTICE,
+                    f"The heat-up fit has waited {t_s - waiting:.0f} s for processor time "
+                    "(many vessels heating at once): these figures come from an older fit. "
+                    "A replay of the log gives them with every fit made on time.",
+                    {"waiting_s": t_s - waiting},
+                )
+            )
+
+        target = self._forecast(heating, fitted, unfitted, water_c, power_w, ambient_c, flags)
+        evaporation, to_dry = self._boil_off(heating, water_c, ambient_c, power_w, ua, g, mass,
+                                             flags)  # fmt: skip
+        standing = None
+        if cfg.target_c is not None:
+            loss = ua * (water_c - ambient_c)
+            standing = Estimated(loss, ua_est.std * abs(water_c - ambient_c))
+        for flag in flags:
+            tot.flags_raised.setdefault(flag.name, flag)
+            if flag.level is Level.ALARM:
+                tot.flags_raised[flag.name] = flag
+        return Estimate(
+            t_s=t_s,
+            vessel=cfg.vessel,
+            phase=phase,
+            water_c=water_c,
+            water_std_c=self._std(lay.water),
+            element_c=float(x[lay.element]) if lay.element is not None else None,
+            ambient_c=ambient_c,
+            power_w=power_w,
+            ua_w_per_k=ua_est,
+            heat_capacity_j_per_k=c_est,
+            water_mass_kg=mass_est,
+            element_conductance_w_per_k=g_est,
+            boiling_point_c=self.boiling_point_c,
+            target=target,
+            boil_off_to_dry_s=to_dry,
+            evaporation_kg_per_s=evaporation,
+            standing_loss_w=standing,
+            nis=self._nis,
+            flags=tuple(flags),
+        )
+
+    def _phase(self, heating: bool, water_c: float, ambient_c: float) -> Phase:
+        """Return the vessel's phase now (boiling, holding, heating, cooling or idle)."""
+        s, cfg, tot = self.settings, self.config, self.totals
         if self._boiling and heating:
             phase = Phase.BOILING
         elif (
@@ -1738,17 +1260,14 @@ class VesselEstimator:
             phase = Phase.COOLING
         else:
             phase = Phase.IDLE
-        if phase is Phase.COOLING and g is not None and not fitted:
-            share = self._element_path.share(*self._lag_difference_s(), s)
-            if share is not None:
-                g_sd = g_est.std if g_est is not None else 0.0
-                ua_est = Estimated(
-                    ua + g * share.value,
-                    math.sqrt(ua_est.std**2 + (share.value * g_sd) ** 2 + (g * share.std) ** 2),
-                )
-                ua = ua_est.value
+        return phase
 
-        # heat-up bookkeeping
+    def _track_heat_up(
+        self, t_s: float, heating: bool, water_c: float, phase: Phase, g_est: Estimated | None
+    ) -> None:
+        """Keep the run's heat-up totals: its start, its end at the target, G at 80 % of
+        the rise, and the holding time."""
+        tot = self.totals
         if heating and tot.heating_started_s is None:
             tot.heating_started_s = t_s
             tot.heat_up_start_c = water_c
@@ -1770,20 +1289,19 @@ class VesselEstimator:
             tot.holding_sum_c += water_c
             tot.holding_steps += 1
 
-        waiting = self._fit_waiting_since_s
-        if waiting is not None and not tot.reached_target and t_s - waiting >= s.fit_wait_notice_s:
-            flags.append(
-                Flag(
-                    "fit_waiting",
-                    Level.NOTICE,
-                    f"The heat-up fit has waited {t_s - waiting:.0f} s for processor time "
-                    "(many vessels heating at once): these figures come from an older fit. "
-                    "A replay of the log gives them with every fit made on time.",
-                    {"waiting_s": t_s - waiting},
-                )
-            )
-
-        # forecasts
+    def _forecast(
+        self,
+        heating: bool,
+        fitted: bool,
+        unfitted: bool,
+        water_c: float,
+        power_w: float,
+        ambient_c: float,
+        flags: list[Flag],
+    ) -> TargetForecast | None:
+        """Return the time to the target with its 90 % interval while heating towards it
+        (from the heat-up fit while it speaks, else the filter's sigma points), or None."""
+        s = self.settings
         target = None
         if s.forecast and heating and not self._boiling and water_c < self.target_c:
             target = self._fit_forecast(power_w, ambient_c) if fitted else None
@@ -1807,6 +1325,23 @@ class VesselEstimator:
                         {"target_c": self.target_c, "power_w": power_w},
                     )
                 )
+        return target
+
+    def _boil_off(
+        self,
+        heating: bool,
+        water_c: float,
+        ambient_c: float,
+        power_w: float,
+        ua: float,
+        g: float | None,
+        mass: float,
+        flags: list[Flag],
+    ) -> tuple[float, float | None]:
+        """Return the evaporation (kg/s) while boiling and the time (s) until the water
+        is gone at that rate (None when not boiling), raising ``dry_boil`` when it is
+        near."""
+        lay, s, x = self.layout, self.settings, self.core.x
         evaporation = 0.0
         to_dry = None
         if self._boiling and heating:
@@ -1838,35 +1373,7 @@ class VesselEstimator:
                             {"water_mass_kg": mass, "to_dry_s": to_dry},
                         )
                     )
-        standing = None
-        if cfg.target_c is not None:
-            loss = ua * (water_c - ambient_c)
-            standing = Estimated(loss, ua_est.std * abs(water_c - ambient_c))
-        for flag in flags:
-            tot.flags_raised.setdefault(flag.name, flag)
-            if flag.level is Level.ALARM:
-                tot.flags_raised[flag.name] = flag
-        return Estimate(
-            t_s=t_s,
-            vessel=cfg.vessel,
-            phase=phase,
-            water_c=water_c,
-            water_std_c=self._std(lay.water),
-            element_c=float(x[lay.element]) if lay.element is not None else None,
-            ambient_c=ambient_c,
-            power_w=power_w,
-            ua_w_per_k=ua_est,
-            heat_capacity_j_per_k=c_est,
-            water_mass_kg=mass_est,
-            element_conductance_w_per_k=g_est,
-            boiling_point_c=self.boiling_point_c,
-            target=target,
-            boil_off_to_dry_s=to_dry,
-            evaporation_kg_per_s=evaporation,
-            standing_loss_w=standing,
-            nis=self._nis,
-            flags=tuple(flags),
-        )
+        return evaporation, to_dry
 
     @property
     def conductance_at_80_percent(self) -> Estimated | None:

@@ -27,7 +27,7 @@ from plotly.subplots import make_subplots
 from drivers.errors import LogFormatError
 from monitor import __version__
 from monitor.estimation.contracts import Estimate
-from monitor.estimation.estimator import EstimatorSettings
+from monitor.estimation.settings import EstimatorSettings
 from monitor.records.recorder import is_recorder_log, sessions, verify
 from monitor.reports.plots import PALETTE, add_band, history_figure
 from monitor.reports.safety import SAFETY_TEXT

@@ -52,7 +52,8 @@ from dataclasses import dataclass
 from drivers.sample import Quality, Sample
 from monitor.estimation.batchfit import FitBudget
 from monitor.estimation.contracts import Estimate
-from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.estimation.estimator import VesselEstimator
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
 from monitor.records.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
 from monitor.runs.drift import VesselDrift, run_checks
 from monitor.runs.run import OpenRun, RunSplitter

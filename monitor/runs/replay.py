@@ -37,7 +37,7 @@ from typing import TextIO
 
 from monitor import __version__
 from monitor.estimation.contracts import Estimate, Level
-from monitor.estimation.estimator import EstimatorSettings, VesselConfig
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
 from monitor.records.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
 from monitor.runs.drift import VERDICT_TEXT, verdict_of
 from monitor.runs.run import NO_FIGURES, OpenRun, Run, has_element_sensor, split_runs

@@ -29,7 +29,8 @@ from drivers.errors import LogFormatError
 from monitor.estimation import batchfit
 from monitor.estimation.batchfit import FitBudget
 from monitor.estimation.contracts import Estimate, Estimated, Level, finite_or_none
-from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.estimation.estimator import VesselEstimator
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
 from monitor.records.interchange import InterchangeLog, LogRow, iso_utc
 from monitor.runs.drift import run_verdict
 

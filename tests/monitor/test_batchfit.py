@@ -18,7 +18,8 @@ from drivers.simworld import (
     scenario_metadata,
 )
 from monitor.estimation import batchfit as bf
-from monitor.estimation.estimator import EstimatorSettings, VesselConfig, VesselEstimator
+from monitor.estimation.estimator import VesselEstimator
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
 
 
 def _theta(ua=1.5, c=5600.0, g=60.0, ce=300.0, tau_w=4.0, t0=15.0, tau_e=1.5, de=0.0):

@@ -18,13 +18,9 @@ from drivers.simworld import (
     water_heater_scenario,
 )
 from monitor.estimation.contracts import Phase
-from monitor.estimation.estimator import (
-    EstimatorSettings,
-    FastCore,
-    FilterpyCore,
-    VesselConfig,
-    VesselEstimator,
-)
+from monitor.estimation.cores import FastCore, FilterpyCore
+from monitor.estimation.estimator import VesselEstimator
+from monitor.estimation.settings import EstimatorSettings, VesselConfig
 
 
 def _run(scenario, seed, element=True, tamper=None, core=FastCore, kind=VesselEstimator):
@@ -635,7 +631,8 @@ def test_ua_in_cooling_counts_the_element_path_to_the_room(offset_c):
 def test_a_failure_inside_the_filter_restarts_it_and_says_so(monkeypatch) -> None:
     """Issue 14: an exception inside one vessel's filter stays there; the filter starts
     afresh, the step gives no estimate, and the rest of the run carries the flag."""
-    from monitor.estimation.estimator import VesselConfig, VesselEstimator
+    from monitor.estimation.estimator import VesselEstimator
+    from monitor.estimation.settings import VesselConfig
 
     meta = {"vessel_heat_capacity_j_per_k": 700, "rated_power_w": 2000}
     est = VesselEstimator(VesselConfig.from_metadata("k", meta, False))
@@ -666,7 +663,8 @@ def test_a_failure_inside_the_filter_restarts_it_and_says_so(monkeypatch) -> Non
 
 
 def test_readings_no_instrument_could_give_are_left_out() -> None:
-    from monitor.estimation.estimator import VesselConfig, VesselEstimator
+    from monitor.estimation.estimator import VesselEstimator
+    from monitor.estimation.settings import VesselConfig
 
     meta = {"vessel_heat_capacity_j_per_k": 700, "rated_power_w": 2000}
     est = VesselEstimator(VesselConfig.from_metadata("k", meta, False))
