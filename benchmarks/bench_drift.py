@@ -52,7 +52,8 @@ from drivers.simworld import Scenario, SimulatedRig, kettle_scenario, scenario_m
 from monitor.records.interchange import InterchangeLog, rows_from_samples
 from monitor.runs import drift as drift_module
 from monitor.runs.drift import VesselDrift, run_checks
-from monitor.runs.replay import replay_run, split_runs
+from monitor.runs.replay import replay_run
+from monitor.runs.run import split_runs
 
 CHANNELS = ["water", "element", "ambient", "power", "voltage"]
 #: What a catalogue says of the parts (our own nominal figures); the drawn truth differs.

@@ -134,6 +134,39 @@ def _split(raw: str) -> list[str]:
 
 def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog:
     """Return the log read from text lines (an open text stream); see :func:`read_csv`."""
+    log, rows = stream_csv_text(handle, name)
+    log.rows.extend(rows)
+    return log
+
+
+def stream_csv(path: str | Path) -> tuple[InterchangeLog, Iterator[LogRow]]:
+    """Return a CSV log's header (``rows`` empty) and an iterator of its rows, read as
+    they are asked for, so a log of any length is read in constant memory.
+
+    While the iterator runs it adds each line it sets aside to the header's
+    ``rejected`` (before the next row is given) and, for a ``time`` column, the first
+    row's time to ``start_epoch_s`` (before the first row is given). Errors as
+    :func:`read_csv`, the header's at once.
+    """
+    handle = open(path, "rb")  # noqa: SIM115 (closed when the rows are read or dropped)
+    try:
+        log, rows = stream_csv_text(_decoded_lines(handle), str(path))
+    except BaseException:
+        handle.close()
+        raise
+
+    def closing() -> Iterator[LogRow]:
+        with handle:
+            yield from rows
+
+    return log, closing()
+
+
+def stream_csv_text(
+    handle: Iterable[str], name: str = "<text>"
+) -> tuple[InterchangeLog, Iterator[LogRow]]:
+    """Return the header and a row iterator of a CSV log read from text lines (see
+    :func:`stream_csv`)."""
     metadata: dict[str, str | float] = {}
     lines = iter(enumerate(handle, start=1))
     header: list[str] | None = None
@@ -185,7 +218,31 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
         channels=[COLUMN_CHANNELS[c] for c in header[1:] if c in COLUMN_CHANNELS],
         rejected=rejected,
     )
-    iso = header[0] == "time"
+    if not iso_header(header) and isinstance(metadata.get("start_time"), str):
+        try:
+            log.start_epoch_s = _parse_iso(str(metadata["start_time"]))
+        except ValueError:
+            log.rejected.append(
+                _aside(
+                    name,
+                    0,
+                    f"# start_time: {metadata['start_time']}",
+                    "start_time is not ISO 8601 with a UTC offset",
+                )
+            )
+    return log, _rows(lines, log, header, name)
+
+
+def iso_header(header: list[str]) -> bool:
+    """Return whether a header's time column is ISO 8601 (``time``) rather than seconds."""
+    return header[0] == "time"
+
+
+def _rows(
+    lines: Iterator[tuple[int, str]], log: InterchangeLog, header: list[str], name: str
+) -> Iterator[LogRow]:
+    """Yield a CSV log's rows after its header (see :func:`stream_csv`)."""
+    iso = iso_header(header)
     first_epoch: float | None = None
     last_time: dict[str | None, float] = {}
     for number, raw in lines:
@@ -214,24 +271,9 @@ def read_csv_text(handle: Iterable[str], name: str = "<text>") -> InterchangeLog
         last_time[row.vessel] = row.time_s
         if iso:
             if first_epoch is None:
-                first_epoch = row.time_s
+                first_epoch = log.start_epoch_s = row.time_s
             row = LogRow(row.line, row.time_s - first_epoch, row.values, row.vessel, row.run)
-        log.rows.append(row)
-    if iso:
-        log.start_epoch_s = first_epoch
-    elif isinstance(metadata.get("start_time"), str):
-        try:
-            log.start_epoch_s = _parse_iso(str(metadata["start_time"]))
-        except ValueError:
-            log.rejected.append(
-                _aside(
-                    name,
-                    0,
-                    f"# start_time: {metadata['start_time']}",
-                    "start_time is not ISO 8601 with a UTC offset",
-                )
-            )
-    return log
+        yield row
 
 
 def cells_time(raw: str) -> str:

@@ -38,7 +38,8 @@ from monitor.runs.drift import (
     verdict_of,
 )
 from monitor.runs.logs import read_log
-from monitor.runs.replay import Run, replay_run, split_runs
+from monitor.runs.replay import replay_run
+from monitor.runs.run import Run, split_runs
 
 
 def file_sha256(path: str | Path) -> str:

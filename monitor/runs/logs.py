@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from itertools import groupby
 from pathlib import Path
 from typing import TextIO
@@ -25,6 +25,7 @@ from monitor.records.interchange import (
     LogRow,
     iso_utc,
     read_csv,
+    stream_csv,
     write_csv,
 )
 from monitor.records.recorder import (
@@ -107,6 +108,51 @@ def read_log(path: str | Path, vessel: str | None = None) -> list[InterchangeLog
     elif rejected:
         logs.append(InterchangeLog(path, {}, ["water", "power"], [], rejected))
     return logs
+
+
+def stream_log(
+    path: str | Path, vessel: str | None = None
+) -> tuple[list[InterchangeLog], Iterator[tuple[InterchangeLog, LogRow]]]:
+    """Return the log at ``path`` as a stream: the header logs seen so far (a list that
+    grows as the stream is read) and an iterator of (header log, row), in the order
+    :func:`read_log` gives them, in memory that does not grow with the log.
+
+    A CSV log is one header log (:func:`monitor.records.interchange.stream_csv`); a
+    recorder log has one per vessel and session, made at its first step, with channels
+    added as they are seen, and one more header log holding the log's quarantine. Errors
+    as :func:`read_log`.
+    """
+    path = str(path)
+    if not Path(path).exists():
+        raise LogFormatError(f"{path}: no such file")
+    if not is_recorder_log(path):
+        with open(path, "rb") as handle:
+            if handle.read(16).startswith(b"SQLite format 3"):
+                raise LogFormatError(f"{path}: an SQLite file, but not an ebullio recorder log")
+        log, rows = stream_csv(path)
+        return [log], ((log, row) for row in rows)
+    seen = [InterchangeLog(path, {}, [], [], _rejected(path))]
+    metadata = read_vessels(path)
+
+    def items() -> Iterator[tuple[InterchangeLog, LogRow]]:
+        numbered = enumerate(read_samples_by_session(path, vessel))
+        for _, group in groupby(numbered, key=lambda item: item[1][0]):
+            logs: dict[str, InterchangeLog] = {}  # this session's, by vessel
+            steps = steps_from_samples((position, sample) for position, (_, sample) in group)
+            for step in steps:
+                log = logs.get(step.vessel)
+                if log is None:
+                    meta = {**metadata.get(step.vessel, {}), "vessel": step.vessel}
+                    log = logs[step.vessel] = InterchangeLog(
+                        f"{path}#{step.vessel}", meta, [], start_epoch_s=step.t - step.time_s
+                    )
+                    seen.append(log)
+                for channel in step.values:
+                    if channel not in log.channels:
+                        log.channels.append(channel)
+                yield log, LogRow(step.line, step.time_s, step.values, step.vessel)
+
+    return seen, items()
 
 
 def _csv_rows(rows: list[LogRow]) -> list[LogRow]:

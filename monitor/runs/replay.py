@@ -32,15 +32,25 @@ from __future__ import annotations
 
 import csv
 import logging
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
+from pathlib import Path
 from typing import TextIO
 
 from monitor import __version__
 from monitor.estimation.contracts import Estimate, Level
 from monitor.estimation.settings import EstimatorSettings, VesselConfig
+from monitor.records.interchange import InterchangeLog, LogRow
+from monitor.records.recorder import is_recorder_log
 from monitor.records.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
 from monitor.runs.drift import VERDICT_TEXT, verdict_of
-from monitor.runs.run import NO_FIGURES, OpenRun, Run, has_element_sensor, split_runs
+from monitor.runs.run import (
+    NO_FIGURES,
+    OpenRun,
+    Run,
+    RunSplitter,
+    check_columns,
+    has_element_sensor,
+)
 
 _log = logging.getLogger("ebullio.replay")
 
@@ -103,6 +113,171 @@ def estimate_row(run: Run, e: Estimate) -> list[str]:
     return estimate_csv_row(flatten_estimate(e, vessel=run.vessel, run=run.label, t=e.t_s))
 
 
+#: Rows a run's replay may hold before its filter is built, waiting to see whether the
+#: log has element readings (a log that says ``element_sensor`` is not held): an hour
+#: at 1 Hz. A run whose first element reading comes later is replayed one-node, where
+#: a replay of the whole run read at once would have made it two-node.
+ELEMENT_WAIT_ROWS = 3600
+
+
+class _VesselReplay:
+    """One vessel's rows replayed run by run as they are read: the split of
+    :func:`monitor.runs.run.split_runs` (a refill's first cold reading goes with the new
+    run, so each row waits one row before it is stepped) and the filter of
+    :func:`replay_run`, holding no more than a few rows."""
+
+    def __init__(
+        self,
+        vessel: str,
+        settings: EstimatorSettings | None,
+        on_estimate: Callable[[OpenRun, Estimate], None],
+        finished: Callable[[tuple[int, int], dict[str, object]], None],
+        order: Callable[[], tuple[int, int]],
+    ) -> None:
+        self.vessel = vessel
+        self.settings = settings
+        self.on_estimate = on_estimate
+        self.finished = finished  # (start order, summary) as each run ends
+        self.order = order
+        self.number = 0
+        self.log: InterchangeLog | None = None
+        self._splitter = RunSplitter()
+        self._pending: LogRow | None = None
+        self._label: str | None = None
+        self._slot = (0, 0)
+        self._held: list[LogRow] = []  # rows before the run's filter is built
+        self._run: OpenRun | None = None
+        self._failed: str | None = None
+        self._first: LogRow | None = None
+        self._last: LogRow | None = None
+        self._steps = 0
+
+    def new_log(self, log: InterchangeLog) -> None:
+        """Start afresh at a new file or session: the next row begins a new run."""
+        self.finish()
+        self.log = log
+        self._splitter = RunSplitter()
+
+    def take(self, row: LogRow) -> None:
+        start = self._splitter.take(row)
+        if start is None:
+            self._feed(self._pending)
+        elif start == "refill":
+            self._end()
+            self._begin(row)
+            self._feed(self._pending)  # the first of the cold water
+        else:
+            self._feed(self._pending)
+            self._end()
+            self._begin(row)
+        self._pending = row
+
+    def finish(self) -> None:
+        """Step the row still waiting and end the run (the file or session ended)."""
+        self._feed(self._pending)
+        self._pending = None
+        self._end()
+
+    def _begin(self, row: LogRow) -> None:
+        self.number += 1
+        self._label = row.run or str(self.number)
+        self._slot = self.order()
+        self._first = self._last = None
+        self._steps = 0
+        self._failed = None
+
+    def _feed(self, row: LogRow | None) -> None:
+        if row is None or self._label is None:
+            return
+        if self._first is None:
+            self._first = row
+        self._last = row
+        self._steps += 1
+        if self._failed is not None:
+            return
+        if self._run is None:
+            self._held.append(row)
+            log = self.log
+            assert log is not None
+            declared = log.metadata.get("element_sensor") in ("yes", "no")
+            if declared or "element" in row.values or len(self._held) >= ELEMENT_WAIT_ROWS:
+                self._build()
+            return
+        self._step(row)
+
+    def _build(self) -> None:
+        log = self.log
+        assert log is not None
+        assert self._label is not None
+        meta = log.metadata
+        config = VesselConfig.from_metadata(
+            self.vessel, meta, has_element_sensor(meta, log.channels, self._held)
+        )
+        try:
+            self._run = OpenRun(self.vessel, self._label, config, meta,
+                                log.start_epoch_s or 0.0, settings=self.settings)  # fmt: skip
+        except Exception as exc:  # one run's failure must not end the others' replay
+            self._fail(exc)
+        held, self._held = self._held, []
+        for row in held:
+            self._step(row)
+
+    def _step(self, row: LogRow) -> None:
+        if self._run is None or self._failed is not None:
+            return
+        try:
+            e = self._run.step(row)
+        except Exception as exc:  # one run's failure must not end the others' replay
+            self._fail(exc)
+            return
+        if e is not None:
+            self.on_estimate(self._run, e)
+
+    def _fail(self, exc: Exception) -> None:
+        _log.exception("replay of vessel %s run %s failed", self.vessel, self._label)
+        self._failed = f"{type(exc).__name__}: {exc}"
+        self._run = None
+
+    def _end(self) -> None:
+        if self._label is None:
+            return
+        if self._run is None and self._held and self._failed is None:
+            self._build()  # a short run: built on what it held
+        log = self.log
+        assert log is not None
+        quarantined = 0
+        if self._first is not None and self._last is not None:
+            lo, hi = self._first.line, self._last.line
+            quarantined = sum(1 for r in log.rejected if lo <= r.line <= hi)
+        if self._failed is not None or self._run is None:
+            summary = _failed_summary(self.vessel, self._label, log.path, self._first,
+                                      self._last, self._steps, quarantined,
+                                      self._failed or "nothing to replay")  # fmt: skip
+        else:
+            summary = self._run.summary(quarantined)
+            summary["file"] = log.path
+            if not log.start_epoch_s:  # a CSV log without a start time: no clock times
+                summary |= {"start_t": None, "end_t": None, "start_utc": None}
+        self.finished(self._slot, summary)
+        self._label, self._run, self._held = None, None, []
+
+
+def _failed_summary(
+    vessel: str, label: str, path: str, first: LogRow | None, last: LogRow | None,
+    steps: int, quarantined: int, reason: str,
+) -> dict[str, object]:  # fmt: skip
+    """Return the summary of a run whose replay failed outside the filter."""
+    return NO_FIGURES | {
+        "vessel": vessel, "run": label, "file": path,
+        "start_s": first.time_s if first else None, "end_s": last.time_s if last else None,
+        "steps": steps, "quarantined_rows": quarantined,
+        "flags": [{"name": "replay_failed", "level": str(Level.WARNING),
+                   "message": f"This run could not be replayed ({reason}); its readings "
+                   "are in the log as recorded."}],
+        "verdict": {"status": "doubtful", "reasons": [f"The replay failed: {reason}."]},
+    }  # fmt: skip
+
+
 def replay(
     paths: list[str],
     settings: EstimatorSettings | None = None,
@@ -111,38 +286,69 @@ def replay(
 ) -> dict[str, object]:
     """Return the replay result of the logs at ``paths`` (the ``--json`` contract).
 
-    Writes per-step estimates to ``estimates_out`` when given, and progress lines to
-    ``progress`` for long logs.
+    The logs are read and replayed as a stream, run by run, so the memory it takes does
+    not grow with a log's length (:func:`monitor.runs.logs.stream_log`); the runs are
+    those :func:`monitor.runs.run.split_runs` finds and the figures those of
+    :func:`replay_run`. Writes per-step estimates to ``estimates_out`` when given, and
+    a progress line to ``progress`` every :data:`PROGRESS_STEPS` steps.
     """
     from monitor.runs.logs import (  # here: monitor.runs.logs builds on this module
         log_integrity,
-        read_log,
+        stream_log,
     )
 
-    logs = [log for p in paths for log in read_log(p)]
-    runs, quarantined = split_runs(logs)
-    total = sum(len(r.rows) for r in runs)
     writer = None
     if estimates_out is not None:
         writer = csv.writer(estimates_out, lineterminator="\n")
         writer.writerow(ESTIMATE_CSV_COLUMNS)
     done = 0
-    next_report = total // 10 if total >= 50_000 else None
 
-    def on_estimate(run: Run, e: Estimate) -> None:
-        nonlocal done, next_report
+    def on_estimate(run: OpenRun, e: Estimate) -> None:
+        nonlocal done
         done += 1
         if writer is not None:
             writer.writerow(estimate_row(run, e))
-        if progress is not None and next_report is not None and done >= next_report:
-            print(f"replay: {100 * done // total:3d} % ({done} of {total} steps)",
-                  file=progress, flush=True)  # fmt: skip
-            next_report += total // 10
+        if progress is not None and done % PROGRESS_STEPS == 0:
+            print(f"replay: {done} steps", file=progress, flush=True)
 
-    results = [_replay_isolated(run, settings, on_estimate) for run in runs]
+    # runs in the order split_runs gives them: by header log (a file, or a vessel's
+    # session in a recorder log, in order of its first step), then as they began
+    ended: list[tuple[tuple[int, int], dict[str, object]]] = []
+    began = iter(range(1 << 62))
+    log_order: dict[int, int] = {}
+    vessels: dict[str, _VesselReplay] = {}
+    metadata: dict[str, Mapping[str, object]] = {}
+    logs: list[InterchangeLog] = []
+    for path in paths:
+        seen, items = stream_log(path)
+        if not is_recorder_log(path):
+            check_columns(seen[0])
+        default: dict[int, str] = {}  # each header log's vessel for rows that name none
+        for log, row in items:
+            vessel = row.vessel
+            if not vessel:
+                vessel = default.get(id(log))
+                if vessel is None:
+                    vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
+                    default[id(log)] = vessel
+            feed = vessels.get(vessel)
+            if feed is None:
+                feed = vessels[vessel] = _VesselReplay(
+                    vessel, settings, on_estimate,
+                    lambda slot, summary: ended.append((slot, summary)),
+                    lambda f=vessel: (log_order[id(vessels[f].log)], next(began)),
+                )  # fmt: skip
+            if feed.log is not log:
+                log_order.setdefault(id(log), len(log_order))
+                feed.new_log(log)
+                metadata[vessel] = log.metadata
+            feed.take(row)
+        logs += seen
+    for feed in vessels.values():
+        feed.finish()
+    results = [summary for _, summary in sorted(ended, key=lambda item: item[0])]
     from monitor.runs.drift import drift_over_runs  # here: monitor.runs.drift reads these summaries
 
-    metadata = {run.vessel: run.log.metadata for run in runs}
     for result, flags in zip(results, drift_over_runs(results, metadata), strict=True):
         result["drift"] = [f.as_dict() for f in flags]
     return {
@@ -150,8 +356,12 @@ def replay(
         "files": list(paths),
         "integrity": [log_integrity(p) for p in paths],
         "runs": results,
-        "quarantined": [q.as_dict() for q in quarantined],
+        "quarantined": [q.as_dict() for log in logs for q in log.rejected],
     }
+
+
+#: A progress line every this many steps (``replay --json`` on a long log).
+PROGRESS_STEPS = 100_000
 
 
 def summary_table(result: dict[str, object]) -> str:

@@ -64,7 +64,8 @@ class Run:
         return sum(1 for r in self.log.rejected if lo <= r.line <= hi)
 
 
-def _check_columns(log: InterchangeLog) -> None:
+def check_columns(log: InterchangeLog) -> None:
+    """Raise LogFormatError naming the file and column when a log lacks a required one."""
     if "water" not in log.channels:
         raise LogFormatError(f"{log.path}: the required column 'water_c' is missing")
     if "power" not in log.channels and "energy" not in log.channels:
@@ -140,7 +141,7 @@ def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quaranti
     quarantined: list[Quarantined] = []
     counters: dict[str, int] = {}
     for log in logs:
-        _check_columns(log)
+        check_columns(log)
         quarantined += log.rejected
         default_vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
         open_runs: dict[str, Run] = {}

@@ -24,7 +24,8 @@ from monitor.runs.drift import (
     run_verdict,
     scale_thickness_range_mm,
 )
-from monitor.runs.replay import replay_run, split_runs
+from monitor.runs.replay import replay_run
+from monitor.runs.run import split_runs
 
 SCALING = next(r for r in RULES if r.name == "scaling")
 

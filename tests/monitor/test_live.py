@@ -10,7 +10,8 @@ import pytest
 from drivers.sample import Quality, Sample
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.runs.live import InstantAssembler, LiveVessel, logs_from_steps, steps_from_samples
-from monitor.runs.replay import replay_run, split_runs
+from monitor.runs.replay import replay_run
+from monitor.runs.run import split_runs
 
 T0 = 1_767_225_600.0
 

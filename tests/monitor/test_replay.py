@@ -14,7 +14,8 @@ import pytest
 from monitor.cli import main
 from monitor.records.interchange import read_csv_text
 from monitor.records.schema import ESTIMATE_CSV_COLUMNS
-from monitor.runs.replay import replay, split_runs
+from monitor.runs.replay import replay
+from monitor.runs.run import split_runs
 
 LOGS = Path(__file__).resolve().parent.parent.parent / "replay_logs"
 KETTLE = str(LOGS / "kettle-clean.csv")
@@ -200,14 +201,14 @@ def test_one_run_that_cannot_be_replayed_leaves_the_others(monkeypatch, capsys):
     is that run's summary, and the other runs and the terminal table still come."""
     import monitor.runs.replay as rp
 
-    original = rp.replay_run
+    original = rp.OpenRun.step
 
-    def failing(run, *args, **kwargs):
-        if run.label == "2":
+    def failing(run, row):
+        if run.label == "2" and run.steps >= 10:  # mid-run, once its filter is going
             raise RuntimeError("injected for the test")
-        return original(run, *args, **kwargs)
+        return original(run, row)
 
-    monkeypatch.setattr(rp, "replay_run", failing)
+    monkeypatch.setattr(rp.OpenRun, "step", failing)
     result = _json([KETTLE, KETTLE, str(LOGS / "water-heater-12h.csv")], capsys)
     runs = {(r["vessel"], r["run"]): r for r in result["runs"]}
     assert len(runs) == 3
@@ -283,3 +284,30 @@ def test_set_aside_input_is_one_record_from_a_csv_and_from_a_recorder_log(tmp_pa
     assert row["where"] == "quarantine id 1, serial:///dev/ttyUSB0 line 12"
     assert (row["line"], row["t"], row["reason"]) == (0, received_t, "not a number")
     assert row["raw"] == "water=\\xff"  # the byte that is not UTF-8, kept and escaped
+
+
+def test_the_streamed_replay_gives_what_replaying_the_whole_log_gives(tmp_path) -> None:
+    """Issue 16: replay reads a log as a stream, run by run; the runs, their order and
+    their figures are those of splitting the whole log (split_runs, replay_run)."""
+    from monitor.runs.logs import read_log
+    from monitor.runs.replay import replay_run
+
+    lines = ["time_s,water_c,power_w,vessel,run"]
+    for t in range(400):  # two vessels, interleaved; urn-2 labels its runs
+        lines.append(f"{t},{min(20 + t * 0.4, 99.0):.2f},{2000 if t < 200 else 0},kettle-a,")
+        lines.append(f"{t},{15 + t * 0.05:.2f},1500,urn-2,{'A' if t < 250 else 'B'}")
+    for t in range(400, 500):  # kettle-a emptied and refilled: cold water again
+        lines.append(f"{t},{15 + (t - 400) * 0.3:.2f},2000,kettle-a,")
+    lines.insert(300, "1.5,not-a-number,2000,kettle-a,")  # set aside, inside run 1
+    log = tmp_path / "two.csv"
+    log.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    whole, _ = split_runs(read_log(log))
+    expected = [replay_run(run) for run in whole]
+    streamed = replay([str(log)])["runs"]
+    assert [(r["vessel"], r["run"]) for r in streamed] == [(r.vessel, r.label) for r in whole]
+    assert [(r["vessel"], r["run"]) for r in streamed] == [
+        ("kettle-a", "1"), ("urn-2", "A"), ("urn-2", "B"), ("kettle-a", "2")]  # fmt: skip
+    for got, want in zip(streamed, expected, strict=True):
+        got = {k: v for k, v in got.items() if k != "drift"}
+        assert got == want
+    assert streamed[0]["quarantined_rows"] == 1

@@ -23,7 +23,8 @@ from monitor.records.recorder import (
 from monitor.rig.config import RigConfig, VesselSpec
 from monitor.rig.service import Backoff, Service, public_url
 from monitor.runs.logs import read_log
-from monitor.runs.replay import replay_run, split_runs
+from monitor.runs.replay import replay_run
+from monitor.runs.run import split_runs
 
 
 class ListDriver:
