@@ -212,29 +212,47 @@ def steps_from_samples(samples: Iterable[tuple[int, Sample]]) -> Iterator[Step]:
         yield from assembler.finish()
 
 
-def logs_from_steps(
+def rows_of_steps(
     steps: Iterable[Step], metadata: Mapping[str, Mapping[str, str | float]], path: str
-) -> list[InterchangeLog]:
-    """Return one :class:`InterchangeLog` per vessel (in order of first step) for replay."""
+) -> Iterator[tuple[InterchangeLog, LogRow]]:
+    """Yield each step as (its vessel's header log, row) for replay: one header log per
+    vessel (``rows`` empty), made at its first step, its channels added as they are seen."""
     logs: dict[str, InterchangeLog] = {}
     for step in steps:
         log = logs.get(step.vessel)
         if log is None:
-            meta = dict(metadata.get(step.vessel, {}))
-            meta["vessel"] = step.vessel
+            meta = {**metadata.get(step.vessel, {}), "vessel": step.vessel}
             log = logs[step.vessel] = InterchangeLog(
                 f"{path}#{step.vessel}", meta, [], start_epoch_s=step.t - step.time_s
             )
         for channel in step.values:
             if channel not in log.channels:
                 log.channels.append(channel)
-        log.rows.append(LogRow(step.line, step.time_s, step.values, step.vessel))
-    for log in logs.values():
-        order = list(CHANNEL_COLUMNS)
-        log.channels.sort(key=order.index)
-        if "power" not in log.channels and "energy" not in log.channels:
-            log.channels.append("power")  # no power seen at all: the heater was never on
-    return list(logs.values())
+        yield log, LogRow(step.line, step.time_s, step.values, step.vessel)
+
+
+def logs_from_steps(
+    steps: Iterable[Step], metadata: Mapping[str, Mapping[str, str | float]], path: str
+) -> list[InterchangeLog]:
+    """Return one :class:`InterchangeLog` per vessel (in order of first step), rows and
+    all, with the channels in the CSV format's order (power always among them)."""
+    logs: list[InterchangeLog] = []
+    for log, row in rows_of_steps(steps, metadata, path):
+        if not log.rows:
+            logs.append(log)
+        log.rows.append(row)
+    for log in logs:
+        settle_channels(log)
+    return logs
+
+
+def settle_channels(log: InterchangeLog) -> None:
+    """Put a log's channels in the CSV format's order, with power among them (a vessel
+    whose heater was never on has no power reading at all)."""
+    order = list(CHANNEL_COLUMNS)
+    log.channels.sort(key=order.index)
+    if "power" not in log.channels and "energy" not in log.channels:
+        log.channels.append("power")
 
 
 class LiveVessel:

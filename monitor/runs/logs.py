@@ -24,7 +24,6 @@ from monitor.records.interchange import (
     InterchangeLog,
     LogRow,
     iso_utc,
-    read_csv,
     stream_csv,
     write_csv,
 )
@@ -34,7 +33,7 @@ from monitor.records.recorder import (
     read_samples_by_session,
     read_vessels,
 )
-from monitor.runs.live import logs_from_steps, steps_from_samples
+from monitor.runs.live import rows_of_steps, settle_channels, steps_from_samples
 from monitor.runs.run import split_runs
 
 
@@ -81,32 +80,27 @@ def integrity_warnings(checks: list[dict[str, object]]) -> list[str]:
 
 
 def read_log(path: str | Path, vessel: str | None = None) -> list[InterchangeLog]:
-    """Return the log at ``path`` as interchange logs: one per vessel for SQLite, one for CSV.
+    """Return the log at ``path`` as interchange logs, rows and all: one per vessel and
+    session for SQLite (the log's quarantine with the first), one for CSV.
 
     ``vessel``: of a recorder log, read only that vessel's samples (its runs split
     the same, since each vessel's instants are assembled apart); a CSV log is read
-    whole. Raises LogFormatError when the file is neither.
+    whole. Raises LogFormatError when the file is neither. :func:`stream_log` reads
+    the same in memory that does not grow with the log.
     """
-    path = str(path)
-    if not Path(path).exists():
-        raise LogFormatError(f"{path}: no such file")
+    seen, items = stream_log(path, vessel)
+    for log, row in items:
+        log.rows.append(row)
     if not is_recorder_log(path):
-        with open(path, "rb") as handle:
-            if handle.read(16).startswith(b"SQLite format 3"):
-                raise LogFormatError(f"{path}: an SQLite file, but not an ebullio recorder log")
-        return [read_csv(path)]
-    metadata = read_vessels(path)
-    logs: list[InterchangeLog] = []
-    # each session (one process of the service) through fresh assemblers, as it ran live
-    numbered = enumerate(read_samples_by_session(path, vessel))
-    for _, group in groupby(numbered, key=lambda item: item[1][0]):
-        steps = steps_from_samples((position, sample) for position, (_, sample) in group)
-        logs += logs_from_steps(steps, metadata, path)
-    rejected = _rejected(path)
+        return seen
+    holder, logs = seen[0], seen[1:]
+    for log in logs:
+        settle_channels(log)
     if logs:
-        logs[0].rejected.extend(rejected)
-    elif rejected:
-        logs.append(InterchangeLog(path, {}, ["water", "power"], [], rejected))
+        logs[0].rejected.extend(holder.rejected)
+    elif holder.rejected:
+        holder.channels = ["water", "power"]
+        logs = [holder]
     return logs
 
 
@@ -134,23 +128,17 @@ def stream_log(
     seen = [InterchangeLog(path, {}, [], [], _rejected(path))]
     metadata = read_vessels(path)
 
+    known: set[int] = set()
+
     def items() -> Iterator[tuple[InterchangeLog, LogRow]]:
         numbered = enumerate(read_samples_by_session(path, vessel))
         for _, group in groupby(numbered, key=lambda item: item[1][0]):
-            logs: dict[str, InterchangeLog] = {}  # this session's, by vessel
             steps = steps_from_samples((position, sample) for position, (_, sample) in group)
-            for step in steps:
-                log = logs.get(step.vessel)
-                if log is None:
-                    meta = {**metadata.get(step.vessel, {}), "vessel": step.vessel}
-                    log = logs[step.vessel] = InterchangeLog(
-                        f"{path}#{step.vessel}", meta, [], start_epoch_s=step.t - step.time_s
-                    )
+            for log, row in rows_of_steps(steps, metadata, path):  # this session's
+                if id(log) not in known:
+                    known.add(id(log))
                     seen.append(log)
-                for channel in step.values:
-                    if channel not in log.channels:
-                        log.channels.append(channel)
-                yield log, LogRow(step.line, step.time_s, step.values, step.vessel)
+                yield log, row
 
     return seen, items()
 
