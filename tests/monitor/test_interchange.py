@@ -148,3 +148,20 @@ def test_any_bytes_are_read_and_bad_lines_set_aside_with_where_and_why(tmp_path)
     assert [r.time_s for r in under.rows] == [0.0, 2.0]
     with pytest.raises(LogFormatError, match="line 1: the header row is not UTF-8"):
         read_csv(_file_with(tmp_path, "head.csv", lambda b: b"\xfe" + b.split(b"\n", 1)[1]))
+
+
+def test_a_plain_line_is_split_as_the_csv_module_splits_it() -> None:
+    """Issue 16: a line without quotes is split on its commas, skipping the csv module;
+    the cells must be the module's (lines of our own making)."""
+    import csv
+
+    from monitor.records.interchange import _parse_row
+
+    header = ["time_s", "water_c", "power_w", "vessel", "run"]
+    lines = ["0,20.5,2000,k1,1\n", " 1 , 21 ,, k1 ,\r\n", "2,,,,\n", "3,1e3,-5,,A\n"]
+    for number, raw in enumerate(lines, start=1):
+        fast, _ = _parse_row(number, raw, header, False)
+        cells = next(csv.reader([raw]))
+        quoted = ",".join(f'"{c}"' for c in cells) + "\n"  # the same cells, through csv
+        slow, _ = _parse_row(number, quoted, header, False)
+        assert fast == slow
