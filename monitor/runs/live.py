@@ -56,7 +56,7 @@ from monitor.estimation.estimator import VesselEstimator
 from monitor.estimation.settings import EstimatorSettings, VesselConfig
 from monitor.records.interchange import CHANNEL_COLUMNS, InterchangeLog, LogRow
 from monitor.runs.drift import VesselDrift, run_checks
-from monitor.runs.run import OpenRun, RunSplitter
+from monitor.runs.run import OpenRun, RunEvent, RunFeed
 
 #: How long (s) the latest reading of a channel may stand in for one an instant lacks.
 HOLD_S: dict[str, float] = {
@@ -258,7 +258,7 @@ def settle_channels(log: InterchangeLog) -> None:
 class LiveVessel:
     """One vessel's live filter: steps in, estimates out, a fresh filter at each new run.
 
-    The runs are split by the one rule (:class:`monitor.runs.run.RunSplitter`) and each is
+    The runs are split as everywhere (:class:`monitor.runs.run.RunFeed`) and each is
     stepped as a replay steps it (:class:`monitor.runs.run.OpenRun`), so the run summaries
     the service records are the ones ``ebullio replay`` gives of the same log. A new
     process starts a new run (its first step), as a replay of a recorder log starts
@@ -282,12 +282,10 @@ class LiveVessel:
         # Built now, not at the first reading: the first filter of a process builds the
         # water-property tables (about half a second), which would stall a live loop.
         self._fresh: VesselEstimator | None = self._new_estimator()
-        self.run_number = 0
         self.run: OpenRun | None = None
         self.steps = 0
-        self._runs = RunSplitter()  # the one rule, as a replay splits runs
-        self._held: LogRow | None = None  # a cold reading held back a step (step())
-        self._held_t = 0.0
+        self._feed = RunFeed()  # the one split, as a replay splits runs
+        self._epoch_s = 0.0  # Unix time of the vessel's time_s 0 (its assembler's t0)
         #: The vessel's drift trackers, fed each run's summary as the run ends.
         self.drift = VesselDrift(vessel, self.metadata)
         #: Summaries of the runs that have ended, until the service takes them.
@@ -304,6 +302,11 @@ class LiveVessel:
         return self.run.estimator if self.run is not None else None
 
     @property
+    def run_number(self) -> int:
+        """The number of the latest run begun (0 before one)."""
+        return self._feed.number
+
+    @property
     def latest(self) -> Estimate | None:
         """The current run's newest estimate (None before one)."""
         return self.run.latest if self.run is not None else None
@@ -317,21 +320,27 @@ class LiveVessel:
         go on from the highest numbered one, or ``last_label``, the highest run begun
         (a run whose process was killed has no summary).
         """
-        self.run_number = max(self.run_number, last_label)
+        number = max(self._feed.number, last_label)
         for summary in earlier:
             self.drift.observe(summary)
             label = str(summary.get("run", ""))
             if label.isdigit():
-                self.run_number = max(self.run_number, int(label))
+                number = max(number, int(label))
+        self._feed.number = number
 
     def end_run(self) -> dict[str, object] | None:
-        """Return the summary of the current run as it ends (None before any estimate).
+        """End the current run (a reading still held back is stepped into it first) and
+        return its summary, None before any estimate.
 
         It is :meth:`monitor.runs.run.OpenRun.summary` of the live filter, ``verdict``
         included, with ``source`` "live"; its ``drift`` flags compare its figures with
         the vessel's earlier runs, or say that a doubtful run was not judged.
         """
-        self.finish()
+        before = len(self.ended)
+        self._apply(self._feed.finish(), None)
+        return self.ended.pop() if len(self.ended) > before else None
+
+    def _summary(self) -> dict[str, object] | None:
         if self.run is None or self.run.latest is None:
             return None
         summary: dict[str, object] = {"source": "live"} | self.run.summary()
@@ -343,43 +352,43 @@ class LiveVessel:
         """Return the estimate after one step (None while the filter is not yet
         initialised, or while the step is held back).
 
-        A water reading far below the recent ones (:attr:`monitor.runs.run.RunSplitter.cold`)
-        is held back one step: the next reading tells whether it was the first of a
-        refill, and so of a new run, or a spike within this one. So the old run's filter
-        never takes the cold water, as the replay's does not.
+        A water reading far below the recent ones is held back one step
+        (:class:`monitor.runs.run.RunFeed`): the next reading tells whether it was the
+        first of a refill, and so of a new run, or a spike within this one. So the old
+        run's filter never takes the cold water, as the replay's does not.
         """
+        self._epoch_s = step.t - step.time_s
         row = LogRow(step.line, step.time_s, step.values, step.vessel)
-        start = self._runs.take(row)
-        held, self._held = self._held, None
-        if start is not None:
-            if start != "refill" and held is not None:
-                self._step_run(held)  # it was a spike in the old run after all
-                held = None
-            ended = self.end_run() if start != "first" else None
-            if ended is not None:
-                self.ended.append(ended)
-            self.run_number += 1
-            label = str(self.run_number)
-            self.run = OpenRun(
-                self.vessel, label, self.config, self.metadata, step.t - step.time_s,
-                estimator=self._fresh or self._new_estimator(),
-            )  # fmt: skip
-            self._fresh = None
-            self.begun.append((step.t if held is None else self._held_t, label))
-        if held is not None:
-            self._step_run(held)  # a spike in this run, or the refill's first reading
-        if self._runs.cold and start is None:
-            self._held, self._held_t = row, step.t
-            return None
-        return self._step_run(row)
+        events = self._feed.take(row)
+        if events is None:  # the usual step
+            assert self.run is not None
+            self.steps += 1
+            return self.run.step(row)
+        return self._apply(events, row)
 
-    def _step_run(self, row: LogRow) -> Estimate | None:
-        assert self.run is not None
-        self.steps += 1
-        return self.run.step(row)
-
-    def finish(self) -> None:
-        """Step a reading still held back into the run it came in (the stream ended)."""
-        held, self._held = self._held, None
-        if held is not None:
-            self._step_run(held)
+    def _apply(self, events: list[RunEvent], row: LogRow | None) -> Estimate | None:
+        """Carry out a feed's events; return the estimate of ``row`` if it was stepped."""
+        estimate: Estimate | None = None
+        for kind, item, label in events:
+            if kind == "row":
+                assert self.run is not None
+                assert item is not None
+                self.steps += 1
+                e = self.run.step(item)
+                if item is row:
+                    estimate = e
+            elif kind == "end":
+                ended = self._summary()
+                self.run = None
+                if ended is not None:
+                    self.ended.append(ended)
+            else:  # "begin"
+                assert item is not None
+                assert label is not None
+                self.run = OpenRun(
+                    self.vessel, label, self.config, self.metadata, self._epoch_s,
+                    estimator=self._fresh or self._new_estimator(),
+                )  # fmt: skip
+                self._fresh = None
+                self.begun.append((self._epoch_s + item.time_s, label))
+        return estimate

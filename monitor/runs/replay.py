@@ -48,7 +48,8 @@ from monitor.runs.run import (
     NO_FIGURES,
     OpenRun,
     Run,
-    RunSplitter,
+    RunEvent,
+    RunFeed,
     check_columns,
     has_element_sensor,
 )
@@ -124,9 +125,8 @@ ELEMENT_WAIT_ROWS = 3600
 
 class _VesselReplay:
     """One vessel's rows replayed run by run as they are read: the split of
-    :func:`monitor.runs.run.split_runs` (a refill's first cold reading goes with the new
-    run, so each row waits one row before it is stepped) and the filter of
-    :func:`replay_run`, holding no more than a few rows."""
+    :class:`monitor.runs.run.RunFeed` (as live and :func:`monitor.runs.run.split_runs`)
+    and the filter of :func:`replay_run`, holding no more than a few rows."""
 
     def __init__(
         self,
@@ -141,10 +141,8 @@ class _VesselReplay:
         self.on_estimate = on_estimate
         self.finished = finished  # (start order, summary) as each run ends
         self.order = order
-        self.number = 0
         self.log: InterchangeLog | None = None
-        self._splitter = RunSplitter()
-        self._pending: LogRow | None = None
+        self._runs = RunFeed()  # the one split, as live
         self._label: str | None = None
         self._slot = (0, 0)
         self._held: list[LogRow] = []  # rows before the run's filter is built
@@ -156,47 +154,42 @@ class _VesselReplay:
 
     def new_log(self, log: InterchangeLog) -> None:
         """Start afresh at a new file or session: the next row begins a new run."""
-        self.finish()
+        self._apply(self._runs.restart())
         self.log = log
-        self._splitter = RunSplitter()
 
     def take(self, row: LogRow) -> None:
-        start = self._splitter.take(row)
-        pending, run = self._pending, self._run
-        if start is None and pending is not None and run is not None and self._failed is None:
+        events = self._runs.take(row)
+        run = self._run
+        if events is None and run is not None and self._failed is None:
             # the usual row, written out: this loop runs once a row
-            self._pending = row
-            self._last = pending
+            self._last = row
             self._steps += 1
             try:
-                e = run.step(pending)
+                e = run.step(row)
             except Exception as exc:  # one run's failure must not end the others' replay
                 self._fail(exc)
                 return
             if e is not None:
                 self.on_estimate(run, e)
             return
-        if start is None:
-            self._feed(self._pending)
-        elif start == "refill":
-            self._end()
-            self._begin(row)
-            self._feed(self._pending)  # the first of the cold water
-        else:
-            self._feed(self._pending)
-            self._end()
-            self._begin(row)
-        self._pending = row
+        self._apply(events if events is not None else [("row", row, None)])
 
     def finish(self) -> None:
-        """Step the row still waiting and end the run (the file or session ended)."""
-        self._feed(self._pending)
-        self._pending = None
-        self._end()
+        """Step a row still held back and end the run (the file or session ended)."""
+        self._apply(self._runs.finish())
 
-    def _begin(self, row: LogRow) -> None:
-        self.number += 1
-        self._label = row.run or str(self.number)
+    def _apply(self, events: list[RunEvent]) -> None:
+        for kind, row, label in events:
+            if kind == "row":
+                self._feed(row)
+            elif kind == "end":
+                self._end()
+            else:  # "begin"
+                assert label is not None
+                self._begin(label)
+
+    def _begin(self, label: str) -> None:
+        self._label = label
         self._slot = self.order()
         self._first = self._last = None
         self._steps = 0

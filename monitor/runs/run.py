@@ -128,40 +128,119 @@ class RunSplitter:
         return self.cold and median - window[-1][1] > REFILL_DROP_K
 
 
+#: One thing for a run's consumer to do, in order (:meth:`RunFeed.take`): ``("begin",
+#: first row, label)``, ``("row", row, None)`` (step it in the open run) or ``("end",
+#: None, None)``.
+RunEvent = tuple[str, LogRow | None, str | None]
+
+
+class RunFeed:
+    """One vessel's rows, in time order, turned into runs: the one rule
+    (:class:`RunSplitter`) and the one place a refill's first cold reading goes.
+
+    A water reading far below the recent ones (:attr:`RunSplitter.cold`) is held back
+    one row: the next says whether it began a refill (it is then the new run's first
+    row) or was a spike (it stays in the run it came in). So no filter ever takes the
+    cold water into the old run. Runs are numbered 1, 2, ... for as long as the feed
+    lives; a ``run`` label replaces the number. The live service
+    (:class:`monitor.runs.live.LiveVessel`), the streamed replay and :func:`split_runs`
+    all go through it, so they split alike to the row.
+    """
+
+    def __init__(self) -> None:
+        self.number = 0
+        self._splitter = RunSplitter()
+        self._held: LogRow | None = None
+        self._open = False
+
+    def take(self, row: LogRow) -> list[RunEvent] | None:
+        """Return what to do with ``row`` and any row held before it: None for the usual
+        case (step ``row`` in the open run), else the events in order."""
+        start = self._splitter.take(row)
+        held = self._held
+        cold = start is None and self._splitter.cold
+        if start is None and held is None and not cold:
+            return None
+        self._held = None
+        events: list[RunEvent] = []
+        if start is not None:
+            if held is not None and start != "refill":
+                events.append(("row", held, None))  # a spike in the old run after all
+                held = None
+            if self._open:
+                events.append(("end", None, None))
+            self.number += 1
+            self._open = True
+            events.append(("begin", held or row, row.run or str(self.number)))
+        if held is not None:
+            events.append(("row", held, None))
+        if cold:
+            self._held = row
+        else:
+            events.append(("row", row, None))
+        return events
+
+    def finish(self) -> list[RunEvent]:
+        """Return the events that end the open run: a row still held, then its end."""
+        events: list[RunEvent] = []
+        if self._held is not None:
+            events.append(("row", self._held, None))
+            self._held = None
+        if self._open:
+            events.append(("end", None, None))
+            self._open = False
+        return events
+
+    def restart(self) -> list[RunEvent]:
+        """Return :meth:`finish`'s events and start afresh: a new file, or a new session
+        of the service; the next row begins a new run (the numbering goes on)."""
+        events = self.finish()
+        self._splitter = RunSplitter()
+        return events
+
+
 def split_runs(logs: Iterable[InterchangeLog]) -> tuple[list[Run], list[Quarantined]]:
     """Return the runs of every vessel across the logs, and the rows set aside.
 
     Each vessel's runs are numbered 1, 2, ... across the logs (a label from a ``run``
-    column replaces the number). At a refill the row before the split begins the new
-    run (the live service holds such a row back a step to see which run it is in).
+    column replaces the number), and each new log starts every vessel afresh; the
+    split is :class:`RunFeed`'s, as live.
 
     Raises LogFormatError naming the file and column when a required column is missing.
     """
     runs: list[Run] = []
     quarantined: list[Quarantined] = []
-    counters: dict[str, int] = {}
+    feeds: dict[str, RunFeed] = {}
+    current: dict[str, Run] = {}
+
+    def apply(vessel: str, log: InterchangeLog, events: list[RunEvent]) -> None:
+        for kind, row, label in events:
+            if kind == "begin":
+                assert label is not None
+                run = current[vessel] = Run(vessel, feeds[vessel].number, label, [], log)
+                runs.append(run)
+            elif kind == "row":
+                assert row is not None
+                current[vessel].rows.append(row)
+
     for log in logs:
         check_columns(log)
         quarantined += log.rejected
         default_vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
-        open_runs: dict[str, Run] = {}
-        splitters: dict[str, RunSplitter] = {}  # a new file starts every vessel afresh
+        for vessel, feed in feeds.items():  # a new file starts every vessel afresh
+            apply(vessel, current[vessel].log, feed.restart())
         for row in log.rows:
             vessel = row.vessel or default_vessel
-            start = splitters.setdefault(vessel, RunSplitter()).take(row)
-            current = open_runs.get(vessel)
-            if start is not None:
-                # at a refill the reading before the split is the first of the cold water
-                refill = start == "refill" and current is not None and current.rows
-                carried = [current.rows.pop()] if refill else []
-                counters[vessel] = counters.get(vessel, 0) + 1
-                current = Run(
-                    vessel, counters[vessel], row.run or str(counters[vessel]), carried, log
-                )
-                open_runs[vessel] = current
-                runs.append(current)
-            assert current is not None
-            current.rows.append(row)
+            feed = feeds.get(vessel)
+            if feed is None:
+                feed = feeds[vessel] = RunFeed()
+            events = feed.take(row)
+            if events is None:
+                current[vessel].rows.append(row)
+            else:
+                apply(vessel, log, events)
+    for vessel, feed in feeds.items():
+        apply(vessel, current[vessel].log, feed.finish())
     return runs, quarantined
 
 
