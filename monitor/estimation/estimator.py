@@ -83,7 +83,7 @@ import dataclasses
 import logging
 import math
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -206,6 +206,9 @@ class VesselEstimator:
         self._param_columns = [lay.ln_ua, lay.ln_c] + ([lay.ln_g] if lay.ln_g is not None else [])
         self._temps_params_ix = np.ix_(self._temps, self._param_columns)
         self._eye = np.eye(lay.size)
+        # the two-node predict in one compiled call (FastCore only: the filterpy path is
+        # the reference it is checked against)
+        self._fused = core is FastCore and lay.element is not None
         self._q_cache: dict[tuple[float, bool], np.ndarray] = {}
         self.heat_up_fit: batchfit.HeatUpFit | None = (
             batchfit.HeatUpFit(self._fit_priors(tau, tau_e), two_node)
@@ -880,19 +883,7 @@ class VesselEstimator:
 
     def _predict(self, dt_s: float, power_w: float, ambient_c: float) -> None:
         core, lay = self.core, self.layout
-        x = core.x.tolist()
-        boiling = self._boiling and x[lay.water] >= self.boiling_point_c - 1e-9
-        fx, m, sens, evaporated_j = self._propagate(x, dt_s, power_w, ambient_c, boiling, True)
-        f = self._jacobian(x, fx, m, sens, dt_s, power_w, ambient_c, boiling)
-        self.totals.evaporated_kg += evaporated_j / self.latent_heat_j_per_kg
-        clamped = m is None
-        # C is learnt only while the element heats: with no heating power over the step
-        # the water's heat capacity is barely observable (idle and cooling show UA/C,
-        # which UA takes up), so ln C gets no random walk here and zero gain in _update
         heating = self._heating(power_w)
-        self._learn_c = heating and not clamped
-        q = self._process_noise(dt_s, clamped, self._learn_c)
-        s = self.settings
         switched_w = abs(power_w - self._previous_mean_power_w)
         self._previous_mean_power_w = power_w
         if switched_w > 0.2 * (self.config.rated_power_w or 2000.0):
@@ -900,6 +891,53 @@ class VesselEstimator:
         t_since_switch = (
             self.t_s - self._last_switch_s if self._last_switch_s is not None else math.inf
         )
+        x_array = core.x
+        boiling = self._boiling and x_array[lay.water] >= self.boiling_point_c - 1e-9
+        if self._fused and not boiling:
+            # the usual step, in one compiled call (the same figures as the path below)
+            q = self._step_noise(dt_s, heating, False, switched_w, t_since_switch, x_array)
+            done, fx_array, p = transition.two_node_predict(
+                x_array, core.P, q, dt_s, power_w, ambient_c, self.element_capacity_j_per_k,
+                -1 if lay.lagged is None else lay.lagged, self.lag_rate_per_s or math.nan,
+                -1 if lay.element_lagged is None else lay.element_lagged,
+                self.element_lag_rate_per_s or math.nan, self.boiling_point_c,
+            )  # fmt: skip
+            if done:
+                core.x, core.P = fx_array, p
+                self._boiling = False
+                return
+        x = x_array.tolist()
+        fx, m, sens, evaporated_j = self._propagate(x, dt_s, power_w, ambient_c, boiling, True)
+        f = self._jacobian(x, fx, m, sens, dt_s, power_w, ambient_c, boiling)
+        self.totals.evaporated_kg += evaporated_j / self.latent_heat_j_per_kg
+        clamped = m is None
+        q = self._step_noise(dt_s, heating, clamped, switched_w, t_since_switch, x)
+        core.predict(np.array(fx), f, q)
+        self._boiling = clamped
+        if clamped:
+            # C is not learnt on the boil: cut its correlations so readings cannot move it
+            keep = core.P[lay.ln_c, lay.ln_c]
+            core.P[lay.ln_c, :] = 0.0
+            core.P[:, lay.ln_c] = 0.0
+            core.P[lay.ln_c, lay.ln_c] = keep
+
+    def _step_noise(
+        self,
+        dt_s: float,
+        heating: bool,
+        clamped: bool,
+        switched_w: float,
+        t_since_switch: float,
+        x: Sequence[float],
+    ) -> np.ndarray:
+        """Return the step's Q for the state ``x`` before it, and set what the instant's
+        updates need to know of the step."""
+        lay, s = self.layout, self.settings
+        # C is learnt only while the element heats: with no heating power over the step
+        # the water's heat capacity is barely observable (idle and cooling show UA/C,
+        # which UA takes up), so ln C gets no random walk here and zero gain in _update
+        self._learn_c = heating and not clamped
+        q = self._process_noise(dt_s, clamped, self._learn_c)
         # idle and settled: the readings' noise can be measured (NoiseTracker)
         self._noise_idle = not heating and not clamped and t_since_switch >= s.noise_settle_s
         if switched_w > 0.0 and lay.element is not None:
@@ -930,14 +968,7 @@ class VesselEstimator:
                     q[i, i] += var_c
             if lay.lagged is not None:
                 q[lay.water, lay.lagged] = q[lay.lagged, lay.water] = var_c
-        core.predict(np.array(fx), f, q)
-        self._boiling = clamped
-        if clamped:
-            # C is not learnt on the boil: cut its correlations so readings cannot move it
-            keep = core.P[lay.ln_c, lay.ln_c]
-            core.P[lay.ln_c, :] = 0.0
-            core.P[:, lay.ln_c] = 0.0
-            core.P[lay.ln_c, lay.ln_c] = keep
+        return q
 
     def _plausible(self, value_c: float) -> bool:
         lo, hi = self.settings.plausible_c

@@ -590,3 +590,54 @@ def two_node_time_to_target(
             return t_next
         t = t_next
     return t
+
+
+@numba.njit(cache=True)
+def two_node_predict(
+    x: np.ndarray,
+    p: np.ndarray,
+    q: np.ndarray,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    ce: float,
+    lagged_ix: int,
+    lag_rate_per_s: float,
+    element_lagged_ix: int,
+    element_lag_rate_per_s: float,
+    boiling_point_c: float,
+) -> tuple[bool, np.ndarray, np.ndarray]:
+    """Return (done, x⁻, P⁻) of the two-node filter's predict off the boil, in one call.
+
+    The state is (T_w, T_e, [y_w], [y_e], ln UA, ln C, ln G) in °C and log-parameters;
+    a lag's index is -1 where it is not modelled. x⁻ = f(x) by :func:`_two_node_kernel`,
+    F = ∂f/∂x with the temperature block M and the parameter columns S, and
+    P⁻ = F P Fᵀ + Q, multiplied in the order of numpy's ``f @ P @ f.T`` (both go to the
+    same BLAS product), so the figures are the filter's general path's bit for bit.
+    ``done`` is False, and the arrays are not to be used, where the step needs the
+    general path: S would lose digits, or the water passes ``boiling_point_c``.
+    """
+    n = x.shape[0]
+    k = n - 3  # the temperatures come first, the three log-parameters last
+    ua = math.exp(x[k])
+    c = math.exp(x[k + 1])
+    g = math.exp(x[k + 2])
+    lagged_c = x[lagged_ix] if lagged_ix >= 0 else math.nan
+    water_lag = lag_rate_per_s if lagged_ix >= 0 else math.nan
+    element_lagged_c = x[element_lagged_ix] if element_lagged_ix >= 0 else math.nan
+    element_lag = element_lag_rate_per_s if element_lagged_ix >= 0 else math.nan
+    temps, m, s, usable = _two_node_kernel(
+        x[0], x[1], lagged_c, dt_s, power_w, ambient_c, ua, c, g, ce,
+        water_lag, element_lagged_c, element_lag, True,
+    )  # fmt: skip
+    fx = x.copy()
+    if not usable or temps[0] > boiling_point_c:
+        return False, fx, p
+    f = np.eye(n)
+    for r in range(k):
+        fx[r] = temps[r]
+        for col in range(k):
+            f[r, col] = m[r, col]
+        for par in range(3):
+            f[r, k + par] = s[r, par]
+    return True, fx, np.dot(np.dot(f, p), f.T) + q

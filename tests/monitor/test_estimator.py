@@ -320,6 +320,10 @@ class _DifferencedJacobian(VesselEstimator):
     worst = 0.0
     closed_form = 0
 
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._fused = False  # every predict through _jacobian (the fused one is checked below)
+
     def _jacobian(self, x, fx, m, sens, dt_s, power_w, ambient_c, boiling):
         got = super()._jacobian(x, fx, m, sens, dt_s, power_w, ambient_c, boiling)
         if sens is not None:
@@ -344,6 +348,28 @@ def test_closed_form_parameter_columns_match_differences_over_a_run(element):
     assert est.layout.lagged is not None  # the water sensor's lag is in the model
     assert _DifferencedJacobian.closed_form > 200
     assert _DifferencedJacobian.worst < 5e-3
+
+
+class _GeneralPredict(VesselEstimator):
+    """An estimator whose every predict takes the general path (no fused kernel)."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._fused = False
+
+
+def test_fused_predict_gives_the_general_paths_figures_bit_for_bit():
+    # transition.two_node_predict does the two-node predict in one compiled call; over
+    # a heat-up to the boil (the general path takes the clamped steps) every estimate,
+    # state and covariance must be the general path's exactly
+    fused, a, _ = _run(kettle_scenario(duration_s=420.0), seed=21)
+    general, b, _ = _run(kettle_scenario(duration_s=420.0), seed=21, kind=_GeneralPredict)
+    assert fused._fused
+    assert not general._fused
+    assert any(e is not None and e.phase is Phase.BOILING for _, e, _ in a)
+    assert [e for _, e, _ in a] == [e for _, e, _ in b]
+    assert np.array_equal(fused.core.P, general.core.P)
+    assert np.array_equal(fused.core.x, general.core.x)
 
 
 def test_same_log_same_figures_bit_for_bit():
