@@ -206,6 +206,14 @@ class VesselEstimator:
         self._param_columns = [lay.ln_ua, lay.ln_c] + ([lay.ln_g] if lay.ln_g is not None else [])
         self._temps_params_ix = np.ix_(self._temps, self._param_columns)
         self._eye = np.eye(lay.size)
+        #: (reading, the state it reads) of each thermocouple, and the learnt parameters
+        #: with and without ln C (_update)
+        self._channels = [("water", lay.lagged if lay.lagged is not None else lay.water)]
+        if lay.element is not None:
+            j_e = lay.element_lagged if lay.element_lagged is not None else lay.element
+            self._channels.append(("element", j_e))
+        self._frozen_c = (lay.ln_c,)
+        self._learnt_without_c = [i for i in self._param_columns if i != lay.ln_c]
         # the two-node predict in one compiled call (FastCore only: the filterpy path is
         # the reference it is checked against)
         self._fused = core is FastCore and lay.element is not None
@@ -1011,21 +1019,19 @@ class VesselEstimator:
         Joseph form for the optimal gain of r'), and the filterpy path can take it as
         it is. Down-weighted and bounded readings count in downweighted_readings.
         """
-        lay, s = self.layout, self.settings
-        channels = [("water", lay.lagged if lay.lagged is not None else lay.water)]
-        if lay.element is not None:
-            j_e = lay.element_lagged if lay.element_lagged is not None else lay.element
-            channels.append(("element", j_e))
+        s, core = self.settings, self.core
         self._nis = None
         # a consider update for ln C unless the element heats off the boil (_predict)
-        frozen = (lay.ln_c,) if self._boiling or not self._learn_c else ()
-        learnt = [i for i in self._param_columns if i not in frozen]
-        for name, j in channels:
+        consider = self._boiling or not self._learn_c
+        frozen = self._frozen_c if consider else ()
+        learnt = self._learnt_without_c if consider else self._param_columns
+        lo_c, hi_c = s.plausible_c
+        for name, j in self._channels:
             value = readings.get(name)
-            watch = self._watch[name]
             if value is None:
                 continue
-            if not self._plausible(value):
+            watch = self._watch[name]
+            if not (math.isfinite(value) and lo_c <= value <= hi_c):  # _plausible
                 watch.noise.break_chain()
                 flags.append(
                     Flag(
@@ -1037,7 +1043,11 @@ class VesselEstimator:
                     )
                 )
                 continue
-            if self._stuck(t_s, name, value, self.core.x[j]):
+            if watch.last_value != value:  # moving: not stuck (_stuck's first test)
+                watch.last_value = value
+                watch.same_since_s = t_s
+                watch.model_at_same = core.x[j]
+            elif self._stuck(t_s, name, value, core.x[j]):
                 watch.noise.break_chain()
                 flags.append(
                     Flag(
@@ -1054,9 +1064,12 @@ class VesselEstimator:
                 watch.noise.add(t_s, value, s)
             else:
                 watch.noise.break_chain()
-            sd = self.reading_noise_sd_c(name)
+            sd = s.water_noise_sd_c if name == "water" else s.element_noise_sd_c
+            measured = watch.noise.sd_c  # the filter uses the larger (reading_noise_sd_c)
+            if measured is not None and measured > sd:
+                sd = measured
             r = sd * sd
-            nu, var = self.core.innovation(j, value, r)
+            nu, var = core.innovation(j, value, r)
             nis = nu * nu / var
             if name == "water":
                 self._nis = nis
@@ -1081,7 +1094,7 @@ class VesselEstimator:
                     )
                     watch.missed_in_row = 0
                     watch.smallest_miss_c = math.inf
-                    nu, var = self.core.innovation(j, value, r)
+                    nu, var = core.innovation(j, value, r)
                     miss = abs(nu) / math.sqrt(var)
             else:
                 watch.missed_in_row = 0
@@ -1109,8 +1122,12 @@ class VesselEstimator:
             # kJ/K). Raising r scales the whole gain vector, temperatures included, so
             # the update stays one of the filter's own, with a consistent covariance.
             if learnt:
-                column = self.core.P[:, j].tolist()  # plain floats: faster for 2-3 entries
-                pull = max(abs(column[i]) for i in learnt) * abs(nu)
+                column = core.P[:, j].tolist()  # plain floats: faster for 2-3 entries
+                largest = abs(column[learnt[0]])  # max() over the learnt, written out
+                for i in learnt[1:]:
+                    if abs(column[i]) > largest:
+                        largest = abs(column[i])
+                pull = largest * abs(nu)
                 if pull > s.max_param_step * (p_jj + r_used):
                     r_used = pull / s.max_param_step - p_jj
             weight = (p_jj + r) / (p_jj + r_used)
@@ -1127,7 +1144,7 @@ class VesselEstimator:
                         {"reading_c": value, "nis": nis, "innovation_c": nu, "weight": weight},
                     )
                 )
-            self.core.update(j, value, r_used, frozen)
+            core.update(j, value, r_used, frozen)
 
     def _stuck(self, t_s: float, name: str, value: float, model_c: float) -> bool:
         watch, s = self._watch[name], self.settings
@@ -1448,11 +1465,15 @@ def _time_to_target(
 
 
 def sigma_point_sd(
-    f: Callable[[np.ndarray], float | None], cov: np.ndarray, centre: float
+    f: Callable[[Any], float | None],
+    cov: np.ndarray,
+    centre: float,
+    mean: np.ndarray | None = None,
 ) -> float | None:
     """Return the unscented spread of f about ``centre``, or None where f fails at a point.
 
-    f takes an offset d from the mean; the 2n symmetric sigma points are the columns
+    f takes an offset d from the mean (an array), or with ``mean`` given the point
+    mean + d itself (a list of floats); the 2n symmetric sigma points are the columns
     ±√(n·cov) (Cholesky, or the eigen-decomposition with negative eigenvalues cut to
     zero when cov is not positive definite), and the spread is the RMS of f(d) − centre
     over them (the unscented transform's standard deviation, equal weights). Used for
@@ -1465,10 +1486,16 @@ def sigma_point_sd(
     except np.linalg.LinAlgError:
         w, v = np.linalg.eigh(sym)
         root = v * np.sqrt(np.clip(w, 0.0, None) * n)
+    if mean is not None:
+        # the points themselves, all at once and as plain floats (the same sums)
+        plus, minus = (mean[:, None] + root).T.tolist(), (mean[:, None] + -root).T.tolist()
+        columns = zip(plus, minus, strict=True)
+    else:
+        columns = ((root[:, k], -1.0 * root[:, k]) for k in range(n))
     sq = 0.0
-    for k in range(n):
-        for sign in (1.0, -1.0):
-            value = f(sign * root[:, k])
+    for pair in columns:
+        for point in pair:
+            value = f(point)
             if value is None:
                 return None
             sq += (value - centre) ** 2
@@ -1496,7 +1523,7 @@ def forecast_time_to_target(
             f"near {level_c:.1f} °C, below the {est.target_c:.2f} °C target"
         )
         return TargetForecast(est.target_c, None, None, None, reason)
-    sd = sigma_point_sd(lambda d: _time_to_target(est, mean + d, power_w, ambient_c), cov, eta)
+    sd = sigma_point_sd(lambda p: _time_to_target(est, p, power_w, ambient_c), cov, eta, mean)
     if sd is None:
         return TargetForecast(
             est.target_c, eta, None, None, "the interval reaches conditions that never get there"
