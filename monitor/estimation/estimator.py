@@ -498,7 +498,12 @@ class VesselEstimator:
         if self.core is not None and not t_s > self.t_s:
             raise ValueError(f"time went from {self.t_s} to {t_s} s: not forward")
         limits = self._limits
-        if any(v != v or limits.problem(k, v) is not None for k, v in readings.items()):
+        bad = False
+        for k, v in readings.items():
+            if v != v or limits.problem(k, v) is not None:
+                bad = True
+                break
+        if bad:
             # a thermocouple's bad reading becomes NaN (the filter watches that sensor
             # and predicts across); any other channel's is simply left out
             clean: dict[str, float] = {}
@@ -1196,15 +1201,17 @@ class VesselEstimator:
         self, t_s: float, power_w: float, ambient_c: float, flags: list[Flag]
     ) -> Estimate:
         lay, s, cfg, tot = self.layout, self.settings, self.config, self.totals
-        x = self.core.x
+        x = self.core.x.tolist()
+        variances = self.core.P.diagonal().tolist()
+        sd = [math.sqrt(max(v, 0.0)) for v in variances]  # as _std, all at once
         ua, c, g = self._params(x)
-        water_c = float(x[lay.water])
-        ua_est = Estimated(ua, ua * math.hypot(self._std(lay.ln_ua), s.ua_model_rel_sd))
-        c_est = Estimated(c, c * self._std(lay.ln_c))
+        water_c = x[lay.water]
+        ua_est = Estimated(ua, ua * math.hypot(sd[lay.ln_ua], s.ua_model_rel_sd))
+        c_est = Estimated(c, c * sd[lay.ln_c])
         cp = water.specific_heat_j_per_kg_k(min(max(water_c, 0.0), water.T_MAX_C))
         mass = (c - self._non_water_capacity()) / cp
         mass_est = Estimated(mass, c_est.std / cp)
-        g_est = Estimated(g, g * self._std(lay.ln_g)) if g is not None else None
+        g_est = Estimated(g, g * sd[lay.ln_g]) if g is not None else None
         fitted = (
             self.heat_up_fit is not None
             and self.heat_up_fit.fit is not None
@@ -1274,8 +1281,8 @@ class VesselEstimator:
             vessel=cfg.vessel,
             phase=phase,
             water_c=water_c,
-            water_std_c=self._std(lay.water),
-            element_c=float(x[lay.element]) if lay.element is not None else None,
+            water_std_c=sd[lay.water],
+            element_c=x[lay.element] if lay.element is not None else None,
             ambient_c=ambient_c,
             power_w=power_w,
             ua_w_per_k=ua_est,

@@ -19,7 +19,7 @@ filter at the end, the same live and in a replay. Users' description: docs/csv-f
 from __future__ import annotations
 
 import math
-from collections import Counter
+from collections import Counter, deque
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
@@ -87,7 +87,10 @@ class RunSplitter:
         self._open = False
         self._label: str | None = None
         self._previous_s: float | None = None
-        self._window: list[tuple[float, float]] = []  # (time s, water °C) of the last 30 s
+        # time (s) and water (°C) of the readings of the last 30 s
+        self._times: deque[float] = deque()
+        self._temps: deque[float] = deque()
+        self._nans = 0  # NaN readings (a faulted sensor, live) among them
 
     def take(self, row: LogRow) -> str | None:
         """Return how ``row`` stands to the runs so far (see the class docstring)."""
@@ -101,13 +104,20 @@ class RunSplitter:
         if start is not None:
             self._open = True
             self._label = row.run
-            self._window.clear()
+            self._times.clear()
+            self._temps.clear()
+            self._nans = 0
         self._previous_s = row.time_s
         water_c = row.values.get("water")
         if water_c is not None:
-            self._window.append((row.time_s, water_c))
-            while self._window and row.time_s - self._window[0][0] > REFILL_WINDOW_S:
-                self._window.pop(0)
+            times, temps = self._times, self._temps
+            times.append(row.time_s)
+            temps.append(water_c)
+            self._nans += water_c != water_c
+            while times and row.time_s - times[0] > REFILL_WINDOW_S:
+                times.popleft()
+                gone_c = temps.popleft()
+                self._nans -= gone_c != gone_c
         return start
 
     def _begins(self, row: LogRow) -> bool:
@@ -119,13 +129,17 @@ class RunSplitter:
         # a refill: the reading and the one before it both lie well below the recent
         # median, so a single spike (either way) or a draw-off's cooling does not split
         water_c = row.values.get("water")
-        window = self._window
-        if water_c is None or not math.isfinite(water_c) or len(window) < 3:
+        temps = self._temps
+        if water_c is None or not math.isfinite(water_c) or len(temps) < 3:
             return False
-        recent = sorted(w for _, w in window[:-1])
+        if not self._nans and not max(temps) - water_c > REFILL_DROP_K:
+            return False  # the median is no higher than the largest: not cold (the usual row)
+        last_c = temps.pop()
+        recent = sorted(temps)
+        temps.append(last_c)
         median = recent[len(recent) // 2]
         self.cold = median - water_c > REFILL_DROP_K
-        return self.cold and median - window[-1][1] > REFILL_DROP_K
+        return self.cold and median - last_c > REFILL_DROP_K
 
 
 #: One thing for a run's consumer to do, in order (:meth:`RunFeed.take`): ``("begin",
