@@ -83,7 +83,7 @@ import dataclasses
 import logging
 import math
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -1448,65 +1448,70 @@ class VesselEstimator:
         return x[idx], p[np.ix_(idx, idx)]
 
 
-def _time_to_target(
-    est: VesselEstimator, point: np.ndarray, power_w: float, ambient_c: float
-) -> float | None:
-    """Return the time (s) to the target for one forecast point, or None (never)."""
+def _times_to_target(
+    est: VesselEstimator, points: np.ndarray, power_w: float, ambient_c: float
+) -> list[float | None]:
+    """Return the time (s) to the target from each row of ``points`` (:meth:`forecast_state`
+    order), None where it is never reached."""
     if est.layout.element is None:
-        water_c, ln_ua, ln_c = point
-        return transition.one_node_time_to_target(
-            water_c, est.target_c, power_w, ambient_c, math.exp(ln_ua), math.exp(ln_c)
-        )
-    water_c, element_c, ln_ua, ln_c, ln_g = point
-    return transition.two_node_time_to_target(
-        water_c,
-        element_c,
-        est.target_c,
-        power_w,
-        ambient_c,
-        math.exp(ln_ua),
-        math.exp(ln_c),
-        math.exp(ln_g),
-        est.element_capacity_j_per_k,
+        return [
+            transition.one_node_time_to_target(
+                water_c, est.target_c, power_w, ambient_c, math.exp(ln_ua), math.exp(ln_c)
+            )
+            for water_c, ln_ua, ln_c in points.tolist()
+        ]
+    times = transition.two_node_times_to_target(
+        points, est.target_c, power_w, ambient_c, est.element_capacity_j_per_k
     )
+    return [None if t != t else t for t in times.tolist()]
 
 
-def sigma_point_sd(
-    f: Callable[[Any], float | None],
-    cov: np.ndarray,
-    centre: float,
-    mean: np.ndarray | None = None,
-) -> float | None:
-    """Return the unscented spread of f about ``centre``, or None where f fails at a point.
-
-    f takes an offset d from the mean (an array), or with ``mean`` given the point
-    mean + d itself (a list of floats); the 2n symmetric sigma points are the columns
-    ±√(n·cov) (Cholesky, or the eigen-decomposition with negative eigenvalues cut to
-    zero when cov is not positive definite), and the spread is the RMS of f(d) − centre
-    over them (the unscented transform's standard deviation, equal weights). Used for
-    the time to target from the filter's state and from a heat-up fit's parameters.
-    """
+def sigma_root(cov: np.ndarray) -> np.ndarray:
+    """Return the n columns whose ± make the 2n symmetric sigma points' offsets: √(n·cov)
+    by Cholesky, or the eigen-decomposition with negative eigenvalues cut to zero when
+    cov is not positive definite."""
     n = cov.shape[0]
     sym = 0.5 * (cov + cov.T)
     try:
-        root = np.linalg.cholesky(n * sym)
+        return np.linalg.cholesky(n * sym)
     except np.linalg.LinAlgError:
         w, v = np.linalg.eigh(sym)
-        root = v * np.sqrt(np.clip(w, 0.0, None) * n)
-    if mean is not None:
-        # the points themselves, all at once and as plain floats (the same sums)
-        plus, minus = (mean[:, None] + root).T.tolist(), (mean[:, None] + -root).T.tolist()
-        columns = zip(plus, minus, strict=True)
-    else:
-        columns = ((root[:, k], -1.0 * root[:, k]) for k in range(n))
-    sq = 0.0
-    for pair in columns:
-        for point in pair:
-            value = f(point)
-            if value is None:
-                return None
-            sq += (value - centre) ** 2
-    return math.sqrt(sq / (2 * n))
+        return v * np.sqrt(np.clip(w, 0.0, None) * n)
+
+
+def sigma_points(mean: np.ndarray, cov: np.ndarray) -> np.ndarray:
+    """Return the 2n sigma points about ``mean`` as rows: mean + r₀, mean - r₀, mean + r₁,
+    ... with rₖ the columns of :func:`sigma_root`."""
+    root = sigma_root(cov)
+    points = np.empty((2 * len(mean), len(mean)))
+    points[0::2] = (mean[:, None] + root).T
+    points[1::2] = (mean[:, None] + -root).T
+    return points
+
+
+def sigma_spread(values: Iterable[float | None], centre: float) -> float | None:
+    """Return the RMS of the values about ``centre`` (the unscented transform's standard
+    deviation, equal weights), or None when any is None."""
+    sq, count = 0.0, 0
+    for value in values:
+        if value is None:
+            return None
+        sq += (value - centre) ** 2
+        count += 1
+    return math.sqrt(sq / count)
+
+
+def sigma_point_sd(
+    f: Callable[[np.ndarray], float | None], cov: np.ndarray, centre: float
+) -> float | None:
+    """Return the unscented spread of f about ``centre``, or None where f fails at a point.
+
+    f takes an offset d from the mean; the offsets are ± the columns of
+    :func:`sigma_root`. Used for the time to target from a heat-up fit's parameters.
+    """
+    root = sigma_root(cov)
+    offsets = ((root[:, k], -1.0 * root[:, k]) for k in range(cov.shape[0]))
+    return sigma_spread((f(d) for pair in offsets for d in pair), centre)
 
 
 def forecast_time_to_target(
@@ -1515,13 +1520,14 @@ def forecast_time_to_target(
     """Return the time to target (s) with a 90 % interval, from sigma points.
 
     The 2n symmetric sigma points x̄ ± √(n·P) columns (plus the mean) are pushed
-    through the exact time-to-target; the interval is the mean-point time ± 1.645
-    of their spread (the unscented transform's standard deviation) combined with a
-    model-error allowance (``EstimatorSettings.forecast_model_error``). "Not reachable"
-    when the mean point levels off below the target.
+    through the exact time-to-target (:func:`sigma_points`); the interval is the
+    mean-point time ± 1.645 of their spread (the unscented transform's standard
+    deviation) combined with a model-error allowance
+    (``EstimatorSettings.forecast_model_error``). "Not reachable" when the mean point
+    levels off below the target.
     """
     mean, cov = est.forecast_state()
-    eta = _time_to_target(est, mean, power_w, ambient_c)
+    eta = _times_to_target(est, mean[None, :], power_w, ambient_c)[0]
     if eta is None:
         ua = math.exp(mean[-3] if est.layout.element is not None else mean[-2])
         level_c = ambient_c + power_w / ua
@@ -1530,7 +1536,7 @@ def forecast_time_to_target(
             f"near {level_c:.1f} °C, below the {est.target_c:.2f} °C target"
         )
         return TargetForecast(est.target_c, None, None, None, reason)
-    sd = sigma_point_sd(lambda p: _time_to_target(est, p, power_w, ambient_c), cov, eta, mean)
+    sd = sigma_spread(_times_to_target(est, sigma_points(mean, cov), power_w, ambient_c), eta)
     if sd is None:
         return TargetForecast(
             est.target_c, eta, None, None, "the interval reaches conditions that never get there"

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
@@ -105,6 +107,30 @@ def test_fast_time_to_target_matches_the_model(state):
     assert transition.one_node_time_to_target(state[0], 99.97, P_W, AMB_C, UA, C) == pytest.approx(
         one.seconds, rel=1e-12
     )
+
+
+def test_times_to_target_of_many_points_are_each_points_own():
+    # the forecast's batch (mean and sigma points in one compiled call) must give each
+    # point's time exactly, and NaN where the scalar function says never (None)
+    rng = np.random.default_rng(4)
+    rows = np.column_stack(
+        [
+            rng.uniform(10.0, 99.0, 40),
+            rng.uniform(10.0, 140.0, 40),
+            np.log(rng.uniform(0.2, 5.0, 40)),
+            np.log(rng.uniform(2e3, 4e5, 40)),
+            np.log(rng.uniform(5.0, 200.0, 40)),
+        ]
+    )
+    rows[0, 2] = math.log(40.0)  # losses that hold it below the target: never
+    got = transition.two_node_times_to_target(rows, 99.97, 300.0, AMB_C, CE)
+    for row, t in zip(rows.tolist(), got.tolist(), strict=True):
+        want = transition.two_node_time_to_target(
+            row[0], row[1], 99.97, 300.0, AMB_C, *(math.exp(v) for v in row[2:]), CE
+        )
+        assert (want is None and math.isnan(t)) or want == t
+    assert math.isnan(got[0])
+    assert np.isfinite(got[1:]).sum() > 10
 
 
 def test_fast_time_to_target_never():
