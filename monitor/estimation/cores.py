@@ -91,14 +91,9 @@ class FastCore:
             mask = np.zeros(self.x.shape[0], dtype=np.bool_)
             mask[list(frozen)] = True
             self._masks[frozen] = mask
-        self.x, self.P = kernels.scalar_update(
-            np.ascontiguousarray(self.x, dtype=float),
-            np.ascontiguousarray(self.P, dtype=float),
-            j,
-            float(z),
-            float(r),
-            mask,
-        )
+        # x and P are always float arrays of our own making (here and in predict), so
+        # they go to the kernel as they are
+        self.x, self.P = kernels.scalar_update(self.x, self.P, j, float(z), float(r), mask)
 
 
 class FilterpyCore:

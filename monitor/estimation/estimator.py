@@ -213,6 +213,14 @@ class VesselEstimator:
             j_e = lay.element_lagged if lay.element_lagged is not None else lay.element
             self._channels.append(("element", j_e))
         self._frozen_c = (lay.ln_c,)
+        #: the states a forecast depends on (forecast_state), and their covariance block
+        idx = (
+            [lay.water]
+            + ([lay.element] if lay.element is not None else [])
+            + [lay.ln_ua, lay.ln_c]
+            + ([lay.ln_g] if lay.ln_g is not None else [])
+        )
+        self._forecast_ix = (np.array(idx), np.ix_(idx, idx))
         self._learnt_without_c = [i for i in self._param_columns if i != lay.ln_c]
         # the two-node predict in one compiled call (FastCore only: the filterpy path is
         # the reference it is checked against)
@@ -1203,15 +1211,18 @@ class VesselEstimator:
         lay, s, cfg, tot = self.layout, self.settings, self.config, self.totals
         x = self.core.x.tolist()
         variances = self.core.P.diagonal().tolist()
-        sd = [math.sqrt(max(v, 0.0)) for v in variances]  # as _std, all at once
+
+        def sd(i: int) -> float:  # as _std, from the diagonal read once
+            return math.sqrt(max(variances[i], 0.0))
+
         ua, c, g = self._params(x)
         water_c = x[lay.water]
-        ua_est = Estimated(ua, ua * math.hypot(sd[lay.ln_ua], s.ua_model_rel_sd))
-        c_est = Estimated(c, c * sd[lay.ln_c])
+        ua_est = Estimated(ua, ua * math.hypot(sd(lay.ln_ua), s.ua_model_rel_sd))
+        c_est = Estimated(c, c * sd(lay.ln_c))
         cp = water.specific_heat_j_per_kg_k(min(max(water_c, 0.0), water.T_MAX_C))
         mass = (c - self._non_water_capacity()) / cp
         mass_est = Estimated(mass, c_est.std / cp)
-        g_est = Estimated(g, g * sd[lay.ln_g]) if g is not None else None
+        g_est = Estimated(g, g * sd(lay.ln_g)) if g is not None else None
         fitted = (
             self.heat_up_fit is not None
             and self.heat_up_fit.fit is not None
@@ -1281,7 +1292,7 @@ class VesselEstimator:
             vessel=cfg.vessel,
             phase=phase,
             water_c=water_c,
-            water_std_c=sd[lay.water],
+            water_std_c=sd(lay.water),
             element_c=x[lay.element] if lay.element is not None else None,
             ambient_c=ambient_c,
             power_w=power_w,
@@ -1437,15 +1448,8 @@ class VesselEstimator:
 
     def forecast_state(self) -> tuple[np.ndarray, np.ndarray]:
         """Return (mean, covariance) of the states a forecast depends on."""
-        lay = self.layout
-        idx = (
-            [lay.water]
-            + ([lay.element] if lay.element is not None else [])
-            + [lay.ln_ua, lay.ln_c]
-            + ([lay.ln_g] if lay.ln_g is not None else [])
-        )
-        x, p = self.core.x, self.core.P
-        return x[idx], p[np.ix_(idx, idx)]
+        idx, block = self._forecast_ix
+        return self.core.x[idx], self.core.P[block]
 
 
 def _times_to_target(

@@ -703,3 +703,14 @@ def test_readings_no_instrument_could_give_are_left_out() -> None:
     assert est.faults == []  # none of them reached the filter's arithmetic
     assert abs(e.water_c - (15.0 + 0.1 * 129)) < 0.5
     assert abs(e.power_w - 2000.0) < 1.0
+
+
+def test_noise_trackers_median_is_numpys():
+    # NoiseTracker's own median (a partition, without np.median's general machinery)
+    # must give np.median's value exactly, for odd and even counts
+    from monitor.estimation.sensors import _median
+
+    rng = np.random.default_rng(8)
+    for n in [1, 2, 3, 4, 7, 10, 599, 600]:
+        values = rng.normal(size=n) * 10.0 ** rng.uniform(-5.0, 2.0)
+        assert _median(values) == float(np.median(values))
