@@ -1,12 +1,15 @@
 """Water and steam properties for the heat balance, fast enough for a filter's inner loop.
 
 Every figure comes from IAPWS-IF97 (IAPWS R7-97(2012)) as implemented by the
-``iapws`` library, but the library is only called to *build* tables, once, on the
-first property call (or on :func:`build_tables`). A scalar call then costs
-0.4–0.5 µs instead of the ~140 µs of ``iapws.IAPWS97`` (Python 3.11, measured by
-``benchmarks/bench_water.py``). Importing iapws (it pulls in scipy) and building
-take about 0.4–0.6 s at that first call, not at import, so
-``import monitor.physics.water`` stays at about 0.1 s (numpy).
+``iapws`` library, but the library is only called to *build* tables of cubic
+pieces. A scalar call then costs 0.4–0.5 µs instead of the ~140 µs of
+``iapws.IAPWS97`` (Python 3.11, measured by ``benchmarks/bench_water.py``). The
+tables ship with the code (``water_tables.json``, written by
+``scripts/water_tables.py``; a test checks them against a fresh build, bit for bit),
+so the figures do not hang on the installed iapws version, and a process reads
+them in milliseconds at the first property call. Importing iapws (it pulls in
+scipy, 50 MiB) and building would take about 0.5 s: that happens only if the
+file is missing or unreadable (with a warning) or from :func:`tables_document`.
 
 What each function follows
 --------------------------
@@ -74,8 +77,11 @@ geopotential, ≈ 11 019 m geometric).
 from __future__ import annotations
 
 import functools
+import json
+import logging
 import math
 from collections.abc import Callable
+from pathlib import Path
 from typing import NamedTuple, TypeVar
 
 import numpy as np
@@ -101,6 +107,7 @@ __all__ = [
     "ALTITUDE_MIN_M",
     "P_MAX_KPA",
     "P_MIN_KPA",
+    "TABLES_PATH",
     "T_MAX_C",
     "T_MIN_C",
     "boiling_point_c",
@@ -111,7 +118,10 @@ __all__ = [
     "pressure_at_altitude_kpa",
     "specific_enthalpy_j_per_kg",
     "specific_heat_j_per_kg_k",
+    "tables_document",
 ]
+
+_log = logging.getLogger(__name__)
 
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.intp]
@@ -278,9 +288,8 @@ def _tabulate(
     ]
 
 
-@functools.cache
-def _liquid_tables() -> _LiquidTables:
-    """Return the c_p, density and enthalpy tables, built from IF97 on first use."""
+def _liquid_segments_from_if97() -> list[list[_Segment]]:
+    """Return [below t_b, above t_b], each the (c_p, ρ, h) segments, tabulated from IF97."""
     # iapws's region functions are private API; tests/monitor/test_water.py checks them
     # against the IF97 verification tables and against iapws.IAPWS97 itself.
     from iapws.iapws97 import _PSat_T, _Region1  # deferred: a slow import
@@ -296,17 +305,14 @@ def _liquid_tables() -> _LiquidTables:
         return props
 
     tb = _NORMAL_BOILING_POINT_C
-    below = _tabulate(along(on_isobar=True), T_MIN_C, tb, _N_LIQUID_BELOW_TB)
-    above = _tabulate(along(on_isobar=False), tb, T_MAX_C, _N_LIQUID_ABOVE_TB)
-    cp, rho, h = (
-        _make_table((low, high), split=tb) for low, high in zip(below, above, strict=True)
-    )
-    return _LiquidTables(cp=cp, rho=rho, h=h)
+    return [
+        _tabulate(along(on_isobar=True), T_MIN_C, tb, _N_LIQUID_BELOW_TB),
+        _tabulate(along(on_isobar=False), tb, T_MAX_C, _N_LIQUID_ABOVE_TB),
+    ]
 
 
-@functools.cache
-def _latent_table() -> _Table:
-    """Return the h_fg table (J/kg against x = p^(1/4), p in kPa), built from IF97 on first use."""
+def _latent_segment_from_if97() -> _Segment:
+    """Return the h_fg segment (J/kg against x = p^(1/4), p in kPa), tabulated from IF97."""
     from iapws.iapws97 import _Region1, _Region2, _TSat_P  # deferred: a slow import
 
     def props(x: float) -> tuple[float, ...]:
@@ -315,7 +321,86 @@ def _latent_table() -> _Table:
         # Saturated vapour from region 2, saturated liquid from region 1, at (T_s, p).
         return ((_Region2(t_k, p_mpa)["h"] - _Region1(t_k, p_mpa)["h"]) * J_PER_KJ,)
 
-    return _make_table((_tabulate(props, P_MIN_KPA**0.25, P_MAX_KPA**0.25, _N_LATENT)[0],))
+    return _tabulate(props, P_MIN_KPA**0.25, P_MAX_KPA**0.25, _N_LATENT)[0]
+
+
+#: The tables as shipped: :func:`tables_document` written out by
+#: ``scripts/water_tables.py``; a test checks it against a fresh build from IF97, bit for bit.
+TABLES_PATH = Path(__file__).with_name("water_tables.json")
+#: What ``format`` holds in that file.
+TABLES_FORMAT = "ebullio-water-tables"
+
+
+def tables_document() -> dict[str, object]:
+    """Return every table built afresh from IF97 (iapws), as a JSON-ready document.
+
+    Floats are written as ``float.hex`` strings, so reading them back is exact.
+    """
+
+    def segment(seg: _Segment) -> dict[str, object]:
+        return {
+            "origin": seg.origin.hex(),
+            "inv_step": seg.inv_step.hex(),
+            "coeffs": [[v.hex() for v in piece] for piece in seg.coeffs],
+        }
+
+    below, above = _liquid_segments_from_if97()
+    return {
+        "format": TABLES_FORMAT,
+        "version": 1,
+        "what": "cubic Hermite pieces of IAPWS-IF97 water properties (monitor/physics/water.py)",
+        "grid": [_N_LIQUID_BELOW_TB, _N_LIQUID_ABOVE_TB, _N_LATENT, _SLOPE_STEP_FRACTION],
+        "liquid_below_tb": [segment(seg) for seg in below],
+        "liquid_above_tb": [segment(seg) for seg in above],
+        "latent": segment(_latent_segment_from_if97()),
+    }
+
+
+@functools.cache
+def _shipped_tables() -> dict[str, object] | None:
+    """Return the shipped tables' document, or None (with a warning) when it is missing,
+    unreadable or for another grid: the tables are then built from IF97 (about 0.5 s)."""
+    grid = [_N_LIQUID_BELOW_TB, _N_LIQUID_ABOVE_TB, _N_LATENT, _SLOPE_STEP_FRACTION]
+    try:
+        doc = json.loads(TABLES_PATH.read_text(encoding="utf-8"))
+        if doc.get("format") == TABLES_FORMAT and doc.get("version") == 1 and doc["grid"] == grid:
+            return doc
+        problem = "it is for another table layout"
+    except (OSError, ValueError, KeyError, TypeError, AttributeError) as exc:
+        problem = str(exc)
+    _log.warning("water tables: %s not used (%s); building them from IF97", TABLES_PATH, problem)
+    return None
+
+
+def _segment_of(data: dict[str, object]) -> _Segment:
+    coeffs = tuple(tuple(float.fromhex(v) for v in piece) for piece in data["coeffs"])
+    return _Segment(
+        float.fromhex(data["origin"]), float.fromhex(data["inv_step"]), len(coeffs) - 1, coeffs
+    )
+
+
+@functools.cache
+def _liquid_tables() -> _LiquidTables:
+    """Return the c_p, density and enthalpy tables: shipped, else built from IF97."""
+    doc = _shipped_tables()
+    if doc is not None:
+        below = [_segment_of(d) for d in doc["liquid_below_tb"]]
+        above = [_segment_of(d) for d in doc["liquid_above_tb"]]
+    else:
+        below, above = _liquid_segments_from_if97()
+    cp, rho, h = (
+        _make_table((low, high), split=_NORMAL_BOILING_POINT_C)
+        for low, high in zip(below, above, strict=True)
+    )
+    return _LiquidTables(cp=cp, rho=rho, h=h)
+
+
+@functools.cache
+def _latent_table() -> _Table:
+    """Return the h_fg table (J/kg against x = p^(1/4), p in kPa): shipped, else from IF97."""
+    doc = _shipped_tables()
+    seg = _segment_of(doc["latent"]) if doc is not None else _latent_segment_from_if97()
+    return _make_table((seg,))
 
 
 def build_tables() -> None:

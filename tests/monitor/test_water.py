@@ -8,6 +8,7 @@ the IF97-vs-IAPWS-95 difference, stated beside them; IF97's own verification tab
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 from collections.abc import Callable
@@ -641,3 +642,38 @@ def test_range_ends_are_accepted() -> None:
     # since 11 000 m geometric is 10 981 m geopotential.
     assert 22.632 < water.pressure_at_altitude_kpa(water.ALTITUDE_MAX_M) < 22.8
     assert water.heating_energy_j(0.0, 20.0, 90.0) == 0.0
+
+
+def test_shipped_tables_are_a_fresh_build_bit_for_bit() -> None:
+    # water_tables.json is what scripts/water_tables.py writes; a change to how the
+    # tables are built (or an iapws that computes IF97 differently) shows here
+    shipped = json.loads(water.TABLES_PATH.read_text(encoding="utf-8"))
+    assert shipped == water.tables_document()
+
+
+def test_a_property_call_reads_the_shipped_tables_without_iapws() -> None:
+    code = (
+        "import sys, monitor.physics.water as w; w.specific_heat_j_per_kg_k(50.0);"
+        " w.latent_heat_j_per_kg(101.325); print('iapws' in sys.modules)"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code], check=True, capture_output=True, text=True
+    ).stdout
+    assert out.strip() == "False"
+
+
+def test_tables_are_built_from_if97_when_the_file_is_missing(monkeypatch, caplog) -> None:
+    # the same pieces either way: built afresh they equal the shipped ones exactly
+    shipped_cp = water._liquid_tables().cp.rows.copy()
+    shipped_latent = water._latent_table().rows.copy()
+    monkeypatch.setattr(water, "TABLES_PATH", water.TABLES_PATH.with_name("no-such.json"))
+    for cached in (water._shipped_tables, water._liquid_tables, water._latent_table):
+        cached.cache_clear()
+    try:
+        with caplog.at_level("WARNING"):
+            assert np.array_equal(water._liquid_tables().cp.rows, shipped_cp)
+            assert np.array_equal(water._latent_table().rows, shipped_latent)
+        assert "building them from IF97" in caplog.text
+    finally:
+        for cached in (water._shipped_tables, water._liquid_tables, water._latent_table):
+            cached.cache_clear()
