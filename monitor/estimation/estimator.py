@@ -222,9 +222,9 @@ class VesselEstimator:
         )
         self._forecast_ix = (np.array(idx), np.ix_(idx, idx))
         self._learnt_without_c = [i for i in self._param_columns if i != lay.ln_c]
-        # the two-node predict in one compiled call (FastCore only: the filterpy path is
-        # the reference it is checked against)
-        self._fused = core is FastCore and lay.element is not None
+        # the predict in one compiled call (FastCore only: the filterpy path is the
+        # reference it is checked against)
+        self._fused = core is FastCore
         self._q_cache: dict[tuple[float, bool], np.ndarray] = {}
         self.heat_up_fit: batchfit.HeatUpFit | None = (
             batchfit.HeatUpFit(self._fit_priors(tau, tau_e), two_node)
@@ -917,12 +917,19 @@ class VesselEstimator:
         if self._fused and not boiling:
             # the usual step, in one compiled call (the same figures as the path below)
             q = self._step_noise(dt_s, heating, False, switched_w, t_since_switch, x_array)
-            done, fx_array, p = transition.two_node_predict(
-                x_array, core.P, q, dt_s, power_w, ambient_c, self.element_capacity_j_per_k,
-                -1 if lay.lagged is None else lay.lagged, self.lag_rate_per_s or math.nan,
-                -1 if lay.element_lagged is None else lay.element_lagged,
-                self.element_lag_rate_per_s or math.nan, self.boiling_point_c,
-            )  # fmt: skip
+            lagged_ix = -1 if lay.lagged is None else lay.lagged
+            if lay.element is None:
+                done, fx_array, p = transition.one_node_predict(
+                    x_array, core.P, q, dt_s, power_w, ambient_c, lagged_ix,
+                    self.lag_rate_per_s or math.nan, self.boiling_point_c,
+                )  # fmt: skip
+            else:
+                done, fx_array, p = transition.two_node_predict(
+                    x_array, core.P, q, dt_s, power_w, ambient_c, self.element_capacity_j_per_k,
+                    lagged_ix, self.lag_rate_per_s or math.nan,
+                    -1 if lay.element_lagged is None else lay.element_lagged,
+                    self.element_lag_rate_per_s or math.nan, self.boiling_point_c,
+                )  # fmt: skip
             if done:
                 core.x, core.P = fx_array, p
                 self._boiling = False

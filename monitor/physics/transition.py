@@ -71,6 +71,72 @@ _expm1_ratio_py = _expm1_ratio.py_func
 Rows = tuple[tuple[float, ...], ...]
 
 
+@numba.njit(cache=True)
+def _one_node_kernel(
+    water_c: float,
+    lagged_c: float,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    ua: float,
+    c: float,
+    lag_rate_per_s: float,
+    want_sensitivities: bool,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, bool]:
+    """Return (temperatures, M, S, S usable) of a one-node step; an absent lag is NaN.
+
+    The state is (T_w, [y]); S = ∂x(t)/∂(ln UA, ln C), formed only when
+    ``want_sensitivities`` (see :func:`one_node_step_and_sensitivities`).
+    """
+    has_lag = not (math.isnan(lag_rate_per_s) or math.isnan(lagged_c))
+    n = 2 if has_lag else 1
+    temps = np.empty(n)
+    m = np.zeros((n, n))
+    s = np.zeros((n, 2))
+    mu = -ua / c
+    e_mu = math.exp(mu * dt_s)
+    # T_w(t) = T_w + (T_eq - T_w)(1 - e^{μt}), written with the drive to stay exact as UA → 0
+    drive_w = power_w - ua * (water_c - ambient_c)
+    phi = -math.expm1(mu * dt_s) / (-mu) if mu != 0.0 else dt_s
+    temps[0] = water_c + drive_w / c * phi
+    m[0, 0] = e_mu
+    # S, columns (ln UA, ln C): T_w(t) = T_eq + e^{μt}(T_w - T_eq) with T_eq = T_a + P/UA,
+    # ∂μ/∂ln UA = μ, ∂μ/∂ln C = -μ, ∂T_eq/∂ln UA = -P/UA, ∂T_eq/∂ln C = 0
+    d_eq_d_ln_ua = -power_w / ua
+    off_eq = water_c - (ambient_c + power_w / ua)
+    t_e_mu = dt_s * e_mu  # ∂e^{μt}/∂μ
+    s[0, 0] = (1.0 - e_mu) * d_eq_d_ln_ua + t_e_mu * mu * off_eq
+    s[0, 1] = -t_e_mu * mu * off_eq
+    if not has_lag:
+        return temps, m, s, want_sensitivities
+    lam = lag_rate_per_s
+    e_lam = math.exp(-lam * dt_s)
+    gain = lam * _expm1_ratio(mu, -lam, dt_s)
+    # y(t) = y·e^{-λt} + ∫₀ᵗ λ e^{-λ(t-s)} T_w(s) ds, with T_w(s) = T_w + (D/C)(1 - e^{μs})/(-μ):
+    #   ∫ λ e^{-λ(t-s)} ds        = 1 - e^{-λt}
+    #   ∫ λ e^{-λ(t-s)} e^{μs} ds = λ (e^{μt} - e^{-λt})/(μ + λ)        ("gain")
+    # so y(t) = y·e^{-λt} + T_w·(1 - e^{-λt}) + (D/C)·forced, forced = (1 - e^{-λt} - gain)/(-μ)
+    forced = (1.0 - e_lam - gain) / (-mu) if mu != 0.0 else dt_s - (1.0 - e_lam) / lam
+    temps[1] = lagged_c * e_lam + water_c * (1.0 - e_lam) + drive_w / c * forced
+    # ∂y/∂T_w includes the drive's own dependence on T_w, ∂D/∂T_w = -UA
+    d_lag_d_water = (1.0 - e_lam) - ua / c * forced
+    m[1, 0] = d_lag_d_water
+    m[1, 1] = e_lam
+    if not want_sensitivities:
+        return temps, m, s, False
+    # y(t) - T_eq = gain·(T_w - T_eq) + e^{-λt}(y - T_eq) and ∂gain/∂μ = λ·Φ₂(μ, -λ, μ)
+    # (see _two_node_sensitivities), from the step's own exponentials
+    gap = mu + lam
+    if abs(gap) * dt_s < 1e-3:
+        return temps, m, s, False  # Φ₂ would lose digits: the caller differences this step
+    lam_second = (lam * t_e_mu - gain) / gap
+    eq_part = (1.0 - d_lag_d_water - e_lam) * d_eq_d_ln_ua
+    lag_mu = lam_second * mu * off_eq
+    s[1, 0] = eq_part + lag_mu
+    s[1, 1] = -lag_mu
+    return temps, m, s, True
+
+
 def _one_node(
     water_c: float,
     lagged_c: float | None,
@@ -83,44 +149,14 @@ def _one_node(
     want_sensitivities: bool,
 ) -> tuple[tuple[float, ...], Rows, Rows | None]:
     """Return (temperatures, M, S or None); see :func:`one_node_step_and_sensitivities`."""
-    ua, c = ua_w_per_k, capacity_j_per_k
-    mu = -ua / c
-    e_mu = math.exp(mu * dt_s)
-    # T_w(t) = T_w + (T_eq - T_w)(1 - e^{μt}), written with the drive to stay exact as UA → 0
-    drive_w = power_w - ua * (water_c - ambient_c)
-    phi = -math.expm1(mu * dt_s) / (-mu) if mu != 0.0 else dt_s
-    new_water = water_c + drive_w / c * phi
-    # S, columns (ln UA, ln C): T_w(t) = T_eq + e^{μt}(T_w - T_eq) with T_eq = T_a + P/UA,
-    # ∂μ/∂ln UA = μ, ∂μ/∂ln C = -μ, ∂T_eq/∂ln UA = -P/UA, ∂T_eq/∂ln C = 0
-    d_eq_d_ln_ua = -power_w / ua
-    off_eq = water_c - (ambient_c + power_w / ua)
-    t_e_mu = dt_s * e_mu  # ∂e^{μt}/∂μ
-    s_water = ((1.0 - e_mu) * d_eq_d_ln_ua + t_e_mu * mu * off_eq, -t_e_mu * mu * off_eq)
-    if lag_rate_per_s is None or lagged_c is None:
-        return (new_water,), ((e_mu,),), ((s_water,) if want_sensitivities else None)
-    lam = lag_rate_per_s
-    e_lam = math.exp(-lam * dt_s)
-    gain = lam * _expm1_ratio_py(mu, -lam, dt_s)
-    # y(t) = y·e^{-λt} + ∫₀ᵗ λ e^{-λ(t-s)} T_w(s) ds, with T_w(s) = T_w + (D/C)(1 - e^{μs})/(-μ):
-    #   ∫ λ e^{-λ(t-s)} ds        = 1 - e^{-λt}
-    #   ∫ λ e^{-λ(t-s)} e^{μs} ds = λ (e^{μt} - e^{-λt})/(μ + λ)        ("gain")
-    # so y(t) = y·e^{-λt} + T_w·(1 - e^{-λt}) + (D/C)·forced, forced = (1 - e^{-λt} - gain)/(-μ)
-    forced = (1.0 - e_lam - gain) / (-mu) if mu != 0.0 else dt_s - (1.0 - e_lam) / lam
-    new_lagged = lagged_c * e_lam + water_c * (1.0 - e_lam) + drive_w / c * forced
-    # ∂y/∂T_w includes the drive's own dependence on T_w, ∂D/∂T_w = -UA
-    d_lag_d_water = (1.0 - e_lam) - ua / c * forced
-    temps, m = (new_water, new_lagged), ((e_mu, 0.0), (d_lag_d_water, e_lam))
-    if not want_sensitivities:
-        return temps, m, None
-    # y(t) - T_eq = gain·(T_w - T_eq) + e^{-λt}(y - T_eq) and ∂gain/∂μ = λ·Φ₂(μ, -λ, μ)
-    # (see _two_node_sensitivities), from the step's own exponentials
-    gap = mu + lam
-    if abs(gap) * dt_s < 1e-3:
-        return temps, m, None  # Φ₂ would lose digits: the caller differences this step
-    lam_second = (lam * t_e_mu - gain) / gap
-    eq_part = (1.0 - d_lag_d_water - e_lam) * d_eq_d_ln_ua
-    lag_mu = lam_second * mu * off_eq
-    return temps, m, (s_water, (eq_part + lag_mu, -lag_mu))
+    temps, m, s, usable = _one_node_kernel(
+        float(water_c), _nan_if_none(lagged_c), float(dt_s), float(power_w), float(ambient_c),
+        float(ua_w_per_k), float(capacity_j_per_k), _nan_if_none(lag_rate_per_s),
+        want_sensitivities,
+    )  # fmt: skip
+    rows = tuple(tuple(row) for row in m.tolist())
+    sens = tuple(tuple(row) for row in s.tolist()) if usable else None
+    return tuple(temps.tolist()), rows, sens
 
 
 def one_node_step(
@@ -685,3 +721,40 @@ def two_node_times_to_target(
             math.exp(points[i, 3]), math.exp(points[i, 4]), element_capacity_j_per_k, horizon_s,
         )  # fmt: skip
     return out
+
+
+@numba.njit(cache=True)
+def one_node_predict(
+    x: np.ndarray,
+    p: np.ndarray,
+    q: np.ndarray,
+    dt_s: float,
+    power_w: float,
+    ambient_c: float,
+    lagged_ix: int,
+    lag_rate_per_s: float,
+    boiling_point_c: float,
+) -> tuple[bool, np.ndarray, np.ndarray]:
+    """Return (done, x⁻, P⁻) of the one-node filter's predict off the boil, in one call.
+
+    The state is (T_w, [y_w], ln UA, ln C); as :func:`two_node_predict`, with
+    :func:`_one_node_kernel` for the step.
+    """
+    n = x.shape[0]
+    k = n - 2  # the temperatures come first, the two log-parameters last
+    lagged_c = x[lagged_ix] if lagged_ix >= 0 else math.nan
+    lag = lag_rate_per_s if lagged_ix >= 0 else math.nan
+    temps, m, s, usable = _one_node_kernel(
+        x[0], lagged_c, dt_s, power_w, ambient_c, math.exp(x[k]), math.exp(x[k + 1]), lag, True
+    )
+    fx = x.copy()
+    if not usable or temps[0] > boiling_point_c:
+        return False, fx, p
+    f = np.eye(n)
+    for r in range(k):
+        fx[r] = temps[r]
+        for col in range(k):
+            f[r, col] = m[r, col]
+        for par in range(2):
+            f[r, k + par] = s[r, par]
+    return True, fx, np.dot(np.dot(f, p), f.T) + q

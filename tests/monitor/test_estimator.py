@@ -358,12 +358,15 @@ class _GeneralPredict(VesselEstimator):
         self._fused = False
 
 
-def test_fused_predict_gives_the_general_paths_figures_bit_for_bit():
-    # transition.two_node_predict does the two-node predict in one compiled call; over
-    # a heat-up to the boil (the general path takes the clamped steps) every estimate,
-    # state and covariance must be the general path's exactly
-    fused, a, _ = _run(kettle_scenario(duration_s=420.0), seed=21)
-    general, b, _ = _run(kettle_scenario(duration_s=420.0), seed=21, kind=_GeneralPredict)
+@pytest.mark.parametrize("element", [True, False], ids=["two-node", "one-node"])
+def test_fused_predict_gives_the_general_paths_figures_bit_for_bit(element):
+    # transition.two_node_predict and one_node_predict do the predict in one compiled
+    # call; over a heat-up to the boil (the general path takes the clamped steps) every
+    # estimate, state and covariance must be the general path's exactly
+    fused, a, _ = _run(kettle_scenario(duration_s=420.0), seed=21, element=element)
+    general, b, _ = _run(
+        kettle_scenario(duration_s=420.0), seed=21, element=element, kind=_GeneralPredict
+    )
     assert fused._fused
     assert not general._fused
     assert any(e is not None and e.phase is Phase.BOILING for _, e, _ in a)
