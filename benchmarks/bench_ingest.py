@@ -41,11 +41,17 @@ import time
 from pathlib import Path
 
 import aiomqtt
+import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from drivers.simworld import SimulatedRig, kettle_scenario  # noqa: E402
+from drivers.simworld import (  # noqa: E402
+    Scenario,
+    SimulatedRig,
+    kettle_scenario,
+    water_heater_scenario,
+)
 from monitor.records.recorder import verify  # noqa: E402
 from tests.support.mosquitto import MosquittoBroker  # noqa: E402
 
@@ -55,11 +61,23 @@ TRAJECTORIES = 10
 LISTEN_EVERY = 10
 
 
-def trajectories(seconds: int) -> list[list[dict[str, float]]]:
-    """Return seeded kettle runs, one dict of water/power/ambient per second."""
+def fleet_scenario(fleet: str, seed: int, seconds: int) -> Scenario:
+    """Return one vessel's scenario: a kettle heating from cold (every vessel's fit due
+    at once: the worst case), or a building's 80 L heater standing near its 60 °C
+    thermostat, some cooling, some heating (the usual case of a building's fleet)."""
+    if fleet == "kettles":
+        return kettle_scenario(duration_s=float(seconds))
+    start_c = 57.0 + 4.0 * np.random.default_rng(seed).random()
+    return water_heater_scenario(
+        duration_s=float(seconds), sample_interval_s=1.0, start_water_c=start_c
+    )
+
+
+def trajectories(seconds: int, fleet: str) -> list[list[dict[str, float]]]:
+    """Return seeded runs of the fleet's vessels, one dict of water/power/ambient per second."""
     out = []
     for seed in range(TRAJECTORIES):
-        scenario = kettle_scenario(duration_s=float(seconds))
+        scenario = fleet_scenario(fleet, seed, seconds)
         rows = []
         for batch in SimulatedRig(scenario, seed=seed).run():
             values = {s.channel: s.value for s in batch}
@@ -74,7 +92,7 @@ def trajectories(seconds: int) -> list[list[dict[str, float]]]:
     return out
 
 
-def config_text(url: str, vessels: list[str]) -> str:
+def config_text(url: str, vessels: list[str], fleet: str) -> str:
     """Return the rig configuration: every vessel reports on MQTT."""
     lines = [
         "[mqtt]",
@@ -87,12 +105,16 @@ def config_text(url: str, vessels: list[str]) -> str:
         "queue_samples = 200000",
     ]
     for v in vessels:
-        lines += [
-            "[[vessels]]",
-            f'id = "{v}"',
-            "vessel_heat_capacity_j_per_k = 420",
-            "rated_power_w = 2200",
-        ]
+        lines += ["[[vessels]]", f'id = "{v}"']
+        if fleet == "kettles":
+            lines += ["vessel_heat_capacity_j_per_k = 420", "rated_power_w = 2200"]
+        else:
+            lines += [
+                "vessel_heat_capacity_j_per_k = 14800",
+                "rated_power_w = 2000",
+                "nominal_volume_l = 80",
+                "target_c = 60",
+            ]
     return "\n".join(lines) + "\n"
 
 
@@ -103,10 +125,10 @@ def cpu_s(pid: int) -> float:
 
 
 async def drive(
-    url: str, vessels: list[str], seconds: int, warmup_s: int, pid: int
+    url: str, vessels: list[str], seconds: int, warmup_s: int, pid: int, fleet: str
 ) -> dict[str, object]:
     host, port = url.removeprefix("mqtt://").split(":")
-    runs = trajectories(seconds + warmup_s + 5)
+    runs = trajectories(seconds + warmup_s + 5, fleet)
     latencies: list[float] = []
     received = 0
     window: dict[str, float] = {}
@@ -191,7 +213,39 @@ async def drive(
     }
 
 
-def bench(n: int, seconds: int, warmup_s: int) -> dict[str, object]:
+async def bare_client(url: str) -> None:
+    """Receive every reading at QoS 1 and publish one small message back for each, on the
+    topic the benchmark listens to: the least an MQTT service does for the same load."""
+    host, port = url.removeprefix("mqtt://").split(":")
+    async with aiomqtt.Client(host, int(port), identifier="bench-bare") as client:
+        client.pending_calls_threshold = 100_000
+        await client.subscribe(f"{PREFIX}/+/reading", qos=1)
+        async for message in client.messages:
+            vessel = message.topic.value.split("/")[1]
+            t = json.loads(message.payload)["t"]
+            payload = json.dumps({"t": t, "vessel": vessel}).encode()
+            await client.publish(f"{PREFIX}/{vessel}/estimate", payload, qos=1)
+
+
+def bench_bare(n: int, seconds: int, warmup_s: int, fleet: str) -> dict[str, object]:
+    """Return drive()'s figures with the bare client in the service's place."""
+    vessels = [f"v{i:04d}" for i in range(n)]
+    with tempfile.TemporaryDirectory(prefix="ebullio-ingest-") as tmp:
+        work = Path(tmp)
+        with MosquittoBroker(work / "broker", extra_config=("max_inflight_messages 0",)) as broker:
+            client = subprocess.Popen(
+                [sys.executable, __file__, "--bare-client", broker.url],
+                cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+            )  # fmt: skip
+            try:
+                time.sleep(2.0)  # connected and subscribed
+                return asyncio.run(drive(broker.url, vessels, seconds, warmup_s, client.pid, fleet))
+            finally:
+                client.send_signal(signal.SIGTERM)
+                client.communicate(timeout=60)
+
+
+def bench(n: int, seconds: int, warmup_s: int, fleet: str) -> dict[str, object]:
     vessels = [f"v{i:04d}" for i in range(n)]
     with tempfile.TemporaryDirectory(prefix="ebullio-ingest-") as tmp:
         work = Path(tmp)
@@ -199,7 +253,7 @@ def bench(n: int, seconds: int, warmup_s: int) -> dict[str, object]:
         # let that many wait unacknowledged, as the README's broker settings say
         with MosquittoBroker(work / "broker", extra_config=("max_inflight_messages 0",)) as broker:
             cfg = work / "rig.toml"
-            cfg.write_text(config_text(broker.url, vessels), encoding="utf-8")
+            cfg.write_text(config_text(broker.url, vessels, fleet), encoding="utf-8")
             log = work / "ingest.sqlite"
             service = subprocess.Popen(
                 [sys.executable, "-m", "monitor.cli", "run", "--config", str(cfg),
@@ -211,25 +265,48 @@ def bench(n: int, seconds: int, warmup_s: int) -> dict[str, object]:
                 while not log.exists() and time.monotonic() < deadline:
                     time.sleep(0.1)
                 time.sleep(2.0)  # filters built, subscription made
-                figures = asyncio.run(drive(broker.url, vessels, seconds, warmup_s, service.pid))
+                figures = asyncio.run(
+                    drive(broker.url, vessels, seconds, warmup_s, service.pid, fleet)
+                )
             finally:
                 service.send_signal(signal.SIGTERM)
                 out, err = service.communicate(timeout=120)
             check = verify(log)
             recorded = check["samples"] or 0
+            stats = json.loads(out.strip().splitlines()[-1]) if out else None
             figures.update(
                 {
                     "vessels": n,
+                    "fleet": fleet,
                     "seconds": seconds,
                     "exit_code": service.returncode,
                     "recorded_samples": recorded,
                     "lost": figures["published"] - recorded // 3,  # type: ignore[operator]
                     "verify_ok": check["ok"],
-                    "service_stats": json.loads(out.strip().splitlines()[-1]) if out else None,
+                    "service_stats": stats,
                     "service_errors": [line for line in err.splitlines() if "ERROR" in line][:5],
                 }
             )
     return figures
+
+
+def issue_16_targets(
+    result: dict[str, object], bare: dict[str, object] | None
+) -> dict[str, object]:
+    """Return issue 16's live targets for one fleet size: within 40 % of a core, p99 at
+    most 100 ms, at most twice the bare client's CPU, nothing lost."""
+    cpu = result["service_cpu_fraction"]
+    p99 = result["latency_ms"]["p99"]  # type: ignore[index]
+    out: dict[str, object] = {
+        "cpu_at_most_40_percent": cpu <= 0.40,
+        "p99_at_most_100_ms": p99 is not None and p99 <= 100.0,
+        "none_lost": result["lost"] == 0,
+    }
+    if bare is not None:
+        ratio = cpu / bare["service_cpu_fraction"] if bare["service_cpu_fraction"] else None
+        out["cpu_over_bare_client"] = None if ratio is None else round(ratio, 2)
+        out["at_most_twice_the_bare_client"] = ratio is not None and ratio <= 2.0
+    return out
 
 
 def main() -> None:
@@ -237,11 +314,29 @@ def main() -> None:
     parser.add_argument("--vessels", type=int, nargs="+", default=[100, 1000])
     parser.add_argument("--seconds", type=int, default=30, help="measured seconds per size")
     parser.add_argument("--warmup-s", type=int, default=5)
+    parser.add_argument(
+        "--fleet", choices=("kettles", "heaters"), default="kettles",
+        help="kettles heating from cold (every fit due at once) or heaters near their "
+        "thermostat (a building's usual load)",
+    )  # fmt: skip
+    parser.add_argument("--no-bare", action="store_true", help="skip the bare client's run")
+    parser.add_argument("--bare-client", metavar="URL", help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.bare_client:
+        signal.signal(signal.SIGTERM, lambda *_: sys.exit(0))
+        asyncio.run(bare_client(args.bare_client))
+        return
     results = []
     for n in args.vessels:
+        bare = None
+        if not args.no_bare:
+            print(f"bench_ingest: bare client, {n} vessels", file=sys.stderr, flush=True)
+            bare = bench_bare(n, args.seconds, args.warmup_s, args.fleet)
         print(f"bench_ingest: {n} vessels for {args.seconds} s", file=sys.stderr, flush=True)
-        results.append(bench(n, args.seconds, args.warmup_s))
+        result = bench(n, args.seconds, args.warmup_s, args.fleet)
+        result["bare_client"] = bare
+        result["issue_16_targets"] = issue_16_targets(result, bare)
+        results.append(result)
     target = next((r for r in results if r["vessels"] == 1000), None)
     print(
         json.dumps(
@@ -249,6 +344,7 @@ def main() -> None:
                 "benchmark": "ingest",
                 "python": sys.version.split()[0],
                 "cores": os.cpu_count(),
+                "fleet": args.fleet,
                 "results": results,
                 # held: nothing lost, an estimate back for (nearly) every reading as it
                 # comes, latency bounded (no growing backlog), within one core
