@@ -321,7 +321,7 @@ def _parse_row(
     values: dict[str, float] = {}
     vessel: str | None = None
     run: str | None = None
-    plain, isfinite = PLAIN_NUMBER.fullmatch, math.isfinite
+    plain = PLAIN_NUMBER.fullmatch
     for i, key, label in plan or _column_plan(header):
         text = cells[i].strip()
         if label:
@@ -332,11 +332,16 @@ def _parse_row(
             continue
         if not text:
             continue
-        if plain(text) is None:
-            shown = text if len(text) <= 40 else text[:40] + "..."
-            return None, f"line {number}: column {header[i]!r} holds {shown!r}, not a number"
-        value = float(text)
-        if not isfinite(value):
+        try:
+            value = float(text)
+        except ValueError:
+            value = math.nan
+        # float() takes all that PLAIN_NUMBER does and more: for a finite value, only
+        # underscores and non-ASCII digits; anything else gets the checks with their words
+        if value - value != 0.0 or "_" in text or not text.isascii():
+            if plain(text) is None:
+                shown = text if len(text) <= 40 else text[:40] + "..."
+                return None, f"line {number}: column {header[i]!r} holds {shown!r}, not a number"
             return None, f"line {number}: column {header[i]!r} is not finite"
         values[key] = value
     return LogRow(number, time_s, values, vessel, run), ""

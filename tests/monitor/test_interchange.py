@@ -74,6 +74,34 @@ def test_bad_rows_are_kept_with_line_and_reason_and_reading_goes_on():
 
 
 @pytest.mark.parametrize(
+    ("cell", "kept", "reason"),
+    [
+        ("15.25", 15.25, None),
+        ("+.5e-3", 0.0005, None),
+        ("-7.", -7.0, None),
+        ("1E+02", 100.0, None),
+        ("1_000", None, "not a number"),  # float() takes these four; the format does not
+        ("\u0661\u0662", None, "not a number"),
+        ("Infinity", None, "not a number"),
+        ("-nan", None, "not a number"),
+        ("1e400", None, "is not finite"),
+        ("0x10", None, "not a number"),
+        ("1.2.3", None, "not a number"),
+    ],
+)
+def test_a_cell_is_a_plain_decimal_number_or_its_line_is_set_aside(cell, kept, reason):
+    # the reader parses with float() and keeps the format's own grammar (PLAIN_NUMBER)
+    # for what float() would take beyond it
+    log = read_csv_text(io.StringIO(f"time_s,water_c\n0,{cell}\n1,15.0\n"), "cells.csv")
+    if reason is None:
+        assert log.rows[0].values == {"water": kept}
+        assert not log.rejected
+    else:
+        assert [r.time_s for r in log.rows] == [1.0]
+        assert reason in log.rejected[0].reason
+
+
+@pytest.mark.parametrize(
     ("text", "message"),
     [
         ("", "no header row"),
