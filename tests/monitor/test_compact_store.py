@@ -9,6 +9,7 @@ makes the same log in schema 2: both must read, replay, verify and show alike.
 from __future__ import annotations
 
 import importlib.util
+import json
 import math
 import shutil
 import sqlite3
@@ -298,3 +299,67 @@ def test_a_compact_log_cut_short_fails_against_its_head(compact) -> None:
     result = verify(compact)
     assert result["state"] == "tampered"
     assert f"blocks {last} to {last} were removed" in result["reason"]
+
+
+# ---------------------------------------------------------------------------------------
+# Parquet
+
+
+@pytest.mark.parametrize("version", [1, 2])
+def test_the_parquet_export_holds_every_reading(logs, version, tmp_path, capsys) -> None:
+    import datetime as dt
+
+    import pyarrow.parquet as pq
+
+    out = tmp_path / "samples.parquet"
+    assert main(["export", str(logs[version]), "--parquet", str(out)]) == 0
+    assert "wrote 2117 samples" in capsys.readouterr().err
+    table = pq.read_table(out)
+    assert table.column_names == ["time", "t", "session", "vessel", "channel", "unit", "value",
+                                  "quality", "source"]  # fmt: skip
+    rows = table.to_pylist()
+    expected = list(read_samples_by_session(logs[1]))
+    assert len(rows) == len(expected)
+    for row, (session, s) in zip(rows, expected, strict=True):
+        value = math.nan if row["value"] is None else row["value"]
+        back = Sample(row["t"], row["vessel"], row["channel"], value, row["quality"], row["source"])
+        assert bits(back) == bits(s)
+        assert row["session"] == session
+        assert row["time"] == dt.datetime.fromtimestamp(round(s.t * 1e6) / 1e6, dt.UTC)
+    assert rows[0]["time"].isoformat() == "2026-01-01T00:00:00+00:00"
+    assert {r["unit"] for r in rows if r["channel"] == "water"} == {"degC"}
+    faults = [r for r in rows if r["quality"] == "fault"]
+    assert faults
+    assert all(r["value"] is None for r in faults)  # no value: null, not a number
+
+
+def test_the_parquet_export_of_estimates_and_of_one_vessel(tmp_path, capsys) -> None:
+    import pyarrow.parquet as pq
+
+    from monitor.records.recorder import read_estimates
+    from monitor.records.schema import ESTIMATE_FIELDS, flatten_estimate
+    from tests.monitor.test_recorder import T0, kettle_samples, sample_estimate
+
+    path = tmp_path / "e.sqlite"
+    with Recorder(path, version="t") as rec:
+        rec.add_samples(kettle_samples(5) + kettle_samples(3, vessel="urn-2"))
+        for i, vessel in enumerate(["kettle-1", "urn-2", "kettle-1"]):
+            rec.add_estimates([flatten_estimate(sample_estimate(), vessel=vessel, run="1",
+                                                t=T0 + i)])  # fmt: skip
+    samples, estimates = tmp_path / "s.parquet", tmp_path / "e.parquet"
+    argv = ["export", str(path), "--parquet", str(samples), "--estimates-parquet", str(estimates)]
+    assert main([*argv, "--vessel", "kettle-1"]) == 0
+    assert pq.read_table(samples).column("vessel").to_pylist() == ["kettle-1"] * 5
+    rows = pq.read_table(estimates).to_pylist()
+    assert [r["t"] for r in rows] == [T0, T0 + 2]
+    recorded = [e for e in read_estimates(path) if e["vessel"] == "kettle-1"]
+    for row, e in zip(rows, recorded, strict=True):
+        for field in ESTIMATE_FIELDS:
+            assert row[field.name] == e[field.name], field.name
+        assert (row["run"], row["phase"]) == ("1", "heating")
+        assert json.loads(row["flags"]) == e["flags"]
+    assert main(["export", str(path)]) == 2  # nothing asked for
+    csv_log = tmp_path / "k.csv"
+    csv_log.write_text("time_s,water_c\n0,20\n", encoding="utf-8")
+    assert main(["export", str(csv_log), "--parquet", str(samples)]) == 2
+    assert "reads a recorder (SQLite) log" in capsys.readouterr().err
