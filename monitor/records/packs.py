@@ -67,16 +67,16 @@ _INT_CODE = {_I16: "h", _I32: "i"}
 _MAX_DECIMALS = 9
 _ZLIB_FROM = 64  # packs of fewer samples are not worth a zlib header
 _COUNTS = struct.Struct("<BHH")  # decimals, runs, instants (after the flags byte)
-_STRUCTS: dict[str, struct.Struct] = {}
+_STRUCTS: dict[tuple[str, int], struct.Struct] = {}
 
 
 def _struct(code: str, count: int) -> struct.Struct:
-    key = f"<{count}{code}"
-    found = _STRUCTS.get(key)
+    """Return the little-endian struct of ``count`` items of ``code`` (kept for reuse)."""
+    found = _STRUCTS.get((code, count))
     if found is None:
-        found = struct.Struct(key)
+        found = struct.Struct(f"<{count}{code}")
         if len(_STRUCTS) < 4096:
-            _STRUCTS[key] = found
+            _STRUCTS[(code, count)] = found
     return found
 
 
@@ -260,10 +260,16 @@ def decode_pack(data: bytes, n: int) -> Pack:
         raise ValueError(f"the pack's counts do not add up to its {n} samples")
     if qualities and max(qualities) >= len(QUALITY_CODES):
         raise ValueError(f"unknown quality code {max(qualities)}")
-    positions: list[int] = []
-    for start, length in zip(runs[::2], runs[1::2], strict=True):
-        positions.extend(range(start, start + length))
-    times: list[float] = []
-    for t, count in zip(instants, counts, strict=True):
-        times.extend([t] * count)
+    if n_runs == 1:
+        positions = list(range(runs[0], runs[0] + runs[1]))
+    else:
+        positions = []
+        for start, length in zip(runs[::2], runs[1::2], strict=True):
+            positions.extend(range(start, start + length))
+    if n_instants == 1:
+        times = [instants[0]] * n
+    else:
+        times = []
+        for t, count in zip(instants, counts, strict=True):
+            times.extend([t] * count)
     return Pack(positions, times, series, qualities, values)

@@ -1,12 +1,12 @@
 """The recorder: an SQLite log whose committed blocks are chained by SHA-256, and reading it back.
 
 One file per deployment holds everything a replay or an audit needs: the readings
-(``samples``), raw input that could not be used (``quarantine``), the estimator's
-output (``estimates``, ``flags``), what happened to the links (``events``: gaps,
-reconnects, back-pressure counts), each vessel's ``key: value`` metadata
-(``vessels``), run summaries (``runs``) and one ``sessions`` row per process that
-opened the log (start time, ebullio version, configuration text). Several sessions
-may append to one log, one after another.
+(``sample_packs``, or ``samples`` in a log of schema version 1), raw input that could
+not be used (``quarantine``), the estimator's output (``estimates``, ``flags``), what
+happened to the links (``events``: gaps, reconnects, back-pressure counts), each
+vessel's ``key: value`` metadata (``vessels``), run summaries (``runs``) and one
+``sessions`` row per process that opened the log (start time, ebullio version,
+configuration text). Several sessions may append to one log, one after another.
 
 Writing
     :class:`Recorder` keeps added rows in memory until :meth:`Recorder.commit`, which
@@ -29,12 +29,30 @@ Writing
     thread-safe: calls must not overlap, but they may come from different threads
     one after another (``asyncio.to_thread`` uses a pool).
 
+The layouts (:data:`LAYOUTS`; docs/recorder.md)
+    Schema version 2, the one new logs get (:data:`LAYOUT`), keeps a commit's readings
+    as one pack per vessel (:mod:`monitor.records.packs`: columns of fixed-width
+    numbers, decimal readings as small integers), naming the vessel and each reading's
+    (channel, source) series by ids of two small tables, ``sample_vessels`` and
+    ``sample_series``, written in the block that first needs them. That is about a
+    fifth of version 1's bytes on disk, where each reading was a ``samples`` row with
+    an index entry (``benchmarks/bench_storage.py``). A log keeps the version it was
+    made with: one of version 1 is read, verified and appended to as before.
+    :class:`Recorder` turns the pending readings into packs inside the commit's
+    transaction (:meth:`Recorder._packed`), after reading the names other writers
+    committed, so ids stay unique with two writers on one file. Every reader of
+    readings goes through :func:`_samples_by_block` or :class:`LogReader`, the one
+    place that knows both layouts.
+
 The hash chain
-    Block ``k``'s ``hash`` is SHA-256 over, in order: the label :data:`HASH_LABEL`;
-    ``k``, its commit time and its row count; the previous block's hash (32 zero
-    bytes before block 1); then for each table in :data:`HASHED_TABLES` order its
-    name, its number of rows in the block, and those rows in id order, every column
-    (``id`` and ``block`` included) in :data:`TABLE_COLUMNS` order. Each value is
+    Block ``k``'s ``hash`` is SHA-256 over, in order: the layout's label
+    (:data:`HASH_LABEL` in a new log); ``k``, its commit time and its row count (the
+    stored rows: a pack is one); the previous block's hash (32 zero bytes before block
+    1); then for each table in the layout's :attr:`Layout.hashed_tables` order
+    (:data:`HASHED_TABLES`) its name, its number of rows in the block, and those rows
+    in id order, every column (``id`` and ``block`` included) in the layout's order
+    (:data:`TABLE_COLUMNS`). A pack's bytes are hashed as stored, so a change to any
+    reading inside it changes the hash. Each value is
     encoded by :func:`encode_value`: a type letter, then 8 bytes big-endian for an
     integer (signed) or a float (IEEE 754, so exactly), or a 4-byte length and the
     bytes for a text (UTF-8) or a blob. The length prefix already makes the encoding
@@ -47,16 +65,18 @@ The hash chain
 
 What SQLite stores, and so what reads back
     SQLite cannot store NaN: a NaN value is stored as NULL and reads back as NaN
-    (fault samples carry NaN). It stores ``-0.0`` as ``0.0``, so the recorder writes
-    ``0.0`` for it (the sign of a zero reading carries no information). Infinities
-    are kept. JSON columns (``detail``, ``evidence``, ``metadata``, ``summary``) are
-    standard JSON with sorted keys; a non-finite number in them is written as
-    ``null``, because standard JSON has no NaN.
+    (fault samples carry NaN; a pack keeps the NaN itself). It stores ``-0.0`` as
+    ``0.0``, so the recorder writes ``0.0`` for it in either layout (the sign of a
+    zero reading carries no information). Infinities are kept. JSON columns
+    (``detail``, ``evidence``, ``metadata``, ``summary``) are standard JSON with sorted
+    keys; a non-finite number in them is written as ``null``, because standard JSON
+    has no NaN.
 
 Tables are ``STRICT`` (a value of the wrong type is refused, never converted). Besides
-the ids there are two indices (:data:`INDICES`), for the board's window questions:
-samples by vessel, channel and time, estimates by vessel and time. Replay reads whole
-tables in id order, and every further index would slow the writer and grow the file.
+the ids there are two indices (:attr:`Layout.indices`), for the board's window
+questions: packs by vessel and newest time (schema 1: samples by vessel, channel and
+time), estimates by vessel and time. Replay reads whole tables in id order, and every
+further index would slow the writer and grow the file.
 
 What an estimate row holds
     The recorder owns the mapping of an estimate to its row, through
@@ -556,20 +576,29 @@ def _pack_samples(
     """Return one ``sample_packs`` row (id, vessel, n, data) as (position, Sample) pairs."""
     pack_id, vessel_id, n, data = row
     pack = _decoded(path, pack_id, n, data)
+    vessel, series = names.vessels.get(vessel_id), names.series
     try:
-        vessel, series = names.name_of(conn, f"sample_packs id {pack_id}", vessel_id, pack.series)
-    except ValueError as exc:
-        raise LogFormatError(f"{path}: {exc}") from None
-    out = []
-    for p, t, s, q, v in zip(
-        pack.positions, pack.times, pack.series, pack.qualities, pack.values, strict=True
-    ):
-        channel, source = series[s]
+        columns = [(series[s], q) for s, q in zip(pack.series, pack.qualities, strict=True)]
+    except KeyError:
+        columns = None
+    if vessel is None or columns is None:  # names added since they were read, or none such
         try:
-            out.append((p, Sample(t, vessel, channel, v, _QUALITY_OF_CODE[q], source)))
+            vessel, series = names.name_of(
+                conn, f"sample_packs id {pack_id}", vessel_id, pack.series
+            )
         except ValueError as exc:
-            raise LogFormatError(f"{path}: sample_packs id {pack_id}: {exc}") from exc
-    return out
+            raise LogFormatError(f"{path}: {exc}") from None
+        columns = [(series[s], q) for s, q in zip(pack.series, pack.qualities, strict=True)]
+    qualities = _QUALITY_OF_CODE
+    try:
+        return [
+            (p, Sample(t, vessel, channel, v, qualities[q], source))
+            for p, t, ((channel, source), q), v in zip(
+                pack.positions, pack.times, columns, pack.values, strict=True
+            )
+        ]
+    except ValueError as exc:
+        raise LogFormatError(f"{path}: sample_packs id {pack_id}: {exc}") from exc
 
 
 def _packed_samples(
