@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import math
 import os
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 
 import pyarrow as pa
@@ -76,38 +76,36 @@ def _unit(channel: str, known: dict[str, str | None]) -> str | None:
     return unit
 
 
-def _sample_batches(path: str, vessel: str | None) -> Iterator[pa.RecordBatch]:
-    units: dict[str, str | None] = {}
-    columns: list[list] = [[] for _ in SAMPLE_SCHEMA]
-    for session, s in read_samples_by_session(path, vessel):
-        value = s.value
-        row = (_micros(s.t), s.t, session, s.vessel, s.channel, _unit(s.channel, units),
-               None if math.isnan(value) else value, str(s.quality), s.source)  # fmt: skip
+def _batches(schema: pa.Schema, rows: Iterable[Sequence[object]]) -> Iterator[pa.RecordBatch]:
+    """Return ``rows`` (one item per column of ``schema``) as record batches of
+    :data:`ROW_GROUP` rows at most."""
+    columns: list[list] = [[] for _ in schema]
+    for row in rows:
         for column, item in zip(columns, row, strict=True):
             column.append(item)
         if len(columns[0]) >= ROW_GROUP:
-            yield pa.record_batch(columns, schema=SAMPLE_SCHEMA)
-            columns = [[] for _ in SAMPLE_SCHEMA]
+            yield pa.record_batch(columns, schema=schema)
+            columns = [[] for _ in schema]
     if columns[0]:
-        yield pa.record_batch(columns, schema=SAMPLE_SCHEMA)
+        yield pa.record_batch(columns, schema=schema)
 
 
-def _estimate_batches(path: str, vessel: str | None) -> Iterator[pa.RecordBatch]:
+def _sample_rows(path: str, vessel: str | None) -> Iterator[tuple[object, ...]]:
+    units: dict[str, str | None] = {}
+    for session, s in read_samples_by_session(path, vessel):
+        value = s.value
+        yield (_micros(s.t), s.t, session, s.vessel, s.channel, _unit(s.channel, units),
+               None if math.isnan(value) else value, str(s.quality), s.source)  # fmt: skip
+
+
+def _estimate_rows(path: str, vessel: str | None) -> Iterator[list[object]]:
     names = [f.name for f in ESTIMATE_FIELDS]
-    columns: list[list] = [[] for _ in ESTIMATE_SCHEMA]
     for e in read_estimates(path, vessel):
         t = float(e["t"])  # type: ignore[arg-type]
         run = e.get("run")
-        row = [_micros(t), t, e["vessel"], None if run is None else str(run), e["phase"],
+        yield [_micros(t), t, e["vessel"], None if run is None else str(run), e["phase"],
                *(e.get(name) for name in names),
                json.dumps(e.get("flags") or [], sort_keys=True, allow_nan=False)]  # fmt: skip
-        for column, item in zip(columns, row, strict=True):
-            column.append(item)
-        if len(columns[0]) >= ROW_GROUP:
-            yield pa.record_batch(columns, schema=ESTIMATE_SCHEMA)
-            columns = [[] for _ in ESTIMATE_SCHEMA]
-    if columns[0]:
-        yield pa.record_batch(columns, schema=ESTIMATE_SCHEMA)
 
 
 def _write(out: Path, schema: pa.Schema, batches: Iterable[pa.RecordBatch]) -> int:
@@ -144,9 +142,11 @@ def export_parquet(
         raise LogFormatError(f"{path}: a Parquet export reads a recorder (SQLite) log")
     written: dict[str, int] = {}
     if samples_out is not None:
-        written["samples"] = _write(Path(samples_out), SAMPLE_SCHEMA, _sample_batches(path, vessel))
+        rows = _sample_rows(path, vessel)
+        written["samples"] = _write(Path(samples_out), SAMPLE_SCHEMA, _batches(SAMPLE_SCHEMA, rows))
     if estimates_out is not None:
+        rows = _estimate_rows(path, vessel)
         written["estimates"] = _write(
-            Path(estimates_out), ESTIMATE_SCHEMA, _estimate_batches(path, vessel)
+            Path(estimates_out), ESTIMATE_SCHEMA, _batches(ESTIMATE_SCHEMA, rows)
         )
     return written

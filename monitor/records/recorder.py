@@ -544,7 +544,9 @@ class _SampleNames:
         self.refresh(conn)
         return {i for i, (channel, _) in self.series.items() if channel in channels}
 
-    def name_of(self, conn: sqlite3.Connection, where: str, vessel: int, series: list[int]):
+    def name_of(
+        self, conn: sqlite3.Connection, where: str, vessel: int, series: list[int]
+    ) -> tuple[str, dict[int, tuple[str, str]]]:
         """Return (the vessel's name, a series id -> (channel, source) map) for one pack;
         raise ValueError naming an id the log does not hold."""
         if vessel not in self.vessels or any(i not in self.series for i in set(series)):

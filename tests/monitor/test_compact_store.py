@@ -20,7 +20,6 @@ import pytest
 
 from drivers.sample import Sample
 from monitor.cli import main
-from monitor.records.packs import decode_pack, encode_pack
 from monitor.records.recorder import (
     LAYOUTS,
     LogReader,
@@ -30,6 +29,7 @@ from monitor.records.recorder import (
     schema_version,
     verify,
 )
+from tests.support.tamper import edit_pack
 
 DATA = Path(__file__).resolve().parents[1] / "data"
 FIXTURE = "recorder-v1.sqlite"
@@ -168,24 +168,6 @@ def _connect(path: Path) -> sqlite3.Connection:
     return sqlite3.connect(path, isolation_level=None)
 
 
-def _edit_pack(path: Path, pack_id: int, change) -> int:
-    """Decode one pack, let ``change`` alter its columns, write it back; return its block."""
-    conn = _connect(path)
-    block, n, data = conn.execute(
-        "SELECT block, n, data FROM sample_packs WHERE id = ?", (pack_id,)
-    ).fetchone()
-    pack = decode_pack(data, n)
-    columns = [list(pack.positions), list(pack.times), list(pack.series),
-               list(pack.qualities), list(pack.values)]  # fmt: skip
-    change(columns)
-    conn.execute(
-        "UPDATE sample_packs SET n = ?, t_last = ?, data = ? WHERE id = ?",
-        (len(columns[0]), max(columns[1]), encode_pack(*columns), pack_id),
-    )
-    conn.close()
-    return block
-
-
 @pytest.fixture
 def compact(logs, tmp_path) -> Path:
     path = tmp_path / FIXTURE
@@ -232,7 +214,7 @@ def _insert(columns):
     ],
 )
 def test_verify_catches_a_changed_sample_inside_a_pack(compact, what, change) -> None:
-    block = _edit_pack(compact, 40, change)
+    block = edit_pack(compact, 40, change)
     result = verify(compact)
     assert result["state"] == "tampered", what
     assert result["first_bad_block"] == block

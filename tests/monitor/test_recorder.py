@@ -483,28 +483,26 @@ SAMPLE_EDITS_V1 = [
 ]  # fmt: skip
 
 
-@pytest.mark.parametrize(("statement", "block"), COMMON_EDITS)
-def test_verify_names_the_first_altered_block(log: Path, statement: str, block: int):
+def assert_edit_caught(log: Path, statement: str, block: int) -> None:
     assert verify(log)["ok"]
     sql(log, statement)
     result = verify(log)
     assert result["ok"] is False
     assert result["first_bad_block"] == block
     assert str(block) in result["reason"]
+
+
+@pytest.mark.parametrize(("statement", "block"), COMMON_EDITS)
+def test_verify_names_the_first_altered_block(log: Path, statement: str, block: int):
+    assert_edit_caught(log, statement, block)
 
 
 @pytest.mark.parametrize(("statement", "block"), COMMON_EDITS + SAMPLE_EDITS_V1)
 def test_verify_names_the_first_altered_block_of_a_schema_1_log(
     log_v1: Path, statement: str, block: int
 ):
-    log = log_v1
-    assert schema_version(log) == 1
-    assert verify(log)["ok"]
-    sql(log, statement)
-    result = verify(log)
-    assert result["ok"] is False
-    assert result["first_bad_block"] == block
-    assert str(block) in result["reason"]
+    assert schema_version(log_v1) == 1
+    assert_edit_caught(log_v1, statement, block)
 
 
 def test_a_row_added_later_to_an_old_block_is_caught(log_v1: Path):
