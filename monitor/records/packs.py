@@ -27,7 +27,9 @@ little-endian)::
                                   standing for NaN
 
 ``n`` (the number of samples) is not in the bytes: the recorder keeps it in the pack's
-row. A pack holds at most :data:`MAX_SAMPLES` samples.
+row. A pack holds at most :data:`MAX_SAMPLES` samples (its counts are u16); the
+recorder writes at most :data:`PACK_SAMPLES`, so a question about a time window unpacks
+little beyond the window even in a log committed in large blocks.
 
 Why the values round-trip bit for bit
     A float that prints with ``d`` decimals (``repr``, the shortest text that reads back
@@ -49,10 +51,20 @@ import zlib
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-__all__ = ["MAX_SAMPLES", "QUALITY_CODES", "Pack", "decode_pack", "encode_pack"]
+__all__ = [
+    "MAX_SAMPLES",
+    "PACK_SAMPLES",
+    "QUALITY_CODES",
+    "Pack",
+    "decode_pack",
+    "encode_pack",
+    "pack_tail",
+]
 
-#: The most samples one pack holds (its counts are u16).
+#: The most samples one pack can hold (its counts are u16).
 MAX_SAMPLES = 65_535
+#: The most samples the recorder puts in one pack.
+PACK_SAMPLES = 4_096
 #: Quality of each code in a pack's quality column.
 QUALITY_CODES: tuple[str, ...] = ("ok", "suspect", "fault")
 
@@ -205,12 +217,8 @@ def encode_pack(
     return bytes((flags,)) + body
 
 
-def decode_pack(data: bytes, n: int) -> Pack:
-    """Return the samples of a pack of ``n`` samples.
-
-    Raises ValueError when the bytes are not such a pack (too short or too long, a
-    count that does not add up, an unknown flag or quality).
-    """
+def _body(data: bytes) -> tuple[int, bytes]:
+    """Return a pack's flags and its bytes after them, decompressed."""
     if not data:
         raise ValueError("an empty pack")
     flags = data[0]
@@ -222,6 +230,34 @@ def decode_pack(data: bytes, n: int) -> Pack:
             body = zlib.decompress(body)
         except zlib.error as exc:
             raise ValueError(f"the pack's compressed bytes are damaged ({exc})") from None
+    return flags, body
+
+
+def pack_tail(data: bytes) -> tuple[int, float]:
+    """Return the position and the time (Unix s) of a pack's last sample, reading only
+    the pack's first columns. Raises ValueError as :func:`decode_pack` does for bytes
+    that are not a pack (only the part read is checked)."""
+    flags, body = _body(data)
+    try:
+        _, n_runs, n_instants = _COUNTS.unpack_from(body)
+        code, size = ("I", 4) if flags & _WIDE else ("H", 2)
+        at = _COUNTS.size + (2 * n_runs - 2) * size
+        start, length = _struct(code, 2).unpack_from(body, at)
+        (t,) = _struct("d", 1).unpack_from(body, at + 2 * size + 8 * (n_instants - 1))
+    except struct.error as exc:
+        raise ValueError(f"the pack is shorter than its counts say ({exc})") from None
+    if not (n_runs and n_instants):
+        raise ValueError("a pack without samples")
+    return start + length - 1, t
+
+
+def decode_pack(data: bytes, n: int) -> Pack:
+    """Return the samples of a pack of ``n`` samples.
+
+    Raises ValueError when the bytes are not such a pack (too short or too long, a
+    count that does not add up, an unknown flag or quality).
+    """
+    flags, body = _body(data)
     try:
         decimals, n_runs, n_instants = _COUNTS.unpack_from(body)
         at = _COUNTS.size

@@ -116,7 +116,14 @@ from drivers.channels import Quarantined
 from drivers.errors import EbullioError, LogFormatError
 from drivers.sample import Quality, Sample
 from monitor.estimation.contracts import Level, Phase
-from monitor.records.packs import MAX_SAMPLES, QUALITY_CODES, Pack, decode_pack, encode_pack
+from monitor.records.packs import (
+    PACK_SAMPLES,
+    QUALITY_CODES,
+    Pack,
+    decode_pack,
+    encode_pack,
+    pack_tail,
+)
 from monitor.records.schema import ESTIMATE_COLUMNS, join_estimate, split_estimate
 
 LOG = logging.getLogger(__name__)
@@ -678,12 +685,15 @@ def _last_packed_t(conn: sqlite3.Connection, path: object) -> float | None:
     if block is None:
         return None
     last: tuple[int, float] | None = None
-    for pack_id, n, data in conn.execute(
-        "SELECT id, n, data FROM sample_packs WHERE block = ?", (block,)
+    for pack_id, data in conn.execute(
+        "SELECT id, data FROM sample_packs WHERE block = ?", (block,)
     ):
-        pack = _decoded(path, pack_id, n, data)
-        if last is None or pack.positions[-1] > last[0]:
-            last = (pack.positions[-1], pack.times[-1])
+        try:
+            tail = pack_tail(bytes(data))
+        except (TypeError, ValueError) as exc:
+            raise LogFormatError(f"{path}: sample_packs id {pack_id}: {exc}") from None
+        if last is None or tail[0] > last[0]:
+            last = tail
     return None if last is None else last[1]
 
 
@@ -1040,7 +1050,7 @@ class Recorder(_ClosedOnExit):
 
         Inside the commit's transaction: the names other writers committed are read
         first, so ids stay unique. A block's samples go in one pack per vessel (more
-        when a vessel has over :data:`~monitor.records.packs.MAX_SAMPLES`), in order of
+        when a vessel has over :data:`~monitor.records.packs.PACK_SAMPLES`), in order of
         each vessel's first sample, each sample with its position among the block's.
         """
         names = self._names.copy().refresh(conn)
@@ -1071,8 +1081,8 @@ class Recorder(_ClosedOnExit):
             group[4].append(math.nan if value is None else value)
         packs: list[Row] = []
         for vessel_id, columns in groups.items():
-            for start in range(0, len(columns[0]), MAX_SAMPLES):
-                part = [c[start : start + MAX_SAMPLES] for c in columns]
+            for start in range(0, len(columns[0]), PACK_SAMPLES):
+                part = [c[start : start + PACK_SAMPLES] for c in columns]
                 packs.append((vessel_id, max(part[1]), len(part[0]), encode_pack(*part)))
         stored = {name: rows for name, rows in self._pending.items() if name != "samples"}
         stored.update(sample_vessels=new_vessels, sample_series=new_series, sample_packs=packs)
@@ -1502,11 +1512,8 @@ class LogReader(_ClosedOnExit):
                 (vessel_id, since),
             ):
                 pack = _decoded(self.path, pack_id, n, data)
-                out += [
-                    (t, s, v)
-                    for t, s, v in zip(pack.times, pack.series, pack.values, strict=True)
-                    if later(t)
-                ]
+                rows = zip(pack.times, pack.series, pack.values, strict=True)
+                out += rows if later(min(pack.times)) else [r for r in rows if later(r[0])]
             return out
 
         rows = self._packed(read)
