@@ -680,14 +680,18 @@ def _newest_packed_t(
 
 
 def _last_packed_t(conn: sqlite3.Connection, path: object) -> float | None:
-    """Return the time (Unix s) of the sample a schema-2 log recorded last, None for none."""
-    (block,) = conn.execute("SELECT max(block) FROM sample_packs").fetchone()
-    if block is None:
-        return None
+    """Return the time (Unix s) of the sample a schema-2 log recorded last, None for none:
+    among the packs of the last block (the highest ids, since a commit writes its packs
+    together), the time of the one with the highest position."""
     last: tuple[int, float] | None = None
-    for pack_id, data in conn.execute(
-        "SELECT id, data FROM sample_packs WHERE block = ?", (block,)
+    block = None
+    for pack_id, pack_block, data in conn.execute(
+        "SELECT id, block, data FROM sample_packs ORDER BY id DESC"
     ):
+        if block is None:
+            block = pack_block
+        elif pack_block != block:
+            break
         try:
             tail = pack_tail(bytes(data))
         except (TypeError, ValueError) as exc:
