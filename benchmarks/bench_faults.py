@@ -397,21 +397,35 @@ def part_tamper(work: Path) -> dict[str, object]:
     path = fresh("cut")
     conn = sqlite3.connect(path)
     last = conn.execute("SELECT max(block) FROM blocks").fetchone()[0]
-    conn.execute("DELETE FROM samples WHERE block = ?", (last,))
-    conn.execute("DELETE FROM blocks WHERE block = ?", (last,))
+    for table in ("sample_packs", "sample_series", "sample_vessels", "blocks"):
+        conn.execute(f"DELETE FROM {table} WHERE block = ?", (last,))
     conn.commit()
     conn.close()
     results["last_block_removed"] = _caught(path)
-    for name, statement in [
-        ("row_changed", "UPDATE samples SET value = value + 0.001 WHERE id = 300"),
-        ("row_deleted", "DELETE FROM samples WHERE id = 300"),
-        ("row_added", "INSERT INTO samples (block, t, vessel, channel, value, quality, source) "
-                      "SELECT block, t + 0.5, vessel, channel, value, quality, source "
-                      "FROM samples WHERE id = 300"),
-    ]:  # fmt: skip
+
+    def nudge(columns: list[list]) -> None:  # one reading's value by 0.001
+        columns[4][30] += 0.001
+
+    def drop(columns: list[list]) -> None:  # one reading taken out
+        for column in columns:
+            del column[30]
+        columns[0][30:] = [p - 1 for p in columns[0][30:]]
+
+    def add(columns: list[list]) -> None:  # a reading put in, half a second after another
+        for column, item in zip(
+            columns,
+            (columns[0][-1] + 1, columns[1][30] + 0.5, columns[2][30], 0, columns[4][30]),
+            strict=True,
+        ):
+            column.append(item)  # fmt: skip
+
+    for name, change in (("row_changed", nudge), ("row_deleted", drop), ("row_added", add)):
         path = fresh(name)
-        edit(path, statement)
+        _edit_pack(path, 3, change)
         results[name] = _caught(path)
+    path = fresh("pack_deleted")
+    edit(path, "DELETE FROM sample_packs WHERE id = 3")
+    results["pack_deleted"] = _caught(path)
     size = base.stat().st_size
     caught = harmless = missed = 0
     where: list[str] = []
@@ -433,9 +447,26 @@ def part_tamper(work: Path) -> dict[str, object]:
     results["byte_flipped"] = {"tries": 40, "caught": caught, "changed_nothing": harmless,
                                "missed": missed,
                                "states": {s: where.count(s) for s in set(where)}}  # fmt: skip
-    named = [results[k] for k in ("last_block_removed", "row_changed", "row_deleted", "row_added")]
+    named = [results[k] for k in ("last_block_removed", "row_changed", "row_deleted", "row_added",
+                                  "pack_deleted")]  # fmt: skip
     results["ok"] = all(r["caught"] for r in named) and missed == 0  # type: ignore[index]
     return results
+
+
+def _edit_pack(path: Path, pack_id: int, change) -> None:
+    """Unpack one pack of readings, let ``change`` alter its columns, pack it back."""
+    from monitor.records.packs import decode_pack, encode_pack
+
+    conn = sqlite3.connect(path)
+    n, data = conn.execute("SELECT n, data FROM sample_packs WHERE id = ?", (pack_id,)).fetchone()
+    pack = decode_pack(data, n)
+    columns = [list(pack.positions), list(pack.times), list(pack.series), list(pack.qualities),
+               list(pack.values)]  # fmt: skip
+    change(columns)
+    conn.execute("UPDATE sample_packs SET n = ?, t_last = ?, data = ? WHERE id = ?",
+                 (len(columns[0]), max(columns[1]), encode_pack(*columns), pack_id))  # fmt: skip
+    conn.commit()
+    conn.close()
 
 
 def _caught(path: Path) -> dict[str, object]:
@@ -447,7 +478,8 @@ def _rows(path: Path) -> object:
     try:
         conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
         rows = {t: conn.execute(f"SELECT * FROM {t} ORDER BY id").fetchall()
-                for t in ("samples", "blocks", "sessions")}  # fmt: skip
+                for t in ("sample_packs", "sample_series", "sample_vessels", "blocks",
+                          "sessions")}  # fmt: skip
         conn.close()
         return rows
     except sqlite3.Error as exc:

@@ -298,16 +298,27 @@ def cmd_verify(args: argparse.Namespace) -> int:
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    """Write one vessel of a log as a CSV interchange file."""
-    from monitor.runs.logs import export_csv
+    """Write one vessel of a log as a CSV interchange file, and/or a recorder log's
+    readings and estimates as Parquet."""
+    from monitor.runs.logs import export_csv, log_integrity
 
-    out_path = Path(args.csv)
-    out_path.parent.mkdir(parents=True, exist_ok=True)
-    from monitor.runs.logs import log_integrity
+    if not (args.csv or args.parquet or args.estimates_parquet):
+        print("ebullio export: say what to write: --csv, --parquet and/or --estimates-parquet",
+              file=sys.stderr)  # fmt: skip
+        return 2
+    if args.parquet or args.estimates_parquet:
+        from monitor.records.parquet import export_parquet
 
-    with open(out_path, "w", encoding="utf-8", newline="") as out:
-        rows = export_csv(args.log, out, args.vessel)
-    print(f"wrote {rows} rows to {out_path}", file=sys.stderr)
+        written = export_parquet(args.log, args.parquet, args.estimates_parquet, args.vessel)
+        for kind, out_name in (("samples", args.parquet), ("estimates", args.estimates_parquet)):
+            if kind in written:
+                print(f"wrote {written[kind]} {kind} to {out_name}", file=sys.stderr)
+    if args.csv:
+        out_path = Path(args.csv)
+        out_path.parent.mkdir(parents=True, exist_ok=True)
+        with open(out_path, "w", encoding="utf-8", newline="") as out:
+            rows = export_csv(args.log, out, args.vessel)
+        print(f"wrote {rows} rows to {out_path}", file=sys.stderr)
     return _say_integrity([log_integrity(args.log)])
 
 
@@ -524,14 +535,25 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
 
     exp = verbs.add_parser(
         "export",
-        help="write a recorder log as a CSV interchange file",
+        help="write a log as a CSV interchange file, or a recorder log as Parquet",
         description="Write the steps one vessel's filter took, with the vessel's metadata, in "
-        "the CSV interchange format (times rounded to 1 ms).",
-        epilog="example: ebullio export logs/lab.sqlite --vessel urn-3 --csv out/urn-3.csv",
+        "the CSV interchange format (times rounded to 1 ms); and/or a recorder log's readings "
+        "(one row per reading) and estimates as Parquet files (docs/parquet.md).",
+        epilog="example: ebullio export logs/lab.sqlite --vessel urn-3 --csv out/urn-3.csv\n"
+        "         ebullio export logs/lab.sqlite --parquet out/lab-samples.parquet "
+        "--estimates-parquet out/lab-estimates.parquet",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     exp.add_argument("log", metavar="LOG", help="recorder (SQLite) or CSV log")
-    exp.add_argument("--csv", required=True, metavar="FILE", help="CSV file to write")
-    exp.add_argument("--vessel", help="which vessel (needed when the log holds several)")
+    exp.add_argument("--csv", metavar="FILE", help="CSV interchange file to write")
+    exp.add_argument("--parquet", metavar="FILE", help="Parquet file of every reading to write")
+    exp.add_argument(
+        "--estimates-parquet", metavar="FILE", help="Parquet file of every estimate to write"
+    )
+    exp.add_argument(
+        "--vessel",
+        help="which vessel (needed for --csv when the log holds several; Parquet: all by default)",
+    )
     exp.set_defaults(func=cmd_export)
     if extend is not None:
         extend(verbs, {"demo": demo, "run": run, "replay": rep, "report": rpt})

@@ -1,12 +1,12 @@
 """The recorder: an SQLite log whose committed blocks are chained by SHA-256, and reading it back.
 
 One file per deployment holds everything a replay or an audit needs: the readings
-(``samples``), raw input that could not be used (``quarantine``), the estimator's
-output (``estimates``, ``flags``), what happened to the links (``events``: gaps,
-reconnects, back-pressure counts), each vessel's ``key: value`` metadata
-(``vessels``), run summaries (``runs``) and one ``sessions`` row per process that
-opened the log (start time, ebullio version, configuration text). Several sessions
-may append to one log, one after another.
+(``sample_packs``, or ``samples`` in a log of schema version 1), raw input that could
+not be used (``quarantine``), the estimator's output (``estimates``, ``flags``), what
+happened to the links (``events``: gaps, reconnects, back-pressure counts), each
+vessel's ``key: value`` metadata (``vessels``), run summaries (``runs``) and one
+``sessions`` row per process that opened the log (start time, ebullio version,
+configuration text). Several sessions may append to one log, one after another.
 
 Writing
     :class:`Recorder` keeps added rows in memory until :meth:`Recorder.commit`, which
@@ -29,12 +29,30 @@ Writing
     thread-safe: calls must not overlap, but they may come from different threads
     one after another (``asyncio.to_thread`` uses a pool).
 
+The layouts (:data:`LAYOUTS`; docs/recorder.md)
+    Schema version 2, the one new logs get (:data:`LAYOUT`), keeps a commit's readings
+    as one pack per vessel (:mod:`monitor.records.packs`: columns of fixed-width
+    numbers, decimal readings as small integers), naming the vessel and each reading's
+    (channel, source) series by ids of two small tables, ``sample_vessels`` and
+    ``sample_series``, written in the block that first needs them. That is about a
+    fifth of version 1's bytes on disk, where each reading was a ``samples`` row with
+    an index entry (``benchmarks/bench_storage.py``). A log keeps the version it was
+    made with: one of version 1 is read, verified and appended to as before.
+    :class:`Recorder` turns the pending readings into packs inside the commit's
+    transaction (:meth:`Recorder._packed`), after reading the names other writers
+    committed, so ids stay unique with two writers on one file. Every reader of
+    readings goes through :func:`_samples_by_block` or :class:`LogReader`, the one
+    place that knows both layouts.
+
 The hash chain
-    Block ``k``'s ``hash`` is SHA-256 over, in order: the label :data:`HASH_LABEL`;
-    ``k``, its commit time and its row count; the previous block's hash (32 zero
-    bytes before block 1); then for each table in :data:`HASHED_TABLES` order its
-    name, its number of rows in the block, and those rows in id order, every column
-    (``id`` and ``block`` included) in :data:`TABLE_COLUMNS` order. Each value is
+    Block ``k``'s ``hash`` is SHA-256 over, in order: the layout's label
+    (:data:`HASH_LABEL` in a new log); ``k``, its commit time and its row count (the
+    stored rows: a pack is one); the previous block's hash (32 zero bytes before block
+    1); then for each table in the layout's :attr:`Layout.hashed_tables` order
+    (:data:`HASHED_TABLES`) its name, its number of rows in the block, and those rows
+    in id order, every column (``id`` and ``block`` included) in the layout's order
+    (:data:`TABLE_COLUMNS`). A pack's bytes are hashed as stored, so a change to any
+    reading inside it changes the hash. Each value is
     encoded by :func:`encode_value`: a type letter, then 8 bytes big-endian for an
     integer (signed) or a float (IEEE 754, so exactly), or a 4-byte length and the
     bytes for a text (UTF-8) or a blob. The length prefix already makes the encoding
@@ -47,16 +65,18 @@ The hash chain
 
 What SQLite stores, and so what reads back
     SQLite cannot store NaN: a NaN value is stored as NULL and reads back as NaN
-    (fault samples carry NaN). It stores ``-0.0`` as ``0.0``, so the recorder writes
-    ``0.0`` for it (the sign of a zero reading carries no information). Infinities
-    are kept. JSON columns (``detail``, ``evidence``, ``metadata``, ``summary``) are
-    standard JSON with sorted keys; a non-finite number in them is written as
-    ``null``, because standard JSON has no NaN.
+    (fault samples carry NaN; a pack keeps the NaN itself). It stores ``-0.0`` as
+    ``0.0``, so the recorder writes ``0.0`` for it in either layout (the sign of a
+    zero reading carries no information). Infinities are kept. JSON columns
+    (``detail``, ``evidence``, ``metadata``, ``summary``) are standard JSON with sorted
+    keys; a non-finite number in them is written as ``null``, because standard JSON
+    has no NaN.
 
 Tables are ``STRICT`` (a value of the wrong type is refused, never converted). Besides
-the ids there are two indices (:data:`INDICES`), for the board's window questions:
-samples by vessel, channel and time, estimates by vessel and time. Replay reads whole
-tables in id order, and every further index would slow the writer and grow the file.
+the ids there are two indices (:attr:`Layout.indices`), for the board's window
+questions: packs by vessel and newest time (schema 1: samples by vessel, channel and
+time), estimates by vessel and time. Replay reads whole tables in id order, and every
+further index would slow the writer and grow the file.
 
 What an estimate row holds
     The recorder owns the mapping of an estimate to its row, through
@@ -87,6 +107,7 @@ import struct
 import time
 import urllib.parse
 from collections.abc import Callable, Collection, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
 from typing import Self
@@ -95,84 +116,162 @@ from drivers.channels import Quarantined
 from drivers.errors import EbullioError, LogFormatError
 from drivers.sample import Quality, Sample
 from monitor.estimation.contracts import Level, Phase
+from monitor.records.packs import (
+    PACK_SAMPLES,
+    QUALITY_CODES,
+    Pack,
+    decode_pack,
+    encode_pack,
+    pack_tail,
+)
 from monitor.records.schema import ESTIMATE_COLUMNS, join_estimate, split_estimate
 
 LOG = logging.getLogger(__name__)
 
 #: What ``meta.format`` holds in every recorder log.
 LOG_FORMAT = "ebullio-recorder"
-#: Version of the table layout; a log with a newer one is refused.
-SCHEMA_VERSION = 1
+#: Version of the table layout new logs get; a log with a newer one is refused.
+SCHEMA_VERSION = 2
 #: The first bytes of every SQLite 3 database file.
 SQLITE_MAGIC = b"SQLite format 3\x00"
-#: Label at the start of every block's hashed bytes (names the encoding's version).
-HASH_LABEL = b"ebullio-recorder block v1\n"
 #: ``prev_hash`` of block 1.
 GENESIS_HASH = "0" * 64
 
-#: Columns of each hashed table, in the order they are stored and hashed.
-TABLE_COLUMNS: dict[str, tuple[str, ...]] = {
+_ESTIMATE_REALS = ",\n    ".join(f"{c} REAL" for c in ESTIMATE_COLUMNS)
+#: The tables every schema version has, with their columns and their SQL.
+_COMMON_COLUMNS: dict[str, tuple[str, ...]] = {
     "sessions": ("id", "block", "started_t", "version", "config_text"),
     "vessels": ("id", "block", "vessel", "metadata"),
     "runs": ("id", "block", "vessel", "run", "start_t", "end_t", "summary"),
-    "samples": ("id", "block", "t", "vessel", "channel", "value", "quality", "source"),
     "quarantine": ("id", "block", "t", "source", "location", "reason", "raw"),
     "estimates": ("id", "block", "t", "vessel", "phase", *ESTIMATE_COLUMNS, "detail"),
     "flags": ("id", "block", "t", "vessel", "name", "level", "message", "evidence"),
     "events": ("id", "block", "t", "kind", "source", "detail"),
 }
-#: The order in which a block's tables are hashed.
-HASHED_TABLES = tuple(TABLE_COLUMNS)
-
-_ESTIMATE_REALS = ",\n    ".join(f"{c} REAL" for c in ESTIMATE_COLUMNS)
-SCHEMA = f"""
-CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL) STRICT;
-CREATE TABLE blocks (
+_TABLE_SQL: dict[str, str] = {
+    "meta": "meta (key TEXT PRIMARY KEY, value TEXT NOT NULL)",
+    "blocks": """blocks (
     block INTEGER PRIMARY KEY, committed_t REAL NOT NULL, rows INTEGER NOT NULL,
     prev_hash TEXT NOT NULL, hash TEXT NOT NULL
-) STRICT;
-CREATE TABLE sessions (
+)""",
+    "sessions": """sessions (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, started_t REAL NOT NULL,
     version TEXT NOT NULL, config_text TEXT
-) STRICT;
-CREATE TABLE vessels (
+)""",
+    "vessels": """vessels (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, vessel TEXT NOT NULL,
     metadata TEXT NOT NULL
-) STRICT;
-CREATE TABLE runs (
+)""",
+    "runs": """runs (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, vessel TEXT NOT NULL, run TEXT NOT NULL,
     start_t REAL NOT NULL, end_t REAL, summary TEXT NOT NULL
-) STRICT;
-CREATE TABLE samples (
+)""",
+    "samples": """samples (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, vessel TEXT NOT NULL,
     channel TEXT NOT NULL, value REAL, quality TEXT NOT NULL, source TEXT NOT NULL
-) STRICT;
-CREATE TABLE quarantine (
+)""",
+    "sample_vessels": """sample_vessels (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, vessel TEXT NOT NULL
+)""",
+    "sample_series": """sample_series (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, channel TEXT NOT NULL, source TEXT NOT NULL
+)""",
+    "sample_packs": """sample_packs (
+    id INTEGER PRIMARY KEY, block INTEGER NOT NULL, vessel INTEGER NOT NULL,
+    t_last REAL NOT NULL, n INTEGER NOT NULL, data BLOB NOT NULL
+)""",
+    "quarantine": """quarantine (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, source TEXT NOT NULL,
     location TEXT NOT NULL, reason TEXT NOT NULL, raw BLOB NOT NULL
-) STRICT;
-CREATE TABLE estimates (
+)""",
+    "estimates": f"""estimates (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, vessel TEXT NOT NULL,
     phase TEXT NOT NULL,
     {_ESTIMATE_REALS},
     detail TEXT NOT NULL
-) STRICT;
-CREATE TABLE flags (
+)""",
+    "flags": """flags (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, vessel TEXT NOT NULL,
     name TEXT NOT NULL, level TEXT NOT NULL, message TEXT NOT NULL, evidence TEXT NOT NULL
-) STRICT;
-CREATE TABLE events (
+)""",
+    "events": """events (
     id INTEGER PRIMARY KEY, block INTEGER NOT NULL, t REAL NOT NULL, kind TEXT NOT NULL,
     source TEXT NOT NULL, detail TEXT NOT NULL
-) STRICT;
-"""
-#: Indices for readers (the board asks for one vessel's channel over a time window).
-#: They are not hashed and hold nothing of their own, so a writer adds any that an
-#: older log lacks.
-INDICES = """
-CREATE INDEX IF NOT EXISTS samples_by_vessel ON samples (vessel, channel, t);
-CREATE INDEX IF NOT EXISTS estimates_by_vessel ON estimates (vessel, t);
-"""
+)""",
+}
+
+
+@dataclass(frozen=True)
+class Layout:
+    """One schema version's tables: their columns, in the order they are stored and
+    hashed, the order the tables are hashed in, the label the hash starts with and the
+    indices for readers (not hashed; they hold nothing of their own, so a writer adds
+    any an older log of the version lacks)."""
+
+    version: int
+    hash_label: bytes
+    table_columns: Mapping[str, tuple[str, ...]]
+    indices: tuple[str, ...]
+
+    @property
+    def hashed_tables(self) -> tuple[str, ...]:
+        """Return the hashed tables in the order a block hashes them."""
+        return tuple(self.table_columns)
+
+    def create_statements(self) -> list[str]:
+        """Return the SQL that makes a new log of this version (tables, then indices)."""
+        tables = ["meta", "blocks", *self.table_columns]
+        return [f"CREATE TABLE {_TABLE_SQL[t]} STRICT" for t in tables] + list(self.indices)
+
+
+def _columns(*names: str) -> dict[str, tuple[str, ...]]:
+    return {n: _COMMON_COLUMNS[n] for n in names}
+
+
+_ESTIMATE_INDEX = "CREATE INDEX IF NOT EXISTS estimates_by_vessel ON estimates (vessel, t)"
+#: Schema version 1 (until 2026-12): one ``samples`` row per reading.
+LAYOUT_V1 = Layout(
+    version=1,
+    hash_label=b"ebullio-recorder block v1\n",
+    table_columns={
+        **_columns("sessions", "vessels", "runs"),
+        "samples": ("id", "block", "t", "vessel", "channel", "value", "quality", "source"),
+        **_columns("quarantine", "estimates", "flags", "events"),
+    },
+    indices=(
+        "CREATE INDEX IF NOT EXISTS samples_by_vessel ON samples (vessel, channel, t)",
+        _ESTIMATE_INDEX,
+    ),
+)
+#: Schema version 2: the readings as packs (:mod:`monitor.records.packs`), one per
+#: vessel and block, with the vessels' names and the (channel, source) series in two
+#: small tables the packs refer to by id.
+LAYOUT_V2 = Layout(
+    version=2,
+    hash_label=b"ebullio-recorder block v2\n",
+    table_columns={
+        **_columns("sessions", "vessels", "runs"),
+        "sample_vessels": ("id", "block", "vessel"),
+        "sample_series": ("id", "block", "channel", "source"),
+        "sample_packs": ("id", "block", "vessel", "t_last", "n", "data"),
+        **_columns("quarantine", "estimates", "flags", "events"),
+    },
+    indices=(
+        "CREATE INDEX IF NOT EXISTS sample_packs_by_vessel ON sample_packs (vessel, t_last)",
+        _ESTIMATE_INDEX,
+    ),
+)
+#: Every layout this ebullio reads, by schema version.
+LAYOUTS: dict[int, Layout] = {1: LAYOUT_V1, 2: LAYOUT_V2}
+#: The layout of new logs.
+LAYOUT = LAYOUTS[SCHEMA_VERSION]
+#: Label at the start of every block's hashed bytes in a new log (names the version).
+HASH_LABEL = LAYOUT.hash_label
+#: Columns of each hashed table of a new log, in the order they are stored and hashed
+#: (the tables other than the samples' are the same in every version).
+TABLE_COLUMNS: Mapping[str, tuple[str, ...]] = LAYOUT.table_columns
+#: The order in which a new log's block hashes its tables.
+HASHED_TABLES = LAYOUT.hashed_tables
 
 _PACK_Q = struct.Struct(">q").pack
 _PACK_D = struct.Struct(">d").pack
@@ -238,19 +337,21 @@ def block_hash(
     rows: int,
     prev_hash: str,
     tables: Mapping[str, Sequence[Row]],
+    layout: Layout = LAYOUT,
 ) -> str:
     """Return the SHA-256 (64 hex digits) of one block: header, previous hash, rows.
 
     ``tables`` maps table names to that table's rows in the block, in id order, each a
-    tuple of every column in :data:`TABLE_COLUMNS` order; missing tables have no rows.
-    Raises ValueError when ``prev_hash`` is not 64 hex digits.
+    tuple of every column in the ``layout``'s order (:data:`TABLE_COLUMNS` for a new
+    log); missing tables have no rows. Raises ValueError when ``prev_hash`` is not 64
+    hex digits.
     """
     if len(prev_hash) != 64:
         raise ValueError(f"previous hash {prev_hash!r} is not 64 hex digits")
-    digest = hashlib.sha256(HASH_LABEL)
+    digest = hashlib.sha256(layout.hash_label)
     digest.update(_PACK_Q(block) + _PACK_D(float(committed_t)) + _PACK_Q(rows))
     digest.update(bytes.fromhex(prev_hash))
-    for name in HASHED_TABLES:
+    for name in layout.hashed_tables:
         table_rows = tables.get(name, ())
         parts = [encode_value(name), _PACK_Q(len(table_rows))]
         _encode_rows(table_rows, parts)
@@ -402,6 +503,204 @@ def _check_existing(path: Path) -> None:
         raise LogFormatError(f"{path}: not an SQLite file, so not a recorder log; not touched")
 
 
+class _SampleNames:
+    """The names a schema-2 log's packs refer to by id: vessels and (channel, source) series.
+
+    Loaded from a connection and topped up (:meth:`refresh`) when a pack names an id
+    not yet seen: a writer may add names while a reader reads.
+    """
+
+    def __init__(self) -> None:
+        self.vessel_ids: dict[str, int] = {}
+        self.vessels: dict[int, str] = {}
+        self.series_ids: dict[tuple[str, str], int] = {}
+        self.series: dict[int, tuple[str, str]] = {}
+
+    def copy(self) -> _SampleNames:
+        """Return a copy that can grow without changing this one."""
+        other = _SampleNames()
+        other.vessel_ids, other.vessels = dict(self.vessel_ids), dict(self.vessels)
+        other.series_ids, other.series = dict(self.series_ids), dict(self.series)
+        return other
+
+    def refresh(self, conn: sqlite3.Connection) -> Self:
+        """Read the names added since the last refresh; return self."""
+        last_vessel = max(self.vessels, default=0)
+        for i, vessel in conn.execute(
+            "SELECT id, vessel FROM sample_vessels WHERE id > ? ORDER BY id", (last_vessel,)
+        ):
+            self.vessels[i] = vessel
+            self.vessel_ids.setdefault(vessel, i)
+        last_series = max(self.series, default=0)
+        for i, channel, source in conn.execute(
+            "SELECT id, channel, source FROM sample_series WHERE id > ? ORDER BY id",
+            (last_series,),
+        ):
+            self.series[i] = (channel, source)
+            self.series_ids.setdefault((channel, source), i)
+        return self
+
+    def vessel_id(self, conn: sqlite3.Connection, vessel: str) -> int | None:
+        """Return the id of ``vessel``, None when the log has no sample of it."""
+        if vessel not in self.vessel_ids:
+            self.refresh(conn)
+        return self.vessel_ids.get(vessel)
+
+    def channel_series(self, conn: sqlite3.Connection, channels: Collection[str]) -> set[int]:
+        """Return the ids of every series of ``channels`` (from any source)."""
+        self.refresh(conn)
+        return {i for i, (channel, _) in self.series.items() if channel in channels}
+
+    def name_of(
+        self, conn: sqlite3.Connection, where: str, vessel: int, series: list[int]
+    ) -> tuple[str, dict[int, tuple[str, str]]]:
+        """Return (the vessel's name, a series id -> (channel, source) map) for one pack;
+        raise ValueError naming an id the log does not hold."""
+        if vessel not in self.vessels or any(i not in self.series for i in set(series)):
+            self.refresh(conn)
+        name = self.vessels.get(vessel)
+        if name is None:
+            raise ValueError(f"{where}: vessel id {vessel} is not in sample_vessels")
+        missing = set(series) - set(self.series)
+        if missing:
+            raise ValueError(f"{where}: series id {min(missing)} is not in sample_series")
+        return name, self.series
+
+
+_QUALITY_OF_CODE = tuple(Quality(c) for c in QUALITY_CODES)
+_CODE_OF_QUALITY = {c: i for i, c in enumerate(QUALITY_CODES)}
+
+
+def _decoded(path: object, pack_id: int, n: int, data: bytes) -> Pack:
+    """Return a stored pack decoded; LogFormatError naming it when it is not a pack."""
+    try:
+        return decode_pack(bytes(data), n)
+    except (TypeError, ValueError) as exc:
+        raise LogFormatError(f"{path}: sample_packs id {pack_id}: {exc}") from None
+
+
+def _pack_samples(
+    path: object, conn: sqlite3.Connection, names: _SampleNames, row: tuple
+) -> list[tuple[int, Sample]]:
+    """Return one ``sample_packs`` row (id, vessel, n, data) as (position, Sample) pairs."""
+    pack_id, vessel_id, n, data = row
+    pack = _decoded(path, pack_id, n, data)
+    vessel, series = names.vessels.get(vessel_id), names.series
+    try:
+        columns = [(series[s], q) for s, q in zip(pack.series, pack.qualities, strict=True)]
+    except KeyError:
+        columns = None
+    if vessel is None or columns is None:  # names added since they were read, or none such
+        try:
+            vessel, series = names.name_of(
+                conn, f"sample_packs id {pack_id}", vessel_id, pack.series
+            )
+        except ValueError as exc:
+            raise LogFormatError(f"{path}: {exc}") from None
+        columns = [(series[s], q) for s, q in zip(pack.series, pack.qualities, strict=True)]
+    qualities = _QUALITY_OF_CODE
+    try:
+        return [
+            (p, Sample(t, vessel, channel, v, qualities[q], source))
+            for p, t, ((channel, source), q), v in zip(
+                pack.positions, pack.times, columns, pack.values, strict=True
+            )
+        ]
+    except ValueError as exc:
+        raise LogFormatError(f"{path}: sample_packs id {pack_id}: {exc}") from exc
+
+
+def _packed_samples(
+    path: object, conn: sqlite3.Connection, vessel: str | None
+) -> Iterator[tuple[int, Sample]]:
+    """Yield (block, sample) of a schema-2 log in recorded order, one vessel or all.
+
+    A block's packs are read together and their samples put back in the order they
+    arrived in (their positions), so the vessels interleave as they did.
+    """
+    names = _SampleNames().refresh(conn)
+    sql = "SELECT block, id, vessel, n, data FROM sample_packs"
+    params: tuple[object, ...] = ()
+    if vessel is not None:
+        vessel_id = names.vessel_id(conn, vessel)
+        if vessel_id is None:
+            return
+        sql += " WHERE vessel = ?"
+        params = (vessel_id,)
+    cursor = conn.execute(sql + " ORDER BY id", params)
+    pending: list[tuple[int, Sample]] = []
+    block = None
+    while True:
+        chunk = cursor.fetchmany(1024)
+        for row in chunk:
+            if row[0] != block:
+                if pending:
+                    yield from ((block, s) for _, s in _in_order(pending, vessel))
+                pending = []
+                block = row[0]
+            pending.extend(_pack_samples(path, conn, names, row[1:]))
+        if not chunk:
+            break
+    yield from ((block, s) for _, s in _in_order(pending, vessel))
+
+
+def _in_order(pairs: list[tuple[int, Sample]], vessel: str | None) -> list[tuple[int, Sample]]:
+    """Return one block's (position, sample) pairs in arrival order."""
+    if vessel is None:
+        pairs.sort(key=lambda pair: pair[0])
+    return pairs
+
+
+def _newest_packed_t(
+    conn: sqlite3.Connection,
+    names: _SampleNames,
+    vessel: str,
+    channels: Collection[str],
+    path: object,
+) -> float | None:
+    """Return the newest time (Unix s) of ``vessel``'s samples on ``channels`` in a
+    schema-2 log, None for none: the vessel's packs newest first, until no older pack
+    can hold a newer sample."""
+    vessel_id = names.vessel_id(conn, vessel)
+    wanted = names.channel_series(conn, channels)
+    if vessel_id is None or not wanted:
+        return None
+    best: float | None = None
+    for pack_id, t_last, n, data in conn.execute(
+        "SELECT id, t_last, n, data FROM sample_packs WHERE vessel = ? ORDER BY t_last DESC",
+        (vessel_id,),
+    ):
+        if best is not None and t_last <= best:
+            break
+        pack = _decoded(path, pack_id, n, data)
+        for t, s in zip(pack.times, pack.series, strict=True):
+            if s in wanted and (best is None or t > best):
+                best = t
+    return best
+
+
+def _last_packed_t(conn: sqlite3.Connection, path: object) -> float | None:
+    """Return the time (Unix s) of the sample a schema-2 log recorded last, None for none:
+    among the packs of the last block (the highest ids, since a commit writes its packs
+    together), the time of the one with the highest position."""
+    last: tuple[int, float] | None = None
+    block = None
+    for pack_id, pack_block, data in conn.execute(
+        "SELECT id, block, data FROM sample_packs ORDER BY id DESC"
+    ):
+        if block is None:
+            block = pack_block
+        elif pack_block != block:
+            break
+        try:
+            tail = pack_tail(bytes(data))
+        except (TypeError, ValueError) as exc:
+            raise LogFormatError(f"{path}: sample_packs id {pack_id}: {exc}") from None
+        if last is None or tail[0] > last[0]:
+            last = tail
+    return None if last is None else last[1]
+
+
 class Recorder(_ClosedOnExit):
     """Writes one log: rows pile up in memory and :meth:`commit` writes them as one block.
 
@@ -409,6 +708,10 @@ class Recorder(_ClosedOnExit):
     (start time, ``version``, ``config_text``) as a block of its own at once. Use it
     as a context manager: leaving it commits what is pending and closes the file.
     ``clock`` gives Unix time in s (session start and commit times; injected in tests).
+
+    A new log gets the layout of ``schema_version`` (:data:`SCHEMA_VERSION` unless a
+    test or a benchmark asks for an older one); an existing log keeps its own, so a
+    log of schema version 1 goes on growing in version 1 (docs/recorder.md).
 
     Raises :class:`LogFormatError` when the file exists but is not a recorder log, or
     has a newer schema; :class:`EbullioError` when SQLite cannot open or write it.
@@ -422,11 +725,17 @@ class Recorder(_ClosedOnExit):
         config_text: str | None = None,
         clock: Callable[[], float] = time.time,
         key: bytes | None = None,
+        schema_version: int = SCHEMA_VERSION,
     ) -> None:
         self.path = Path(path)
         self._clock = clock
         self._key = key  # signs the head file (HMAC-SHA-256) when given
-        self._pending: dict[str, list[Row]] = {name: [] for name in HASHED_TABLES}
+        if schema_version not in LAYOUTS:
+            raise ValueError(f"schema version {schema_version} is not one of {sorted(LAYOUTS)}")
+        #: the layout of the log (its own when it existed, else ``schema_version``'s)
+        self.layout = LAYOUTS[schema_version]
+        self._names = _SampleNames()  # schema 2: the names packs refer to, as committed
+        self._pending: dict[str, list[Row]] = {name: [] for name in (*_COMMON_COLUMNS, "samples")}
         self._count = 0
         self.last_block: int | None = None
         #: the chain head after the last commit (:func:`head_record`), None before one
@@ -463,7 +772,7 @@ class Recorder(_ClosedOnExit):
         try:
             # a foreign SQLite file is refused before anything (WAL mode included) touches it
             if conn.execute("SELECT count(*) FROM sqlite_schema").fetchone()[0]:
-                _check_meta(conn, str(self.path))
+                self.layout = LAYOUTS[_check_meta(conn, str(self.path))]
             mode = conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
             if mode != "wal":
                 raise EbullioError(f"{self.path}: SQLite would not use WAL mode (got {mode!r})")
@@ -472,22 +781,20 @@ class Recorder(_ClosedOnExit):
             try:
                 # looked at again under the write lock: another process may have made it
                 if conn.execute("SELECT count(*) FROM sqlite_schema").fetchone()[0]:
-                    _check_meta(conn, str(self.path))
+                    self.layout = LAYOUTS[_check_meta(conn, str(self.path))]
                 else:
-                    for statement in SCHEMA.split(";"):
-                        if statement.strip():
-                            conn.execute(statement)
+                    for statement in self.layout.create_statements():
+                        conn.execute(statement)
                     conn.executemany(
                         "INSERT INTO meta (key, value) VALUES (?, ?)",
                         [
                             ("format", LOG_FORMAT),
-                            ("schema_version", str(SCHEMA_VERSION)),
+                            ("schema_version", str(self.layout.version)),
                             ("created_t", repr(created_t)),
                         ],
                     )
-                for statement in INDICES.split(";"):
-                    if statement.strip():
-                        conn.execute(statement)
+                for statement in self.layout.indices:
+                    conn.execute(statement)
                 conn.execute("COMMIT")
             except BaseException:
                 conn.execute("ROLLBACK")
@@ -543,9 +850,7 @@ class Recorder(_ClosedOnExit):
             t, key = row[0], (row[1], row[2])
             last = latest.get(key)
             if last is None:
-                found = self._conn.execute(
-                    "SELECT max(t) FROM samples WHERE vessel = ? AND channel = ?", key
-                ).fetchone()[0]
+                found = self._newest_t(*key)  # type: ignore[arg-type]
                 last = -math.inf if found is None else found
             if t <= last and row[5] in once_from and self._holds(row, kept):  # type: ignore[operator]
                 self.repeats_skipped += 1
@@ -562,14 +867,37 @@ class Recorder(_ClosedOnExit):
         ):
             return True
         t, vessel, channel, value = head
-        return (
-            self._conn.execute(
-                "SELECT 1 FROM samples WHERE vessel = ? AND channel = ? AND t = ? AND value IS ? "
-                "LIMIT 1",
-                (vessel, channel, t, value),
-            ).fetchone()
-            is not None
-        )
+        if self.layout.version == 1:
+            return (
+                self._conn.execute(
+                    "SELECT 1 FROM samples WHERE vessel = ? AND channel = ? AND t = ? "
+                    "AND value IS ? LIMIT 1",
+                    (vessel, channel, t, value),
+                ).fetchone()
+                is not None
+            )
+        # schema 2: the vessel's packs that end at or after t (a repeat is a recent reading)
+        vessel_id = self._names.vessel_id(self._conn, vessel)  # type: ignore[arg-type]
+        wanted = self._names.channel_series(self._conn, (channel,))
+        if vessel_id is None or not wanted:
+            return False
+        for pack_id, n, data in self._conn.execute(
+            "SELECT id, n, data FROM sample_packs WHERE vessel = ? AND t_last >= ? ORDER BY t_last",
+            (vessel_id, t),
+        ):
+            pack = _decoded(self.path, pack_id, n, data)
+            for pt, ps, pv in zip(pack.times, pack.series, pack.values, strict=True):
+                if pt == t and ps in wanted and (pv == value or (pv != pv and value is None)):
+                    return True
+        return False
+
+    def _newest_t(self, vessel: str, channel: str) -> float | None:
+        """Return the newest committed time (Unix s) of a vessel's channel, None for none."""
+        if self.layout.version == 1:
+            return self._conn.execute(
+                "SELECT max(t) FROM samples WHERE vessel = ? AND channel = ?", (vessel, channel)
+            ).fetchone()[0]
+        return _newest_packed_t(self._conn, self._names, vessel, (channel,), self.path)
 
     def add_quarantined(self, items: Iterable[Quarantined]) -> int:
         """Return how many quarantined inputs were added (raw kept byte for byte)."""
@@ -678,24 +1006,29 @@ class Recorder(_ClosedOnExit):
                     "SELECT block, hash FROM blocks ORDER BY block DESC LIMIT 1"
                 ).fetchone()
                 block, prev_hash = (1, GENESIS_HASH) if last is None else (last[0] + 1, last[1])
+                stored: Mapping[str, list[Row]] = self._pending
+                names = None
+                if self.layout.version >= 2:
+                    stored, names = self._packed(conn)
                 written: dict[str, list[Row]] = {}
-                for name in HASHED_TABLES:
-                    rows = self._pending[name]
+                for name in self.layout.hashed_tables:
+                    rows = stored.get(name)
                     if not rows:
                         continue
                     base = conn.execute(f"SELECT coalesce(max(id), 0) FROM {name}").fetchone()[0]
                     full = [(base + i, block, *row) for i, row in enumerate(rows, start=1)]
-                    columns = TABLE_COLUMNS[name]
+                    columns = self.layout.table_columns[name]
                     marks = ", ".join("?" * len(columns))
                     conn.executemany(
                         f"INSERT INTO {name} ({', '.join(columns)}) VALUES ({marks})", full
                     )
                     written[name] = full
-                digest = block_hash(block, committed_t, self._count, prev_hash, written)
+                count = sum(len(rows) for rows in written.values())
+                digest = block_hash(block, committed_t, count, prev_hash, written, self.layout)
                 conn.execute(
                     "INSERT INTO blocks (block, committed_t, rows, prev_hash, hash) "
                     "VALUES (?, ?, ?, ?, ?)",
-                    (block, committed_t, self._count, prev_hash, digest),
+                    (block, committed_t, count, prev_hash, digest),
                 )
                 conn.execute("COMMIT")
             except BaseException:
@@ -709,9 +1042,55 @@ class Recorder(_ClosedOnExit):
         for rows in self._pending.values():
             rows.clear()
         self._count = 0
+        if names is not None:
+            self._names = names
         self.last_block = block
         self._write_head(block, digest, committed_t)
         return block
+
+    def _packed(self, conn: sqlite3.Connection) -> tuple[dict[str, list[Row]], _SampleNames]:
+        """Return the pending rows with the samples as schema 2 stores them, and the names
+        the log will hold once they are committed.
+
+        Inside the commit's transaction: the names other writers committed are read
+        first, so ids stay unique. A block's samples go in one pack per vessel (more
+        when a vessel has over :data:`~monitor.records.packs.PACK_SAMPLES`), in order of
+        each vessel's first sample, each sample with its position among the block's.
+        """
+        names = self._names.copy().refresh(conn)
+        new_vessels: list[Row] = []
+        new_series: list[Row] = []
+        groups: dict[int, tuple[list, list, list, list, list]] = {}
+        vessel_ids, series_ids, codes = names.vessel_ids, names.series_ids, _CODE_OF_QUALITY
+        for position, (t, vessel, channel, value, quality, source) in enumerate(
+            self._pending["samples"]
+        ):
+            vessel_id = vessel_ids.get(vessel)  # type: ignore[arg-type]
+            if vessel_id is None:
+                vessel_id = vessel_ids[vessel] = max(names.vessels, default=0) + 1  # type: ignore[index]
+                names.vessels[vessel_id] = vessel  # type: ignore[assignment]
+                new_vessels.append((vessel,))
+            series_id = series_ids.get((channel, source))  # type: ignore[arg-type]
+            if series_id is None:
+                series_id = series_ids[(channel, source)] = max(names.series, default=0) + 1  # type: ignore[index]
+                names.series[series_id] = (channel, source)  # type: ignore[assignment]
+                new_series.append((channel, source))
+            group = groups.get(vessel_id)
+            if group is None:
+                group = groups[vessel_id] = ([], [], [], [], [])
+            group[0].append(position)
+            group[1].append(t)
+            group[2].append(series_id)
+            group[3].append(codes[quality])  # type: ignore[index]
+            group[4].append(math.nan if value is None else value)
+        packs: list[Row] = []
+        for vessel_id, columns in groups.items():
+            for start in range(0, len(columns[0]), PACK_SAMPLES):
+                part = [c[start : start + PACK_SAMPLES] for c in columns]
+                packs.append((vessel_id, max(part[1]), len(part[0]), encode_pack(*part)))
+        stored = {name: rows for name, rows in self._pending.items() if name != "samples"}
+        stored.update(sample_vessels=new_vessels, sample_series=new_series, sample_packs=packs)
+        return stored, names
 
     def _write_head(self, block: int, digest: str, committed_t: float) -> None:
         """Keep the chain's head beside the log (:func:`head_path`), replaced atomically.
@@ -751,7 +1130,9 @@ def _ro_uri(path: Path) -> str:
     return "file:" + urllib.parse.quote(str(path.resolve())) + "?mode=ro"
 
 
-def _check_meta(conn: sqlite3.Connection, name: str) -> None:
+def _check_meta(conn: sqlite3.Connection, name: str) -> int:
+    """Return the log's schema version; raise LogFormatError when it is not a log this
+    ebullio reads."""
     try:
         meta = dict(conn.execute("SELECT key, value FROM meta").fetchall())
     except sqlite3.OperationalError as exc:
@@ -771,10 +1152,14 @@ def _check_meta(conn: sqlite3.Connection, name: str) -> None:
         raise LogFormatError(
             f"{name}: schema version {version} is newer than this ebullio's {SCHEMA_VERSION}"
         )
+    if version not in LAYOUTS:
+        raise LogFormatError(f"{name}: schema version {version} is not one this ebullio reads")
+    return version
 
 
-def _open_reader(path: str | os.PathLike[str]) -> sqlite3.Connection:
-    """Return a read-only connection to a recorder log; raise LogFormatError otherwise."""
+def _open_log(path: str | os.PathLike[str]) -> tuple[sqlite3.Connection, Layout]:
+    """Return a read-only connection to a recorder log and the log's layout; raise
+    LogFormatError otherwise."""
     path = Path(path)
     try:
         with open(path, "rb") as handle:
@@ -788,13 +1173,25 @@ def _open_reader(path: str | os.PathLike[str]) -> sqlite3.Connection:
     except sqlite3.Error as exc:
         raise LogFormatError(f"{path}: SQLite cannot open it ({exc})") from exc
     try:
-        _check_meta(conn, str(path))
+        version = _check_meta(conn, str(path))
     except (LogFormatError, sqlite3.Error) as exc:
         conn.close()
         if isinstance(exc, LogFormatError):
             raise
         raise LogFormatError(f"{path}: SQLite cannot read it ({exc})") from exc
-    return conn
+    return conn, LAYOUTS[version]
+
+
+def _open_reader(path: str | os.PathLike[str]) -> sqlite3.Connection:
+    """Return a read-only connection to a recorder log; raise LogFormatError otherwise."""
+    return _open_log(path)[0]
+
+
+def schema_version(path: str | os.PathLike[str]) -> int:
+    """Return a recorder log's schema version; raise LogFormatError when it is not one."""
+    conn, layout = _open_log(path)
+    conn.close()
+    return layout.version
 
 
 def is_recorder_log(path: str | os.PathLike[str]) -> bool:
@@ -822,31 +1219,59 @@ def _rows(path: str | os.PathLike[str], sql: str, params: Sequence[object] = ())
         conn.close()
 
 
-def _samples_from(path: str | os.PathLike[str], rows: Iterator[tuple]) -> Iterator[Sample]:
+def _samples_from(
+    path: str | os.PathLike[str], rows: Iterator[tuple]
+) -> Iterator[tuple[int, Sample]]:
+    """Yield (block, sample) from schema-1 ``samples`` rows (block, id, and the sample)."""
     qualities, nan = _QUALITIES, math.nan
-    for row_id, t, vessel, channel, value, quality, source in rows:
+    for block, row_id, t, vessel, channel, value, quality, source in rows:
         q = qualities.get(quality)
         if q is None:
             raise LogFormatError(f"{path}: samples id {row_id}: unknown quality {quality!r}")
         try:
-            yield Sample(t, vessel, channel, nan if value is None else value, q, source)
+            yield block, Sample(t, vessel, channel, nan if value is None else value, q, source)
         except ValueError as exc:
             raise LogFormatError(f"{path}: samples id {row_id}: {exc}") from exc
 
 
-def read_samples(path: str | os.PathLike[str], vessel: str | None = None) -> Iterator[Sample]:
-    """Return an iterator of the log's samples in recorded (id) order, one vessel or all.
+def _samples_by_block(
+    path: str | os.PathLike[str], vessel: str | None
+) -> Iterator[tuple[int, Sample]]:
+    """Return an iterator of (block, sample) in recorded order, one vessel or all, whatever
+    the log's layout: the one place that turns stored readings into samples.
 
-    A NULL value reads back as NaN. Raises LogFormatError at once when the file is
-    not a recorder log, and while iterating when a row cannot be a Sample.
+    Raises LogFormatError at once when the file is not a recorder log, and while
+    iterating when a stored reading cannot be a Sample.
     """
-    sql = "SELECT id, t, vessel, channel, value, quality, source FROM samples"
-    params: tuple[object, ...] = ()
-    if vessel is not None:
-        sql += " WHERE vessel = ?"
-        params = (vessel,)
-    _open_reader(path).close()  # refuse a wrong file now, not at the first next()
-    return _samples_from(path, _rows(path, sql + " ORDER BY id", params))
+    conn, layout = _open_log(path)
+    if layout.version == 1:
+        conn.close()
+        sql = "SELECT block, id, t, vessel, channel, value, quality, source FROM samples"
+        params: tuple[object, ...] = ()
+        if vessel is not None:
+            sql += " WHERE vessel = ?"
+            params = (vessel,)
+        return _samples_from(path, _rows(path, sql + " ORDER BY id", params))
+
+    def packed() -> Iterator[tuple[int, Sample]]:
+        try:
+            yield from _packed_samples(path, conn, vessel)
+        except sqlite3.Error as exc:
+            raise LogFormatError(f"{path}: SQLite cannot read it ({exc})") from exc
+        finally:
+            conn.close()
+
+    return packed()
+
+
+def read_samples(path: str | os.PathLike[str], vessel: str | None = None) -> Iterator[Sample]:
+    """Return an iterator of the log's samples in recorded order, one vessel or all.
+
+    A fault's value (NULL in schema 1, NaN in a pack) reads back as NaN. Raises
+    LogFormatError at once when the file is not a recorder log, and while iterating
+    when a stored reading cannot be a Sample.
+    """
+    return (sample for _, sample in _samples_by_block(path, vessel))
 
 
 def last_sample_t(path: str | os.PathLike[str]) -> float | None:
@@ -854,9 +1279,8 @@ def last_sample_t(path: str | os.PathLike[str]) -> float | None:
     does not exist yet, is not a recorder log, or holds no sample."""
     if not os.path.exists(path) or not is_recorder_log(path):
         return None
-    for (t,) in _rows(path, "SELECT t FROM samples ORDER BY id DESC LIMIT 1"):
-        return float(t)
-    return None
+    with LogReader(path) as log:
+        return log.last_sample_t()
 
 
 def read_samples_by_session(
@@ -872,21 +1296,8 @@ def read_samples_by_session(
     """
     sql = "SELECT block FROM sessions WHERE config_text IS NOT NULL ORDER BY block"
     starts = [b for (b,) in _rows(path, sql)]
-    sql = "SELECT block, id, t, vessel, channel, value, quality, source FROM samples"
-    params: tuple[object, ...] = ()
-    if vessel is not None:
-        sql += " WHERE vessel = ?"
-        params = (vessel,)
-    rows = _rows(path, sql + " ORDER BY id", params)
-    blocks: list[int] = []
-
-    def without_block() -> Iterator[tuple]:
-        for row in rows:
-            blocks.append(row[0])
-            yield row[1:]
-
-    for sample in _samples_from(path, without_block()):
-        yield bisect.bisect_right(starts, blocks.pop()), sample
+    for block, sample in _samples_by_block(path, vessel):
+        yield bisect.bisect_right(starts, block), sample
 
 
 def _load_json(path: object, table: str, row_id: int, text: str) -> object:
@@ -993,10 +1404,11 @@ class LogReader(_ClosedOnExit):
 
     The board asks these every few seconds while ``ebullio run`` writes the log (WAL:
     a reader neither waits for the writer nor holds it up). Each question is answered
-    from an index, so its cost grows with the answer, not with the log: the samples'
-    ``(vessel, channel, t)`` index and the estimates' ``(vessel, t)`` index
-    (:data:`INDICES`), and the ids. Use it as a context manager, one per callback; it
-    is never shared between threads.
+    from an index, so its cost grows with the answer, not with the log: in schema 2
+    the packs' ``(vessel, t_last)`` index (a window's packs are read and unpacked once
+    for all its channels), in schema 1 the samples' ``(vessel, channel, t)`` index, the
+    estimates' ``(vessel, t)`` index (:attr:`Layout.indices`), and the ids. Use it as
+    a context manager, one per callback; it is never shared between threads.
 
     Raises :class:`LogFormatError` when the file is not a recorder log, and from any
     question SQLite cannot answer.
@@ -1004,7 +1416,10 @@ class LogReader(_ClosedOnExit):
 
     def __init__(self, path: str | os.PathLike[str]) -> None:
         self.path = Path(path)
-        self._conn = _open_reader(self.path)
+        self._conn, self.layout = _open_log(self.path)
+        self._names = _SampleNames()
+        # schema 2: the last window read, (vessel, since, op) -> [(t, series, value)]
+        self._window: tuple[tuple[str, float, str], list[tuple[float, int, float]]] | None = None
 
     def close(self) -> None:
         """Close the connection (closing twice does nothing)."""
@@ -1016,6 +1431,13 @@ class LogReader(_ClosedOnExit):
         except sqlite3.Error as exc:
             raise LogFormatError(f"{self.path}: SQLite cannot read it ({exc})") from exc
 
+    def _packed(self, ask: Callable[[], object]) -> object:
+        """Return ``ask()``, a schema-2 question, with SQLite's errors as LogFormatError."""
+        try:
+            return ask()
+        except sqlite3.Error as exc:
+            raise LogFormatError(f"{self.path}: SQLite cannot read it ({exc})") from exc
+
     def vessels(self) -> list[str]:
         """Return the vessels, sorted: those with metadata rows, else those with samples.
 
@@ -1023,21 +1445,32 @@ class LogReader(_ClosedOnExit):
         scanned for the samples' vessels instead.
         """
         names = [v for (v,) in self._all("SELECT DISTINCT vessel FROM vessels ORDER BY vessel")]
+        table = "samples" if self.layout.version == 1 else "sample_vessels"
         return names or [
-            v for (v,) in self._all("SELECT DISTINCT vessel FROM samples ORDER BY vessel")
+            v for (v,) in self._all(f"SELECT DISTINCT vessel FROM {table} ORDER BY vessel")
         ]
 
     def last_sample_t(self) -> float | None:
-        """Return the time (Unix s) of the sample recorded last (highest id), None for none."""
+        """Return the time (Unix s) of the sample recorded last, None for none."""
+        if self.layout.version >= 2:
+            return self._packed(lambda: _last_packed_t(self._conn, self.path))  # type: ignore[return-value]
         rows = self._all("SELECT t FROM samples ORDER BY id DESC LIMIT 1")
         return rows[0][0] if rows else None
 
     def newest_sample_t(self, vessel: str, channels: Iterable[str]) -> float | None:
         """Return the newest sample time (Unix s) of ``vessel`` over ``channels``, None for none.
 
-        One ``max(t)`` per channel, each a single probe of the samples' index; ``max(t)``
-        over the vessel as a whole would read all its index entries (245 ms on a week).
+        Schema 1: one ``max(t)`` per channel, each a single probe of the samples' index;
+        ``max(t)`` over the vessel as a whole would read all its index entries (245 ms
+        on a week). Schema 2: the vessel's packs from the newest, until none older can
+        hold a newer sample (the first one, as a rule; every pack of the vessel when it
+        has none of ``channels``).
         """
+        channels = tuple(channels)
+        if self.layout.version >= 2:
+            return self._packed(  # type: ignore[return-value]
+                lambda: _newest_packed_t(self._conn, self._names, vessel, channels, self.path)
+            )
         sql = "SELECT max(t) FROM samples WHERE vessel = ? AND channel = ?"
         ends = [self._all(sql, (vessel, channel))[0][0] for channel in channels]
         return max((e for e in ends if e is not None), default=None)
@@ -1048,14 +1481,48 @@ class LogReader(_ClosedOnExit):
         """Return the times (Unix s) and values of one channel from ``since`` on, in time order.
 
         With ``newer_only`` only samples after ``since``. A fault's value is None.
+        Samples of one time keep their recorded order.
         """
         op = ">" if newer_only else ">="
+        if self.layout.version >= 2:
+            wanted = self._packed(lambda: self._names.channel_series(self._conn, (channel,)))
+            rows = [(t, v) for t, s, v in self._window_of(vessel, since, op) if s in wanted]  # type: ignore[operator]
+            rows.sort(key=lambda r: r[0])
+            return [t for t, _ in rows], [None if v != v else v for _, v in rows]
         rows = self._all(
             f"SELECT t, value FROM samples WHERE vessel = ? AND channel = ? AND t {op} ? "
             "ORDER BY t",
             (vessel, channel, since),
         )
         return [r[0] for r in rows], [r[1] for r in rows]
+
+    def _window_of(self, vessel: str, since: float, op: str) -> list[tuple[float, int, float]]:
+        """Return (t, series, value) of a vessel's samples from ``since`` on (``op`` ``>=``
+        or ``>``), in recorded order: its packs that end there or later, unpacked once
+        for every channel asked after."""
+        key = (vessel, since, op)
+        if self._window is not None and self._window[0] == key:
+            return self._window[1]
+
+        def read() -> list[tuple[float, int, float]]:
+            vessel_id = self._names.vessel_id(self._conn, vessel)
+            if vessel_id is None:
+                return []
+            out = []
+            later = (lambda t: t > since) if op == ">" else (lambda t: t >= since)
+            for pack_id, n, data in self._conn.execute(
+                f"SELECT id, n, data FROM sample_packs WHERE vessel = ? AND t_last {op} ? "
+                "ORDER BY id",
+                (vessel_id, since),
+            ):
+                pack = _decoded(self.path, pack_id, n, data)
+                rows = zip(pack.times, pack.series, pack.values, strict=True)
+                out += rows if later(min(pack.times)) else [r for r in rows if later(r[0])]
+            return out
+
+        rows = self._packed(read)
+        self._window = (key, rows)  # type: ignore[assignment]
+        return rows  # type: ignore[return-value]
 
     def estimates(
         self,
@@ -1150,9 +1617,9 @@ class LogReader(_ClosedOnExit):
 class _Stream:
     """One table's rows in id order, with the next row held back (``head``)."""
 
-    def __init__(self, conn: sqlite3.Connection, table: str) -> None:
+    def __init__(self, conn: sqlite3.Connection, table: str, layout: Layout) -> None:
         self.table = table
-        columns = ", ".join(TABLE_COLUMNS[table])
+        columns = ", ".join(layout.table_columns[table])
         self._rows = iter(conn.execute(f"SELECT {columns} FROM {table} ORDER BY id"))
         self.head: Row | None = next(self._rows, None)
 
@@ -1165,17 +1632,19 @@ class _Stream:
 _MAX_PROBLEMS = 20
 
 
-def _count(conn: sqlite3.Connection, table: str) -> int | None:
+def _count(conn: sqlite3.Connection, table: str, what: str = "count(*)") -> int | None:
     try:
-        return conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0]
+        return conn.execute(f"SELECT {what} FROM {table}").fetchone()[0]
     except sqlite3.Error:
         return None
 
 
-def _verify_chain(conn: sqlite3.Connection) -> tuple[list[tuple[int, str]], str | None]:
+def _verify_chain(
+    conn: sqlite3.Connection, layout: Layout
+) -> tuple[list[tuple[int, str]], str | None]:
     """Return (problems as (block, sentence), the last block's hash)."""
     problems: list[tuple[int, str]] = []
-    streams = [_Stream(conn, name) for name in HASHED_TABLES]
+    streams = [_Stream(conn, name, layout) for name in layout.hashed_tables]
     blocks = conn.execute(
         "SELECT block, committed_t, rows, prev_hash, hash FROM blocks ORDER BY block"
     )
@@ -1204,7 +1673,7 @@ def _verify_chain(conn: sqlite3.Connection) -> tuple[list[tuple[int, str]], str 
         if total != rows:
             problems.append((block, f"block {block} has {total} rows where it recorded {rows}"))
         try:
-            digest = block_hash(block, committed_t, rows, prev_hash, tables)
+            digest = block_hash(block, committed_t, rows, prev_hash, tables, layout)
         except (ValueError, TypeError, struct.error) as exc:
             problems.append((block, f"block {block} cannot be hashed ({exc})"))
         else:
@@ -1296,7 +1765,7 @@ def verify(
         "head_hash": None, "head_checked": None,
     }  # fmt: skip
     try:
-        conn = _open_reader(path)
+        conn, layout = _open_log(path)
     except LogFormatError as exc:
         result["reason"] = str(exc)
         result["problems"] = [str(exc)]
@@ -1326,10 +1795,13 @@ def verify(
         return result
     try:
         conn.text_factory = bytes  # hash text as its stored bytes; bad UTF-8 cannot raise
-        result["samples"] = _count(conn, "samples")
+        if layout.version == 1:
+            result["samples"] = _count(conn, "samples")
+        else:
+            result["samples"] = _count(conn, "sample_packs", "coalesce(sum(n), 0)")
         result["quarantined"] = _count(conn, "quarantine")
         result["blocks"] = _count(conn, "blocks")
-        problems, head_hash = _verify_chain(conn)
+        problems, head_hash = _verify_chain(conn, layout)
         if head is not None:
             result["head_checked"] = "given" if where == "the given head" else head_path(path).name
             cut = _check_head(conn, head, key, where)

@@ -23,6 +23,7 @@ from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.rig.config import RigConfig, VesselSpec
 from monitor.rig.service import Service
 from tests.monitor.test_service import ListDriver, run_until
+from tests.support.tamper import change_one_reading
 
 
 def test_envelope_keeps_the_extremes_of_every_bucket() -> None:
@@ -548,17 +549,13 @@ def test_jobs_once_closed_take_no_more_work_and_do_not_hold_the_process() -> Non
 
 def test_the_board_warns_of_a_log_that_failed_its_integrity_check(live_log, tmp_path) -> None:
     """Issue 14: the board showed an altered log as if nothing were wrong."""
-    import sqlite3
     import time
 
     from dashboard.app import IntegrityWatch
 
     altered = tmp_path / "altered.sqlite"
     shutil.copy(live_log, altered)
-    conn = sqlite3.connect(altered)
-    conn.execute("UPDATE samples SET value = value + 5 WHERE id = 50")
-    conn.commit()
-    conn.close()
+    change_one_reading(altered, which=50)
     watch = IntegrityWatch([str(live_log), str(altered)])
     deadline = time.monotonic() + 30.0
     while not watch.warnings() and time.monotonic() < deadline:

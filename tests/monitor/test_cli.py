@@ -13,6 +13,7 @@ import pytest
 
 from monitor.cli import main
 from monitor.records.interchange import read_csv
+from tests.support.tamper import change_one_reading
 
 
 def test_simulate_writes_a_log_that_reads_back(tmp_path, capsys):
@@ -184,7 +185,6 @@ def test_verify_says_intact_altered_damaged_or_not_a_log(tmp_path, capsys) -> No
 
 def test_replay_fleet_report_and_export_say_when_a_log_was_altered(tmp_path, capsys) -> None:
     """Issue 14: these exited 0 on a tampered log and said nothing."""
-    import sqlite3
     from dataclasses import replace
 
     from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
@@ -206,10 +206,7 @@ def test_replay_fleet_report_and_export_say_when_a_log_was_altered(tmp_path, cap
     for argv in checks.values():  # intact: quiet, exit 0
         assert main(argv) == 0
     capsys.readouterr()
-    conn = sqlite3.connect(path)
-    conn.execute("UPDATE samples SET value = value + 5 WHERE id = 100")
-    conn.commit()
-    conn.close()
+    change_one_reading(path, which=100)
     for verb, argv in checks.items():
         assert main(argv) == 1, verb
         captured = capsys.readouterr()

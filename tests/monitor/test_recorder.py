@@ -29,7 +29,8 @@ from monitor.records.recorder import (
     GENESIS_HASH,
     HASH_LABEL,
     HASHED_TABLES,
-    TABLE_COLUMNS,
+    LAYOUTS,
+    SCHEMA_VERSION,
     LogReader,
     Recorder,
     block_hash,
@@ -41,6 +42,7 @@ from monitor.records.recorder import (
     read_runs,
     read_samples,
     read_vessels,
+    schema_version,
     sessions,
     verify,
 )
@@ -83,11 +85,10 @@ def sample_estimate() -> Estimate:
     )  # fmt: skip
 
 
-@pytest.fixture
-def log(tmp_path: Path) -> Path:
+def three_blocks(path: Path, schema_version: int = SCHEMA_VERSION) -> Path:
     """A log of three blocks: the session (1), samples 0-9 (2), samples 10-19 and more (3)."""
-    path = tmp_path / "log.sqlite"
-    with Recorder(path, version="0.1.0", config_text="[vessel]\n", clock=fake_clock()) as rec:
+    with Recorder(path, version="0.1.0", config_text="[vessel]\n", clock=fake_clock(),
+                  schema_version=schema_version) as rec:  # fmt: skip
         rec.add_vessel("kettle-1", {"vessel_heat_capacity_j_per_k": 450.0, "target_c": 100.0})
         rec.add_samples(kettle_samples(10))
         assert rec.commit() == 2
@@ -101,6 +102,18 @@ def log(tmp_path: Path) -> Path:
         rec.add_run("kettle-1", "1", T0, T0 + 19, {"heat_up_s": 12.5})
         assert rec.commit() == 3
     return path
+
+
+@pytest.fixture
+def log(tmp_path: Path) -> Path:
+    """:func:`three_blocks` in the layout of new logs."""
+    return three_blocks(tmp_path / "log.sqlite")
+
+
+@pytest.fixture
+def log_v1(tmp_path: Path) -> Path:
+    """:func:`three_blocks` in schema version 1 (one ``samples`` row per reading)."""
+    return three_blocks(tmp_path / "log.sqlite", schema_version=1)
 
 
 # ---------------------------------------------------------------------------------------
@@ -153,13 +166,13 @@ def test_every_table_round_trips(log: Path):
 def test_the_estimates_table_keeps_the_layout_of_schema_version_1():
     # the columns every log of schema version 1 has (monitor/records/recorder.py as of d67569f):
     # the one mapping must not move them, or older logs would no longer read or verify
-    assert TABLE_COLUMNS["estimates"] == (
+    assert LAYOUTS[1].table_columns["estimates"] == LAYOUTS[2].table_columns["estimates"] == (
         "id", "block", "t", "vessel", "phase", "water_c", "water_mass_kg", "water_mass_std",
         "heat_capacity_j_per_k", "heat_capacity_std", "ua_w_per_k", "ua_std",
         "element_conductance_w_per_k", "element_conductance_std", "target_c",
         "time_to_target_s", "time_to_target_lo_s", "time_to_target_hi_s", "nis", "detail",
     )  # fmt: skip
-    assert TABLE_COLUMNS["estimates"][5:-1] == ESTIMATE_COLUMNS
+    assert LAYOUTS[1].table_columns["estimates"][5:-1] == ESTIMATE_COLUMNS
 
 
 def test_nan_fault_infinite_and_negative_zero_samples_survive(tmp_path: Path):
@@ -312,7 +325,7 @@ def test_a_failed_commit_writes_nothing_and_keeps_the_rows_pending(tmp_path: Pat
                       "BEGIN SELECT RAISE(ABORT, 'refused by the test'); END")  # fmt: skip
         with pytest.raises(EbullioError, match="refused by the test"):
             rec.commit()
-        assert other.execute("SELECT count(*) FROM samples").fetchone() == (0,)
+        assert other.execute("SELECT count(*) FROM sample_packs").fetchone() == (0,)
         assert other.execute("SELECT count(*) FROM quarantine").fetchone() == (0,)
         assert other.execute("SELECT count(*) FROM blocks").fetchone() == (1,)
         assert rec.pending() == 51
@@ -372,7 +385,8 @@ def test_a_reopened_log_appends_blocks_that_chain_to_the_old_ones(tmp_path: Path
     assert [b for b, _, _ in chain] == [1, 2, 3, 4]
     assert chain[0][1] == GENESIS_HASH
     assert all(chain[i][1] == chain[i - 1][2] for i in range(1, 4))
-    assert [r[0] for r in connect(path).execute("SELECT id FROM samples")] == list(range(1, 11))
+    packs = connect(path).execute("SELECT id, block, n FROM sample_packs ORDER BY id").fetchall()
+    assert packs == [(1, 2, 5), (2, 4, 5)]  # one pack per vessel and block
     result = verify(path)
     assert result["ok"]
     assert result["head_hash"] == chain[-1][2]
@@ -439,14 +453,8 @@ def test_verify_passes_a_good_log(log: Path):
     assert len(result["head_hash"]) == 64
 
 
-@pytest.mark.parametrize(
-    ("statement", "block"),
-    [
-        ("UPDATE samples SET value = value + 1e-9 WHERE id = 15", 3),
-        ("UPDATE samples SET t = t + 1 WHERE id = 3", 2),
-        ("UPDATE samples SET quality = 'suspect' WHERE id = 1", 2),
-        ("UPDATE samples SET source = 'other' WHERE id = 20", 3),
-        ("UPDATE samples SET value = NULL WHERE id = 4", 2),
+#: Edits of the tables every schema version has, and the first block each alters.
+COMMON_EDITS = [
         ("UPDATE quarantine SET raw = X'00' WHERE id = 1", 3),
         ("UPDATE estimates SET nis = 0.5 WHERE id = 1", 3),
         ("UPDATE flags SET message = 'All is well.' WHERE id = 1", 3),
@@ -456,17 +464,26 @@ def test_verify_passes_a_good_log(log: Path):
         ("UPDATE sessions SET version = '9.9' WHERE id = 1", 1),
         ("UPDATE blocks SET committed_t = committed_t + 1 WHERE block = 2", 2),
         ("UPDATE blocks SET rows = 3 WHERE block = 3", 3),
-        ("DELETE FROM samples WHERE id = 12", 3),
         ("DELETE FROM quarantine", 3),
-        ("INSERT INTO samples VALUES (21, 3, 1, 'k', 'water', 1.0, 'ok', '')", 3),
-        ("UPDATE samples SET block = 3 WHERE id = 10", 2),
         ("UPDATE blocks SET prev_hash = hash WHERE block = 2", 2),
         ("DELETE FROM blocks WHERE block = 2", 2),
         ("DELETE FROM blocks WHERE block = 3", 3),
         ("UPDATE blocks SET block = block + 10 WHERE block = 2", 2),
-    ],
-)
-def test_verify_names_the_first_altered_block(log: Path, statement: str, block: int):
+]  # fmt: skip
+#: Edits of schema 1's ``samples`` (schema 2's packs: tests/monitor/test_compact_store.py).
+SAMPLE_EDITS_V1 = [
+        ("UPDATE samples SET value = value + 1e-9 WHERE id = 15", 3),
+        ("UPDATE samples SET t = t + 1 WHERE id = 3", 2),
+        ("UPDATE samples SET quality = 'suspect' WHERE id = 1", 2),
+        ("UPDATE samples SET source = 'other' WHERE id = 20", 3),
+        ("UPDATE samples SET value = NULL WHERE id = 4", 2),
+        ("DELETE FROM samples WHERE id = 12", 3),
+        ("INSERT INTO samples VALUES (21, 3, 1, 'k', 'water', 1.0, 'ok', '')", 3),
+        ("UPDATE samples SET block = 3 WHERE id = 10", 2),
+]  # fmt: skip
+
+
+def assert_edit_caught(log: Path, statement: str, block: int) -> None:
     assert verify(log)["ok"]
     sql(log, statement)
     result = verify(log)
@@ -475,8 +492,22 @@ def test_verify_names_the_first_altered_block(log: Path, statement: str, block: 
     assert str(block) in result["reason"]
 
 
-def test_a_row_added_later_to_an_old_block_is_caught(log: Path):
+@pytest.mark.parametrize(("statement", "block"), COMMON_EDITS)
+def test_verify_names_the_first_altered_block(log: Path, statement: str, block: int):
+    assert_edit_caught(log, statement, block)
+
+
+@pytest.mark.parametrize(("statement", "block"), COMMON_EDITS + SAMPLE_EDITS_V1)
+def test_verify_names_the_first_altered_block_of_a_schema_1_log(
+    log_v1: Path, statement: str, block: int
+):
+    assert schema_version(log_v1) == 1
+    assert_edit_caught(log_v1, statement, block)
+
+
+def test_a_row_added_later_to_an_old_block_is_caught(log_v1: Path):
     # id after every row of block 3, but claiming block 2: out of id order
+    log = log_v1
     sql(log, "INSERT INTO samples VALUES (21, 2, 1, 'k', 'water', 1.0, 'ok', '')")
     result = verify(log)
     assert (result["ok"], result["first_bad_block"]) == (False, 2)
@@ -502,16 +533,22 @@ def test_swapped_blocks_are_caught(log: Path):
     assert (result["ok"], result["first_bad_block"]) == (False, 2)
 
 
-def test_a_rewritten_block_with_a_fresh_hash_breaks_the_next_link(log: Path):
+@pytest.mark.parametrize("version", [1, 2])
+def test_a_rewritten_block_with_a_fresh_hash_breaks_the_next_link(tmp_path: Path, version: int):
+    log = three_blocks(tmp_path / "log.sqlite", schema_version=version)
+    layout = LAYOUTS[version]
     db = connect(log)
-    db.execute("UPDATE samples SET value = 99.0 WHERE id = 5")
+    if version == 1:
+        db.execute("UPDATE samples SET value = 99.0 WHERE id = 5")
+    else:
+        db.execute("UPDATE sample_packs SET t_last = 0.5 WHERE block = 2")
     committed_t, rows, prev = db.execute(
         "SELECT committed_t, rows, prev_hash FROM blocks WHERE block = 2"
     ).fetchone()
-    tables = {name: db.execute(f"SELECT {', '.join(TABLE_COLUMNS[name])} FROM {name} "
+    tables = {name: db.execute(f"SELECT {', '.join(layout.table_columns[name])} FROM {name} "
                                "WHERE block = 2 ORDER BY id").fetchall()
-              for name in HASHED_TABLES}  # fmt: skip
-    forged = block_hash(2, committed_t, rows, prev, tables)
+              for name in layout.hashed_tables}  # fmt: skip
+    forged = block_hash(2, committed_t, rows, prev, tables, layout)
     db.execute("UPDATE blocks SET hash = ? WHERE block = 2", (forged,))
     db.close()
     result = verify(log)
@@ -519,9 +556,15 @@ def test_a_rewritten_block_with_a_fresh_hash_breaks_the_next_link(log: Path):
     assert "chain" in result["reason"]
 
 
-def checkpointed_log(tmp_path: Path, marker: float) -> Path:
+#: How each schema stores the marker below: schema 1 as SQLite's big-endian REAL, schema 2
+#: in a pack of seven-decimal values as the little-endian i32 987654321.
+MARKER = 98.7654321
+MARKER_BYTES = {1: struct.pack(">d", MARKER), 2: struct.pack("<i", 987654321)}
+
+
+def checkpointed_log(tmp_path: Path, marker: float, version: int) -> Path:
     path = tmp_path / "flip.sqlite"
-    with Recorder(path, version="t", clock=fake_clock()) as rec:
+    with Recorder(path, version="t", clock=fake_clock(), schema_version=version) as rec:
         rec.add_samples(kettle_samples(40))
         rec.commit()
         rec.add_samples([*kettle_samples(3, start=T0 + 40), Sample(T0 + 43, "k", "water", marker)])
@@ -533,29 +576,31 @@ def checkpointed_log(tmp_path: Path, marker: float) -> Path:
     return path
 
 
-def test_one_flipped_byte_in_the_file_is_caught(tmp_path: Path):
-    marker = 98.7654321  # any value with a fraction, so SQLite stores its 8 IEEE bytes
-    path = checkpointed_log(tmp_path, marker)
+@pytest.mark.parametrize("version", [1, 2])
+def test_one_flipped_byte_in_the_file_is_caught(tmp_path: Path, version: int):
+    marker = MARKER  # a value with a fraction, so schema 1 stores its 8 IEEE bytes
+    path = checkpointed_log(tmp_path, marker, version)
     data = bytearray(path.read_bytes())
-    where = data.find(struct.pack(">d", marker))
+    where = data.find(MARKER_BYTES[version])
     assert where > 0
-    assert data.count(struct.pack(">d", marker)) == 1
-    data[where + 7] ^= 0x01  # the last bit of the mantissa: SQLite cannot notice
+    assert data.count(MARKER_BYTES[version]) == 1
+    # the lowest bit of the number: SQLite cannot notice
+    data[where + (7 if version == 1 else 0)] ^= 0x01
     path.write_bytes(bytes(data))
     (changed,) = [s for s in read_samples(path) if s.t == T0 + 43]
     assert changed.value != marker
-    assert abs(changed.value - marker) < 1e-12
+    assert abs(changed.value - marker) < (1e-12 if version == 1 else 2e-7)
     result = verify(path)
     assert (result["ok"], result["first_bad_block"]) == (False, 3)
     assert result["samples"] == 49
 
 
-def test_a_flipped_page_header_gives_a_reason_not_an_exception(tmp_path: Path):
-    marker = 98.7654321
-    path = checkpointed_log(tmp_path, marker)
+@pytest.mark.parametrize("version", [1, 2])
+def test_a_flipped_page_header_gives_a_reason_not_an_exception(tmp_path: Path, version: int):
+    path = checkpointed_log(tmp_path, MARKER, version)
     data = bytearray(path.read_bytes())
     page_size = struct.unpack(">H", data[16:18])[0]
-    page_start = data.find(struct.pack(">d", marker)) // page_size * page_size
+    page_start = data.find(MARKER_BYTES[version]) // page_size * page_size
     assert data[page_start] == 0x0D  # a table b-tree leaf (SQLite file format, from memory)
     data[page_start] = 0x00  # no valid page type
     path.write_bytes(bytes(data))
@@ -750,7 +795,7 @@ def _remove_last_block(path: Path) -> None:
     """Cut the log's last block away, rows and block row alike (what issue 14's probe did)."""
     conn = sqlite3.connect(path)
     last = conn.execute("SELECT max(block) FROM blocks").fetchone()[0]
-    for table in ("samples", "quarantine", "estimates", "flags", "events", "runs", "blocks"):
+    for table in (*LAYOUTS[schema_version(path)].hashed_tables, "blocks"):
         conn.execute(f"DELETE FROM {table} WHERE block = ?", (last,))
     conn.commit()
     conn.close()

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import sqlite3
 from dataclasses import replace
 from pathlib import Path
 
@@ -12,6 +11,7 @@ from drivers.errors import LogFormatError
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.records.recorder import Recorder
 from monitor.reports.report import build_report
+from tests.support.tamper import change_one_reading
 
 
 def recorded_kettle(path, runs: int = 2) -> None:
@@ -59,8 +59,7 @@ def test_the_report_holds_the_figures_integrity_and_cautions(log) -> None:
 
 
 def test_a_tampered_log_says_its_integrity_check_failed(log) -> None:
-    with sqlite3.connect(log) as conn:
-        conn.execute("UPDATE samples SET value = value + 1 WHERE id = 100")
+    change_one_reading(log, which=100, by=1.0)
     page = build_report(str(log))
     assert "FAILED (tampered)" in page
     assert "integrity-failed" in page  # the banner at the top
