@@ -431,9 +431,12 @@ def encode_json(value: object) -> bytes:
 
     Raises TypeError for a value JSON cannot hold (a caller's mistake, not bad input).
     """
-    text = json.dumps(
-        _json_ready(value), separators=(",", ":"), ensure_ascii=False, allow_nan=False
-    )
+    try:  # the usual value holds no NaN and only plain containers: no walk first
+        text = json.dumps(value, separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+    except (ValueError, TypeError):
+        text = json.dumps(
+            _json_ready(value), separators=(",", ":"), ensure_ascii=False, allow_nan=False
+        )
     return text.encode("utf-8")
 
 

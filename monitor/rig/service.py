@@ -453,9 +453,12 @@ class Service:
                                   item.source)  # fmt: skip
             samples.append(item)
             touched[item.vessel] = vessel
-            self._isolated(
-                vessel, item.t, lambda v=vessel, i=item: self._steps(v, v.assembler.feed(i, 0))
-            )
+            try:  # as _isolated, written out: this runs for every reading
+                steps = vessel.assembler.feed(item, 0)
+                if steps:
+                    self._steps(vessel, steps)
+            except Exception as exc:  # one vessel's failure must not stop the others
+                self._vessel_failed(vessel, item.t, exc)
         for vessel in touched.values():  # only these can have an open instant
             self._isolated(vessel, None, lambda v=vessel: self._steps(v, v.assembler.flush()))
         self.stats.samples += len(samples)
@@ -517,14 +520,18 @@ class Service:
         try:
             work()
         except Exception as exc:  # one vessel's failure must not stop the others
-            first = vessel.vessel not in self._faulted
-            self._faulted.add(vessel.vessel)
-            if first:
-                log.exception("vessel %s: its processing failed; it goes on", vessel.vessel)
-            else:
-                log.warning("vessel %s: its processing failed again: %s", vessel.vessel, exc)
-            when = t if t is not None else self.clock()
-            self._event(when, "vessel_fault", vessel.vessel, f"{type(exc).__name__}: {exc}")
+            self._vessel_failed(vessel, t, exc)
+
+    def _vessel_failed(self, vessel: LiveVessel, t: float | None, exc: Exception) -> None:
+        """Log (the traceback once per vessel) and record a failure of one vessel's work."""
+        first = vessel.vessel not in self._faulted
+        self._faulted.add(vessel.vessel)
+        if first:
+            log.exception("vessel %s: its processing failed; it goes on", vessel.vessel)
+        else:
+            log.warning("vessel %s: its processing failed again: %s", vessel.vessel, exc)
+        when = t if t is not None else self.clock()
+        self._event(when, "vessel_fault", vessel.vessel, f"{type(exc).__name__}: {exc}")
 
     def _flush_to_recorder(self) -> None:
         """Hand the estimates and flags gathered so far to the recorder thread."""
