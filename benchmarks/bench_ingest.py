@@ -215,7 +215,8 @@ async def drive(
 
 async def bare_client(url: str) -> None:
     """Receive every reading at QoS 1 and publish one small message back for each, on the
-    topic the benchmark listens to: the least an MQTT service does for the same load."""
+    topic the benchmark listens to and as the service publishes its estimates (QoS 0,
+    retained): the least an MQTT service does for the same load."""
     host, port = url.removeprefix("mqtt://").split(":")
     async with aiomqtt.Client(host, int(port), identifier="bench-bare") as client:
         client.pending_calls_threshold = 100_000
@@ -224,7 +225,8 @@ async def bare_client(url: str) -> None:
             vessel = message.topic.value.split("/")[1]
             t = json.loads(message.payload)["t"]
             payload = json.dumps({"t": t, "vessel": vessel}).encode()
-            await client.publish(f"{PREFIX}/{vessel}/estimate", payload, qos=1)
+            # as the service publishes its estimates: QoS 0, retained
+            await client.publish(f"{PREFIX}/{vessel}/estimate", payload, qos=0, retain=True)
 
 
 def bench_bare(n: int, seconds: int, warmup_s: int, fleet: str) -> dict[str, object]:
