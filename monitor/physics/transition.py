@@ -687,6 +687,23 @@ def two_node_predict(
         x[0], x[1], lagged_c, dt_s, power_w, ambient_c, ua, c, g, ce,
         water_lag, element_lagged_c, element_lag, True,
     )  # fmt: skip
+    return _predicted(x, p, q, temps, m, s, usable, boiling_point_c)
+
+
+@numba.njit(cache=True)
+def _predicted(
+    x: np.ndarray,
+    p: np.ndarray,
+    q: np.ndarray,
+    temps: np.ndarray,
+    m: np.ndarray,
+    s: np.ndarray,
+    usable: bool,
+    boiling_point_c: float,
+) -> tuple[bool, np.ndarray, np.ndarray]:
+    """Return (done, x⁻, P⁻) from a step's temperatures, M and S (the predicts above):
+    F is the identity with M and S in the temperature rows, P⁻ = F P Fᵀ + Q."""
+    n, k = x.shape[0], temps.shape[0]
     fx = x.copy()
     if not usable or temps[0] > boiling_point_c:
         return False, fx, p
@@ -695,7 +712,7 @@ def two_node_predict(
         fx[r] = temps[r]
         for col in range(k):
             f[r, col] = m[r, col]
-        for par in range(3):
+        for par in range(s.shape[1]):
             f[r, k + par] = s[r, par]
     return True, fx, np.dot(np.dot(f, p), f.T) + q
 
@@ -747,14 +764,4 @@ def one_node_predict(
     temps, m, s, usable = _one_node_kernel(
         x[0], lagged_c, dt_s, power_w, ambient_c, math.exp(x[k]), math.exp(x[k + 1]), lag, True
     )
-    fx = x.copy()
-    if not usable or temps[0] > boiling_point_c:
-        return False, fx, p
-    f = np.eye(n)
-    for r in range(k):
-        fx[r] = temps[r]
-        for col in range(k):
-            f[r, col] = m[r, col]
-        for par in range(2):
-            f[r, k + par] = s[r, par]
-    return True, fx, np.dot(np.dot(f, p), f.T) + q
+    return _predicted(x, p, q, temps, m, s, usable, boiling_point_c)
