@@ -218,7 +218,10 @@ async def bare_client(url: str) -> None:
     topic the benchmark listens to and as the service publishes its estimates (QoS 0,
     retained): the least an MQTT service does for the same load."""
     host, port = url.removeprefix("mqtt://").split(":")
-    async with aiomqtt.Client(host, int(port), identifier="bench-bare") as client:
+    # MQTT 5, as the service's own client speaks it (drivers/mqtt.py)
+    async with aiomqtt.Client(
+        host, int(port), identifier="bench-bare", protocol=aiomqtt.ProtocolVersion.V5
+    ) as client:
         client.pending_calls_threshold = 100_000
         await client.subscribe(f"{PREFIX}/+/reading", qos=1)
         async for message in client.messages:
