@@ -102,7 +102,7 @@ from monitor.estimation.contracts import (
 from monitor.estimation.cores import FastCore, FilterpyCore, Layout
 from monitor.estimation.sensors import REST_EXCESS_K, ElementPath, SensorWatch
 from monitor.estimation.settings import EstimatorSettings, VesselConfig
-from monitor.physics import transition, water
+from monitor.physics import kernels, transition, water
 
 _log = logging.getLogger("ebullio.estimator")
 
@@ -222,8 +222,16 @@ class VesselEstimator:
         )
         self._forecast_ix = (np.array(idx), np.ix_(idx, idx))
         self._learnt_without_c = [i for i in self._param_columns if i != lay.ln_c]
-        # the predict in one compiled call (FastCore only: the filterpy path is the
-        # reference it is checked against)
+        # the learnt parameters' indices and the frozen mask as the compiled update takes
+        # them, without and with the consider update of ln C
+        mask_c = np.zeros(lay.size, dtype=np.bool_)
+        mask_c[lay.ln_c] = True
+        self._update_arrays = {
+            False: (np.array(self._param_columns, dtype=np.int64), np.zeros(lay.size, np.bool_)),
+            True: (np.array(self._learnt_without_c, dtype=np.int64), mask_c),
+        }
+        # the usual predict and update each in one compiled call (FastCore only: the
+        # filterpy path is the reference it is checked against)
         self._fused = core is FastCore
         self._q_cache: dict[tuple[float, bool], np.ndarray] = {}
         self.heat_up_fit: batchfit.HeatUpFit | None = (
@@ -1045,6 +1053,9 @@ class VesselEstimator:
         consider = self._boiling or not self._learn_c
         frozen = self._frozen_c if consider else ()
         learnt = self._learnt_without_c if consider else self._param_columns
+        learnt_ix, frozen_mask = self._update_arrays[consider]
+        # past either, a reading takes the general path below (Huber, set aside, flags)
+        aside_above = min(s.huber_k, s.gross_error_sd)
         lo_c, hi_c = s.plausible_c
         for name, j in self._channels:
             value = readings.get(name)
@@ -1089,6 +1100,22 @@ class VesselEstimator:
             if measured is not None and measured > sd:
                 sd = measured
             r = sd * sd
+            if self._fused:  # the usual reading in one compiled call (bit for bit the same)
+                code, nis, x_new, p_new = kernels.bounded_update(
+                    core.x, core.P, j, float(value), r, aside_above, s.gate_nis,
+                    s.max_param_step, learnt_ix, frozen_mask,
+                )  # fmt: skip
+                if code != 2:
+                    core.x, core.P = x_new, p_new
+                    if name == "water":
+                        self._nis = nis
+                        self.totals.water_readings += 1
+                        self.totals.nis_sum += nis
+                    watch.missed_in_row = 0
+                    watch.smallest_miss_c = math.inf
+                    if code == 1:
+                        self.totals.downweighted_readings += 1
+                    continue
             nu, var = core.innovation(j, value, r)
             nis = nu * nu / var
             if name == "water":

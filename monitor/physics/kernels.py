@@ -16,6 +16,8 @@ compiles in memory instead (about a second, once per process); set
 
 from __future__ import annotations
 
+import math
+
 import numba
 import numpy as np
 
@@ -165,3 +167,44 @@ def fit_residuals(
     for i in range(p):
         out[nw + ne + i] = (theta[i] - prior_mean[i]) / prior_sd[i]
     return out
+
+
+@numba.njit(cache=True)
+def bounded_update(
+    x: np.ndarray,
+    p: np.ndarray,
+    j: int,
+    z: float,
+    r: float,
+    aside_above: float,
+    gate_nis: float,
+    max_param_step: float,
+    learnt: np.ndarray,
+    frozen: np.ndarray,
+) -> tuple[int, float, np.ndarray, np.ndarray]:
+    """Return (code, NIS, x⁺, P⁺) of the filter's usual robust update of a reading z of
+    state j with variance r (the rules are VesselEstimator._update's).
+
+    code 2: the reading lies more than ``aside_above`` sd's out or past ``gate_nis``, so
+    the caller takes it through its general path (x and P come back as they were);
+    else the update is made, with r raised where a learnt parameter (indices
+    ``learnt``) would move by more than ``max_param_step``: code 1 when it was, 0 when
+    not. The same operations in the same order as the general path, so the same bits.
+    """
+    nu = z - x[j]
+    var = p[j, j] + r
+    nis = nu * nu / var
+    if math.sqrt(nis) > aside_above or nis > gate_nis:
+        return 2, nis, x, p
+    p_jj = var - r
+    r_used = r
+    if learnt.shape[0] > 0:
+        largest = abs(p[learnt[0], j])
+        for k in range(1, learnt.shape[0]):
+            if abs(p[learnt[k], j]) > largest:
+                largest = abs(p[learnt[k], j])
+        pull = largest * abs(nu)
+        if pull > max_param_step * (p_jj + r_used):
+            r_used = pull / max_param_step - p_jj
+    x_new, p_new = scalar_update(x, p, j, z, r_used, frozen)
+    return (1 if r_used > r else 0), nis, x_new, p_new

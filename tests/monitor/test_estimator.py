@@ -358,15 +358,28 @@ class _GeneralPredict(VesselEstimator):
         self._fused = False
 
 
+def _spiky(t_s, readings):
+    """Every 37th second the water reads 6 K high: outliers for the robust update."""
+    if int(t_s) % 37 == 0 and "water" in readings:
+        return {**readings, "water": readings["water"] + 6.0}
+    return readings
+
+
 @pytest.mark.parametrize("element", [True, False], ids=["two-node", "one-node"])
-def test_fused_predict_gives_the_general_paths_figures_bit_for_bit(element):
-    # transition.two_node_predict and one_node_predict do the predict in one compiled
-    # call; over a heat-up to the boil (the general path takes the clamped steps) every
-    # estimate, state and covariance must be the general path's exactly
-    fused, a, _ = _run(kettle_scenario(duration_s=420.0), seed=21, element=element)
+@pytest.mark.parametrize("tamper", [None, _spiky], ids=["clean", "spiky"])
+def test_fused_predict_and_update_give_the_general_paths_figures_bit_for_bit(element, tamper):
+    # transition.two_node_predict / one_node_predict and kernels.bounded_update do the
+    # usual predict and update each in one compiled call; over a heat-up to the boil (the
+    # general path takes the clamped steps), with outliers that the general path must
+    # take, every estimate, state and covariance must be the general path's exactly
+    fused, a, _ = _run(kettle_scenario(duration_s=420.0), seed=21, element=element, tamper=tamper)
     general, b, _ = _run(
-        kettle_scenario(duration_s=420.0), seed=21, element=element, kind=_GeneralPredict
-    )
+        kettle_scenario(duration_s=420.0), seed=21, element=element, tamper=tamper,
+        kind=_GeneralPredict,
+    )  # fmt: skip
+    if tamper is not None:  # the spikes reached the general path and bounded updates
+        assert fused.totals.downweighted_readings > 0
+        assert any(f.name == "water_outlier" for _, e, _ in a if e is not None for f in e.flags)
     assert fused._fused
     assert not general._fused
     assert any(e is not None and e.phase is Phase.BOILING for _, e, _ in a)
