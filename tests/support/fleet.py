@@ -48,3 +48,20 @@ def kettle_spec(vessel: str, seed: int, duration_s: float = 900.0,
     meta = scenario_metadata(scenario, seed)
     return VesselSpec(vessel, {**meta, "element_sensor": "yes"}, has_element_sensor=True,
                       via_mqtt=True)  # fmt: skip
+
+
+def fleet_config(vessels: list[str], mqtt_port: int, prefix: str = "ebullio") -> str:
+    """Return a rig configuration (TOML) of simulated kettles that publish over MQTT."""
+    lines = ["[mqtt]", f'url = "mqtt://127.0.0.1:{mqtt_port}"', f'prefix = "{prefix}"', ""]
+    for vessel in vessels:
+        lines += [
+            "[[vessels]]",
+            f'id = "{vessel}"',
+            "vessel_heat_capacity_j_per_k = 420",  # the kettle scenario's shell and element
+            "element_heat_capacity_j_per_k = 160",
+            "rated_power_w = 2200",
+            "nominal_volume_l = 1.7",
+            "element_sensor = true",
+            "",
+        ]
+    return "\n".join(lines)
