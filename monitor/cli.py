@@ -267,6 +267,9 @@ def _run_engine_worker(config, args: argparse.Namespace) -> int:
     if not servers or not all(url.startswith(("nats://", "tls://")) for url in servers):
         raise EbullioError(f"--engine {args.engine!r}: give nats://HOST:PORT[,nats://...]")
     name = args.worker or f"{socket.gethostname()}-{os.getpid()}"
+    stamped = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    for handler in logging.getLogger().handlers:  # a fleet's workers' logs are read side by side
+        handler.setFormatter(stamped)
     settings = WorkerSettings(replicas=args.replicas, checkpoint_every_s=args.checkpoint_s)
     worker = Worker(servers, engine_vessels(config), engine_layout(config, args.partitions),
                     name, settings)  # fmt: skip

@@ -177,15 +177,14 @@ class Worker:
             await self._set_up()
             leases = asyncio.create_task(self._lease_loop(), name=f"{self.name} leases")
             await self._stop.wait()
-            leases.cancel()
-            with contextlib.suppress(asyncio.CancelledError):
-                await leases
-            for partition in list(self._held):
-                await self._hand_back(partition)
+            await asyncio.wait([leases])  # the loop ends its round and returns
+            await asyncio.gather(*(self._hand_back(p) for p in list(self._held)))
         finally:
-            for lease in self._held.values():
-                if lease.task is not None:
-                    lease.task.cancel()
+            tasks = [lease.task for lease in self._held.values() if lease.task is not None]
+            for task in tasks:
+                task.cancel()
+            if tasks:
+                await asyncio.wait(tasks)
             with contextlib.suppress(*NATS_ERRORS):
                 await self._nc.close()
         return self.stats
@@ -261,19 +260,23 @@ class Worker:
         # each worker tries the partitions in an order of its own, so they rarely collide
         order = sorted(range(self.layout.partitions),
                        key=lambda p: zlib.crc32(f"{self.name}/{p}".encode()))  # fmt: skip
-        while True:
+        while not self._stop.is_set():
+            began = time.monotonic()
+            # renewals first, all at once: a round must never take longer than a lease
+            await asyncio.gather(*(self._renew(p, lease) for p, lease in list(self._held.items())))
+            self._forget_expired()
             try:
                 alive = await self._roster()
                 fair = math.ceil(self.layout.partitions / max(alive, 1))
-                await self._renew()
-                while len(self._held) > fair:
+                while len(self._held) > fair and not self._stop.is_set():
                     await self._hand_back(max(self._held))
                 if len(self._held) < fair:
                     await self._take(order, fair)
             except NATS_ERRORS as exc:
                 log.info("%s: lease round failed (%s); next round", self.name, exc)
-            self._forget_expired()
-            await asyncio.sleep(self.settings.heartbeat_s)
+            rest = self.settings.heartbeat_s - (time.monotonic() - began)
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._stop.wait(), max(rest, 0.05))
 
     async def _roster(self) -> int:
         """Renew this worker's place in the ``workers`` key; return the workers alive."""
@@ -301,32 +304,42 @@ class Worker:
         until = now + self.settings.lease_s
         return json.dumps({"worker": self.name, "until": until, "since": since}).encode()
 
-    async def _renew(self) -> None:
-        for partition, lease in list(self._held.items()):
-            if lease.hand_back.is_set():
-                continue
-            now = self.clock()
-            try:
-                lease.revision = await self._leases.update(
-                    _lease_key(partition), self._lease_value(now, lease.since), last=lease.revision
-                )
-                lease.until = now + self.settings.lease_s
-            except nats.js.errors.KeyWrongLastSequenceError:
-                log.warning("%s: partition %d was taken by another worker", self.name, partition)
-                self._drop(partition)
-            except NATS_ERRORS as exc:
-                log.info("%s: renewing partition %d failed (%s)", self.name, partition, exc)
+    async def _renew(self, partition: int, lease: _Lease) -> None:
+        """Renew one lease by compare-and-set; let the partition go if another worker
+        has written its key since (it holds it now)."""
+        if lease.hand_back.is_set():
+            return
+        now = self.clock()
+        try:
+            lease.revision = await self._leases.update(
+                _lease_key(partition), self._lease_value(now, lease.since), last=lease.revision
+            )
+            lease.until = now + self.settings.lease_s
+        except (nats.js.errors.KeyWrongLastSequenceError, *MISSING):
+            log.warning("%s: partition %d is another worker's now", self.name, partition)
+            self._drop(partition)
+        except NATS_ERRORS as exc:
+            log.info("%s: renewing partition %d failed (%s)", self.name, partition, exc)
 
     def _forget_expired(self) -> None:
-        """Stop serving a partition whose lease ran out unrenewed (it may be taken now)."""
+        """Stop serving a partition whose lease has gone unrenewed for a second lease time.
+
+        While the cluster cannot renew leases (a leader being elected) nobody can take
+        them either; when it can again, the compare-and-set on the revision says whether
+        the lease is still this worker's. A worker cut off for longer gives up. If two
+        workers ever serve a partition at once, they write the same figures (the
+        processing is deterministic), and the one whose renewal fails stops.
+        """
         now = self.clock()
         for partition, lease in list(self._held.items()):
-            if lease.until <= now and not lease.hand_back.is_set():
+            if lease.until + self.settings.lease_s <= now and not lease.hand_back.is_set():
                 log.warning("%s: the lease of partition %d ran out", self.name, partition)
                 self._drop(partition)
 
     def _drop(self, partition: int) -> None:
-        lease = self._held.pop(partition)
+        lease = self._held.pop(partition, None)
+        if lease is None:
+            return
         self.stats.partitions_lost += 1
         if lease.task is not None:
             lease.task.cancel()
@@ -367,8 +380,7 @@ class Worker:
             return
         lease.hand_back.set()
         if lease.task is not None:
-            with contextlib.suppress(asyncio.CancelledError, *NATS_ERRORS):
-                await lease.task
+            await asyncio.wait([lease.task])  # it checkpoints and returns (or gives up)
         self._held.pop(partition, None)
         self.stats.partitions_handed_back += 1
         with contextlib.suppress(*NATS_ERRORS):
@@ -401,18 +413,22 @@ class Worker:
                 part, covered = await self._load(number)
                 break
             except NATS_ERRORS as exc:
+                if lease.hand_back.is_set() or self._nc.is_closed:
+                    return
                 log.info("%s: loading partition %d failed (%s); again", self.name, number, exc)
                 await asyncio.sleep(0.5)
         next_seq, saved_at = covered + 1, time.monotonic()
         subscription = None
         while True:
             if lease.hand_back.is_set():
-                await self._checkpoint(part, next_seq - 1)
+                await self._checkpoint(part, next_seq - 1, lease)
                 return
             if subscription is None:
                 try:
                     subscription = await self._subscribe(number, next_seq)
                 except NATS_ERRORS as exc:
+                    if self._nc.is_closed:
+                        return
                     log.info("%s: partition %d: no consumer yet (%s)", self.name, number, exc)
                     await asyncio.sleep(0.5)
                     continue
@@ -421,7 +437,7 @@ class Worker:
             except nats.errors.TimeoutError:
                 batch = []
             except NATS_ERRORS as exc:
-                log.info("%s: partition %d: consumer failed (%s); a new one from %d",
+                log.info("%s: partition %d: consumer failed (%r); a new one from %d",
                          self.name, number, exc, next_seq)  # fmt: skip
                 self.stats.consumer_restarts += 1
                 with contextlib.suppress(*NATS_ERRORS):
@@ -438,9 +454,9 @@ class Worker:
                     aside.append((seq, q))
                 next_seq = seq + 1
                 self.stats.messages += 1
-            await self._send(part, aside)
+            await self._send(part, aside, lease)
             if time.monotonic() - saved_at >= self.settings.checkpoint_every_s and part.dirty:
-                await self._checkpoint(part, next_seq - 1)
+                await self._checkpoint(part, next_seq - 1, lease)
                 saved_at = time.monotonic()
 
     async def _subscribe(self, number: int, start_seq: int) -> Any:
@@ -453,43 +469,60 @@ class Worker:
             self.layout.partition_subject(number), stream=self.layout.stream, config=config
         )
 
-    async def _send(self, part: Partition, aside: list[tuple[int, Quarantined]]) -> None:
+    async def _until_done(self, what: str, work: Callable[[], Any], lease: _Lease) -> bool:
+        """Await ``work()`` again while the cluster is moving; return True once it is done,
+        False when the partition is being handed back and a lease time has passed, or the
+        connection is closed for good (the next holder starts from the last checkpoint)."""
+        began = time.monotonic()
+        while True:
+            try:
+                await work()
+                waited_s = time.monotonic() - began
+                if waited_s > 1.0:
+                    log.info("%s: partition %d: %s written after %.1f s",
+                             self.name, lease.partition, what, waited_s)  # fmt: skip
+                return True
+            except NATS_ERRORS as exc:
+                closing = lease.hand_back.is_set() or self._stop.is_set()
+                if self._nc.is_closed or (
+                    closing and time.monotonic() - began > self.settings.lease_s
+                ):
+                    log.warning("%s: partition %d: %s not written: %s",
+                                self.name, lease.partition, what, exc)  # fmt: skip
+                    return False
+                log.info("%s: partition %d: %s failed (%s); again",
+                         self.name, lease.partition, what, exc)  # fmt: skip
+                await asyncio.sleep(0.25)
+
+    async def _send(self, part: Partition, aside: list[tuple[int, Quarantined]],
+                    lease: _Lease) -> None:  # fmt: skip
         """Put the newest estimates of the vessels stepped and keep what was set aside,
-        retrying while the cluster is moving (nothing is lost to a failed put)."""
+        trying again while the cluster is moving."""
         fresh, part.fresh = part.fresh, set()
         puts = [(v, _estimate_value(part.streams[v], self.name, part.number)) for v in fresh]
         self.stats.set_aside += len(aside)
-        while puts or aside:
-            try:
-                await asyncio.gather(*(self._estimates.put(v, value) for v, value in puts))
-                puts = []
-                for seq, q in aside:
-                    await self._js.publish(
-                        self.layout.set_aside_subject(part.number), _set_aside_value(q),
-                        headers={"Nats-Msg-Id": f"{part.number}-{seq}-{q.where}"[:250]},
-                    )  # fmt: skip
-                aside = []
-            except NATS_ERRORS as exc:
-                log.info("%s: partition %d: writing estimates failed (%s); again",
-                         self.name, part.number, exc)  # fmt: skip
-                await asyncio.sleep(0.25)
+        if puts:
+            await self._until_done("estimates", lambda: asyncio.gather(
+                *(self._estimates.put(v, value) for v, value in puts)), lease)  # fmt: skip
+        for seq, q in aside:
+            headers = {"Nats-Msg-Id": f"{part.number}-{seq}-{q.where}"[:250]}
+            subject, value = self.layout.set_aside_subject(part.number), _set_aside_value(q)
+            await self._until_done("set-aside input", lambda s=subject, v=value, h=headers:
+                                   self._js.publish(s, v, headers=h), lease)  # fmt: skip
 
-    async def _checkpoint(self, part: Partition, covered: int) -> None:
+    async def _checkpoint(self, part: Partition, covered: int, lease: _Lease) -> None:
         """Save the vessels stepped since the last checkpoint, then the partition's index."""
         dirty = sorted(part.dirty)
         states = [(v, checkpoint.dumps(part.streams[v])) for v in dirty]
         index = json.dumps({"seq": covered, "vessels": sorted(part.streams)}).encode()
-        while True:
-            try:
-                await asyncio.gather(*(self._checkpoints.put(f"v.{v}", s) for v, s in states))
-                await self._checkpoints.put(f"i.{part.number}", index)
-                break
-            except NATS_ERRORS as exc:
-                log.info("%s: partition %d: checkpoint failed (%s); again",
-                         self.name, part.number, exc)  # fmt: skip
-                await asyncio.sleep(0.25)
-        part.dirty.clear()
-        self.stats.checkpoints += 1
+
+        async def write() -> None:
+            await asyncio.gather(*(self._checkpoints.put(f"v.{v}", s) for v, s in states))
+            await self._checkpoints.put(f"i.{part.number}", index)
+
+        if await self._until_done("checkpoint", write, lease):
+            part.dirty.clear()
+            self.stats.checkpoints += 1
 
 
 def _estimate_value(stream: VesselStream, worker: str, partition: int) -> bytes:
