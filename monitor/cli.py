@@ -500,8 +500,8 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
         description="Read the instruments and broker named in a TOML rig configuration, run "
         "one estimator per vessel, record everything to an SQLite log and publish estimates. "
         "Stops cleanly on Ctrl-C or SIGTERM; see DEVELOPERS.md for the configuration keys.",
-        epilog="example: ebullio run --config rig.toml --log logs/lab.sqlite\n"
-        "         ebullio run --config fleet.toml --engine nats://10.0.0.5:4222,nats://10.0.0.6:4222",
+        epilog="example: ebullio run --config rig.toml --log logs/lab.sqlite; one worker of "
+        "a fleet: ebullio run --config fleet.toml --engine nats://127.0.0.1:4222 --partitions 8",
     )
     run.add_argument("--config", required=True, help="TOML rig configuration")
     run.add_argument("--log", help="SQLite log to write (appended if it exists)")

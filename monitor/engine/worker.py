@@ -85,6 +85,10 @@ NATS_ERRORS = (nats.errors.Error, asyncio.TimeoutError, OSError)
 MISSING = (nats.js.errors.KeyNotFoundError, nats.js.errors.KeyDeletedError)
 
 
+#: After this long (s) of empty fetches a worker asks its consumer whether it is stuck.
+IDLE_CHECK_S = 2.0
+
+
 class EngineError(EbullioError, RuntimeError):
     """The engine cannot run: the stream or buckets disagree with this worker's layout."""
 
@@ -419,6 +423,7 @@ class Worker:
                 await asyncio.sleep(0.5)
         next_seq, saved_at = covered + 1, time.monotonic()
         subscription = None
+        idle_since: float | None = None  # since when fetches have come back empty
         while True:
             if lease.hand_back.is_set():
                 await self._checkpoint(part, next_seq - 1, lease)
@@ -434,8 +439,27 @@ class Worker:
                     continue
             try:
                 batch = await subscription.fetch(self.settings.fetch_batch, timeout=0.5)
+                idle_since = None
             except nats.errors.TimeoutError:
                 batch = []
+                idle_since = idle_since or time.monotonic()
+                if time.monotonic() - idle_since > IDLE_CHECK_S:
+                    # after a node's loss a consumer can be left that answers no fetch:
+                    # ask it whether it holds messages it has not delivered
+                    idle_since = None
+                    try:
+                        info = await subscription.consumer_info()
+                        healthy = info.num_pending == 0
+                    except NATS_ERRORS:
+                        healthy = False
+                    if not healthy:
+                        log.info("%s: partition %d: the consumer delivers nothing; a new one "
+                                 "from %d", self.name, number, next_seq)  # fmt: skip
+                        self.stats.consumer_restarts += 1
+                        with contextlib.suppress(*NATS_ERRORS):
+                            await subscription.unsubscribe()
+                        subscription = None
+                        continue
             except NATS_ERRORS as exc:
                 log.info("%s: partition %d: consumer failed (%r); a new one from %d",
                          self.name, number, exc, next_seq)  # fmt: skip
