@@ -46,6 +46,12 @@ VESSELS = [f"kettle-{i:02d}" for i in range(18)]
 DURATION_S = 600.0
 INSTANTS_PER_S = 30.0
 TAKE_OVER_LIMIT_S = 10.0
+#: Input that must be set aside, sent among the readings (topic, payload).
+BAD_INPUT = [
+    ("ebullio/kettle-03/reading", b'{"t": 1764547300.0, "water_c": "hot"}'),
+    ("ebullio/kettle-04/water", b"NaN"),
+    ("ebullio/stranger-1/reading", b'{"water_c": 20.0}'),  # not in the configuration
+]
 
 
 async def _publish(port: int, payloads: dict[str, list[bytes]], report: dict) -> None:
@@ -64,6 +70,9 @@ async def _publish(port: int, payloads: dict[str, list[bytes]], report: dict) ->
                         client.publish(f"ebullio/{v}/reading", p[k], qos=1)
                         for v, p in payloads.items() if k < len(p)
                     ))  # fmt: skip
+                    if k == 100:  # bad input among the good: set aside, nothing stops
+                        for topic, payload in BAD_INPUT:
+                            await client.publish(topic, payload, qos=1)
                     k += 1
                     delay = begun + k / INSTANTS_PER_S - time.monotonic()
                     if delay > 0:
@@ -109,6 +118,7 @@ def test_three_workers_on_three_nodes_survive_a_worker_and_a_node_killed(tmp_pat
     assert report["stream_matches_published"], "the stream is not what the instruments sent"
     assert report["readings_lost"] == 0, report["short"]
     assert report["vessels_equal"] == len(VESSELS), report["unequal"]
+    assert report["set_aside"] == len(BAD_INPUT)  # each once, though read again after a kill
     survivors = [f for f in final if f is not None]
     assert len(survivors) == 2  # the killed worker printed nothing
     assert sum(f["partitions_taken"] for f in survivors) >= LAYOUT.partitions
@@ -206,11 +216,14 @@ async def _scenario(cluster, workers, payloads) -> dict[str, object]:
         stream = await read_stream(js, LAYOUT)
         report["in_stream"] = len(stream)
         by_vessel: dict[str, list[bytes]] = {}
+        bad = {payload for _, payload in BAD_INPUT}
         for m in stream:
-            by_vessel.setdefault(m.subject.split(".")[3], []).append(m.payload)
+            if m.payload not in bad:
+                by_vessel.setdefault(m.subject.split(".")[3], []).append(m.payload)
+        report["set_aside"] = (await js.stream_info(LAYOUT.set_aside_stream)).state.messages
         # a reading sent again after a lost PUBACK is in the stream twice (each payload
         # carries its own time, so a vessel's payloads are all different)
-        report["stream_duplicates"] = len(stream) - sum(len(set(p)) for p in by_vessel.values())
+        report["stream_duplicates"] = sum(len(p) - len(set(p)) for p in by_vessel.values())
         report["stream_matches_published"] = {
             v: list(dict.fromkeys(p)) for v, p in by_vessel.items()
         } == payloads
