@@ -17,7 +17,7 @@ buckets emptied in between):
 Figures
     ``readings_per_s``: messages taken per second over the measured window (10 % to
     90 % of the backlog with one worker; 10 % to the kill with two), from the
-    estimates bucket's per-vessel counts, polled every 0.25 s. At one reading per vessel
+    estimates bucket's per-vessel counts, polled every 0.5 s. At one reading per vessel
     a second it is the number of vessels the workers keep up with (``vessels_held``).
     ``speed_up``: two workers over one (target 1.7 on this machine's two cores, shared
     with the server and this process).
@@ -25,7 +25,8 @@ Figures
     ``since``); ``readings_lost``: messages in the stream that the vessels' final states
     do not cover; ``vessels_equal``: vessels whose every estimate (the digest chained
     over them) and last estimate equal a replay of the stream in this process, in one go.
-    ``cpu_s``: each process's CPU time (user + system) over the run.
+    ``cpu_s``: each worker's CPU time (user + system) over its run (``cpu_s_at_kill``: at
+    the kill), ``server_cpu_s``: the server's over the run.
 """
 
 from __future__ import annotations
@@ -105,12 +106,13 @@ async def _progress(js, layout, vessels) -> int:
         return 0
 
 
-async def _run(url, layout, workdir, config, vessels, total, workers_n, kill_at):
+async def _run(url, layout, workdir, config, vessels, total, workers_n, kill_at, server_pid):
     nc = await nats.connect(url)
     js = nc.jetstream(timeout=10.0)
     workers = [WorkerProcess(workdir, f"bench-w{i}", config, [url], layout.partitions,
                              replicas=1, checkpoint_s=5.0) for i in range(workers_n)]  # fmt: skip
     out: dict[str, object] = {"workers": workers_n}
+    server_cpu_before = _cpu_s(server_pid)
     samples: list[tuple[float, int]] = []
     killed_at = None
     try:
@@ -128,13 +130,14 @@ async def _run(url, layout, workdir, config, vessels, total, workers_n, kill_at)
                 killed_mono = time.monotonic()
             if done >= total:
                 break
-            await asyncio.sleep(0.25)
+            await asyncio.sleep(0.5)
         if killed_at is not None:
             held = await leases(js, layout)
             out["take_over_s"] = round(max(held[p]["since"] for p in victim_parts) - killed_at, 2)
             out["victim_partitions"] = victim_parts
         out["cpu_s"] = {w.name: round(_cpu_s(w.process.pid), 2)
                         for w in workers if w.process.poll() is None}  # fmt: skip
+        out["server_cpu_s"] = round(_cpu_s(server_pid) - server_cpu_before, 2)
         out["final"] = await estimates(js, layout, vessels)
     finally:
         for w in workers:
@@ -166,9 +169,10 @@ async def bench(args) -> dict[str, object]:
             config = workdir / "fleet.toml"
             config.write_text(fleet_config(vessels, server.mqtt_ports[0]))
             total = await _publish_backlog(url, payloads, layout)
-            one = await _run(url, layout, workdir, config, vessels, total, 1, None)
+            pid = server.pid(0)
+            one = await _run(url, layout, workdir, config, vessels, total, 1, None, pid)
             await _reset(url, layout)
-            two = await _run(url, layout, workdir, config, vessels, total, 2, 0.5)
+            two = await _run(url, layout, workdir, config, vessels, total, 2, 0.5, pid)
             nc = await nats.connect(url)
             stream = await read_stream(nc.jetstream(timeout=10.0), layout)
             await nc.close()

@@ -62,7 +62,9 @@ async def _publish(port: int, payloads: dict[str, list[bytes]], report: dict) ->
     begun, k, retries = time.monotonic(), 0, 0
     while k < count:
         try:
-            async with aiomqtt.Client("127.0.0.1", port, identifier="kettles",
+            # a fresh client id each time: NATS moves a session's state through its own
+            # streams, and taking an old one over can wait out a leader election
+            async with aiomqtt.Client("127.0.0.1", port, identifier=f"kettles-{retries}",
                                       timeout=5.0) as client:  # fmt: skip
                 client.pending_calls_threshold = 1000  # one publish per vessel in flight
                 while k < count:

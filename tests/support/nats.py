@@ -23,21 +23,10 @@ from pathlib import Path
 from types import TracebackType
 
 from monitor.engine.partition import EngineLayout
-from tests.support.mosquitto import HOST, free_port
+from tests.support.mosquitto import HOST, accepts, end_process, free_port
 
 #: Seconds to wait for a node to accept TCP connections.
 START_DEADLINE_S = 15.0
-STOP_DEADLINE_S = 10.0
-
-
-def _accepts(port: int) -> bool:
-    import socket
-
-    try:
-        with socket.create_connection((HOST, port), timeout=0.5):
-            return True
-    except OSError:
-        return False
 
 
 class NatsCluster:
@@ -105,7 +94,7 @@ class NatsCluster:
         while time.monotonic() < deadline:
             if process.poll() is not None:
                 raise RuntimeError(f"nats-server n{index} exited:\n{self.log_text(index)[-2000:]}")
-            if _accepts(self.ports[index]) and _accepts(self.mqtt_ports[index]):
+            if accepts(self.ports[index]) and accepts(self.mqtt_ports[index]):
                 return
             time.sleep(0.02)
         self.kill(index)
@@ -118,25 +107,23 @@ class NatsCluster:
             self.start_node(index)
         return self
 
+    def pid(self, index: int) -> int:
+        """Return node ``index``'s process id (it must be running)."""
+        process = self._processes[index]
+        if process is None:
+            raise RuntimeError(f"node n{index} is not running")
+        return process.pid
+
     def kill(self, index: int) -> None:
         """Kill node ``index`` at once (SIGKILL)."""
         process, self._processes[index] = self._processes[index], None
-        if process is not None and process.poll() is None:
-            process.kill()
-            process.wait(timeout=STOP_DEADLINE_S)
+        end_process(process, kill=True)
 
     def stop(self) -> None:
         """Stop every node politely (SIGTERM, then SIGKILL after a deadline)."""
         for index, process in enumerate(self._processes):
             self._processes[index] = None
-            if process is None or process.poll() is not None:
-                continue
-            process.terminate()
-            try:
-                process.wait(timeout=STOP_DEADLINE_S)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait(timeout=STOP_DEADLINE_S)
+            end_process(process, kill=False)
 
     def __enter__(self) -> NatsCluster:
         return self.start()
