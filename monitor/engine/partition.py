@@ -25,6 +25,7 @@ set aside (:class:`drivers.channels.Quarantined`) and the rest goes on.
 from __future__ import annotations
 
 import hashlib
+import logging
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 
@@ -38,6 +39,8 @@ from monitor.rig.config import VesselSpec
 from monitor.runs.live import LiveVessel, Step, screen_sample
 
 __all__ = ["EngineLayout", "Message", "Partition", "VesselStream", "replay_messages"]
+
+log = logging.getLogger("ebullio.engine")
 
 #: The subject token between the prefix and the partition number.
 PART_TOKEN = "part"
@@ -174,6 +177,7 @@ class Partition:
         self.dirty: set[str] = set()  # vessels stepped since the last checkpoint
         self.fresh: set[str] = set()  # vessels with a new estimate since the last hand-over
         self.unknown = 0  # messages set aside for their subject or vessel
+        self.faulted: set[str] = set()  # vessels whose processing failed (logged once each)
 
     def take(self, message: Message) -> list[Quarantined]:
         """Take one message; return what was set aside (never raises for bad input)."""
@@ -195,7 +199,16 @@ class Partition:
             return []  # already in the state a checkpoint carried over
         self.dirty.add(vessel)
         before = stream.estimates
-        kept = stream.take(f"{prefix}/{vessel}/{leaf}", leaf, message, self.source, prefix)
+        try:
+            kept = stream.take(f"{prefix}/{vessel}/{leaf}", leaf, message, self.source, prefix)
+        except Exception as exc:  # one vessel's failure must not stop its partition
+            if vessel not in self.faulted:
+                log.exception("vessel %s: processing stream seq %d failed; it goes on",
+                              vessel, message.seq)  # fmt: skip
+            self.faulted.add(vessel)
+            stream.seq = message.seq
+            reason = f"processing failed: {type(exc).__name__}: {exc}"
+            kept = [self._aside(message, reason)]
         if stream.estimates != before:
             self.fresh.add(vessel)
         return kept

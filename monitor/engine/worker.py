@@ -416,6 +416,13 @@ class Worker:
             try:
                 part, covered = await self._load(number)
                 break
+            except (checkpoint.CheckpointError, EngineError) as exc:
+                # a checkpoint this version cannot read: the stream still holds every
+                # reading, so the partition is rebuilt from its start (same figures)
+                log.error("%s: partition %d: its checkpoints are unusable (%s); rebuilding "
+                          "it from the start of the stream", self.name, number, exc)  # fmt: skip
+                part, covered = Partition(self.layout, number, self.vessels, self.source), 0
+                break
             except NATS_ERRORS as exc:
                 if lease.hand_back.is_set() or self._nc.is_closed:
                     return

@@ -209,3 +209,27 @@ def test_bad_messages_are_set_aside_and_the_vessel_goes_on(kettle):
     assert got.set_aside == 4
     assert got.messages == 305
     assert got.latest["water_c"] == pytest.approx(want.latest["water_c"], abs=0.5)
+
+
+def test_a_failure_inside_one_vessel_sets_its_message_aside_and_the_rest_go_on(kettle, monkeypatch):
+    spec, payloads = kettle
+    other = kettle_spec("kettle-8", seed=8)
+    part = Partition(LAYOUT, 2, {spec.id: spec, other.id: other}, "test")
+    messages = _messages(spec.id, payloads[:50]) + [
+        Message(f"ebullio.part.2.{other.id}.reading", p, 100 + i, STAMP_S)
+        for i, p in enumerate(kettle_readings("kettle-8", seed=8)[:50])
+    ]
+    for m in messages[:10]:
+        part.take(m)
+    broken = part.streams[spec.id].live
+
+    def fail(_step):
+        raise RuntimeError("a bug")
+
+    monkeypatch.setattr(broken, "step", fail)
+    aside = [q for m in messages[10:] for q in part.take(m)]
+    assert len(aside) == 40  # every later message of the broken vessel, none of the other's
+    assert all("processing failed: RuntimeError: a bug" in q.reason for q in aside)
+    assert part.faulted == {spec.id}
+    assert part.streams[other.id].messages == 50
+    assert part.streams[spec.id].seq == 50
