@@ -7,6 +7,7 @@ the helpers read the leases, the estimates and the whole readings stream back, a
 
 from __future__ import annotations
 
+import asyncio
 import json
 import os
 import signal
@@ -88,19 +89,34 @@ async def estimates(js: Any, layout: EngineLayout, vessels: Sequence[str]) -> di
     return out
 
 
-async def read_stream(js: Any, layout: EngineLayout) -> list[Message]:
-    """Return every message of the readings stream, in stream order."""
-    info = await js.stream_info(layout.stream)
-    last = info.state.last_seq
-    config = ConsumerConfig(deliver_policy=DeliverPolicy.ALL, ack_policy=AckPolicy.NONE,
-                            inactive_threshold=30.0)  # fmt: skip
-    sub = await js.pull_subscribe(layout.readings_subjects, stream=layout.stream, config=config)
+async def read_stream(js: Any, layout: EngineLayout, patience_s: float = 60.0) -> list[Message]:
+    """Return every message of the readings stream, in stream order.
+
+    A consumer that fails or falls silent (after a node's loss one can) is replaced by
+    a new one from the next sequence, as the workers do, for up to ``patience_s``.
+    """
+    last = (await js.stream_info(layout.stream)).state.last_seq
     messages: list[Message] = []
+    deadline = asyncio.get_running_loop().time() + patience_s
     while not messages or messages[-1].seq < last:
-        for msg in await sub.fetch(2000, timeout=5.0):
-            stamp = msg.metadata.timestamp.timestamp()
-            messages.append(Message(msg.subject, msg.data, msg.metadata.sequence.stream, stamp))
-    await sub.unsubscribe()
+        start = messages[-1].seq + 1 if messages else 1
+        config = ConsumerConfig(deliver_policy=DeliverPolicy.BY_START_SEQUENCE,
+                                opt_start_seq=start, ack_policy=AckPolicy.NONE,
+                                inactive_threshold=30.0)  # fmt: skip
+        try:
+            sub = await js.pull_subscribe(layout.readings_subjects, stream=layout.stream,
+                                          config=config)  # fmt: skip
+            while not messages or messages[-1].seq < last:
+                for msg in await sub.fetch(2000, timeout=5.0):
+                    seq = msg.metadata.sequence.stream
+                    if messages and seq <= messages[-1].seq:
+                        continue
+                    stamp = msg.metadata.timestamp.timestamp()
+                    messages.append(Message(msg.subject, msg.data, seq, stamp))
+            await sub.unsubscribe()
+        except (TimeoutError, nats.errors.Error):
+            if asyncio.get_running_loop().time() > deadline:
+                raise
     return messages
 
 

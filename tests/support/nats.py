@@ -54,7 +54,11 @@ class NatsCluster:
             f'server_name: "n{index}"',
             f"listen: {HOST}:{self.ports[index]}",
             f'jetstream {{ store_dir: "{node / "js"}" }}',
-            f"mqtt {{ listen: {HOST}:{self.mqtt_ports[index]} }}",
+            # the MQTT listener keeps its sessions and QoS 1 state in streams of its own:
+            # with two replicas (its default here) one node lost leaves them no leader
+            f"mqtt {{ listen: {HOST}:{self.mqtt_ports[index]}"
+            + (f", stream_replicas: {min(self.nodes, 3)}" if self.nodes > 1 else "")
+            + " }",
             self.layout.server_config(),
         ]
         if self.nodes > 1:
