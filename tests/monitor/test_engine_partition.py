@@ -22,7 +22,7 @@ from monitor.engine.checkpoint import CheckpointError
 from monitor.engine.partition import EngineLayout, Message, Partition, replay_messages
 from monitor.records.schema import flatten_estimate
 from monitor.runs.live import LiveVessel, steps_from_samples
-from tests.support.fleet import START_EPOCH_S, kettle_readings, kettle_spec
+from tests.support.fleet import START_EPOCH_S, fleet_config, kettle_readings, kettle_spec
 
 LAYOUT = EngineLayout(partitions=4)
 STAMP_S = START_EPOCH_S + 7200.0  # the stream's time stamps: after every reading's t
@@ -233,3 +233,26 @@ def test_a_failure_inside_one_vessel_sets_its_message_aside_and_the_rest_go_on(k
     assert part.faulted == {spec.id}
     assert part.streams[other.id].messages == 50
     assert part.streams[spec.id].seq == 50
+
+
+def test_ebullio_run_engine_refuses_a_bad_url_and_instruments(tmp_path, capsys):
+    from monitor.cli import main
+
+    config = tmp_path / "fleet.toml"
+    config.write_text(fleet_config(["kettle-1"], 1883))
+    assert main(["run", "--config", str(config), "--engine", "http://127.0.0.1:4222"]) == 2
+    assert "give nats://HOST:PORT" in capsys.readouterr().err
+    text = config.read_text() + (
+        '\n[[instruments]]\nurl = "serial:///dev/ttyUSB9?baud=9600"\nframing = "csv"\n'
+        'fields = ["w", "p"]\n'
+        '[[vessels]]\nid = "urn-1"\nvessel_heat_capacity_j_per_k = 900\n'
+        '[[vessels.channels]]\ninstrument = "serial:///dev/ttyUSB9?baud=9600"\n'
+        'field = "w"\nrole = "water"\nunit = "degC"\n'
+        '[[vessels.channels]]\ninstrument = "serial:///dev/ttyUSB9?baud=9600"\n'
+        'field = "p"\nrole = "power"\nunit = "W"\n'
+    )
+    config.write_text(text)
+    assert main(["run", "--config", str(config), "--engine", "nats://127.0.0.1:4222"]) == 2
+    assert "[[instruments]] are read by `ebullio run` without --engine" in capsys.readouterr().err
+    assert main(["run", "--config", str(config)]) == 2
+    assert "--log is needed" in capsys.readouterr().err
