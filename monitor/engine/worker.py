@@ -530,16 +530,32 @@ class Worker:
         """Put the newest estimates of the vessels stepped and keep what was set aside,
         trying again while the cluster is moving."""
         fresh, part.fresh = part.fresh, set()
+        for vessel in fresh - part.shown.keys():
+            part.shown[vessel] = await self._shown_seq(vessel)
+        # after a take-over the stretch since the checkpoint is stepped again: its
+        # estimates are older than those the bucket holds, and are not put back
+        fresh = {v for v in fresh if part.streams[v].seq > part.shown[v]}
         puts = [(v, _estimate_value(part.streams[v], self.name, part.number)) for v in fresh]
         self.stats.set_aside += len(aside)
         if puts:
             await self._until_done("estimates", lambda: asyncio.gather(
                 *(self._estimates.put(v, value) for v, value in puts)), lease)  # fmt: skip
+            part.shown.update({v: part.streams[v].seq for v in fresh})
         for seq, q in aside:
             headers = {"Nats-Msg-Id": f"{part.number}-{seq}-{q.where}"[:250]}
             subject, value = self.layout.set_aside_subject(part.number), _set_aside_value(q)
             await self._until_done("set-aside input", lambda s=subject, v=value, h=headers:
                                    self._js.publish(s, v, headers=h), lease)  # fmt: skip
+
+    async def _shown_seq(self, vessel: str) -> int:
+        """Return the stream sequence of the estimate the bucket holds for ``vessel`` (0: none)."""
+        try:
+            entry = await self._estimates.get(vessel)
+            return int(json.loads(entry.value).get("seq", 0))
+        except MISSING:
+            return 0
+        except (*NATS_ERRORS, ValueError, AttributeError):
+            return 0  # unknown: put whatever comes next
 
     async def _checkpoint(self, part: Partition, covered: int, lease: _Lease) -> None:
         """Save the vessels stepped since the last checkpoint, then the partition's index."""
