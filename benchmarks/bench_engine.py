@@ -25,6 +25,12 @@ Figures
     ``since``); ``readings_lost``: messages in the stream that the vessels' final states
     do not cover; ``vessels_equal``: vessels whose every estimate (the digest chained
     over them) and last estimate equal a replay of the stream in this process, in one go.
+    ``other_load_cores``: the CPU the rest of the machine used over the window (cores; not
+    the workers, the server or this process): on a shared machine, read the speed-up
+    beside it. ``readings_per_worker_cpu_s``: readings per CPU second the workers spent
+    over the window; equal for one and two workers means no work is lost to sharing, so
+    the speed-up on two free cores would be near 2 (``cpu_scaling``: two workers' figure
+    over one's).
     ``cpu_s``: each worker's CPU time (user + system) over its run (``cpu_s_at_kill``: at
     the kill), ``server_cpu_s``: the server's over the run.
 """
@@ -62,6 +68,13 @@ from tests.support.nats import NatsCluster  # noqa: E402
 #: here, the same readings (the kettles heat in the first third of their runs, so a
 #: stretch of the backlog costs more or less than another).
 KILL_AT = 0.5
+
+
+def _machine_busy_s() -> float:
+    """Return the CPU time (s, all cores) the machine has spent busy since boot (/proc/stat)."""
+    fields = [int(x) for x in Path("/proc/stat").read_text().split("\n")[0].split()[1:]]
+    idle = fields[3] + fields[4]  # idle and iowait
+    return (sum(fields[:8]) - idle) / os.sysconf("SC_CLK_TCK")
 
 
 def _cpu_s(pid: int) -> float:
@@ -124,7 +137,9 @@ async def _run(url, layout, workdir, config, vessels, total, workers_n, kill_at,
         deadline = time.monotonic() + 900.0
         while time.monotonic() < deadline:
             done = await _progress(js, layout, vessels)
-            samples.append((time.monotonic(), done))
+            workers_cpu = sum(_cpu_s(w.process.pid) for w in workers if w.process.poll() is None)
+            ours = workers_cpu + _cpu_s(server_pid) + _cpu_s(os.getpid())
+            samples.append((time.monotonic(), done, _machine_busy_s(), ours, workers_cpu))
             if kill_at is not None and killed_at is None and done >= kill_at * total:
                 held = await leases(js, layout)
                 victim = workers[0]
@@ -153,8 +168,15 @@ async def _run(url, layout, workdir, config, vessels, total, workers_n, kill_at,
         return next(s for s in samples if s[1] >= fraction * total)
 
     start = at(0.10)  # the same stretch of the backlog for one worker and for two
-    end = next(s for s in samples if s[0] >= killed_mono) if killed_at else at(KILL_AT)
+    # with two workers: the last sample before the kill (taken with both alive)
+    end = [s for s in samples if s[0] <= killed_mono][-1] if killed_at else at(KILL_AT)
     out["window_readings"] = end[1] - start[1]
+    # the machine is shared: what else ran beside the workers and the server (cores)
+    out["other_load_cores"] = round(
+        ((end[2] - start[2]) - (end[3] - start[3])) / (end[0] - start[0]), 2
+    )
+    out["workers_cpu_s"] = round(end[4] - start[4], 2)
+    out["readings_per_worker_cpu_s"] = round((end[1] - start[1]) / (end[4] - start[4]), 1)
     out["window_s"] = round(end[0] - start[0], 2)
     out["readings_per_s"] = round((end[1] - start[1]) / (end[0] - start[0]), 1)
     out["vessels_held"] = int(out["readings_per_s"])
@@ -201,6 +223,9 @@ async def bench(args) -> dict[str, object]:
         "one_worker": one,
         "two_workers": two,
         "speed_up": round(two["readings_per_s"] / one["readings_per_s"], 2),
+        "cpu_scaling": round(
+            two["readings_per_worker_cpu_s"] / one["readings_per_worker_cpu_s"], 2
+        ),
         "take_over_s": two.get("take_over_s"),
         "readings_lost": len(stream) - covered,
         "vessels_equal": equal,

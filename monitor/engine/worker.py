@@ -266,6 +266,12 @@ class Worker:
         # each worker tries the partitions in an order of its own, so they rarely collide
         order = sorted(range(self.layout.partitions),
                        key=lambda p: zlib.crc32(f"{self.name}/{p}".encode()))  # fmt: skip
+        # listed a heartbeat before taking anything, so workers started together see
+        # each other and share the partitions at once instead of handing them round
+        with contextlib.suppress(*NATS_ERRORS):
+            await self._roster()
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(self._stop.wait(), self.settings.heartbeat_s)
         while not self._stop.is_set():
             began = time.monotonic()
             # renewals first, all at once: a round must never take longer than a lease
