@@ -606,9 +606,15 @@ def _set_aside_value(q: Quarantined) -> bytes:
 
 
 async def read_estimates(servers: Sequence[str], layout: EngineLayout | None = None,
+                         vessels: Sequence[str] | None = None,
                          timeout_s: float = 5.0) -> dict[str, dict[str, Any]]:  # fmt: skip
     """Return each vessel's newest entry of the estimates bucket (the fleet view's source):
-    ``{"estimate": <flat estimate>, "seq", "messages", ...}``; {} when there is none yet."""
+    ``{"estimate": <flat estimate>, "seq", "messages", ...}``; {} when there is none yet.
+
+    With ``vessels`` (the configuration's) each is read by its key; without, the keys are
+    listed first, which needs a consumer on the bucket and may wait out a leader
+    election. A vessel without an entry is left out.
+    """
     layout = layout or EngineLayout()
     nc = await nats.connect(servers=list(servers), connect_timeout=timeout_s)
     try:
@@ -617,12 +623,13 @@ async def read_estimates(servers: Sequence[str], layout: EngineLayout | None = N
             kv = await js.key_value(layout.estimates_bucket)
         except nats.js.errors.BucketNotFoundError:
             return {}
-        try:
-            keys = await kv.keys()
-        except nats.js.errors.NoKeysError:
-            return {}
+        if vessels is None:
+            try:
+                vessels = await kv.keys()
+            except nats.js.errors.NoKeysError:
+                return {}
         out: dict[str, dict[str, Any]] = {}
-        for key in keys:
+        for key in vessels:
             with contextlib.suppress(*MISSING):
                 entry = await kv.get(key)
                 out[key] = json.loads(entry.value)

@@ -258,7 +258,7 @@ async def _scenario(cluster, workers, payloads) -> dict[str, object]:
                                 **{k: got.get(k) for k in ("seq", "messages", "worker",
                                                            "partition")}})  # fmt: skip
         report["vessels_equal"] = len(reference) - len(unequal)
-        fleet = await read_estimates(cluster.urls, LAYOUT)  # what a fleet view reads
+        fleet = await read_estimates(cluster.urls, LAYOUT, list(payloads))  # a fleet view's
         report["fleet_view_same"] = {v: e["estimate"] for v, e in fleet.items()} == {
             v: f["estimate"] for v, f in figures.items()
         }
@@ -271,3 +271,80 @@ async def _scenario(cluster, workers, payloads) -> dict[str, object]:
     finally:
         await nc.close()
     return report
+
+
+def test_a_worker_stopped_hands_its_state_on_to_the_next_one(tmp_path):
+    """One node, workers in this process: the first takes a backlog and stops (every
+    partition checkpointed and handed back); the second loads those checkpoints, takes
+    what came meanwhile, and every vessel's figures equal one uninterrupted replay."""
+    layout = EngineLayout(partitions=3)
+    vessels = ["kettle-a", "kettle-b", "kettle-c"]
+    payloads = {v: kettle_readings(v, seed=i, duration_s=300.0) for i, v in enumerate(vessels)}
+    with NatsCluster(tmp_path / "nats", nodes=1, layout=layout) as server:
+        config_path = tmp_path / "fleet.toml"
+        config_path.write_text(fleet_config(vessels, server.mqtt_ports[0]))
+        specs = {v.id: v for v in load_config(config_path).vessels}
+        report = asyncio.run(_hand_on(server.urls, layout, specs, payloads))
+    assert report["first"]["partitions_handed_back"] == layout.partitions
+    assert report["second_messages"] == 3 * 101  # only what came after the first stopped
+    assert report["equal"] == vessels
+    assert sorted(report["fleet"]) == vessels
+
+
+async def _hand_on(urls, layout, specs, payloads) -> dict[str, object]:
+    from monitor.engine.worker import Worker, WorkerSettings
+
+    nc = await nats.connect(urls[0])
+    js = nc.jetstream(timeout=5.0)
+    settings = WorkerSettings(checkpoint_every_s=0.5)
+    out: dict[str, object] = {}
+
+    async def publish(first: int, last: int) -> None:
+        for k in range(first, last):
+            for vessel, p in payloads.items():
+                await nc.publish(f"ebullio.{vessel}.reading", p[k])
+        await nc.flush()
+
+    async def taken(count: int):
+        try:
+            got = await estimates(js, layout, list(payloads))
+        except nats.js.errors.BucketNotFoundError:
+            return None
+        return len(got) == 3 and all(e["messages"] >= count for e in got.values())
+
+    try:
+        first = Worker(urls, specs, layout, "first", settings)
+        task = asyncio.create_task(first.run())
+        await _wait_for(lambda: _stream_exists(js, layout), 20.0)  # the worker sets it up
+        await publish(0, 200)
+        ok, _ = await _wait_for(lambda: taken(200), 30.0)
+        first.stop()
+        await asyncio.wait_for(task, 30.0)
+        assert ok, "the first worker did not take the readings in 30 s"
+        out["first"] = first.stats.as_dict()
+        await publish(200, 301)  # while no worker runs
+        second = Worker(urls, specs, layout, "second", settings)
+        task = asyncio.create_task(second.run())
+        ok, _ = await _wait_for(lambda: taken(301), 30.0)
+        second.stop()
+        await asyncio.wait_for(task, 30.0)
+        assert ok, "the second worker did not take the readings in 30 s"
+        out["second_messages"] = second.stats.messages
+        figures = await estimates(js, layout, list(payloads))
+        reference = reference_figures(layout, specs, await read_stream(js, layout))
+        out["equal"] = sorted(
+            v for v, ref in reference.items()
+            if figures[v]["digest"] == ref.digest and figures[v]["messages"] == ref.messages
+        )  # fmt: skip
+        out["fleet"] = sorted(await read_estimates(urls, layout))  # keys listed
+    finally:
+        await nc.close()
+    return out
+
+
+async def _stream_exists(js, layout) -> bool:
+    try:
+        await js.stream_info(layout.stream)
+    except nats.js.errors.NotFoundError:
+        return False
+    return True
