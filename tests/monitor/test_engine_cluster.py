@@ -35,7 +35,7 @@ import nats
 import pytest
 
 from monitor.engine.partition import EngineLayout
-from monitor.engine.worker import read_estimates
+from monitor.engine.worker import Worker, WorkerSettings, read_estimates
 from monitor.rig.config import load_config
 from tests.support.engine import (
     WorkerProcess,
@@ -292,8 +292,6 @@ def test_a_worker_stopped_hands_its_state_on_to_the_next_one(tmp_path):
 
 
 async def _hand_on(urls, layout, specs, payloads) -> dict[str, object]:
-    from monitor.engine.worker import Worker, WorkerSettings
-
     nc = await nats.connect(urls[0])
     js = nc.jetstream(timeout=5.0)
     settings = WorkerSettings(checkpoint_every_s=0.5)
