@@ -104,7 +104,7 @@ class WorkerSettings:
     checkpoint_every_s: float = 5.0  # the vessels stepped since are saved this often
     fetch_batch: int = 512  # messages asked for at once
     replicas: int = 1  # stream and bucket replicas when this worker creates them
-    setup_patience_s: float = 60.0  # how long to retry creating the stream and buckets
+    setup_patience_s: float = 60.0  # how long to try to connect, and to set things up
 
 
 @dataclass
@@ -174,10 +174,16 @@ class Worker:
 
     async def run(self) -> WorkerStats:
         """Serve partitions until :meth:`stop`; return the counters."""
-        self._nc = await nats.connect(
-            servers=self.servers, name=self.name, max_reconnect_attempts=-1,
-            reconnect_time_wait=0.25, connect_timeout=2, allow_reconnect=True,
-        )  # fmt: skip
+        try:  # the client retries for ever once connected; the first connection is bounded
+            self._nc = await asyncio.wait_for(nats.connect(
+                servers=self.servers, name=self.name, max_reconnect_attempts=-1,
+                reconnect_time_wait=0.25, connect_timeout=2, allow_reconnect=True,
+            ), self.settings.setup_patience_s)  # fmt: skip
+        except NATS_ERRORS as exc:
+            raise EngineError(
+                f"cannot reach the NATS server at {self.source} in "
+                f"{self.settings.setup_patience_s:g} s: {exc or type(exc).__name__}"
+            ) from exc
         try:
             self._js = self._nc.jetstream(timeout=2.0)
             await self._set_up()
@@ -383,7 +389,21 @@ class Worker:
             self.stats.partitions_taken += 1
             self.stats.taken_at[partition] = now
             lease.task = asyncio.create_task(self._serve(lease), name=f"partition {partition}")
+            lease.task.add_done_callback(lambda task, p=partition: self._served(p, task))
             log.info("%s: took partition %d", self.name, partition)
+
+    def _served(self, partition: int, task: asyncio.Task[None]) -> None:
+        """A partition's task ended: if by an error, say so and stop renewing its lease,
+        so that it expires and the partition is taken again from its checkpoint."""
+        if task.cancelled() or task.exception() is None:
+            return
+        exc = task.exception()
+        log.error("%s: serving partition %d failed; its lease is let go", self.name, partition,
+                  exc_info=exc)  # fmt: skip
+        lease = self._held.get(partition)
+        if lease is not None and lease.task is task:
+            del self._held[partition]
+            self.stats.partitions_lost += 1
 
     async def _hand_back(self, partition: int) -> None:
         """Checkpoint a partition, stop serving it and delete its lease."""
@@ -436,7 +456,20 @@ class Worker:
                     return
                 log.info("%s: loading partition %d failed (%s); again", self.name, number, exc)
                 await asyncio.sleep(0.5)
-        next_seq, saved_at = covered + 1, time.monotonic()
+        holder: list[Any] = []  # the partition's consumer, unsubscribed however it ends
+        try:
+            await self._serve_from(lease, part, covered + 1, holder)
+        finally:
+            for subscription in holder:
+                with contextlib.suppress(*NATS_ERRORS):
+                    await subscription.unsubscribe()
+
+    async def _serve_from(self, lease: _Lease, part: Partition, next_seq: int,
+                          holder: list[Any]) -> None:  # fmt: skip
+        """Read the partition's stream from ``next_seq`` and step its vessels (see
+        :meth:`_serve`); the consumer in use is kept in ``holder``."""
+        number = lease.partition
+        saved_at = time.monotonic()
         subscription = None
         idle_since: float | None = None  # since when fetches have come back empty
         while True:
@@ -446,6 +479,7 @@ class Worker:
             if subscription is None:
                 try:
                     subscription = await self._subscribe(number, next_seq)
+                    holder[:] = [subscription]
                 except NATS_ERRORS as exc:
                     if self._nc.is_closed:
                         return
@@ -474,6 +508,7 @@ class Worker:
                         with contextlib.suppress(*NATS_ERRORS):
                             await subscription.unsubscribe()
                         subscription = None
+                        holder.clear()
                         continue
             except NATS_ERRORS as exc:
                 log.info("%s: partition %d: consumer failed (%r); a new one from %d",
@@ -482,6 +517,7 @@ class Worker:
                 with contextlib.suppress(*NATS_ERRORS):
                     await subscription.unsubscribe()
                 subscription = None
+                holder.clear()
                 continue
             aside: list[tuple[int, Quarantined]] = []
             slice_began = time.perf_counter()

@@ -6,6 +6,7 @@ pure. The cluster itself is tested in tests/monitor/test_engine_cluster.py.
 
 from __future__ import annotations
 
+import asyncio
 import collections
 import json
 import math
@@ -20,9 +21,11 @@ from drivers.payloads import parse_message
 from monitor.engine import checkpoint
 from monitor.engine.checkpoint import CheckpointError
 from monitor.engine.partition import EngineLayout, Message, Partition, replay_messages
+from monitor.engine.worker import EngineError, Worker, WorkerSettings
 from monitor.records.schema import flatten_estimate
 from monitor.runs.live import LiveVessel, steps_from_samples
 from tests.support.fleet import START_EPOCH_S, fleet_config, kettle_readings, kettle_spec
+from tests.support.mosquitto import free_port
 
 LAYOUT = EngineLayout(partitions=4)
 STAMP_S = START_EPOCH_S + 7200.0  # the stream's time stamps: after every reading's t
@@ -256,3 +259,11 @@ def test_ebullio_run_engine_refuses_a_bad_url_and_instruments(tmp_path, capsys):
     assert "[[instruments]] are read by `ebullio run` without --engine" in capsys.readouterr().err
     assert main(["run", "--config", str(config)]) == 2
     assert "--log is needed" in capsys.readouterr().err
+
+
+def test_a_worker_without_a_server_stops_with_a_clear_error(kettle):
+    spec, _ = kettle
+    url = f"nats://127.0.0.1:{free_port()}"  # nothing listens there
+    worker = Worker([url], {spec.id: spec}, LAYOUT, "lonely", WorkerSettings(setup_patience_s=1.5))
+    with pytest.raises(EngineError, match="cannot reach the NATS server"):
+        asyncio.run(worker.run())
