@@ -431,7 +431,8 @@ class Worker:
         streams: dict[str, VesselStream] = {}
         for vessel in index["vessels"]:
             entry = await self._checkpoints.get(f"v.{vessel}")
-            stream = checkpoint.loads(entry.value)
+            _, _, data = bytes(entry.value).partition(b"\n")  # "<seq>\n" + the checkpoint
+            stream = checkpoint.loads(data)
             if not isinstance(stream, VesselStream) or stream.live.vessel != vessel:
                 raise EngineError(f"checkpoint v.{vessel} does not hold vessel {vessel!r}")
             streams[vessel] = stream
@@ -597,6 +598,37 @@ class Worker:
             await self._until_done("set-aside input", lambda s=subject, v=value, h=headers:
                                    self._js.publish(s, v, headers=h), lease)  # fmt: skip
 
+    async def _forward(self, key: str, seq: int, value: bytes) -> None:
+        """Write a checkpoint key only forwards: unless it already holds a state at ``seq``
+        or later, by compare-and-set on the revision read.
+
+        Two workers can serve a partition for a moment (the one whose lease lapsed during
+        an election has not yet seen its renewal fail). Both make the same states, but
+        the late one's older state must not overwrite the newer one after the index has
+        moved past it: the next holder would skip the messages in between. A vessel's
+        value starts with ``<seq>\n``; the index is JSON with ``seq``.
+        """
+        for _ in range(10):
+            try:
+                entry = await self._checkpoints.get(key)
+            except MISSING:
+                entry = None
+            if entry is not None:
+                head = bytes(entry.value)
+                held = (json.loads(head)["seq"] if key.startswith("i.")
+                        else int(head.partition(b"\n")[0]))  # fmt: skip
+                if held >= seq:
+                    return
+            try:
+                if entry is None:
+                    await self._checkpoints.create(key, value)
+                else:
+                    await self._checkpoints.update(key, value, last=entry.revision)
+                return
+            except nats.js.errors.KeyWrongLastSequenceError:
+                continue  # written meanwhile: read it again
+        raise EngineError(f"checkpoint {key}: ten writers in a row got in first")
+
     async def _shown_seq(self, vessel: str) -> int:
         """Return the stream sequence of the estimate the bucket holds for ``vessel`` (0: none)."""
         try:
@@ -612,13 +644,15 @@ class Worker:
         dirty = sorted(part.dirty)
         states = []
         for vessel in dirty:  # 3-5 ms each: the loop's other tasks run in between
-            states.append((vessel, checkpoint.dumps(part.streams[vessel])))
+            seq = part.streams[vessel].seq
+            data = b"%d\n" % seq + checkpoint.dumps(part.streams[vessel])
+            states.append((f"v.{vessel}", seq, data))
             await asyncio.sleep(0)
         index = json.dumps({"seq": covered, "vessels": sorted(part.streams)}).encode()
 
         async def write() -> None:
-            await asyncio.gather(*(self._checkpoints.put(f"v.{v}", s) for v, s in states))
-            await self._checkpoints.put(f"i.{part.number}", index)
+            await asyncio.gather(*(self._forward(key, seq, data) for key, seq, data in states))
+            await self._forward(f"i.{part.number}", covered, index)
 
         if await self._until_done("checkpoint", write, lease):
             part.dirty.clear()
