@@ -173,20 +173,19 @@ class Worker:
         self._stop.set()
 
     async def run(self) -> WorkerStats:
-        """Serve partitions until :meth:`stop`; return the counters."""
-        try:  # the client retries for ever once connected; the first connection is bounded
-            self._nc = await asyncio.wait_for(nats.connect(
-                servers=self.servers, name=self.name, max_reconnect_attempts=-1,
-                reconnect_time_wait=0.25, connect_timeout=2, allow_reconnect=True,
-            ), self.settings.setup_patience_s)  # fmt: skip
-        except NATS_ERRORS as exc:
-            raise EngineError(
-                f"cannot reach the NATS server at {self.source} in "
-                f"{self.settings.setup_patience_s:g} s: {exc or type(exc).__name__}"
-            ) from exc
+        """Serve partitions until :meth:`stop`; return the counters. A stop while still
+        connecting or setting up returns at once."""
+        starting = asyncio.create_task(self._start(), name=f"{self.name} start")
+        stopping = asyncio.create_task(self._stop.wait())
+        await asyncio.wait({starting, stopping}, return_when=asyncio.FIRST_COMPLETED)
+        stopping.cancel()
+        if not starting.done():
+            starting.cancel()
+            await asyncio.wait([starting])
         try:
-            self._js = self._nc.jetstream(timeout=2.0)
-            await self._set_up()
+            if starting.cancelled():
+                return self.stats
+            starting.result()  # EngineError when the server cannot be reached or set up
             leases = asyncio.create_task(self._lease_loop(), name=f"{self.name} leases")
             await self._stop.wait()
             await asyncio.wait([leases])  # the loop ends its round and returns
@@ -197,9 +196,25 @@ class Worker:
                 task.cancel()
             if tasks:
                 await asyncio.wait(tasks)
-            with contextlib.suppress(*NATS_ERRORS):
-                await self._nc.close()
+            if self._nc is not None:
+                with contextlib.suppress(*NATS_ERRORS):
+                    await self._nc.close()
         return self.stats
+
+    async def _start(self) -> None:
+        """Connect (bounded: the client retries for ever once connected) and set up."""
+        try:
+            self._nc = await asyncio.wait_for(nats.connect(
+                servers=self.servers, name=self.name, max_reconnect_attempts=-1,
+                reconnect_time_wait=0.25, connect_timeout=2, allow_reconnect=True,
+            ), self.settings.setup_patience_s)  # fmt: skip
+        except NATS_ERRORS as exc:
+            raise EngineError(
+                f"cannot reach the NATS server at {self.source} in "
+                f"{self.settings.setup_patience_s:g} s: {exc or type(exc).__name__}"
+            ) from exc
+        self._js = self._nc.jetstream(timeout=2.0)
+        await self._set_up()
 
     # -- set-up -------------------------------------------------------------------
 

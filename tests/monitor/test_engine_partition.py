@@ -267,3 +267,16 @@ def test_a_worker_without_a_server_stops_with_a_clear_error(kettle):
     worker = Worker([url], {spec.id: spec}, LAYOUT, "lonely", WorkerSettings(setup_patience_s=1.5))
     with pytest.raises(EngineError, match="cannot reach the NATS server"):
         asyncio.run(worker.run())
+
+
+def test_a_worker_told_to_stop_while_it_connects_stops_at_once(kettle):
+    spec, _ = kettle
+    url = f"nats://127.0.0.1:{free_port()}"  # nothing listens there
+    worker = Worker([url], {spec.id: spec}, LAYOUT, "patient", WorkerSettings(setup_patience_s=60))
+
+    async def stop_soon():
+        asyncio.get_running_loop().call_later(0.5, worker.stop)
+        return await asyncio.wait_for(worker.run(), 5.0)
+
+    stats = asyncio.run(stop_soon())
+    assert stats.partitions_taken == 0
