@@ -224,6 +224,10 @@ def cmd_run(args: argparse.Namespace) -> int:
     from monitor.rig.config import load_config
 
     config = load_config(args.config)
+    if args.engine is not None:
+        return _run_engine_worker(config, args)
+    if args.log is None:
+        raise EbullioError("--log is needed (or --engine, where the stream is the log)")
     Path(args.log).parent.mkdir(parents=True, exist_ok=True)
     stats = asyncio.run(_run_service(config, args.log, args.for_s))
     print(json.dumps({"log": args.log, **stats.as_dict()}))
@@ -250,6 +254,41 @@ async def _run_service(config, log_path: str, for_s: float | None):
     finally:
         for signum in (signal.SIGINT, signal.SIGTERM):
             loop.remove_signal_handler(signum)
+
+
+def _run_engine_worker(config, args: argparse.Namespace) -> int:
+    """Run one worker of the NATS engine until SIGINT, SIGTERM or ``--for-s``."""
+    import os
+    import signal
+    import socket
+
+    from monitor.engine.worker import Worker, WorkerSettings, engine_layout, engine_vessels
+
+    servers = [url.strip() for url in args.engine.split(",") if url.strip()]
+    if not servers or not all(url.startswith(("nats://", "tls://")) for url in servers):
+        raise EbullioError(f"--engine {args.engine!r}: give nats://HOST:PORT[,nats://...]")
+    name = args.worker or f"{socket.gethostname()}-{os.getpid()}"
+    stamped = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    for handler in logging.getLogger().handlers:  # a fleet's workers' logs are read side by side
+        handler.setFormatter(stamped)
+    settings = WorkerSettings(replicas=args.replicas, checkpoint_every_s=args.checkpoint_s)
+    worker = Worker(servers, engine_vessels(config), engine_layout(config, args.partitions),
+                    name, settings)  # fmt: skip
+
+    async def serve():
+        loop = asyncio.get_running_loop()
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            loop.add_signal_handler(signum, worker.stop)
+        if args.for_s is not None:
+            loop.call_later(args.for_s, worker.stop)
+        log.info("worker %s: %d vessels, %d partitions, engine %s",
+                 name, len(worker.vessels), args.partitions, worker.source)  # fmt: skip
+        return await worker.run()
+
+    stats = asyncio.run(serve())
+    print(json.dumps({"worker": name, **stats.as_dict()}))
+    print(SAFETY_NOTE, file=sys.stderr)
+    return 0
 
 
 def cmd_verify(args: argparse.Namespace) -> int:
@@ -473,10 +512,36 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
         description="Read the instruments and broker named in a TOML rig configuration, run "
         "one estimator per vessel, record everything to an SQLite log and publish estimates. "
         "Stops cleanly on Ctrl-C or SIGTERM; see DEVELOPERS.md for the configuration keys.",
-        epilog="example: ebullio run --config rig.toml --log logs/lab.sqlite",
+        epilog="example: ebullio run --config rig.toml --log logs/lab.sqlite; one worker of "
+        "a fleet: ebullio run --config fleet.toml --engine nats://127.0.0.1:4222 --partitions 8",
     )
     run.add_argument("--config", required=True, help="TOML rig configuration")
-    run.add_argument("--log", required=True, help="SQLite log to write (appended if it exists)")
+    run.add_argument("--log", help="SQLite log to write (appended if it exists)")
+    run.add_argument(
+        "--engine", metavar="NATS_URLS",
+        help="be one worker of the NATS JetStream engine instead (nats://HOST:PORT, several "
+        "comma-separated): readings from the partitioned stream, no SQLite log (docs/engine.md)",
+    )  # fmt: skip
+    run.add_argument(
+        "--partitions",
+        type=int,
+        default=8,
+        help="with --engine: partitions, as in the server's mapping (default 8)",
+    )
+    run.add_argument(
+        "--replicas",
+        type=int,
+        default=1,
+        choices=(1, 3, 5),
+        help="with --engine: replicas of the stream and buckets it creates",
+    )
+    run.add_argument(
+        "--checkpoint-s",
+        type=number_option(0.1, 3600.0),
+        default=5.0,
+        help="with --engine: seconds between checkpoints (default 5)",
+    )
+    run.add_argument("--worker", help="with --engine: this worker's name (default host-pid)")
     run.add_argument(
         "--for-s",
         type=number_option(0.0, above=True),

@@ -66,13 +66,13 @@ from urllib.parse import urlsplit, urlunsplit
 from drivers.channels import Acknowledge, Quarantined
 from drivers.errors import DriverError, EbullioError
 from drivers.registry import open_source
-from drivers.sample import Quality, ReadingLimits, Sample
+from drivers.sample import ReadingLimits, Sample
 from monitor import __version__
 from monitor.estimation.batchfit import FitBudget, warm_up
 from monitor.records.recorder import Recorder
 from monitor.records.schema import flag_record, flatten_estimate, run_record
 from monitor.rig.config import Instrument, MqttSettings, RigConfig
-from monitor.runs.live import LiveVessel
+from monitor.runs.live import LiveVessel, screen_sample
 
 log = logging.getLogger("ebullio.service")
 
@@ -443,14 +443,9 @@ class Service:
                     )
                 )
                 continue
-            if item.quality != Quality.FAULT:
-                problem = self.limits[item.vessel].problem(item.channel, item.value)
-                if problem is not None:  # kept as it came, and never given to the filter
-                    where = f"vessel {item.vessel!r} channel {item.channel!r}"
-                    raw = repr(item.value).encode()
-                    quarantined.append(Quarantined(item.t, item.source, where, problem, raw))
-                    item = Sample(item.t, item.vessel, item.channel, math.nan, Quality.FAULT,
-                                  item.source)  # fmt: skip
+            item, kept = screen_sample(item, self.limits[item.vessel])
+            if kept is not None:  # kept as it came, and never given to the filter
+                quarantined.append(kept)
             samples.append(item)
             touched[item.vessel] = vessel
             try:  # as _isolated, written out: this runs for every reading

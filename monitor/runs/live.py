@@ -49,7 +49,8 @@ import math
 from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass
 
-from drivers.sample import Quality, Sample
+from drivers.channels import Quarantined
+from drivers.sample import Quality, ReadingLimits, Sample
 from monitor.estimation.batchfit import FitBudget
 from monitor.estimation.contracts import Estimate
 from monitor.estimation.estimator import VesselEstimator
@@ -193,6 +194,25 @@ class InstantAssembler:
             self.t0 = t
         self.last_step_t = t
         return [Step(self.vessel, t, t - self.t0, values, position)]
+
+
+def screen_sample(sample: Sample, limits: ReadingLimits) -> tuple[Sample, Quarantined | None]:
+    """Return the sample to feed the filter and what to set aside, if anything.
+
+    A value no instrument could give for its vessel (:class:`drivers.sample.ReadingLimits`)
+    becomes a ``fault`` sample (NaN), so the filter never takes it, and is kept as it came
+    in a :class:`drivers.channels.Quarantined` with the reason. The live service and the
+    NATS engine's workers both screen every reading here.
+    """
+    if sample.quality == Quality.FAULT:
+        return sample, None
+    problem = limits.problem(sample.channel, sample.value)
+    if problem is None:
+        return sample, None
+    where = f"vessel {sample.vessel!r} channel {sample.channel!r}"
+    kept = Quarantined(sample.t, sample.source, where, problem, repr(sample.value).encode())
+    fault = Sample(sample.t, sample.vessel, sample.channel, math.nan, Quality.FAULT, sample.source)
+    return fault, kept
 
 
 def steps_from_samples(samples: Iterable[tuple[int, Sample]]) -> Iterator[Step]:

@@ -48,12 +48,30 @@ def free_port() -> int:
         return int(sock.getsockname()[1])
 
 
-def _accepts(port: int) -> bool:
+def accepts(port: int) -> bool:
+    """Return True when something accepts a TCP connection on 127.0.0.1:``port``."""
     try:
         with socket.create_connection((HOST, port), timeout=0.5):
             return True
     except OSError:
         return False
+
+
+def end_process(process: subprocess.Popen[bytes] | None, *, kill: bool) -> None:
+    """End a server's child process: SIGKILL when ``kill``, else SIGTERM and SIGKILL
+    after ``STOP_DEADLINE_S``; nothing when it has ended already."""
+    if process is None or process.poll() is not None:
+        return
+    if kill:
+        process.kill()
+        process.wait(timeout=STOP_DEADLINE_S)
+        return
+    process.terminate()
+    try:
+        process.wait(timeout=STOP_DEADLINE_S)
+    except subprocess.TimeoutExpired:
+        process.kill()
+        process.wait(timeout=STOP_DEADLINE_S)
 
 
 class MosquittoBroker:
@@ -162,7 +180,7 @@ class MosquittoBroker:
         while time.monotonic() < deadline:
             if self._process.poll() is not None:
                 return False
-            if _accepts(self.port):
+            if accepts(self.port):
                 return True
             time.sleep(_POLL_S)
         self._end(kill=True)
@@ -190,18 +208,7 @@ class MosquittoBroker:
 
     def _end(self, *, kill: bool) -> None:
         process, self._process = self._process, None
-        if process is None or process.poll() is not None:
-            return
-        if kill:
-            process.kill()
-            process.wait(timeout=STOP_DEADLINE_S)
-            return
-        process.terminate()
-        try:
-            process.wait(timeout=STOP_DEADLINE_S)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait(timeout=STOP_DEADLINE_S)
+        end_process(process, kill=kill)
 
     def stop(self) -> None:
         """Stop the broker politely (SIGTERM, then SIGKILL after a deadline); idempotent."""

@@ -1,0 +1,1 @@
+"""Beyond one machine: the NATS JetStream engine (workers, leases, checkpoints)."""

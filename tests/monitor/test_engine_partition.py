@@ -1,0 +1,282 @@
+"""The NATS engine's deterministic core: checkpoints and a partition's processing (issue 16).
+
+No server here: :mod:`monitor.engine.partition` and :mod:`monitor.engine.checkpoint` are
+pure. The cluster itself is tested in tests/monitor/test_engine_cluster.py.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import collections
+import json
+import math
+import struct
+import threading
+import zlib
+
+import numpy as np
+import pytest
+
+from drivers.payloads import parse_message
+from monitor.engine import checkpoint
+from monitor.engine.checkpoint import CheckpointError
+from monitor.engine.partition import EngineLayout, Message, Partition, replay_messages
+from monitor.engine.worker import EngineError, Worker, WorkerSettings
+from monitor.records.schema import flatten_estimate
+from monitor.runs.live import LiveVessel, steps_from_samples
+from tests.support.fleet import START_EPOCH_S, fleet_config, kettle_readings, kettle_spec
+from tests.support.mosquitto import free_port
+
+LAYOUT = EngineLayout(partitions=4)
+STAMP_S = START_EPOCH_S + 7200.0  # the stream's time stamps: after every reading's t
+
+
+def _messages(vessel: str, payloads: list[bytes], first_seq: int = 1, part: int = 2):
+    subject = f"ebullio.part.{part}.{vessel}.reading"
+    return [Message(subject, p, first_seq + i, STAMP_S) for i, p in enumerate(payloads)]
+
+
+@pytest.fixture(scope="module")
+def kettle():
+    spec = kettle_spec("kettle-7", seed=7)
+    return spec, kettle_readings("kettle-7", seed=7)
+
+
+def _run(messages, spec, streams=None):
+    part = Partition(LAYOUT, 2, {spec.id: spec}, "test", streams)
+    aside = []
+    for m in messages:
+        aside += part.take(m)
+    return part, aside
+
+
+def test_a_partition_makes_the_figures_of_the_live_path_fed_as_a_replay_is(kettle):
+    """Issue 16: the engine reuses LiveVessel; its estimates equal those of the samples
+    stepped by the recorder replay's rule (steps_from_samples), every one of them."""
+    spec, payloads = kettle
+    part, aside = _run(_messages(spec.id, payloads), spec)
+    assert aside == []
+    stream = part.streams[spec.id]
+
+    topic = f"ebullio/{spec.id}/reading"
+    samples = [s for p in payloads for s in parse_message(topic, p, STAMP_S, "ebullio", "t")]
+    live = LiveVessel(spec.id, spec.metadata, True)
+    expected = []
+    for step in steps_from_samples(enumerate(samples)):
+        e = live.step(step)
+        if e is not None:
+            expected.append(flatten_estimate(e, vessel=spec.id, run=str(live.run_number), t=step.t))
+    assert stream.estimates == len(expected) > 800
+    assert json.dumps(stream.latest) == json.dumps(expected[-1])
+    assert stream.messages == len(payloads)
+    assert stream.latest["water_mass_kg"] == pytest.approx(1.2, rel=0.05)
+
+
+@pytest.mark.parametrize("cut", [40, 130, 300, 700])
+def test_a_checkpoint_round_trip_gives_bit_identical_figures(kettle, cut):
+    """Run ``cut`` messages, save, load into fresh objects, go on: every estimate (the
+    digest chains them all) and the last one equal those of an uninterrupted run. Cuts
+    at rest, early and late in the heat-up (the batch fit's window) and cooling."""
+    spec, payloads = kettle
+    messages = _messages(spec.id, payloads)
+    whole, _ = _run(messages, spec)
+    first, _ = _run(messages[:cut], spec)
+    data = checkpoint.dumps(first.streams)
+    restored = checkpoint.loads(data)
+    assert restored[spec.id] is not first.streams[spec.id]
+    # a take-over re-reads from an earlier sequence: what the checkpoint covers is skipped
+    second, _ = _run(messages[cut - 25 :], spec, restored)
+    a, b = whole.streams[spec.id], second.streams[spec.id]
+    assert (b.seq, b.messages, b.estimates) == (a.seq, a.messages, a.estimates)
+    assert b.digest == a.digest
+    assert json.dumps(b.latest) == json.dumps(a.latest)
+    assert len(data) < 64_000  # compressed; one KV value each
+
+
+def test_checkpoint_keeps_floats_arrays_and_shared_objects_bit_for_bit():
+    nan_payload = struct.unpack("<d", bytes.fromhex("0100000000f8ff7f"))[0]
+    shared = [1.5]
+    state = {
+        "floats": [-0.0, math.inf, -math.inf, 5e-324, 0.1, nan_payload],
+        "array": np.arange(6, dtype=np.float32).reshape(2, 3) / 7,
+        "ints": np.array([1, -2], dtype=np.int64),
+        "scalar": np.float64(1) / 3,
+        "tuple": (1, "a", None, True),
+        "set": {1, 2},
+        "frozen": frozenset({"x"}),
+        "deque": collections.deque([0.25, 0.5], maxlen=3),
+        "counter": collections.Counter({"a": 2}),
+        (1, 2.5): "tuple key",
+        "a": shared,
+        "b": shared,
+    }
+    state["self"] = state  # a cycle
+    back = checkpoint.loads(checkpoint.dumps(state))
+    bits = [struct.pack("<d", x) for x in back["floats"]]
+    assert bits == [struct.pack("<d", x) for x in state["floats"]]
+    assert back["array"].dtype == np.float32
+    assert back["array"].shape == (2, 3)
+    assert back["array"].tobytes() == state["array"].tobytes()
+    assert back["ints"].tolist() == [1, -2]
+    assert type(back["scalar"]) is np.float64
+    assert back["scalar"] == state["scalar"]
+    assert back["tuple"] == (1, "a", None, True)
+    assert back["set"] == {1, 2}
+    assert back["frozen"] == frozenset({"x"})
+    assert back["deque"].maxlen == 3
+    assert list(back["deque"]) == [0.25, 0.5]
+    assert isinstance(back["counter"], collections.Counter)
+    assert back[(1, 2.5)] == "tuple key"
+    assert back["a"] is back["b"]
+    assert back["self"] is back
+
+
+def test_an_attribute_added_to_the_estimator_later_round_trips(kettle):
+    """The walk is generic: a cache added to the estimator is saved without a change."""
+    spec, payloads = kettle
+    part, _ = _run(_messages(spec.id, payloads[:200]), spec)
+    estimator = part.streams[spec.id].live.run.estimator
+    estimator._new_cache = {("G", 3): np.linspace(0.0, 1.0, 5), "n": collections.deque([2.0])}
+    back = checkpoint.loads(checkpoint.dumps(part.streams))
+    cache = back[spec.id].live.run.estimator._new_cache
+    assert cache[("G", 3)].tolist() == np.linspace(0.0, 1.0, 5).tolist()
+    assert list(cache["n"]) == [2.0]
+
+
+@pytest.mark.parametrize(
+    "thing", [threading.Lock(), lambda x: x, print, open, np.array([object()])]
+)
+def test_a_state_holding_something_unknown_is_refused_loudly_with_where(kettle, thing):
+    spec, payloads = kettle
+    part, _ = _run(_messages(spec.id, payloads[:50]), spec)
+    part.streams[spec.id].live.run.estimator._odd = thing
+    with pytest.raises(CheckpointError, match=r"state\['kettle-7'\]\.live\.run\.estimator\._odd"):
+        checkpoint.dumps(part.streams)
+
+
+def _document(tree) -> bytes:
+    text = json.dumps({"format": checkpoint.FORMAT, "version": checkpoint.VERSION, "state": tree})
+    return zlib.compress(text.encode())
+
+
+@pytest.mark.parametrize(
+    "tree",
+    [
+        ["o", 0, "os:_wrap_close", []],
+        ["o", 0, "builtins:object", []],
+        ["c", "subprocess:Popen"],
+        ["c", "monitor.engine.checkpoint:zlib"],  # a module, not a class
+        ["e", "builtins:bool", True],
+        ["o", 0, "monitor.runs.live:LiveVessel", [["__class__", 1]]],
+        ["a", 0, "|O", [1], "AAAAAAAAAAA="],
+        ["r", 5],
+        ["x", 1],
+        {"not": "a node"},
+    ],
+)
+def test_a_checkpoint_from_the_network_builds_only_our_own_classes(tree):
+    with pytest.raises(CheckpointError):
+        checkpoint.loads(_document(tree))
+
+
+@pytest.mark.parametrize("data", [b"", b"junk", zlib.compress(b"[1]"), zlib.compress(b"\xff")])
+def test_bytes_that_are_no_checkpoint_are_refused(data):
+    with pytest.raises(CheckpointError):
+        checkpoint.loads(data)
+
+
+def test_bad_messages_are_set_aside_and_the_vessel_goes_on(kettle):
+    spec, payloads = kettle
+    good = _messages(spec.id, payloads[:300])
+    bad_payloads = [b"{not json", b'{"t": 1, "water_c": NaN}', b'{"water_c": "hot"}',
+                    b"\xff\xfe", b'{"t": 1764547200.5, "power_w": 1e9}']  # fmt: skip
+    mixed, seq = [], 1
+    for i, m in enumerate(good):
+        mixed.append(Message(m.subject, m.payload, seq, m.stamp_s))
+        seq += 1
+        if i % 60 == 5:
+            bad = bad_payloads[(i // 60) % len(bad_payloads)]
+            mixed.append(Message(m.subject, bad, seq, m.stamp_s))
+            seq += 1
+    mixed.append(Message("ebullio.part.2.stranger.reading", payloads[0], seq, STAMP_S))
+    mixed.append(Message("ebullio.part.2.too.many.tokens", payloads[0], seq + 1, STAMP_S))
+    streams, aside = replay_messages(LAYOUT, {spec.id: spec}, mixed)
+    reasons = [q.reason for q in aside]
+    assert len(aside) == 7, reasons
+    assert any("not in the configuration" in r for r in reasons)
+    assert any("subject is not" in r for r in reasons)
+    assert all(q.raw for q in aside)
+    clean, _ = replay_messages(LAYOUT, {spec.id: spec}, good)
+    got, want = streams[spec.id], clean[spec.id]
+    # the implausible power (1e9 W) is a fault reading at its own instant: one more step
+    assert got.set_aside == 4
+    assert got.messages == 305
+    assert got.latest["water_c"] == pytest.approx(want.latest["water_c"], abs=0.5)
+
+
+def test_a_failure_inside_one_vessel_sets_its_message_aside_and_the_rest_go_on(kettle, monkeypatch):
+    spec, payloads = kettle
+    other = kettle_spec("kettle-8", seed=8)
+    part = Partition(LAYOUT, 2, {spec.id: spec, other.id: other}, "test")
+    messages = _messages(spec.id, payloads[:50]) + [
+        Message(f"ebullio.part.2.{other.id}.reading", p, 100 + i, STAMP_S)
+        for i, p in enumerate(kettle_readings("kettle-8", seed=8)[:50])
+    ]
+    for m in messages[:10]:
+        part.take(m)
+    broken = part.streams[spec.id].live
+
+    def fail(_step):
+        raise RuntimeError("a bug")
+
+    monkeypatch.setattr(broken, "step", fail)
+    aside = [q for m in messages[10:] for q in part.take(m)]
+    assert len(aside) == 40  # every later message of the broken vessel, none of the other's
+    assert all("processing failed: RuntimeError: a bug" in q.reason for q in aside)
+    assert part.faulted == {spec.id}
+    assert part.streams[other.id].messages == 50
+    assert part.streams[spec.id].seq == 50
+
+
+def test_ebullio_run_engine_refuses_a_bad_url_and_instruments(tmp_path, capsys):
+    from monitor.cli import main
+
+    config = tmp_path / "fleet.toml"
+    config.write_text(fleet_config(["kettle-1"], 1883))
+    assert main(["run", "--config", str(config), "--engine", "http://127.0.0.1:4222"]) == 2
+    assert "give nats://HOST:PORT" in capsys.readouterr().err
+    text = config.read_text() + (
+        '\n[[instruments]]\nurl = "serial:///dev/ttyUSB9?baud=9600"\nframing = "csv"\n'
+        'fields = ["w", "p"]\n'
+        '[[vessels]]\nid = "urn-1"\nvessel_heat_capacity_j_per_k = 900\n'
+        '[[vessels.channels]]\ninstrument = "serial:///dev/ttyUSB9?baud=9600"\n'
+        'field = "w"\nrole = "water"\nunit = "degC"\n'
+        '[[vessels.channels]]\ninstrument = "serial:///dev/ttyUSB9?baud=9600"\n'
+        'field = "p"\nrole = "power"\nunit = "W"\n'
+    )
+    config.write_text(text)
+    assert main(["run", "--config", str(config), "--engine", "nats://127.0.0.1:4222"]) == 2
+    assert "[[instruments]] are read by `ebullio run` without --engine" in capsys.readouterr().err
+    assert main(["run", "--config", str(config)]) == 2
+    assert "--log is needed" in capsys.readouterr().err
+
+
+def test_a_worker_without_a_server_stops_with_a_clear_error(kettle):
+    spec, _ = kettle
+    url = f"nats://127.0.0.1:{free_port()}"  # nothing listens there
+    worker = Worker([url], {spec.id: spec}, LAYOUT, "lonely", WorkerSettings(setup_patience_s=1.5))
+    with pytest.raises(EngineError, match="cannot reach the NATS server"):
+        asyncio.run(worker.run())
+
+
+def test_a_worker_told_to_stop_while_it_connects_stops_at_once(kettle):
+    spec, _ = kettle
+    url = f"nats://127.0.0.1:{free_port()}"  # nothing listens there
+    worker = Worker([url], {spec.id: spec}, LAYOUT, "patient", WorkerSettings(setup_patience_s=60))
+
+    async def stop_soon():
+        asyncio.get_running_loop().call_later(0.5, worker.stop)
+        return await asyncio.wait_for(worker.run(), 5.0)
+
+    stats = asyncio.run(stop_soon())
+    assert stats.partitions_taken == 0
