@@ -7,7 +7,8 @@ figures without touching the file. A CSV log is replayed once through the estima
 instead. Either way an estimate arrives in its one flat form
 (:func:`monitor.records.schema.flatten_estimate`); this module only picks what the board
 shows of it and shapes it for display: no SQL here. Long series are downsampled for
-display with a min/max envelope (:func:`envelope`): each bucket keeps its lowest and
+display with a min/max envelope (:func:`monitor.reports.plots.envelope`, shared with the
+audit report): each bucket keeps its lowest and
 highest point, so spikes and switch-offs stay visible; every figure on the board is
 still computed from the full data by the estimator.
 """
@@ -18,40 +19,12 @@ import math
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
-import numpy as np
-
 from monitor.records.recorder import LogReader, is_recorder_log
 from monitor.records.schema import flatten_estimate
+from monitor.reports.plots import MAX_POINTS, envelope
 
-#: Points per series sent to the browser at most (about two per horizontal pixel).
-MAX_POINTS = 2400
 #: Channels drawn on the readings chart.
 CHANNELS = ("water", "element", "ambient", "power")
-
-
-def envelope(
-    t: Sequence[float], y: Sequence[float | None], max_points: int = MAX_POINTS
-) -> tuple[list[float], list[float | None]]:
-    """Return (t, y) reduced to at most ``max_points`` by a min/max envelope per bucket.
-
-    Each bucket of consecutive points gives its minimum and its maximum, in time
-    order, so peaks survive; series short enough are returned whole.
-    """
-    if len(t) <= max_points:
-        return list(t), list(y)
-    ys = np.array(y, dtype=float)  # None becomes NaN
-    keep = ~np.isnan(ys)
-    ts, ys = np.asarray(t, dtype=float)[keep], ys[keep]
-    if len(ys) <= max_points:
-        return ts.tolist(), ys.tolist()
-    size = math.ceil(len(ys) / (max_points // 2))
-    buckets = math.ceil(len(ys) / size)
-    pad = buckets * size - len(ys)
-    base = np.arange(buckets) * size
-    lo = np.concatenate([ys, np.full(pad, np.inf)]).reshape(buckets, size).argmin(axis=1)
-    hi = np.concatenate([ys, np.full(pad, -np.inf)]).reshape(buckets, size).argmax(axis=1)
-    picked = np.unique(np.concatenate([base + lo, base + hi]))  # sorted: time order
-    return ts[picked].tolist(), ys[picked].tolist()
 
 
 #: What the charts draw of each estimate (names of the one mapping, monitor.records.schema).

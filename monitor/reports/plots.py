@@ -2,12 +2,44 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 
+import numpy as np
 import plotly.graph_objects as go
 from plotly.subplots import make_subplots
 
 from monitor.runs.drift import RULES, figure, verdict_of
+
+#: Points per series drawn at most (about two per horizontal pixel), on the board and in
+#: the audit report.
+MAX_POINTS = 2400
+
+
+def envelope(
+    t: Sequence[float], y: Sequence[float | None], max_points: int = MAX_POINTS
+) -> tuple[list[float], list[float | None]]:
+    """Return (t, y) reduced to at most ``max_points`` by a min/max envelope per bucket.
+
+    Each bucket of consecutive points gives its minimum and its maximum, in time
+    order, so peaks survive; series short enough are returned whole.
+    """
+    if len(t) <= max_points:
+        return list(t), list(y)
+    ys = np.array(y, dtype=float)  # None becomes NaN
+    keep = ~np.isnan(ys)
+    ts, ys = np.asarray(t, dtype=float)[keep], ys[keep]
+    if len(ys) <= max_points:
+        return ts.tolist(), ys.tolist()
+    size = math.ceil(len(ys) / (max_points // 2))
+    buckets = math.ceil(len(ys) / size)
+    pad = buckets * size - len(ys)
+    base = np.arange(buckets) * size
+    lo = np.concatenate([ys, np.full(pad, np.inf)]).reshape(buckets, size).argmin(axis=1)
+    hi = np.concatenate([ys, np.full(pad, -np.inf)]).reshape(buckets, size).argmax(axis=1)
+    picked = np.unique(np.concatenate([base + lo, base + hi]))  # sorted: time order
+    return ts[picked].tolist(), ys[picked].tolist()
+
 
 #: Okabe and Ito's colour-blind-safe colours (a published set; from memory).
 PALETTE = {

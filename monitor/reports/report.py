@@ -16,6 +16,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import html
+import math
 from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
@@ -29,7 +30,7 @@ from monitor import __version__
 from monitor.estimation.contracts import Estimate
 from monitor.estimation.settings import EstimatorSettings
 from monitor.records.recorder import is_recorder_log, sessions, verify
-from monitor.reports.plots import PALETTE, add_band, history_figure
+from monitor.reports.plots import MAX_POINTS, PALETTE, add_band, envelope, history_figure
 from monitor.reports.safety import SAFETY_TEXT
 from monitor.runs.drift import (
     VERDICT_MARK,
@@ -92,14 +93,17 @@ def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
                         specs=[[{"secondary_y": True}], [{}], [{}]])  # fmt: skip
     t0 = run.rows[0].time_s if run.rows else 0.0
     t = [r.time_s - t0 for r in run.rows]
+    # a long run's readings are drawn as the board draws them: a min/max envelope
     for channel in ("water", "element", "ambient"):
         ys = [r.values.get(channel) for r in run.rows]
         if any(y is not None for y in ys):
-            fig.add_trace(go.Scatter(x=t, y=ys, name=f"{channel} °C", mode="lines",
+            tc, yc = envelope(t, ys)
+            fig.add_trace(go.Scatter(x=tc, y=yc, name=f"{channel} °C", mode="lines",
                                      line={"color": PALETTE[channel]}), row=1, col=1)  # fmt: skip
     power = [r.values.get("power") for r in run.rows]
     if any(p is not None for p in power):
-        fig.add_trace(go.Scatter(x=t, y=power, name="power W", mode="lines",
+        tp, yp = envelope(t, power)
+        fig.add_trace(go.Scatter(x=tp, y=yp, name="power W", mode="lines",
                                  line={"color": PALETTE["power"], "width": 1}),
                       row=1, col=1, secondary_y=True)  # fmt: skip
     te = [e.t_s - t0 for e in estimates]
@@ -145,14 +149,23 @@ def build_report(
     if chosen is None:
         raise LogFormatError(f"{log_path}: vessel {vessel!r} has no run {run_label!r}; "
                              f"its runs: {', '.join(labels)}")  # fmt: skip
+    # the chosen run's estimates for its chart: every n-th (about MAX_POINTS) and the
+    # last, so a week-long run's report neither holds nor draws a week of them
     estimates: list[Estimate] = []
+    every = max(1, math.ceil(len(chosen.rows) / MAX_POINTS))
+    seen: list = [0, None]
     results = []
 
     def keep(_run: Run, e: Estimate) -> None:
-        estimates.append(e)
+        seen[0] += 1
+        seen[1] = e
+        if seen[0] % every == 1 or every == 1:
+            estimates.append(e)
 
     for run in mine:
         results.append(replay_run(run, on_estimate=keep if run is chosen else None))
+    if seen[1] is not None and (not estimates or estimates[-1] is not seen[1]):
+        estimates.append(seen[1])
     drift = drift_over_runs(results, {vessel: chosen.log.metadata})
     index = mine.index(chosen)
     result, flags = results[index], drift[index]

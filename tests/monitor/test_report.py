@@ -179,3 +179,30 @@ def test_the_printed_report_keeps_plots_whole_and_leaves_the_toolbar_out() -> No
     assert ".modebar" in rules[: rules.index("</style>")]
     assert "display: none" in rules[: rules.index("</style>")]
     assert "break-inside: avoid" in rules[: rules.index("</style>")]
+
+
+def test_a_long_runs_chart_is_drawn_from_a_bounded_number_of_points(tmp_path, monkeypatch):
+    # a run longer than MAX_POINTS readings: its readings are drawn as a min/max envelope
+    # and its estimates every n-th and the last, as the board draws them
+    from monitor.cli import main
+    from monitor.reports import report as report_module
+    from monitor.reports.plots import MAX_POINTS
+
+    csv_log = tmp_path / "long.csv"
+    assert main(["simulate", "--duration-s", "6000", "--out", str(csv_log)]) == 0
+    drawn = []
+
+    def capture(fig, **_kwargs):
+        drawn.append(fig)
+        return ""
+
+    monkeypatch.setattr(report_module.pio, "to_html", capture)
+    build_report(str(csv_log))
+    run_fig = drawn[0]
+    lengths = [len(trace.x) for trace in run_fig.data if trace.x is not None]
+    assert lengths
+    assert max(lengths) <= MAX_POINTS + 2
+    assert min(lengths) >= MAX_POINTS // 4  # bounded, not emptied
+    # the estimates' traces end at the run's last estimate
+    water_mass = [trace for trace in run_fig.data if trace.x is not None][-1]
+    assert water_mass.x[-1] >= 5990.0
