@@ -29,7 +29,7 @@ from drivers.errors import LogFormatError
 from monitor import __version__
 from monitor.estimation.contracts import Estimate
 from monitor.estimation.settings import EstimatorSettings
-from monitor.records.recorder import is_recorder_log, sessions, verify
+from monitor.records.recorder import LogReader, is_recorder_log, sessions, verify
 from monitor.reports.plots import MAX_POINTS, PALETTE, add_band, envelope, history_figure
 from monitor.reports.safety import SAFETY_TEXT
 from monitor.runs.drift import (
@@ -132,9 +132,15 @@ def build_report(
     ``vessel`` may be left out when the log holds one; ``run_label`` defaults to the
     last run. Raises LogFormatError naming the choices when a choice is needed or wrong.
     """
-    logs = read_log(log_path)
+    recorder = is_recorder_log(log_path)
+    # of a recorder log only the chosen vessel's samples are read (its runs split the
+    # same: each vessel's instants are assembled apart); a CSV log is read whole
+    logs = read_log(log_path, vessel if recorder else None)
     runs, quarantined = split_runs(logs)
     vessels = sorted({r.vessel for r in runs})
+    if recorder and vessel is not None and vessel not in vessels:
+        with LogReader(log_path) as reader:
+            vessels = reader.vessels()  # to name the choices
     if vessel is None:
         if len(vessels) != 1:
             raise LogFormatError(f"{log_path}: holds vessels {', '.join(vessels) or '(none)'}; "
@@ -175,7 +181,7 @@ def build_report(
                                              ("file SHA-256", file_sha256(log_path))]  # fmt: skip
     config_text = None
     banner = ""
-    if is_recorder_log(log_path):
+    if recorder:
         check = verify(log_path) if verified is None else verified
         state = (
             "verified: every block matches"

@@ -206,3 +206,20 @@ def test_a_long_runs_chart_is_drawn_from_a_bounded_number_of_points(tmp_path, mo
     # the estimates' traces end at the run's last estimate
     water_mass = [trace for trace in run_fig.data if trace.x is not None][-1]
     assert water_mass.x[-1] >= 5990.0
+
+
+def test_a_fleet_logs_report_reads_its_vessel_and_names_the_others(tmp_path) -> None:
+    # of a recorder log the report reads only the chosen vessel's samples; a vessel the
+    # log does not hold is refused naming those it does
+    path = tmp_path / "fleet.sqlite"
+    with Recorder(path, version="test", config_text="# two kettles of our own\n") as rec:
+        for i, name in enumerate(("kettle-1", "kettle-2")):
+            scenario = replace(kettle_scenario(duration_s=300.0), vessel=name)
+            for batch in SimulatedRig(scenario, seed=i).run():
+                rec.add_samples(batch)
+            rec.commit()
+            rec.add_vessel(name, {**scenario_metadata(scenario, seed=i), "element_sensor": "yes"})
+    page = build_report(str(path), vessel="kettle-2")
+    assert "ebullio report: kettle-2, run 1" in page
+    with pytest.raises(LogFormatError, match="no vessel 'kettle-9'; it holds kettle-1, kettle-2"):
+        build_report(str(path), vessel="kettle-9")
