@@ -42,8 +42,12 @@ def test_three_workers_on_three_nodes_survive_a_worker_and_a_node_killed(tmp_pat
     report, final, logs = run_failover(tmp_path)
     print(json.dumps(report, indent=1))
     assert report["killed_worker_take_over_s"] <= LIVENESS_S, logs
-    assert (report["after_node_kill_all_held_s"] or 1e9) <= LIVENESS_S, logs
-    assert (report["after_node_kill_all_renewed_s"] or 1e9) <= 1.5 * LIVENESS_S, logs
+    held_s = report["after_node_kill_all_held_s"]
+    renewed_s = report["after_node_kill_all_renewed_s"]
+    assert held_s is not None, logs  # None: not within the scenario's wait
+    assert renewed_s is not None, logs
+    assert held_s <= LIVENESS_S, logs
+    assert renewed_s <= 1.5 * LIVENESS_S, logs
     assert report["published"] == report["published_expected"]
     assert report["stream_matches_published"], "the stream is not what the instruments sent"
     assert report["readings_lost"] == 0, report["short"]
