@@ -15,13 +15,12 @@ still computed from the full data by the estimator.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
 from monitor.records.recorder import LogReader, is_recorder_log
 from monitor.records.schema import flatten_estimate
-from monitor.reports.plots import MAX_POINTS, envelope
+from monitor.reports.plots import MAX_POINTS, Thinned, envelope
 
 #: Channels drawn on the readings chart.
 CHANNELS = ("water", "element", "ambient", "power")
@@ -202,25 +201,19 @@ def replay_one(
     from monitor.runs.replay import replay_run
 
     start = run.log.start_epoch_s or 0.0
-    rows: list[dict[str, object]] = []
     total = max(len(run.rows), 1)
-    every = max(1, math.ceil(total / max_points))
-    seen = [0, None]  # estimates so far, the newest one
-
-    def flat(e) -> dict[str, object]:
-        return flatten_estimate(e, vessel=run.vessel, run=run.label, t=start + e.t_s)
+    thinned = Thinned(total, max_points)
 
     def keep(_run, e) -> None:
-        seen[0] += 1
-        seen[1] = e
-        if seen[0] % every == 1 or every == 1:
-            rows.append(flat(e))
-        if progress is not None and seen[0] % 2000 == 0:
-            progress(seen[0] / total)
+        thinned.add(e)
+        if progress is not None and thinned.count % 2000 == 0:
+            progress(thinned.count / total)
 
     summary = replay_run(run, on_estimate=keep)
-    if seen[1] is not None and (not rows or rows[-1]["t"] != start + seen[1].t_s):
-        rows.append(flat(seen[1]))
+    rows = [
+        flatten_estimate(e, vessel=run.vessel, run=run.label, t=start + e.t_s)
+        for e in thinned.items()
+    ]
     series = {}
     for channel in CHANNELS:
         pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]

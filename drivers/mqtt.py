@@ -431,12 +431,11 @@ def encode_json(value: object) -> bytes:
 
     Raises TypeError for a value JSON cannot hold (a caller's mistake, not bad input).
     """
+    options = {"separators": (",", ":"), "ensure_ascii": False, "allow_nan": False}
     try:  # the usual value holds no NaN and only plain containers: no walk first
-        text = json.dumps(value, separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+        text = json.dumps(value, **options)
     except (ValueError, TypeError):
-        text = json.dumps(
-            _json_ready(value), separators=(",", ":"), ensure_ascii=False, allow_nan=False
-        )
+        text = json.dumps(_json_ready(value), **options)
     return text.encode("utf-8")
 
 

@@ -480,6 +480,13 @@ class Worker:
                 with contextlib.suppress(*NATS_ERRORS):
                     await subscription.unsubscribe()
 
+    async def _retire(self, subscription: Any, holder: list[Any]) -> None:
+        """Count a consumer replaced, let it go (a broken link ignored) and forget it."""
+        self.stats.consumer_restarts += 1
+        with contextlib.suppress(*NATS_ERRORS):
+            await subscription.unsubscribe()
+        holder.clear()
+
     async def _serve_from(self, lease: _Lease, part: Partition, next_seq: int,
                           holder: list[Any]) -> None:  # fmt: skip
         """Read the partition's stream from ``next_seq`` and step its vessels (see
@@ -520,20 +527,14 @@ class Worker:
                     if not healthy:
                         log.info("%s: partition %d: the consumer delivers nothing; a new one "
                                  "from %d", self.name, number, next_seq)  # fmt: skip
-                        self.stats.consumer_restarts += 1
-                        with contextlib.suppress(*NATS_ERRORS):
-                            await subscription.unsubscribe()
+                        await self._retire(subscription, holder)
                         subscription = None
-                        holder.clear()
                         continue
             except NATS_ERRORS as exc:
                 log.info("%s: partition %d: consumer failed (%r); a new one from %d",
                          self.name, number, exc, next_seq)  # fmt: skip
-                self.stats.consumer_restarts += 1
-                with contextlib.suppress(*NATS_ERRORS):
-                    await subscription.unsubscribe()
+                await self._retire(subscription, holder)
                 subscription = None
-                holder.clear()
                 continue
             aside: list[tuple[int, Quarantined]] = []
             slice_began = time.perf_counter()

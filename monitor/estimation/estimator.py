@@ -233,6 +233,8 @@ class VesselEstimator:
         # the usual predict and update each in one compiled call (FastCore only: the
         # filterpy path is the reference it is checked against)
         self._fused = core is FastCore
+        # the sensor lags' states as the compiled predicts take them (-1: not modelled)
+        self._lag_ix = tuple(-1 if i is None else i for i in (lay.lagged, lay.element_lagged))
         self._q_cache: dict[tuple[float, bool], np.ndarray] = {}
         self.heat_up_fit: batchfit.HeatUpFit | None = (
             batchfit.HeatUpFit(self._fit_priors(tau, tau_e), two_node)
@@ -925,7 +927,7 @@ class VesselEstimator:
         if self._fused and not boiling:
             # the usual step, in one compiled call (the same figures as the path below)
             q = self._step_noise(dt_s, heating, False, switched_w, t_since_switch, x_array)
-            lagged_ix = -1 if lay.lagged is None else lay.lagged
+            lagged_ix, element_lagged_ix = self._lag_ix
             if lay.element is None:
                 done, fx_array, p = transition.one_node_predict(
                     x_array, core.P, q, dt_s, power_w, ambient_c, lagged_ix,
@@ -934,8 +936,7 @@ class VesselEstimator:
             else:
                 done, fx_array, p = transition.two_node_predict(
                     x_array, core.P, q, dt_s, power_w, ambient_c, self.element_capacity_j_per_k,
-                    lagged_ix, self.lag_rate_per_s or math.nan,
-                    -1 if lay.element_lagged is None else lay.element_lagged,
+                    lagged_ix, self.lag_rate_per_s or math.nan, element_lagged_ix,
                     self.element_lag_rate_per_s or math.nan, self.boiling_point_c,
                 )  # fmt: skip
             if done:
@@ -1056,13 +1057,12 @@ class VesselEstimator:
         learnt_ix, frozen_mask = self._update_arrays[consider]
         # past either, a reading takes the general path below (Huber, set aside, flags)
         aside_above = min(s.huber_k, s.gross_error_sd)
-        lo_c, hi_c = s.plausible_c
         for name, j in self._channels:
             value = readings.get(name)
             if value is None:
                 continue
             watch = self._watch[name]
-            if not (math.isfinite(value) and lo_c <= value <= hi_c):  # _plausible
+            if not self._plausible(value):
                 watch.noise.break_chain()
                 flags.append(
                     Flag(
@@ -1074,11 +1074,7 @@ class VesselEstimator:
                     )
                 )
                 continue
-            if watch.last_value != value:  # moving: not stuck (_stuck's first test)
-                watch.last_value = value
-                watch.same_since_s = t_s
-                watch.model_at_same = core.x[j]
-            elif self._stuck(t_s, name, value, core.x[j]):
+            if self._stuck(t_s, name, value, core.x[j]):
                 watch.noise.break_chain()
                 flags.append(
                     Flag(
@@ -1095,10 +1091,7 @@ class VesselEstimator:
                 watch.noise.add(t_s, value, s)
             else:
                 watch.noise.break_chain()
-            sd = s.water_noise_sd_c if name == "water" else s.element_noise_sd_c
-            measured = watch.noise.sd_c  # the filter uses the larger (reading_noise_sd_c)
-            if measured is not None and measured > sd:
-                sd = measured
+            sd = self.reading_noise_sd_c(name)
             r = sd * sd
             if self._fused:  # the usual reading in one compiled call (bit for bit the same)
                 code, nis, x_new, p_new = kernels.bounded_update(
@@ -1236,9 +1229,6 @@ class VesselEstimator:
 
     # -- what the operator sees -----------------------------------------------------------
 
-    def _std(self, i: int) -> float:
-        return math.sqrt(max(self.core.P[i, i], 0.0))
-
     def _estimate(
         self, t_s: float, power_w: float, ambient_c: float, flags: list[Flag]
     ) -> Estimate:
@@ -1246,7 +1236,7 @@ class VesselEstimator:
         x = self.core.x.tolist()
         variances = self.core.P.diagonal().tolist()
 
-        def sd(i: int) -> float:  # as _std, from the diagonal read once
+        def sd(i: int) -> float:  # a state's standard deviation, from the diagonal read once
             return math.sqrt(max(variances[i], 0.0))
 
         ua, c, g = self._params(x)

@@ -154,8 +154,15 @@ def _one_node(
         float(ua_w_per_k), float(capacity_j_per_k), _nan_if_none(lag_rate_per_s),
         want_sensitivities,
     )  # fmt: skip
+    return _as_rows(temps, m, s if usable else None)
+
+
+def _as_rows(
+    temps: np.ndarray, m: np.ndarray, s: np.ndarray | None
+) -> tuple[tuple[float, ...], Rows, Rows | None]:
+    """Return a step's (temperatures, M, S or None) arrays as tuples of plain floats."""
     rows = tuple(tuple(row) for row in m.tolist())
-    sens = tuple(tuple(row) for row in s.tolist()) if usable else None
+    sens = tuple(tuple(row) for row in s.tolist()) if s is not None else None
     return tuple(temps.tolist()), rows, sens
 
 
@@ -396,10 +403,7 @@ def two_node_step_arrays(
 
 def _two_node(*args: object) -> tuple[tuple[float, ...], Rows, Rows | None]:
     """Return :func:`two_node_step_arrays` as tuples of floats."""
-    temps, m, s = two_node_step_arrays(*args)  # type: ignore[arg-type]
-    rows = tuple(tuple(r) for r in m.tolist())
-    sens = tuple(tuple(r) for r in s.tolist()) if s is not None else None
-    return tuple(temps.tolist()), rows, sens
+    return _as_rows(*two_node_step_arrays(*args))  # type: ignore[arg-type]
 
 
 def two_node_step(

@@ -196,6 +196,9 @@ _N_LIQUID_BELOW_TB = 100
 _N_LIQUID_ABOVE_TB = 50
 _N_LATENT = 150
 _SLOPE_STEP_FRACTION = 1e-3  # central-difference step, as a fraction of the grid step
+#: The grid the tables are built on, written in the shipped file: a file for another grid
+#: is not used.
+_TABLE_GRID = [_N_LIQUID_BELOW_TB, _N_LIQUID_ABOVE_TB, _N_LATENT, _SLOPE_STEP_FRACTION]
 
 
 class _Segment(NamedTuple):
@@ -349,7 +352,7 @@ def tables_document() -> dict[str, object]:
         "format": TABLES_FORMAT,
         "version": 1,
         "what": "cubic Hermite pieces of IAPWS-IF97 water properties (monitor/physics/water.py)",
-        "grid": [_N_LIQUID_BELOW_TB, _N_LIQUID_ABOVE_TB, _N_LATENT, _SLOPE_STEP_FRACTION],
+        "grid": _TABLE_GRID,
         "liquid_below_tb": [segment(seg) for seg in below],
         "liquid_above_tb": [segment(seg) for seg in above],
         "latent": segment(_latent_segment_from_if97()),
@@ -360,10 +363,10 @@ def tables_document() -> dict[str, object]:
 def _shipped_tables() -> dict[str, object] | None:
     """Return the shipped tables' document, or None (with a warning) when it is missing,
     unreadable or for another grid: the tables are then built from IF97 (about 0.5 s)."""
-    grid = [_N_LIQUID_BELOW_TB, _N_LIQUID_ABOVE_TB, _N_LATENT, _SLOPE_STEP_FRACTION]
     try:
         doc = json.loads(TABLES_PATH.read_text(encoding="utf-8"))
-        if doc.get("format") == TABLES_FORMAT and doc.get("version") == 1 and doc["grid"] == grid:
+        version_ok = doc.get("format") == TABLES_FORMAT and doc.get("version") == 1
+        if version_ok and doc["grid"] == _TABLE_GRID:
             return doc
         problem = "it is for another table layout"
     except (OSError, ValueError, KeyError, TypeError, AttributeError) as exc:

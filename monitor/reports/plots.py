@@ -41,6 +41,31 @@ def envelope(
     return ts[picked].tolist(), ys[picked].tolist()
 
 
+class Thinned:
+    """Every n-th of a stream of about ``expected`` items, so that about ``max_points``
+    are kept, and always the last: what a chart draws of a run's estimates (the board's
+    replay and the audit report), without holding them all."""
+
+    def __init__(self, expected: int, max_points: int = MAX_POINTS) -> None:
+        self.every = max(1, math.ceil(max(expected, 1) / max_points))
+        self.count = 0
+        self._kept: list = []
+        self._last: object = None
+
+    def add(self, item: object) -> None:
+        """Take the next item of the stream."""
+        self.count += 1
+        self._last = item
+        if self.count % self.every == 1 or self.every == 1:
+            self._kept.append(item)
+
+    def items(self) -> list:
+        """Return the items kept, the last of the stream included."""
+        if self._last is not None and (not self._kept or self._kept[-1] is not self._last):
+            return [*self._kept, self._last]
+        return list(self._kept)
+
+
 #: Okabe and Ito's colour-blind-safe colours (a published set; from memory).
 PALETTE = {
     "water": "#0072B2",

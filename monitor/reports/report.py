@@ -16,7 +16,6 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import html
-import math
 from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
@@ -30,7 +29,7 @@ from monitor import __version__
 from monitor.estimation.contracts import Estimate
 from monitor.estimation.settings import EstimatorSettings
 from monitor.records.recorder import LogReader, is_recorder_log, sessions, verify
-from monitor.reports.plots import MAX_POINTS, PALETTE, add_band, envelope, history_figure
+from monitor.reports.plots import PALETTE, Thinned, add_band, envelope, history_figure
 from monitor.reports.safety import SAFETY_TEXT
 from monitor.runs.drift import (
     VERDICT_MARK,
@@ -157,21 +156,15 @@ def build_report(
                              f"its runs: {', '.join(labels)}")  # fmt: skip
     # the chosen run's estimates for its chart: every n-th (about MAX_POINTS) and the
     # last, so a week-long run's report neither holds nor draws a week of them
-    estimates: list[Estimate] = []
-    every = max(1, math.ceil(len(chosen.rows) / MAX_POINTS))
-    seen: list = [0, None]
+    thinned = Thinned(len(chosen.rows))
     results = []
 
     def keep(_run: Run, e: Estimate) -> None:
-        seen[0] += 1
-        seen[1] = e
-        if seen[0] % every == 1 or every == 1:
-            estimates.append(e)
+        thinned.add(e)
 
     for run in mine:
         results.append(replay_run(run, on_estimate=keep if run is chosen else None))
-    if seen[1] is not None and (not estimates or estimates[-1] is not seen[1]):
-        estimates.append(seen[1])
+    estimates: list[Estimate] = thinned.items()
     drift = drift_over_runs(results, {vessel: chosen.log.metadata})
     index = mine.index(chosen)
     result, flags = results[index], drift[index]
