@@ -192,7 +192,8 @@ def replay_csv(path: str) -> dict[str, object]:
 def replay_one(
     run, progress: Callable[[float], None] | None = None, max_points: int = MAX_POINTS
 ) -> dict[str, object]:
-    """Replay one run (monitor.runs.replay.Run): its series, estimates, latest, and summary.
+    """Replay one run held in memory (monitor.runs.run.Run, of a CSV log the board has
+    read whole): its series, estimates, latest, and summary.
 
     Every estimate is computed; every n-th is kept for the charts (at most about
     ``max_points``, and always the last), so a week-long run does not hold a week of
@@ -210,22 +211,67 @@ def replay_one(
             progress(thinned.count / total)
 
     summary = replay_run(run, on_estimate=keep)
-    rows = [
-        flatten_estimate(e, vessel=run.vessel, run=run.label, t=start + e.t_s)
-        for e in thinned.items()
-    ]
     series = {}
     for channel in CHANNELS:
         pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]
         pts = [p for p in pts if p[1] is not None]
-        t, y = envelope([p[0] for p in pts], [p[1] for p in pts])
-        series[channel] = {"t": t, "y": y}
-    return {"series": series, "estimates": _columns(rows, phase=True),
+        series[channel] = envelope([p[0] for p in pts], [p[1] for p in pts], max_points)
+    return _run_detail(run.vessel, run.label, start, thinned.items(), series, summary)
+
+
+def replay_streamed_run(
+    path: str, span, progress: Callable[[float], None] | None = None,
+    max_points: int = MAX_POINTS,
+) -> dict[str, object]:  # fmt: skip
+    """Replay one run of a log (a :class:`monitor.runs.replay.RunSpan` of it) as
+    :func:`replay_one` does, reading the log as a stream: the memory it takes does not
+    grow with the run or the log (the series are thinned as they come,
+    :class:`monitor.reports.plots.EnvelopeStream`). Raises LogFormatError when the log
+    has no such run.
+    """
+    from drivers.errors import LogFormatError
+    from monitor.reports.plots import EnvelopeStream
+    from monitor.runs.replay import replay_streamed
+
+    start = span.start_epoch_s
+    total = max(span.steps, 1)
+    thinned = Thinned(total, max_points)
+    lines = {c: EnvelopeStream(*span.points.get(c, (0, 0)), max_points) for c in CHANNELS}
+
+    def keep(e) -> None:
+        thinned.add(e)
+        if progress is not None and thinned.count % 2000 == 0:
+            progress(thinned.count / total)
+
+    def take(row) -> None:
+        t = start + row.time_s
+        values = row.values
+        for channel, line in lines.items():
+            value = values.get(channel)
+            if value is not None:
+                line.add(t, value)
+
+    summary = replay_streamed(path, span.vessel, span.number, on_row=take, on_estimate=keep)
+    if summary is None:
+        raise LogFormatError(f"{path}: vessel {span.vessel!r} has no run {span.label!r}")
+    series = {channel: line.points() for channel, line in lines.items()}
+    return _run_detail(span.vessel, span.label, start, thinned.items(), series, summary)
+
+
+def _run_detail(
+    vessel: str, label: str, start: float, estimates: list,
+    series: Mapping[str, tuple[list[float], list[float | None]]], summary: dict[str, object],
+) -> dict[str, object]:  # fmt: skip
+    """Return a replayed run's charts: its series, thinned estimates, latest and summary."""
+    rows = [flatten_estimate(e, vessel=vessel, run=label, t=start + e.t_s) for e in estimates]
+    return {"series": {c: {"t": t, "y": y} for c, (t, y) in series.items()},
+            "estimates": _columns(rows, phase=True),
             "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
 
 
 def split_log(path: str, vessel: str | None = None) -> list:
-    """Return the runs of a log as the replay splits them (monitor.runs.replay.Run objects).
+    """Return the runs of a log as the replay splits them (monitor.runs.replay.Run objects),
+    rows and all.
 
     Reads the whole log, or of a recorder log only ``vessel``'s samples (the same path
     as ``ebullio replay``; a fleet's log is not read whole to replay one vessel).
@@ -236,27 +282,24 @@ def split_log(path: str, vessel: str | None = None) -> list:
     return split_runs(read_log(path, vessel))[0]
 
 
-def list_runs(path: str, runs: list | None = None) -> list[dict[str, object]]:
+def list_runs(path: str, spans: list | None = None) -> list[dict[str, object]]:
     """Return the runs of a log: vessel, label, start and end (Unix s), steps.
 
     A recorder log whose ``runs`` table has rows is listed from it (the live service
     writes a row as each run ends; cheap however long the log), each marked
-    ``recorded``: such a run has ended, and is found again by its span. Otherwise the log is
-    read and split as ``ebullio replay`` splits it; ``runs`` is :func:`split_log` of
-    the log when the caller has it already.
+    ``recorded``: such a run has ended, and is found again by its span. Otherwise the
+    log is read as a stream and split as ``ebullio replay`` splits it
+    (:func:`monitor.runs.replay.run_spans`; ``spans`` when the caller has them).
     """
-    if runs is None and is_recorder_log(path):
+    from monitor.runs.replay import run_spans
+
+    if spans is None and is_recorder_log(path):
         recorded = _table_runs(path)
         if recorded:
             return recorded
-    out = []
-    for run in split_log(path) if runs is None else runs:
-        start = run.log.start_epoch_s or 0.0
-        if run.rows:
-            out.append({"vessel": run.vessel, "run": run.label,
-                        "start_t": start + run.rows[0].time_s,
-                        "end_t": start + run.rows[-1].time_s, "steps": len(run.rows)})  # fmt: skip
-    return out
+    return [{"vessel": r.vessel, "run": r.label, "start_t": r.start_epoch_s + r.start_s,
+             "end_t": r.start_epoch_s + r.end_s, "steps": r.steps}
+            for r in (run_spans(path) if spans is None else spans)]  # fmt: skip
 
 
 def _table_runs(path: str) -> list[dict[str, object]]:
@@ -271,22 +314,21 @@ def _table_runs(path: str) -> list[dict[str, object]]:
     return sorted(out.values(), key=lambda r: (r["start_t"], r["vessel"]))
 
 
-def _pick_run(runs: list, vessel: str, label: str, span: tuple[float, float] | None):
-    """Return the split run of ``vessel`` labelled ``label``, else the one that overlaps
-    ``span`` (Unix s) most.
+def _pick_run(spans: list, vessel: str, label: str, span: tuple[float, float] | None):
+    """Return the run of ``vessel`` (a :class:`monitor.runs.replay.RunSpan`) labelled
+    ``label``, else the one that overlaps ``span`` (Unix s) most.
 
     The live service and the replay number runs alike (:mod:`monitor.runs.run`), so the
     label finds the run; the span (Unix s) checks it. A log recorded before they did
     could number them apart after a restart: there the span decides.
     """
-    mine = [r for r in runs if r.vessel == vessel and r.rows]
+    mine = [r for r in spans if r.vessel == vessel and r.steps]
     labelled = next((r for r in mine if r.label == label), None)
     if span is None or not mine:
         return labelled
 
     def overlap(r) -> float:
-        start = r.log.start_epoch_s or 0.0
-        lo, hi = start + r.rows[0].time_s, start + r.rows[-1].time_s
+        lo, hi = r.start_epoch_s + r.start_s, r.start_epoch_s + r.end_s
         return min(hi, span[1]) - max(lo, span[0])
 
     if labelled is not None and overlap(labelled) >= 0.0:
@@ -299,9 +341,12 @@ def replay_label(path: str, vessel: str, label: str, span: tuple[float, float]) 
     """Return the replay's label of the run of ``vessel`` over ``span`` (Unix s), else ``label``.
 
     The report and the CSV export find runs by the replay's labels; a run the live
-    service recorded is found by its time span (see :func:`_pick_run`).
+    service recorded is found by its time span (see :func:`_pick_run`). The log is read
+    as a stream, holding none of its rows.
     """
-    run = _pick_run(split_log(path, vessel), vessel, label, span)
+    from monitor.runs.replay import run_spans
+
+    run = _pick_run(run_spans(path, vessel), vessel, label, span)
     return run.label if run is not None else label
 
 
@@ -328,28 +373,30 @@ def replay_detail(
     path: str,
     vessel: str,
     label: str,
-    runs: list | None = None,
+    spans: list | None = None,
     span: tuple[float, float] | None = None,
     progress: Callable[[float], None] | None = None,
 ) -> dict[str, object]:
     """Return one run of a log replayed through a fresh estimator, for the replay view.
 
     The figures are the replay's (as ``ebullio replay`` gives them), not the ones the
-    live service recorded. ``runs`` is :func:`split_log` of the log when the caller has
-    it already. ``span`` (start and end, Unix s) finds the run by time, as listed from
-    the runs table; ``run`` in the answer is then the replay's label. ``progress`` is
-    told how far the replay has got (:func:`replay_one`). Raises LogFormatError when
-    the log has no such run.
+    live service recorded. The log is read as a stream twice, once to find the run and
+    once to replay it, in memory that does not grow with it. ``spans`` is
+    :func:`monitor.runs.replay.run_spans` of the log when the caller has them. ``span``
+    (start and end, Unix s) finds the run by time, as listed from the runs table;
+    ``run`` in the answer is then the replay's label. ``progress`` is told how far the
+    replay has got. Raises LogFormatError when the log has no such run.
     """
     from drivers.errors import LogFormatError
+    from monitor.runs.replay import run_spans
 
-    runs = split_log(path, vessel) if runs is None else runs
-    run = _pick_run(runs, vessel, label, span)
+    spans = run_spans(path, vessel) if spans is None else spans
+    run = _pick_run(spans, vessel, label, span)
     if run is None:
         raise LogFormatError(f"{path}: vessel {vessel!r} has no run {label!r}")
-    detail = replay_one(run, progress)
+    detail = replay_streamed_run(path, run, progress)
     summary = detail.pop("summary")
-    return {"vessel": vessel, "run": run.label, "steps": len(run.rows), **detail,
+    return {"vessel": vessel, "run": run.label, "steps": run.steps, **detail,
             "summary": {k: summary.get(k) for k in ("start_utc", "heat_up_s", "energy_wh",
                                                      "phase_at_end", "model")}}  # fmt: skip
 

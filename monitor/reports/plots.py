@@ -41,6 +41,63 @@ def envelope(
     return ts[picked].tolist(), ys[picked].tolist()
 
 
+class EnvelopeStream:
+    """:func:`envelope` of a series taken one point at a time, holding at most about
+    ``max_points`` of them: the same points in the same order, given how many of the
+    series' points will come (``count``) and how many of those are not NaN (``valid``).
+    """
+
+    def __init__(self, count: int, valid: int, max_points: int = MAX_POINTS) -> None:
+        self._all = count <= max_points  # short enough: every point, NaN included
+        self._valid_only = not self._all and valid <= max_points
+        self._size = math.ceil(valid / (max_points // 2)) if valid else 1
+        self._t: list[float] = []
+        self._y: list[float | None] = []
+        self._index = -1  # of the latest point that is not NaN
+        # the open bucket's lowest and highest point (the first of equals), as (index, t, y)
+        self._lo: tuple[int, float, float] | None = None
+        self._hi: tuple[int, float, float] | None = None
+
+    def add(self, t: float, y: float) -> None:
+        """Take the next point (a NaN is dropped unless the series is kept whole)."""
+        if self._all:
+            self._t.append(t)
+            self._y.append(y)
+            return
+        if y != y:
+            return
+        if self._valid_only:
+            self._t.append(t)
+            self._y.append(y)
+            return
+        self._index += 1
+        if self._index % self._size == 0:
+            self._close()
+            self._lo = self._hi = (self._index, t, y)
+            return
+        lo, hi = self._lo, self._hi
+        assert lo is not None
+        assert hi is not None
+        if y < lo[2]:
+            self._lo = (self._index, t, y)
+        if y > hi[2]:
+            self._hi = (self._index, t, y)
+
+    def _close(self) -> None:
+        lo, hi = self._lo, self._hi
+        if lo is None or hi is None:
+            return
+        for _, t, y in sorted({lo, hi}):
+            self._t.append(t)
+            self._y.append(y)
+        self._lo = self._hi = None
+
+    def points(self) -> tuple[list[float], list[float | None]]:
+        """Return (t, y) as :func:`envelope` gives them for the whole series."""
+        self._close()
+        return list(self._t), list(self._y)
+
+
 class Thinned:
     """Every n-th of a stream of about ``expected`` items, so that about ``max_points``
     are kept, and always the last: what a chart draws of a run's estimates (the board's

@@ -31,8 +31,10 @@ file, line and reason under ``quarantined``, and counted per run.
 from __future__ import annotations
 
 import csv
+import itertools
 import logging
 from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass
 from itertools import islice
 from pathlib import Path
 from typing import TextIO, TypeVar
@@ -135,12 +137,20 @@ class _VesselReplay:
         on_estimate: Callable[[OpenRun, Estimate], None],
         finished: Callable[[tuple[int, int], dict[str, object]], None],
         order: Callable[[], tuple[int, int]],
+        wanted: Callable[[int], bool] | None = None,
+        on_row: Callable[[LogRow], None] | None = None,
     ) -> None:
         self.vessel = vessel
         self.settings = settings
         self.on_estimate = on_estimate
         self.finished = finished  # (start order, summary) as each run ends
         self.order = order
+        # which runs to replay, by their number among this vessel's (0 first; None: all);
+        # the others are split alike and skipped
+        self.wanted = wanted
+        self.on_row = on_row  # told every row of a replayed run
+        self.begun = 0
+        self._skipping = False
         self.log: InterchangeLog | None = None
         self._runs = RunFeed()  # the one split, as live
         self._label: str | None = None
@@ -164,6 +174,8 @@ class _VesselReplay:
             # the usual row, written out: this loop runs once a row
             self._last = row
             self._steps += 1
+            if self.on_row is not None:
+                self.on_row(row)
             try:
                 e = run.step(row)
             except Exception as exc:  # one run's failure must not end the others' replay
@@ -189,6 +201,11 @@ class _VesselReplay:
                 self._begin(label)
 
     def _begin(self, label: str) -> None:
+        self._skipping = self.wanted is not None and not self.wanted(self.begun)
+        self.begun += 1
+        if self._skipping:
+            self._label = None  # rows and the end of a skipped run do nothing
+            return
         self._label = label
         self._slot = self.order()
         self._first = self._last = None
@@ -202,6 +219,8 @@ class _VesselReplay:
             self._first = row
         self._last = row
         self._steps += 1
+        if self.on_row is not None:
+            self.on_row(row)
         if self._failed is not None:
             return
         if self._run is None:
@@ -332,14 +351,7 @@ def replay(
         seen, items = stream_log(path)
         if not is_recorder_log(path):
             check_columns(seen[0])
-        default: dict[int, str] = {}  # each header log's vessel for rows that name none
-        for log, row in _read_ahead(items):
-            vessel = row.vessel
-            if not vessel:
-                vessel = default.get(id(log))
-                if vessel is None:
-                    vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
-                    default[id(log)] = vessel
+        for log, vessel, row in _with_vessels(_read_ahead(items)):
             feed = vessels.get(vessel)
             if feed is None:
                 feed = vessels[vessel] = _VesselReplay(
@@ -367,6 +379,175 @@ def replay(
         "runs": results,
         "quarantined": [q.as_dict() for log in logs for q in log.rejected],
     }
+
+
+def _with_vessels(
+    items: Iterator[tuple[InterchangeLog, LogRow]],
+) -> Iterator[tuple[InterchangeLog, str, LogRow]]:
+    """Yield (header log, vessel, row): a row that names no vessel is its header log's
+    (``vessel`` in the log's metadata, else the file's name without its suffix)."""
+    default: dict[int, str] = {}
+    for log, row in items:
+        vessel = row.vessel
+        if not vessel:
+            vessel = default.get(id(log))
+            if vessel is None:
+                vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
+                default[id(log)] = vessel
+        yield log, vessel, row
+
+
+@dataclass(frozen=True)
+class RunSpan:
+    """One run of a vessel as the replay splits it, without its rows (:func:`run_spans`).
+
+    ``number`` is its place among the vessel's runs in the log (0 first: what
+    :func:`replay_streamed` takes); ``start_s`` and ``end_s`` are its first and last
+    row's times in s from the log's start (``start_epoch_s``, Unix s; 0 when the log
+    has none), ``steps`` its rows, and ``points`` per channel (the number of rows with
+    a reading, the number of those that are not NaN), which
+    :class:`monitor.reports.plots.EnvelopeStream` needs.
+    """
+
+    vessel: str
+    label: str
+    number: int
+    start_s: float
+    end_s: float
+    steps: int
+    start_epoch_s: float
+    points: Mapping[str, tuple[int, int]]
+
+
+def _vessel_stream(path: str, vessel: str | None) -> Iterator[tuple[InterchangeLog, str, LogRow]]:
+    """Yield (header log, vessel, row) of a log's rows, or of ``vessel``'s only, as a
+    stream (of a recorder log only that vessel's samples are read)."""
+    from monitor.runs.logs import stream_log  # here: monitor.runs.logs builds on this module
+
+    seen, items = stream_log(path, vessel)
+    if not is_recorder_log(path):
+        check_columns(seen[0])
+    for log, name, row in _with_vessels(_read_ahead(items)):
+        if vessel is None or name == vessel:
+            yield log, name, row
+
+
+class _Counted:
+    """One vessel's rows split into runs and counted as they pass (:func:`run_spans`)."""
+
+    def __init__(self, vessel: str, spans: list[tuple[int, RunSpan]], order: Iterator[int]) -> None:
+        self.vessel, self.spans, self.order = vessel, spans, order
+        self.feed = RunFeed()  # the one split, as the replay's
+        self.log: InterchangeLog | None = None
+        self.begun = 0
+        self.place = 0  # the open run's place among all vessels' runs, as they began
+        self.open: tuple[str, int, float] | None = None  # the open run's label, number, epoch
+        self.steps = 0
+        self.start_s = self.end_s = 0.0
+        self.points: dict[str, list[int]] = {}
+
+    def add(self, row: LogRow) -> None:
+        if self.open is None:
+            return
+        if not self.steps:
+            self.start_s = row.time_s
+        self.end_s = row.time_s
+        self.steps += 1
+        points = self.points
+        for channel, value in row.values.items():
+            if value is None:
+                continue
+            seen = points.get(channel)
+            if seen is None:
+                seen = points[channel] = [0, 0]
+            seen[0] += 1
+            if value == value:
+                seen[1] += 1
+
+    def apply(self, events: list[RunEvent]) -> None:
+        for kind, row, label in events:
+            if kind == "row":
+                if row is not None:
+                    self.add(row)
+                continue
+            self._close()
+            if kind == "begin":
+                assert self.log is not None
+                assert label is not None
+                self.open = (label, self.begun, self.log.start_epoch_s or 0.0)
+                self.begun += 1
+                self.place = next(self.order)
+
+    def _close(self) -> None:
+        run = self.open
+        if run is not None and self.steps:
+            points = {channel: (n[0], n[1]) for channel, n in self.points.items()}
+            label, number, epoch = run
+            span = RunSpan(self.vessel, label, number, self.start_s, self.end_s, self.steps,
+                           epoch, points)  # fmt: skip
+            self.spans.append((self.place, span))
+        self.open, self.steps, self.points = None, 0, {}
+
+
+def run_spans(path: str, vessel: str | None = None) -> list[RunSpan]:
+    """Return the runs in a log (``vessel``'s only, when given), split as the replay
+    splits them, in the order they began (as :func:`monitor.runs.run.split_runs` lists
+    them), reading the log as a stream and holding none of its rows."""
+    spans: list[tuple[int, RunSpan]] = []
+    order = itertools.count()
+    vessels: dict[str, _Counted] = {}
+    for log, name, row in _vessel_stream(path, vessel):
+        counted = vessels.get(name)
+        if counted is None:
+            counted = vessels[name] = _Counted(name, spans, order)
+        if log is not counted.log:
+            counted.apply(counted.feed.restart())
+            counted.log = log
+        events = counted.feed.take(row)
+        if events is None:
+            counted.add(row)
+        else:
+            counted.apply(events)
+    for counted in vessels.values():
+        counted.apply(counted.feed.finish())
+    return [span for _, span in sorted(spans, key=lambda item: item[0])]
+
+
+def replay_streamed(
+    path: str,
+    vessel: str,
+    number: int,
+    on_row: Callable[[LogRow], None] | None = None,
+    on_estimate: Callable[[Estimate], None] | None = None,
+    settings: EstimatorSettings | None = None,
+) -> dict[str, object] | None:
+    """Return the summary of ``vessel``'s run numbered ``number`` (:attr:`RunSpan.number`)
+    replayed as ``ebullio replay`` replays it, or None
+    when there is no such run.
+
+    The log is read as a stream and the other runs are split but not replayed;
+    reading stops once the run has ended. ``on_row`` is told each of the run's rows
+    and ``on_estimate`` each estimate, as they come.
+    """
+    found: list[dict[str, object]] = []
+
+    def finished(_slot: tuple[int, int], summary: dict[str, object]) -> None:
+        found.append(summary)
+
+    def estimate(_run: OpenRun, e: Estimate) -> None:
+        if on_estimate is not None:
+            on_estimate(e)
+
+    feed = _VesselReplay(vessel, settings, estimate, finished, lambda: (0, 0),
+                         wanted=lambda n: n == number, on_row=on_row)  # fmt: skip
+    for log, _, row in _vessel_stream(path, vessel):
+        if feed.log is not log:
+            feed.new_log(log)
+        feed.take(row)
+        if found:
+            return found[0]
+    feed.finish()
+    return found[0] if found else None
 
 
 #: Rows read at a time. Parsing a block and then stepping it keeps each at its own work:

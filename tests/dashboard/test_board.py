@@ -347,14 +347,20 @@ def test_the_board_serves_the_audit_report_of_a_run(live_log) -> None:
 def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) -> None:
     from dash import Patch
 
-    from dashboard.data import list_runs, replay_detail, split_log
+    from dashboard.data import list_runs, replay_detail, replay_one, split_log
     from dashboard.views.replay import latest_at, parse_choice, run_options, scrub, show_run
+    from monitor.runs.replay import run_spans
 
     runs = list_runs(str(live_log))  # from the runs table the service wrote
     assert [(r["vessel"], r["run"]) for r in runs] == [("kettle-a", "1"), ("kettle-b", "1")]
-    split = list_runs(str(live_log), split_log(str(live_log)))  # as the replay splits it
+    split = list_runs(str(live_log), run_spans(str(live_log)))  # as the replay splits it
     assert [(r["vessel"], r["run"]) for r in split] == [(r["vessel"], r["run"]) for r in runs]
     assert [r["steps"] for r in runs] == [r["steps"] for r in split] == [301, 301]
+    # the streamed split gives what the whole log's split gives, run for run
+    whole_runs = split_log(str(live_log))
+    assert [(r.vessel, r.label, len(r.rows), r.rows[0].time_s, r.rows[-1].time_s)
+            for r in whole_runs] == [(s.vessel, s.label, s.steps, s.start_s, s.end_s)
+                                     for s in run_spans(str(live_log))]  # fmt: skip
     options = run_options(runs)
     vessel, label, span = parse_choice(options[0]["value"])
     assert (vessel, label) == ("kettle-a", "1")
@@ -363,10 +369,12 @@ def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) ->
     detail = replay_detail(str(live_log), vessel, "no such label", span=span,
                            progress=seen.append)  # fmt: skip
     assert detail["run"] == "1"  # found by its time span, named by the replay's label
-    # it read only kettle-a's samples; the whole log's split gives the same run
-    whole = replay_detail(str(live_log), vessel, "1", runs=split_log(str(live_log)))
+    # streamed, it read only kettle-a's samples; the whole log read and replayed in
+    # memory gives the same run, estimates and series
+    whole = replay_one(next(r for r in whole_runs if r.vessel == vessel))
     assert whole["estimates"] == detail["estimates"]
     assert whole["series"] == detail["series"]
+    assert whole["latest"] == detail["latest"]
     assert len(detail["estimates"]["t"]) == 301  # short: every estimate kept
     readings, _estimates, length, value, _marks, cards = show_run(detail)
     assert length == 300  # the simulated 300 s run (our scenario)

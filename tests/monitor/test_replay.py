@@ -311,3 +311,74 @@ def test_the_streamed_replay_gives_what_replaying_the_whole_log_gives(tmp_path) 
         got = {k: v for k, v in got.items() if k != "drift"}
         assert got == want
     assert streamed[0]["quarantined_rows"] == 1
+
+
+def _two_vessel_log(tmp_path: Path) -> Path:
+    lines = ["time_s,water_c,power_w,vessel,run"]
+    for t in range(400):  # two vessels, interleaved; urn-2 labels its runs
+        lines.append(f"{t},{min(20 + t * 0.4, 99.0):.2f},{2000 if t < 200 else 0},kettle-a,")
+        lines.append(f"{t},{15 + t * 0.05:.2f},1500,urn-2,{'A' if t < 250 else 'B'}")
+    for t in range(400, 500):  # kettle-a emptied and refilled: cold water again
+        lines.append(f"{t},{15 + (t - 400) * 0.3:.2f},2000,kettle-a,")
+    lines.insert(300, "1.5,not-a-number,2000,kettle-a,")  # set aside, inside run 1
+    log = tmp_path / "two.csv"
+    log.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return log
+
+
+def test_one_run_is_found_and_replayed_from_a_stream_as_the_whole_replay_gives_it(
+    tmp_path,
+) -> None:
+    """Issue 16 (the board's replay view): run_spans splits a log as split_runs does
+    without holding its rows, and replay_streamed replays one run of it alone, with the
+    summary the whole replay gives that run and every row and estimate told."""
+    from monitor.runs.logs import read_log
+    from monitor.runs.replay import replay_run, replay_streamed, run_spans
+
+    log = _two_vessel_log(tmp_path)
+    whole, _ = split_runs(read_log(log))
+    spans = run_spans(str(log))
+    assert [(s.vessel, s.label, s.steps, s.start_s, s.end_s) for s in spans] == [
+        (r.vessel, r.label, len(r.rows), r.rows[0].time_s, r.rows[-1].time_s) for r in whole
+    ]
+    for span, run in zip(spans, whole, strict=True):
+        water = [r.values["water"] for r in run.rows if r.values.get("water") is not None]
+        assert span.points["water"] == (len(water), sum(1 for v in water if v == v))
+    assert [(s.vessel, s.number) for s in run_spans(str(log), "urn-2")] == [
+        ("urn-2", 0), ("urn-2", 1)]  # fmt: skip
+    streamed = replay([str(log)])["runs"]
+    for span, run, summary in zip(spans, whole, streamed, strict=True):
+        rows: list = []
+        estimates: list = []
+        mine = replay_streamed(str(log), span.vessel, span.number, rows.append, estimates.append)
+        assert mine == {k: v for k, v in summary.items() if k != "drift"}
+        assert [r.time_s for r in rows] == [r.time_s for r in run.rows]
+        expected: list = []
+        replay_run(run, on_estimate=lambda _run, e, out=expected: out.append(e))
+        assert repr(estimates) == repr(expected)  # every figure, bit for bit
+    assert replay_streamed(str(log), "urn-2", 2) is None  # it has two runs, 0 and 1
+
+
+def test_the_streamed_envelope_keeps_the_points_the_whole_one_keeps() -> None:
+    """EnvelopeStream (the board's replay of a long run) against envelope over the whole
+    series: the same points, in the same order, NaN, ties and short series included."""
+    import math
+    import random
+
+    from monitor.reports.plots import EnvelopeStream, envelope
+
+    rng = random.Random(7)
+    for _ in range(200):
+        n = rng.choice([0, 1, 9, 10, 11, 40, 41, 2399, 2400, 2401, 4801, 20_000])
+        most = rng.choice([10, 11, 100, 2400])
+        t = [0.5 * i for i in range(n)]
+        y = [math.nan if rng.random() < 0.1 else float(rng.randint(0, 20)) for _ in range(n)]
+        if rng.random() < 0.2:
+            y = [3.0] * n  # every point a tie
+        stream = EnvelopeStream(n, sum(1 for v in y if v == v), most)
+        for a, b in zip(t, y, strict=True):
+            stream.add(a, b)
+        got, want = stream.points(), envelope(t, y, most)
+        assert got[0] == want[0]
+        assert [v if v == v else "nan" for v in got[1]] == [
+            v if v == v else "nan" for v in want[1]]  # fmt: skip
