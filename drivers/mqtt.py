@@ -31,7 +31,6 @@ one, and a bare number would be stamped with the time it was re-sent.
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import json
 import logging
 import math
@@ -44,7 +43,6 @@ from typing import Self
 from urllib.parse import unquote, urlsplit
 
 import aiomqtt
-import paho.mqtt.client as paho_mqtt
 from paho.mqtt.packettypes import PacketTypes
 from paho.mqtt.properties import Properties
 from paho.mqtt.subscribeoptions import SubscribeOptions
@@ -209,8 +207,8 @@ async def _open_client(
 
 def _manual_acks(client: aiomqtt.Client) -> None:
     """Turn off paho's acknowledgement on arrival (aiomqtt has no option of its own).
-    Must be called before subscribing. This, :func:`_acknowledger` and :func:`_hand_over`
-    are the only places that reach past aiomqtt to its paho client."""
+    Must be called before subscribing. This and :func:`_acknowledger` are the only
+    places that reach past aiomqtt to its paho client."""
     client._client.manual_ack_set(True)
 
 
@@ -219,13 +217,6 @@ def _acknowledger(client: aiomqtt.Client, message: aiomqtt.Message) -> Callable[
     ``ack``; on a link that has closed it sends nothing and the broker redelivers)."""
     paho, mid, qos = client._client, message.mid, message.qos
     return lambda: paho.ack(mid, qos)
-
-
-def _hand_over(client: aiomqtt.Client, topic: str, payload: bytes, qos: int) -> bool:
-    """Give one retained message to ``client``'s paho client to send, without waiting for
-    it to be written; return False when the link is down (nothing queued)."""
-    info = client._client.publish(topic, payload, qos, True)
-    return info.rc == paho_mqtt.MQTT_ERR_SUCCESS
 
 
 async def _disconnect(client: aiomqtt.Client | None, source: str) -> None:
@@ -405,34 +396,23 @@ class MqttDriver:
             logger.debug("%s: quarantined a message: %s", self.source, exc)
             return [Quarantined(received_t, self.source, topic, str(exc), raw)]
 
-    async def batches(self) -> AsyncIterator[list[Sample | Quarantined | Acknowledge]]:
-        """Yield each message's items as one list: its samples (value in the channel's
-        unit) or its quarantined record, then, with ``ack_after``, the
-        :class:`Acknowledge` of a QoS 1 message.
+    async def samples(self) -> AsyncIterator[Sample | Quarantined | Acknowledge]:
+        """Yield samples (value in the channel's unit) and quarantined messages as they come,
+        each QoS 1 message's items followed by its :class:`Acknowledge` with ``ack_after``.
 
-        One hand-over per message, not one per reading: the live service takes these
-        (:func:`monitor.rig.service.supervise`). Raises :class:`DriverError` when the
-        broker goes away.
+        Raises :class:`DriverError` when the broker goes away.
         """
         client = self._client
         if client is None:
             raise DriverError(f"{self.source}: use the driver inside 'async with'")
-        ack_after, source, clock = self.ack_after, self.source, self._clock
         try:
             async for message in client.messages:
-                items: list[Sample | Quarantined | Acknowledge] = self._items(message, clock())
-                if ack_after and message.qos > 0:
-                    items.append(Acknowledge(source, _acknowledger(client, message)))
-                yield items
+                for item in self._items(message, self._clock()):
+                    yield item
+                if self.ack_after and message.qos > 0:
+                    yield Acknowledge(self.source, _acknowledger(client, message))
         except aiomqtt.MqttError as exc:
             raise DriverError(f"{self.source}: lost the broker: {exc}") from exc
-
-    async def samples(self) -> AsyncIterator[Sample | Quarantined | Acknowledge]:
-        """Yield the items of :meth:`batches` one by one, in the same order."""
-        async with contextlib.aclosing(self.batches()) as stream:
-            async for items in stream:
-                for item in items:
-                    yield item
 
 
 def _json_ready(value: object) -> object:
@@ -550,25 +530,9 @@ class MqttPublisher:
 
     async def publish_estimate(self, vessel: str, payload: Mapping[str, object]) -> None:
         """Publish one vessel's estimate (JSON object) retained at :data:`ESTIMATE_QOS` (0)."""
-        await self.publish_estimates({vessel: payload})
-
-    async def publish_estimates(self, estimates: Mapping[str, Mapping[str, object]]) -> None:
-        """Publish each vessel's estimate (JSON object) retained at :data:`ESTIMATE_QOS` (0).
-
-        At QoS 0 there is no answer to wait for: each is handed to the client at once,
-        in order, and the loop gets one turn after them all (no task or wait per
-        estimate: the live service publishes a thousand a second).
-        """
-        client = self._client
-        if client is None:
-            raise DriverError(f"{self.source}: use the publisher inside 'async with'")
-        for vessel, payload in estimates.items():
-            if not isinstance(payload, Mapping):
-                raise TypeError("an estimate is a mapping of names to values")
-            topic = f"{self.prefix}/{_check_vessel(vessel)}/estimate"
-            if not _hand_over(client, topic, encode_json(payload), ESTIMATE_QOS):
-                raise DriverError(f"{self.source}: cannot publish on {topic}: not connected")
-        await asyncio.sleep(0)
+        if not isinstance(payload, Mapping):
+            raise TypeError("an estimate is a mapping of names to values")
+        await self._publish(vessel, "estimate", payload, ESTIMATE_QOS)
 
     async def publish_flags(self, vessel: str, flags: Sequence[Mapping[str, object]]) -> None:
         """Publish one vessel's current flags (JSON list) retained at QoS 1; returns on PUBACK."""

@@ -50,7 +50,6 @@ Shape (all in one asyncio loop, except the recorder's SQLite writes)::
 from __future__ import annotations
 
 import asyncio
-import collections
 import contextlib
 import logging
 import math
@@ -59,7 +58,7 @@ import queue
 import random
 import threading
 import time
-from collections.abc import AsyncIterator, Callable, Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 from urllib.parse import urlsplit, urlunsplit
@@ -162,17 +161,16 @@ def instrument_factory(inst: Instrument, clock: Callable[[], float]) -> DriverFa
 async def supervise(
     name: str,
     factory: DriverFactory,
-    deliver: Callable[[list[Sample | Quarantined | Acknowledge]], Any],
+    deliver: Callable[[Sample | Quarantined], Any],
     event: Callable[[float, str, str, str], None],
     stats: Stats,
     clock: Callable[[], float] = time.time,
     backoff: Backoff | None = None,
 ) -> None:
-    """Run one source for ever: open, forward its items to ``deliver``, reconnect on loss.
+    """Run one source for ever: open, forward each item to ``deliver``, reconnect on loss.
 
-    ``deliver`` is awaited with a list of items: a driver's own batch where it gives
-    them (``batches()``, one per MQTT message), else one item at a time.
-    ``event(t, kind, source, detail)`` records link events. Returns only when cancelled.
+    ``deliver`` is awaited; ``event(t, kind, source, detail)`` records link events.
+    Returns only when cancelled.
     """
     backoff = backoff or Backoff(rng=random.Random(name))
     lost_at: float | None = None
@@ -183,16 +181,14 @@ async def supervise(
                 if lost_at is not None:
                     stats.reconnects += 1
                     log.info("%s: connected again", name)
-                async with contextlib.aclosing(_batches(driver)) as stream:
-                    async for items in stream:
-                        now = clock()
-                        if lost_at is not None:
-                            gap = f"from {last_item_t or lost_at:.3f} to {now:.3f}"
-                            event(now, "gap", name, gap)
-                            lost_at = None
-                            backoff.reset()
-                        last_item_t = now
-                        await deliver(items)
+                async for item in driver.samples():
+                    now = clock()
+                    if lost_at is not None:
+                        event(now, "gap", name, f"from {last_item_t or lost_at:.3f} to {now:.3f}")
+                        lost_at = None
+                        backoff.reset()
+                    last_item_t = now
+                    await deliver(item)
                 raise DriverError(f"{name}: the source ended")
         except DriverError as exc:
             stats.link_losses += 1
@@ -203,67 +199,6 @@ async def supervise(
             wait_s = backoff.next_s()
             log.warning("%s: %s; retrying in %.1f s", name, exc, wait_s)
             await asyncio.sleep(wait_s)
-
-
-def _batches(driver: Any) -> AsyncIterator[list[Sample | Quarantined | Acknowledge]]:
-    """Return a driver's items as lists: its own ``batches()`` where it has them, else
-    each item of ``samples()`` on its own."""
-    own = getattr(driver, "batches", None)
-    return own() if own is not None else _one_by_one(driver.samples())
-
-
-async def _one_by_one(items: AsyncIterator[Any]) -> AsyncIterator[list[Any]]:
-    async with contextlib.aclosing(items) as stream:  # type: ignore[type-var]
-        async for item in stream:
-            yield [item]
-
-
-class Inbox:
-    """The bounded hand-over from the sources to the consumer, in the loop's thread.
-
-    Sources add lists of items (one MQTT message's, or one item); the consumer takes
-    everything waiting at once. The bound is in items (``[recorder] queue_samples``): a
-    list that would pass it waits for room, except into an empty inbox, which takes
-    any list (so a list longer than the bound cannot wait for ever).
-    """
-
-    def __init__(self, limit: int) -> None:
-        self.limit = limit
-        self.count = 0  # items waiting
-        self._lists: list[list[Any]] = []
-        self._ready = asyncio.Event()
-        self._room = asyncio.Event()
-
-    def offer(self, items: list[Any]) -> bool:
-        """Add ``items`` if there is room and return True, else return False."""
-        if self.count and self.count + len(items) > self.limit:
-            return False
-        self._lists.append(items)
-        self.count += len(items)
-        self._ready.set()
-        return True
-
-    async def put(self, items: list[Any]) -> None:
-        """Add ``items``, waiting for room."""
-        while not self.offer(items):
-            self._room.clear()
-            await self._room.wait()
-
-    async def take(self) -> list[Any]:
-        """Return every item waiting, in order, waiting for at least one list."""
-        while not self._lists:
-            self._ready.clear()
-            await self._ready.wait()
-        return self.take_nowait()
-
-    def take_nowait(self) -> list[Any]:
-        """Return every item waiting, in order (an empty list when none)."""
-        lists, self._lists = self._lists, []
-        self.count = 0
-        self._room.set()
-        if len(lists) == 1:
-            return lists[0]
-        return [item for items in lists for item in items]
 
 
 class RecorderThread:
@@ -279,7 +214,6 @@ class RecorderThread:
     ) -> None:  # fmt: skip
         self._queue: queue.SimpleQueue[tuple[str, Any] | None] = queue.SimpleQueue()
         self._loop = loop  # where acknowledgements are sent from (the sources' loop)
-        self._ack_sender = AckSender(loop) if loop is not None else None
         self._acks: list[Acknowledge] = []  # queued behind rows not yet committed
         self._ack_early = ack_early  # commit at once when this many acks wait (0: never)
         self._on_head = on_head  # called in the loop's thread with each new chain head
@@ -357,12 +291,11 @@ class RecorderThread:
         self._stats.repeats_skipped = self._recorder.repeats_skipped
         head = self._recorder.last_head
         new_head = self._on_head is not None and head is not self._head_sent
-        sender = self._ack_sender
-        if (not acks and not new_head) or self._loop is None or sender is None:
+        if (not acks and not new_head) or self._loop is None:
             return
         try:
             if acks:
-                self._loop.call_soon_threadsafe(sender.add, acks)
+                self._loop.call_soon_threadsafe(_send_acks, acks)
             if new_head:
                 self._head_sent = head
                 self._loop.call_soon_threadsafe(self._on_head, head)  # type: ignore[arg-type]
@@ -394,44 +327,13 @@ def _redelivering(mqtt: MqttSettings | None) -> frozenset[str]:
     return frozenset([parse_mqtt_url(mqtt.url).source])
 
 
-#: Acknowledgements sent in one turn of the loop (a second's commit holds one per
-#: reading: a thousand sent at once held the readings behind them up to 0.1 s).
-ACKS_PER_TURN = 100
-
-
-class AckSender:
-    """Sends acknowledgements in arrival order, :data:`ACKS_PER_TURN` per turn of the
-    loop, so the readings that arrive meanwhile are not held up (in the loop's thread).
-
-    One queue for them all keeps the order MQTT asks for (PUBACKs in the order of the
-    messages) across commits. A failure is logged, not raised: the link went and the
-    broker will deliver the message again.
-    """
-
-    def __init__(self, loop: asyncio.AbstractEventLoop) -> None:
-        self._loop = loop
-        self._waiting: collections.deque[Acknowledge] = collections.deque()
-        self._draining = False
-
-    def add(self, acks: list[Acknowledge]) -> None:
-        """Queue ``acks`` behind those still waiting, and start sending."""
-        self._waiting.extend(acks)
-        if not self._draining:
-            self._draining = True
-            self._loop.call_soon(self._drain)
-
-    def _drain(self) -> None:
-        waiting = self._waiting
-        for _ in range(min(ACKS_PER_TURN, len(waiting))):
-            ack = waiting.popleft()
-            try:
-                ack.send()
-            except Exception as exc:  # the link went: the broker delivers the message again
-                log.debug("%s: an acknowledgement was not sent: %s", ack.source, exc)
-        if waiting:
-            self._loop.call_soon(self._drain)
-        else:
-            self._draining = False
+def _send_acks(acks: list[Acknowledge]) -> None:
+    """Send acknowledgements in order (in the loop's thread); a failure is logged, not raised."""
+    for ack in acks:
+        try:
+            ack.send()
+        except Exception as exc:  # the link went: the broker will deliver the message again
+            log.debug("%s: an acknowledgement was not sent: %s", ack.source, exc)
 
 
 class Service:
@@ -471,7 +373,9 @@ class Service:
             )  # fmt: skip
         self.sources.update(extra_sources or {})
         self.on_estimate = on_estimate
-        self._inbox = Inbox(config.queue_samples)
+        self._queue: asyncio.Queue[Sample | Quarantined | Acknowledge] = asyncio.Queue(
+            config.queue_samples
+        )
         self._stop = asyncio.Event()
         self._recorder: RecorderThread | None = None
         self._to_publish: dict[str, dict[str, object]] = {}
@@ -501,15 +405,18 @@ class Service:
         if self._recorder is not None:
             self._recorder.put("event", (t, kind, source, detail))
 
-    async def _deliver(self, items: list[Sample | Quarantined | Acknowledge]) -> None:
-        if self._inbox.offer(items):
+    async def _deliver(self, item: Sample | Quarantined | Acknowledge) -> None:
+        try:
+            self._queue.put_nowait(item)
             return
+        except asyncio.QueueFull:
+            pass
         began = time.monotonic()
         self.stats.backpressure_waits += 1
-        await self._inbox.put(items)
+        await self._queue.put(item)
         waited = time.monotonic() - began
         self.stats.backpressure_s += waited
-        source = items[0].source
+        source = item.source
         self._event(self.clock(), "backpressure", source, f"waited {waited:.3f} s for queue space")
 
     def _take(self, items: list[Sample | Quarantined | Acknowledge]) -> None:
@@ -663,7 +570,13 @@ class Service:
 
     async def _consume(self) -> None:
         while True:
-            self._take(await self._inbox.take())
+            items = [await self._queue.get()]
+            while True:
+                try:
+                    items.append(self._queue.get_nowait())
+                except asyncio.QueueEmpty:
+                    break
+            self._take(items)
 
     async def _retune_fits(self) -> None:
         """Every ``FIT_RETUNE_S``, give the fits what the rest of the work left of the core.
@@ -703,12 +616,11 @@ class Service:
                         flags, self._flags_to_publish = self._flags_to_publish, {}
                         head, self._head_to_publish = self._head_to_publish, None
                         try:
-                            # the estimates (QoS 0) handed over at once; the flags and the
-                            # head all at once, each waiting for its own PUBACK. Every
+                            # all at once: each flags publish waits for its own PUBACK. Every
                             # outcome is collected (return_exceptions), so a lost link leaves
                             # no failed future unretrieved; the first failure is raised.
-                            await pub.publish_estimates(estimates)
                             outcomes = await asyncio.gather(
+                                *(pub.publish_estimate(v, r) for v, r in estimates.items()),
                                 *(pub.publish_flags(v, f) for v, f in flags.items()),
                                 *([pub.publish_head(head)] if head is not None else []),
                                 return_exceptions=True,
@@ -769,7 +681,10 @@ class Service:
                     await consumer
                 with contextlib.suppress(asyncio.CancelledError):
                     await retuner
-                self._take(self._inbox.take_nowait())
+                leftovers: list[Sample | Quarantined | Acknowledge] = []
+                while not self._queue.empty():
+                    leftovers.append(self._queue.get_nowait())
+                self._take(leftovers)
                 for vessel in self.vessels.values():  # as a replay ends: nothing left waiting
                     self._isolated(
                         vessel, None, lambda v=vessel: self._steps(v, v.assembler.finish())
