@@ -51,6 +51,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import gc
 import logging
 import math
 import os
@@ -657,6 +658,13 @@ class Service:
             _redelivering(self.config.mqtt),
         )  # fmt: skip
         self._recorder.start()
+        # What is built by now (every vessel's filter, the modules) lives as long as the
+        # service: out of the cycle collector's sight, its full collections no longer walk
+        # it (at 1,000 vessels each took up to 0.1 s and held every reading behind it). The
+        # filters hold no reference cycles, so one a run's end drops is still freed.
+        # Collected first, so no garbage is frozen; let go of when the service stops.
+        gc.collect()
+        gc.freeze()
         self._event(self.clock(), "start", "service", f"ebullio {__version__}")
         try:
             async with asyncio.TaskGroup() as group:
@@ -694,6 +702,7 @@ class Service:
                 self._record_runs()
                 await self._flush_publish(publisher)
         finally:
+            gc.unfreeze()
             self.stats.fits_deferred = self.fit_budget.deferred
             self.stats.fit_cpu_s = round(self.fit_budget.spent_s, 3)
             self._event(self.clock(), "stop", "service", repr(self.stats.as_dict()))
