@@ -44,7 +44,8 @@ def envelope(
 class EnvelopeStream:
     """:func:`envelope` of a series taken one point at a time, holding at most about
     ``max_points`` of them: the same points in the same order, given how many of the
-    series' points will come (``count``) and how many of those are not NaN (``valid``).
+    series' points will come (``count``) and how many of those are not NaN or None
+    (``valid``).
     """
 
     def __init__(self, count: int, valid: int, max_points: int = MAX_POINTS) -> None:
@@ -58,13 +59,13 @@ class EnvelopeStream:
         self._lo: tuple[int, float, float] | None = None
         self._hi: tuple[int, float, float] | None = None
 
-    def add(self, t: float, y: float) -> None:
-        """Take the next point (a NaN is dropped unless the series is kept whole)."""
+    def add(self, t: float, y: float | None) -> None:
+        """Take the next point (a NaN or None is dropped unless the series is kept whole)."""
         if self._all:
             self._t.append(t)
             self._y.append(y)
             return
-        if y != y:
+        if y is None or y != y:
             return
         if self._valid_only:
             self._t.append(t)

@@ -28,8 +28,9 @@ from drivers.errors import LogFormatError
 from monitor import __version__
 from monitor.estimation.contracts import Estimate
 from monitor.estimation.settings import EstimatorSettings
+from monitor.records.interchange import LogRow
 from monitor.records.recorder import LogReader, is_recorder_log, sessions, verify
-from monitor.reports.plots import PALETTE, Thinned, add_band, envelope, history_figure
+from monitor.reports.plots import PALETTE, EnvelopeStream, Thinned, add_band, history_figure
 from monitor.reports.safety import SAFETY_TEXT
 from monitor.runs.drift import (
     VERDICT_MARK,
@@ -37,9 +38,7 @@ from monitor.runs.drift import (
     drift_over_runs,
     verdict_of,
 )
-from monitor.runs.logs import read_log
-from monitor.runs.replay import replay_run
-from monitor.runs.run import Run, split_runs
+from monitor.runs.replay import replay_vessel, run_spans
 
 
 def file_sha256(path: str | Path) -> str:
@@ -85,23 +84,27 @@ def _verdict_html(verdict: Mapping[str, object]) -> str:
             f"Why:</p><ul>{reasons}</ul></div>")  # fmt: skip
 
 
-def _run_figure(run: Run, estimates: list[Estimate]) -> go.Figure:
-    """Return temperatures and power against time, and the estimates with their bands."""
+def _run_figure(
+    series: Mapping[str, tuple[list[float], list[float | None]]],
+    estimates: list[Estimate],
+    t0: float,
+) -> go.Figure:
+    """Return temperatures and power against time, and the estimates with their bands.
+
+    ``series`` holds each channel the run has readings of, drawn as the board draws a
+    long run (a min/max envelope, :class:`monitor.reports.plots.EnvelopeStream`), in s
+    from the run's first row at ``t0`` (s in the log).
+    """
     fig = make_subplots(rows=3, cols=1, shared_xaxes=True, vertical_spacing=0.06,
                         subplot_titles=("Readings", "Water mass (±2σ)", "UA (±2σ)"),
                         specs=[[{"secondary_y": True}], [{}], [{}]])  # fmt: skip
-    t0 = run.rows[0].time_s if run.rows else 0.0
-    t = [r.time_s - t0 for r in run.rows]
-    # a long run's readings are drawn as the board draws them: a min/max envelope
     for channel in ("water", "element", "ambient"):
-        ys = [r.values.get(channel) for r in run.rows]
-        if any(y is not None for y in ys):
-            tc, yc = envelope(t, ys)
+        if channel in series:
+            tc, yc = series[channel]
             fig.add_trace(go.Scatter(x=tc, y=yc, name=f"{channel} °C", mode="lines",
                                      line={"color": PALETTE[channel]}), row=1, col=1)  # fmt: skip
-    power = [r.values.get("power") for r in run.rows]
-    if any(p is not None for p in power):
-        tp, yp = envelope(t, power)
+    if "power" in series:
+        tp, yp = series["power"]
         fig.add_trace(go.Scatter(x=tp, y=yp, name="power W", mode="lines",
                                  line={"color": PALETTE["power"], "width": 1}),
                       row=1, col=1, secondary_y=True)  # fmt: skip
@@ -132,11 +135,10 @@ def build_report(
     last run. Raises LogFormatError naming the choices when a choice is needed or wrong.
     """
     recorder = is_recorder_log(log_path)
-    # of a recorder log only the chosen vessel's samples are read (its runs split the
-    # same: each vessel's instants are assembled apart); a CSV log is read whole
-    logs = read_log(log_path, vessel if recorder else None)
-    runs, quarantined = split_runs(logs)
-    vessels = sorted({r.vessel for r in runs})
+    # read as a stream, twice: to split the runs, then to replay the vessel's (of a
+    # recorder log only the chosen vessel's samples; a CSV log's rows all pass)
+    spans = run_spans(log_path, vessel if recorder else None)
+    vessels = sorted({s.vessel for s in spans})
     if recorder and vessel is not None and vessel not in vessels:
         with LogReader(log_path) as reader:
             vessels = reader.vessels()  # to name the choices
@@ -145,30 +147,37 @@ def build_report(
             raise LogFormatError(f"{log_path}: holds vessels {', '.join(vessels) or '(none)'}; "
                                  "say which with --vessel")  # fmt: skip
         vessel = vessels[0]
-    mine = [r for r in runs if r.vessel == vessel]
+    mine = [s for s in spans if s.vessel == vessel]
     if not mine:
         raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(vessels)}")
-    labels = [r.label for r in mine]
-    chosen = mine[-1] if run_label is None else next((r for r in mine if r.label == run_label),
+    labels = [s.label for s in mine]
+    chosen = mine[-1] if run_label is None else next((s for s in mine if s.label == run_label),
                                                      None)  # fmt: skip
     if chosen is None:
         raise LogFormatError(f"{log_path}: vessel {vessel!r} has no run {run_label!r}; "
                              f"its runs: {', '.join(labels)}")  # fmt: skip
     # the chosen run's estimates for its chart: every n-th (about MAX_POINTS) and the
-    # last, so a week-long run's report neither holds nor draws a week of them
-    thinned = Thinned(len(chosen.rows))
-    results = []
+    # last, and its readings thinned as they come, so a week-long run's report neither
+    # holds nor draws a week of them
+    thinned = Thinned(chosen.steps)
+    t0 = chosen.start_s
+    lines = {c: EnvelopeStream(chosen.steps, n[1]) for c, n in chosen.points.items()
+             if c in ("water", "element", "ambient", "power") and n[0]}  # fmt: skip
 
-    def keep(_run: Run, e: Estimate) -> None:
-        thinned.add(e)
+    def take(row: LogRow) -> None:
+        t = row.time_s - t0
+        values = row.values
+        for channel, line in lines.items():
+            line.add(t, values.get(channel))
 
-    for run in mine:
-        results.append(replay_run(run, on_estimate=keep if run is chosen else None))
+    done = replay_vessel(log_path, vessel, chosen.number, take, thinned.add)
+    results = list(done.summaries.values())
     estimates: list[Estimate] = thinned.items()
-    drift = drift_over_runs(results, {vessel: chosen.log.metadata})
-    index = mine.index(chosen)
+    meta = done.chosen_log.metadata if done.chosen_log is not None else {}
+    drift = drift_over_runs(results, {vessel: meta})
+    index = list(done.summaries).index(chosen.number)
     result, flags = results[index], drift[index]
-    meta = chosen.log.metadata
+    quarantined = sum(len(log.rejected) for log in done.logs)
 
     integrity_rows: list[tuple[str, str]] = [("log file", html.escape(str(log_path))),
                                              ("file SHA-256", file_sha256(log_path))]  # fmt: skip
@@ -252,8 +261,9 @@ def build_report(
         (str(k), html.escape(str(v))) for k, v in meta.items() if not k.startswith("truth_")
     ]
 
-    run_fig = pio.to_html(_run_figure(chosen, estimates), include_plotlyjs=True, full_html=False,
-                          div_id="report-run-plot")  # fmt: skip
+    series = {channel: line.points() for channel, line in lines.items()}
+    run_fig = pio.to_html(_run_figure(series, estimates, t0), include_plotlyjs=True,
+                          full_html=False, div_id="report-run-plot")  # fmt: skip
     history = history_figure(results, baselines_of(results), uirevision="report")
     hist_fig = pio.to_html(history, include_plotlyjs=False, full_html=False,
                            div_id="report-history-plot")  # fmt: skip
@@ -299,7 +309,7 @@ the log: {html.escape(", ".join(labels))}.</p>
 <h2>Vessel and site</h2>{_table(meta_rows)}
 <h2>Instruments and calibrations (the recorded rig configuration)</h2>{config_html}
 <h2>Estimator settings</h2>{_table(settings_rows)}
-<p>Rows set aside as unusable in these logs: {len(quarantined)}.
+<p>Rows set aside as unusable in these logs: {quarantined}.
 Values that are missing or not finite are shown as "-".</p>
 </body></html>
 """

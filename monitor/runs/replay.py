@@ -419,17 +419,22 @@ class RunSpan:
     points: Mapping[str, tuple[int, int]]
 
 
-def _vessel_stream(path: str, vessel: str | None) -> Iterator[tuple[InterchangeLog, str, LogRow]]:
-    """Yield (header log, vessel, row) of a log's rows, or of ``vessel``'s only, as a
-    stream (of a recorder log only that vessel's samples are read)."""
+def _vessel_stream(
+    path: str, vessel: str | None
+) -> tuple[list[InterchangeLog], Iterator[tuple[InterchangeLog, str, LogRow]]]:
+    """Return a log's header logs met so far (a list that grows as the stream is read:
+    :func:`monitor.runs.logs.stream_log`'s) and an iterator of (header log, vessel, row)
+    of its rows, or of ``vessel``'s only (of a recorder log only that vessel's samples
+    are read)."""
     from monitor.runs.logs import stream_log  # here: monitor.runs.logs builds on this module
 
     seen, items = stream_log(path, vessel)
     if not is_recorder_log(path):
         check_columns(seen[0])
-    for log, name, row in _with_vessels(_read_ahead(items)):
-        if vessel is None or name == vessel:
-            yield log, name, row
+    rows = _with_vessels(_read_ahead(items))
+    if vessel is None:
+        return seen, rows
+    return seen, ((log, name, row) for log, name, row in rows if name == vessel)
 
 
 class _Counted:
@@ -496,7 +501,7 @@ def run_spans(path: str, vessel: str | None = None) -> list[RunSpan]:
     spans: list[tuple[int, RunSpan]] = []
     order = itertools.count()
     vessels: dict[str, _Counted] = {}
-    for log, name, row in _vessel_stream(path, vessel):
+    for log, name, row in _vessel_stream(path, vessel)[1]:
         counted = vessels.get(name)
         if counted is None:
             counted = vessels[name] = _Counted(name, spans, order)
@@ -513,6 +518,67 @@ def run_spans(path: str, vessel: str | None = None) -> list[RunSpan]:
     return [span for _, span in sorted(spans, key=lambda item: item[0])]
 
 
+@dataclass
+class VesselReplay:
+    """What :func:`replay_vessel` gives: each replayed run's summary by its number
+    (:attr:`RunSpan.number`), in order, the header log the chosen run came from (its
+    metadata), and every header log the stream met (their ``rejected`` rows included)."""
+
+    summaries: dict[int, dict[str, object]]
+    chosen_log: InterchangeLog | None
+    logs: list[InterchangeLog]
+
+
+def replay_vessel(
+    path: str,
+    vessel: str,
+    chosen: int,
+    on_row: Callable[[LogRow], None] | None = None,
+    on_estimate: Callable[[Estimate], None] | None = None,
+    *,
+    only_chosen: bool = False,
+    settings: EstimatorSettings | None = None,
+) -> VesselReplay:
+    """Replay ``vessel``'s runs in a log as ``ebullio replay`` replays them, reading it as a
+    stream: every run, or with ``only_chosen`` the run numbered ``chosen`` alone (the
+    others split and skipped, and reading stops once it has ended).
+
+    ``on_row`` is told each row of run ``chosen`` and ``on_estimate`` each of its
+    estimates, as they come; nothing of the log is held.
+    """
+    summaries: dict[int, dict[str, object]] = {}
+    chosen_log: list[InterchangeLog] = []
+
+    def finished(slot: tuple[int, int], summary: dict[str, object]) -> None:
+        summaries[slot[1]] = summary
+
+    def estimate(_run: OpenRun, e: Estimate) -> None:
+        if on_estimate is not None and feed.begun - 1 == chosen:
+            on_estimate(e)
+
+    def row(r: LogRow) -> None:
+        if feed.begun - 1 == chosen:
+            if not chosen_log and feed.log is not None:
+                chosen_log.append(feed.log)
+            if on_row is not None:
+                on_row(r)
+
+    feed = _VesselReplay(vessel, settings, estimate, finished, lambda: (0, feed.begun - 1),
+                         wanted=(lambda n: n == chosen) if only_chosen else None,
+                         on_row=row)  # fmt: skip
+    logs, rows = _vessel_stream(path, vessel)
+    for log, _, r in rows:
+        if feed.log is not log:
+            feed.new_log(log)
+        feed.take(r)
+        if only_chosen and chosen in summaries:
+            break
+    else:
+        feed.finish()
+    return VesselReplay(dict(sorted(summaries.items())),
+                        chosen_log[0] if chosen_log else None, logs)  # fmt: skip
+
+
 def replay_streamed(
     path: str,
     vessel: str,
@@ -522,32 +588,11 @@ def replay_streamed(
     settings: EstimatorSettings | None = None,
 ) -> dict[str, object] | None:
     """Return the summary of ``vessel``'s run numbered ``number`` (:attr:`RunSpan.number`)
-    replayed as ``ebullio replay`` replays it, or None
-    when there is no such run.
-
-    The log is read as a stream and the other runs are split but not replayed;
-    reading stops once the run has ended. ``on_row`` is told each of the run's rows
-    and ``on_estimate`` each estimate, as they come.
-    """
-    found: list[dict[str, object]] = []
-
-    def finished(_slot: tuple[int, int], summary: dict[str, object]) -> None:
-        found.append(summary)
-
-    def estimate(_run: OpenRun, e: Estimate) -> None:
-        if on_estimate is not None:
-            on_estimate(e)
-
-    feed = _VesselReplay(vessel, settings, estimate, finished, lambda: (0, 0),
-                         wanted=lambda n: n == number, on_row=on_row)  # fmt: skip
-    for log, _, row in _vessel_stream(path, vessel):
-        if feed.log is not log:
-            feed.new_log(log)
-        feed.take(row)
-        if found:
-            return found[0]
-    feed.finish()
-    return found[0] if found else None
+    replayed alone (:func:`replay_vessel` with ``only_chosen``), or None when there is
+    no such run."""
+    done = replay_vessel(path, vessel, number, on_row, on_estimate, only_chosen=True,
+                         settings=settings)  # fmt: skip
+    return done.summaries.get(number)
 
 
 #: Rows read at a time. Parsing a block and then stepping it keeps each at its own work:

@@ -223,3 +223,31 @@ def test_a_fleet_logs_report_reads_its_vessel_and_names_the_others(tmp_path) -> 
     assert "ebullio report: kettle-2, run 1" in page
     with pytest.raises(LogFormatError, match="no vessel 'kettle-9'; it holds kettle-1, kettle-2"):
         build_report(str(path), vessel="kettle-9")
+
+
+def test_the_report_read_as_a_stream_draws_what_the_whole_run_gives(tmp_path, monkeypatch):
+    """Issue 16: the report reads its log as a stream (run_spans, then replay_vessel);
+    its run chart holds the points envelope() picks from the whole run's readings, and
+    its figures are those of replaying the run read whole."""
+    from monitor.cli import main
+    from monitor.reports import report as report_module
+    from monitor.reports.plots import envelope
+    from monitor.runs.logs import read_log
+    from monitor.runs.replay import replay_run
+    from monitor.runs.run import split_runs
+
+    csv_log = tmp_path / "long.csv"
+    assert main(["simulate", "--duration-s", "6000", "--out", str(csv_log)]) == 0
+    drawn = []
+    monkeypatch.setattr(report_module.pio, "to_html", lambda fig, **_: drawn.append(fig) or "")
+    page = build_report(str(csv_log))
+    run = split_runs(read_log(csv_log))[0][-1]
+    t0 = run.rows[0].time_s
+    t = [r.time_s - t0 for r in run.rows]
+    traces = {trace.name: trace for trace in drawn[0].data}
+    for channel, name in (("water", "water °C"), ("ambient", "ambient °C"), ("power", "power W")):
+        want_t, want_y = envelope(t, [r.values.get(channel) for r in run.rows])
+        assert list(traces[name].x) == want_t
+        assert list(traces[name].y) == want_y
+    summary = replay_run(run)
+    assert f"{summary['water_mass_kg']['value']:.3f}" in page  # type: ignore[index]
