@@ -268,7 +268,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         from flask import Response, request
 
         from drivers.errors import EbullioError
-        from monitor.runs.logs import export_run_csv
+        from monitor.runs.streams import export_run_csv
 
         vessel_id, run = request.args.get("vessel", ""), request.args.get("run", "")
         out = io.StringIO()

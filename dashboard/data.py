@@ -223,7 +223,7 @@ def replay_streamed_run(
     path: str, span, progress: Callable[[float], None] | None = None,
     max_points: int = MAX_POINTS,
 ) -> dict[str, object]:  # fmt: skip
-    """Replay one run of a log (a :class:`monitor.runs.replay.RunSpan` of it) as
+    """Replay one run of a log (a :class:`monitor.runs.streams.RunSpan` of it) as
     :func:`replay_one` does, reading the log as a stream: the memory it takes does not
     grow with the run or the log (the series are thinned as they come,
     :class:`monitor.reports.plots.EnvelopeStream`). Raises LogFormatError when the log
@@ -289,9 +289,9 @@ def list_runs(path: str, spans: list | None = None) -> list[dict[str, object]]:
     writes a row as each run ends; cheap however long the log), each marked
     ``recorded``: such a run has ended, and is found again by its span. Otherwise the
     log is read as a stream and split as ``ebullio replay`` splits it
-    (:func:`monitor.runs.replay.run_spans`; ``spans`` when the caller has them).
+    (:func:`monitor.runs.streams.run_spans`; ``spans`` when the caller has them).
     """
-    from monitor.runs.replay import run_spans
+    from monitor.runs.streams import run_spans
 
     if spans is None and is_recorder_log(path):
         recorded = _table_runs(path)
@@ -315,7 +315,7 @@ def _table_runs(path: str) -> list[dict[str, object]]:
 
 
 def _pick_run(spans: list, vessel: str, label: str, span: tuple[float, float] | None):
-    """Return the run of ``vessel`` (a :class:`monitor.runs.replay.RunSpan`) labelled
+    """Return the run of ``vessel`` (a :class:`monitor.runs.streams.RunSpan`) labelled
     ``label``, else the one that overlaps ``span`` (Unix s) most.
 
     The live service and the replay number runs alike (:mod:`monitor.runs.run`), so the
@@ -344,7 +344,7 @@ def replay_label(path: str, vessel: str, label: str, span: tuple[float, float]) 
     service recorded is found by its time span (see :func:`_pick_run`). The log is read
     as a stream, holding none of its rows.
     """
-    from monitor.runs.replay import run_spans
+    from monitor.runs.streams import run_spans
 
     run = _pick_run(run_spans(path, vessel), vessel, label, span)
     return run.label if run is not None else label
@@ -382,13 +382,13 @@ def replay_detail(
     The figures are the replay's (as ``ebullio replay`` gives them), not the ones the
     live service recorded. The log is read as a stream twice, once to find the run and
     once to replay it, in memory that does not grow with it. ``spans`` is
-    :func:`monitor.runs.replay.run_spans` of the log when the caller has them. ``span``
+    :func:`monitor.runs.streams.run_spans` of the log when the caller has them. ``span``
     (start and end, Unix s) finds the run by time, as listed from the runs table;
     ``run`` in the answer is then the replay's label. ``progress`` is told how far the
     replay has got. Raises LogFormatError when the log has no such run.
     """
     from drivers.errors import LogFormatError
-    from monitor.runs.replay import run_spans
+    from monitor.runs.streams import run_spans
 
     spans = run_spans(path, vessel) if spans is None else spans
     run = _pick_run(spans, vessel, label, span)

@@ -38,7 +38,8 @@ from monitor.runs.drift import (
     drift_over_runs,
     verdict_of,
 )
-from monitor.runs.replay import replay_vessel, run_spans
+from monitor.runs.replay import replay_vessel
+from monitor.runs.streams import run_spans
 
 
 def file_sha256(path: str | Path) -> str:

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from itertools import groupby
 from pathlib import Path
 from typing import TextIO
@@ -143,15 +143,13 @@ def stream_log(
     return seen, items()
 
 
-def _csv_rows(rows: list[LogRow]) -> list[LogRow]:
-    """Return rows with NaN (a known fault) written as a blank cell, as the format wants."""
-    out = []
+def nan_as_blank(rows: Iterable[LogRow]) -> Iterator[LogRow]:
+    """Yield rows with NaN (a known fault) written as a blank cell, as the format wants."""
     for r in rows:
         if any(math.isnan(v) for v in r.values.values()):
             values = {k: v for k, v in r.values.items() if not math.isnan(v)}
             r = LogRow(r.line, r.time_s, values, r.vessel, r.run)
-        out.append(r)
-    return out
+        yield r
 
 
 def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> int:
@@ -177,7 +175,7 @@ def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> 
         metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
     metadata["exported_from"] = Path(str(log_path)).name
     if len(mine) == 1:
-        return write_csv(out, _csv_rows(chosen.rows), metadata, chosen.channels)
+        return write_csv(out, nan_as_blank(chosen.rows), metadata, chosen.channels)
     # several sessions of the service: one time axis, and each row's run written out so
     # the file splits into the same runs (a refill's first cold reading goes once, with
     # the run it ends)
@@ -191,27 +189,7 @@ def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> 
             if key not in rows:
                 rows[key] = LogRow(r.line, r.time_s + shift, r.values, vessel, run.label)
     channels = [c for c in CHANNEL_COLUMNS if any(c in g.channels for g in mine)]
-    return write_csv(out, _csv_rows(list(rows.values())), metadata, channels, with_vessel=True)
-
-
-def export_run_csv(log_path: str | Path, out: TextIO, vessel: str, run_label: str) -> int:
-    """Write one run of one vessel, as the replay splits the log, as a CSV interchange file.
-
-    Returns the rows written. Raises LogFormatError naming the runs when there is no
-    such run.
-    """
-    runs, _ = split_runs(read_log(log_path, vessel))
-    mine = [r for r in runs if r.vessel == vessel]
-    run = next((r for r in mine if r.label == run_label), None)
-    if run is None:
-        labels = ", ".join(r.label for r in mine) or "(none)"
-        raise LogFormatError(f"{log_path}: vessel {vessel!r} has no run {run_label!r}; "
-                             f"its runs: {labels}")  # fmt: skip
-    metadata = dict(run.log.metadata)
-    if run.log.start_epoch_s is not None:
-        metadata["start_utc"] = iso_utc(run.log.start_epoch_s)
-    metadata["exported_from"] = f"{Path(str(log_path)).name}, run {run_label}"
-    return write_csv(out, _csv_rows(run.rows), metadata, run.log.channels)
+    return write_csv(out, nan_as_blank(list(rows.values())), metadata, channels, with_vessel=True)
 
 
 def record_summaries(paths: list[str], result: dict[str, object]) -> int:

@@ -31,13 +31,10 @@ file, line and reason under ``quarantined``, and counted per run.
 from __future__ import annotations
 
 import csv
-import itertools
 import logging
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from itertools import islice
-from pathlib import Path
-from typing import TextIO, TypeVar
+from typing import TextIO
 
 from monitor import __version__
 from monitor.estimation.contracts import Estimate, Level
@@ -46,6 +43,7 @@ from monitor.records.interchange import InterchangeLog, LogRow
 from monitor.records.recorder import is_recorder_log
 from monitor.records.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
 from monitor.runs.drift import VERDICT_TEXT, verdict_of
+from monitor.runs.logs import log_integrity, stream_log
 from monitor.runs.run import (
     NO_FIGURES,
     OpenRun,
@@ -55,9 +53,9 @@ from monitor.runs.run import (
     check_columns,
     has_element_sensor,
 )
+from monitor.runs.streams import read_ahead, vessel_stream, with_vessels
 
 _log = logging.getLogger("ebullio.replay")
-_T = TypeVar("_T")
 
 
 def replay_run(
@@ -320,10 +318,6 @@ def replay(
     :func:`replay_run`. Writes per-step estimates to ``estimates_out`` when given, and
     a progress line to ``progress`` every :data:`PROGRESS_STEPS` steps.
     """
-    from monitor.runs.logs import (  # here: monitor.runs.logs builds on this module
-        log_integrity,
-        stream_log,
-    )
 
     writer = None
     if estimates_out is not None:
@@ -351,7 +345,7 @@ def replay(
         seen, items = stream_log(path)
         if not is_recorder_log(path):
             check_columns(seen[0])
-        for log, vessel, row in _with_vessels(_read_ahead(items)):
+        for log, vessel, row in with_vessels(read_ahead(items)):
             feed = vessels.get(vessel)
             if feed is None:
                 feed = vessels[vessel] = _VesselReplay(
@@ -381,148 +375,12 @@ def replay(
     }
 
 
-def _with_vessels(
-    items: Iterator[tuple[InterchangeLog, LogRow]],
-) -> Iterator[tuple[InterchangeLog, str, LogRow]]:
-    """Yield (header log, vessel, row): a row that names no vessel is its header log's
-    (``vessel`` in the log's metadata, else the file's name without its suffix)."""
-    default: dict[int, str] = {}
-    for log, row in items:
-        vessel = row.vessel
-        if not vessel:
-            vessel = default.get(id(log))
-            if vessel is None:
-                vessel = str(log.metadata.get("vessel") or Path(log.path).stem)
-                default[id(log)] = vessel
-        yield log, vessel, row
-
-
-@dataclass(frozen=True)
-class RunSpan:
-    """One run of a vessel as the replay splits it, without its rows (:func:`run_spans`).
-
-    ``number`` is its place among the vessel's runs in the log (0 first: what
-    :func:`replay_streamed` takes); ``start_s`` and ``end_s`` are its first and last
-    row's times in s from the log's start (``start_epoch_s``, Unix s; 0 when the log
-    has none), ``steps`` its rows, and ``points`` per channel (the number of rows with
-    a reading, the number of those that are not NaN), which
-    :class:`monitor.reports.plots.EnvelopeStream` needs.
-    """
-
-    vessel: str
-    label: str
-    number: int
-    start_s: float
-    end_s: float
-    steps: int
-    start_epoch_s: float
-    points: Mapping[str, tuple[int, int]]
-
-
-def _vessel_stream(
-    path: str, vessel: str | None
-) -> tuple[list[InterchangeLog], Iterator[tuple[InterchangeLog, str, LogRow]]]:
-    """Return a log's header logs met so far (a list that grows as the stream is read:
-    :func:`monitor.runs.logs.stream_log`'s) and an iterator of (header log, vessel, row)
-    of its rows, or of ``vessel``'s only (of a recorder log only that vessel's samples
-    are read)."""
-    from monitor.runs.logs import stream_log  # here: monitor.runs.logs builds on this module
-
-    seen, items = stream_log(path, vessel)
-    if not is_recorder_log(path):
-        check_columns(seen[0])
-    rows = _with_vessels(_read_ahead(items))
-    if vessel is None:
-        return seen, rows
-    return seen, ((log, name, row) for log, name, row in rows if name == vessel)
-
-
-class _Counted:
-    """One vessel's rows split into runs and counted as they pass (:func:`run_spans`)."""
-
-    def __init__(self, vessel: str, spans: list[tuple[int, RunSpan]], order: Iterator[int]) -> None:
-        self.vessel, self.spans, self.order = vessel, spans, order
-        self.feed = RunFeed()  # the one split, as the replay's
-        self.log: InterchangeLog | None = None
-        self.begun = 0
-        self.place = 0  # the open run's place among all vessels' runs, as they began
-        self.open: tuple[str, int, float] | None = None  # the open run's label, number, epoch
-        self.steps = 0
-        self.start_s = self.end_s = 0.0
-        self.points: dict[str, list[int]] = {}
-
-    def add(self, row: LogRow) -> None:
-        if self.open is None:
-            return
-        if not self.steps:
-            self.start_s = row.time_s
-        self.end_s = row.time_s
-        self.steps += 1
-        points = self.points
-        for channel, value in row.values.items():
-            if value is None:
-                continue
-            seen = points.get(channel)
-            if seen is None:
-                seen = points[channel] = [0, 0]
-            seen[0] += 1
-            if value == value:
-                seen[1] += 1
-
-    def apply(self, events: list[RunEvent]) -> None:
-        for kind, row, label in events:
-            if kind == "row":
-                if row is not None:
-                    self.add(row)
-                continue
-            self._close()
-            if kind == "begin":
-                assert self.log is not None
-                assert label is not None
-                self.open = (label, self.begun, self.log.start_epoch_s or 0.0)
-                self.begun += 1
-                self.place = next(self.order)
-
-    def _close(self) -> None:
-        run = self.open
-        if run is not None and self.steps:
-            points = {channel: (n[0], n[1]) for channel, n in self.points.items()}
-            label, number, epoch = run
-            span = RunSpan(self.vessel, label, number, self.start_s, self.end_s, self.steps,
-                           epoch, points)  # fmt: skip
-            self.spans.append((self.place, span))
-        self.open, self.steps, self.points = None, 0, {}
-
-
-def run_spans(path: str, vessel: str | None = None) -> list[RunSpan]:
-    """Return the runs in a log (``vessel``'s only, when given), split as the replay
-    splits them, in the order they began (as :func:`monitor.runs.run.split_runs` lists
-    them), reading the log as a stream and holding none of its rows."""
-    spans: list[tuple[int, RunSpan]] = []
-    order = itertools.count()
-    vessels: dict[str, _Counted] = {}
-    for log, name, row in _vessel_stream(path, vessel)[1]:
-        counted = vessels.get(name)
-        if counted is None:
-            counted = vessels[name] = _Counted(name, spans, order)
-        if log is not counted.log:
-            counted.apply(counted.feed.restart())
-            counted.log = log
-        events = counted.feed.take(row)
-        if events is None:
-            counted.add(row)
-        else:
-            counted.apply(events)
-    for counted in vessels.values():
-        counted.apply(counted.feed.finish())
-    return [span for _, span in sorted(spans, key=lambda item: item[0])]
-
-
 @dataclass
 class VesselReplay:
     """What :func:`replay_vessel` gives: each replayed run's summary by its number
-    (:attr:`RunSpan.number`), in order, the header log the chosen run came from (its
-    metadata), and every header log the stream met (their ``rejected`` rows included)."""
+    (:attr:`monitor.runs.streams.RunSpan.number`), in order, the header log the chosen
+    run came from (its metadata), and every header log the stream met (their
+    ``rejected`` rows included)."""
 
     summaries: dict[int, dict[str, object]]
     chosen_log: InterchangeLog | None
@@ -566,7 +424,7 @@ def replay_vessel(
     feed = _VesselReplay(vessel, settings, estimate, finished, lambda: (0, feed.begun - 1),
                          wanted=(lambda n: n == chosen) if only_chosen else None,
                          on_row=row)  # fmt: skip
-    logs, rows = _vessel_stream(path, vessel)
+    logs, rows = vessel_stream(path, vessel)
     for log, _, r in rows:
         if feed.log is not log:
             feed.new_log(log)
@@ -587,24 +445,12 @@ def replay_streamed(
     on_estimate: Callable[[Estimate], None] | None = None,
     settings: EstimatorSettings | None = None,
 ) -> dict[str, object] | None:
-    """Return the summary of ``vessel``'s run numbered ``number`` (:attr:`RunSpan.number`)
-    replayed alone (:func:`replay_vessel` with ``only_chosen``), or None when there is
-    no such run."""
+    """Return the summary of ``vessel``'s run numbered ``number``
+    (:attr:`monitor.runs.streams.RunSpan.number`) replayed alone (:func:`replay_vessel`
+    with ``only_chosen``), or None when there is no such run."""
     done = replay_vessel(path, vessel, number, on_row, on_estimate, only_chosen=True,
                          settings=settings)  # fmt: skip
     return done.summaries.get(number)
-
-
-#: Rows read at a time. Parsing a block and then stepping it keeps each at its own work:
-#: row by row, the parser pushed the filter's arrays out of the processor's caches and a
-#: 2-day heater replay took 12.8-13.0 s where the same rows read whole took 11.5-11.7 s.
-READ_AHEAD_ROWS = 2048
-
-
-def _read_ahead(items: Iterator[_T]) -> Iterator[_T]:
-    """Yield ``items`` as they come, read :data:`READ_AHEAD_ROWS` at a time."""
-    while block := list(islice(items, READ_AHEAD_ROWS)):
-        yield from block
 
 
 #: A progress line every this many steps (``replay --json`` on a long log).

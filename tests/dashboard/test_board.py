@@ -349,7 +349,7 @@ def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) ->
 
     from dashboard.data import list_runs, replay_detail, replay_one, split_log
     from dashboard.views.replay import latest_at, parse_choice, run_options, scrub, show_run
-    from monitor.runs.replay import run_spans
+    from monitor.runs.streams import run_spans
 
     runs = list_runs(str(live_log))  # from the runs table the service wrote
     assert [(r["vessel"], r["run"]) for r in runs] == [("kettle-a", "1"), ("kettle-b", "1")]

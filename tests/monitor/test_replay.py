@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from drivers.errors import LogFormatError
 from monitor.cli import main
 from monitor.records.interchange import read_csv_text
 from monitor.records.schema import ESTIMATE_CSV_COLUMNS
@@ -286,33 +287,6 @@ def test_set_aside_input_is_one_record_from_a_csv_and_from_a_recorder_log(tmp_pa
     assert row["raw"] == "water=\\xff"  # the byte that is not UTF-8, kept and escaped
 
 
-def test_the_streamed_replay_gives_what_replaying_the_whole_log_gives(tmp_path) -> None:
-    """Issue 16: replay reads a log as a stream, run by run; the runs, their order and
-    their figures are those of splitting the whole log (split_runs, replay_run)."""
-    from monitor.runs.logs import read_log
-    from monitor.runs.replay import replay_run
-
-    lines = ["time_s,water_c,power_w,vessel,run"]
-    for t in range(400):  # two vessels, interleaved; urn-2 labels its runs
-        lines.append(f"{t},{min(20 + t * 0.4, 99.0):.2f},{2000 if t < 200 else 0},kettle-a,")
-        lines.append(f"{t},{15 + t * 0.05:.2f},1500,urn-2,{'A' if t < 250 else 'B'}")
-    for t in range(400, 500):  # kettle-a emptied and refilled: cold water again
-        lines.append(f"{t},{15 + (t - 400) * 0.3:.2f},2000,kettle-a,")
-    lines.insert(300, "1.5,not-a-number,2000,kettle-a,")  # set aside, inside run 1
-    log = tmp_path / "two.csv"
-    log.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    whole, _ = split_runs(read_log(log))
-    expected = [replay_run(run) for run in whole]
-    streamed = replay([str(log)])["runs"]
-    assert [(r["vessel"], r["run"]) for r in streamed] == [(r.vessel, r.label) for r in whole]
-    assert [(r["vessel"], r["run"]) for r in streamed] == [
-        ("kettle-a", "1"), ("urn-2", "A"), ("urn-2", "B"), ("kettle-a", "2")]  # fmt: skip
-    for got, want in zip(streamed, expected, strict=True):
-        got = {k: v for k, v in got.items() if k != "drift"}
-        assert got == want
-    assert streamed[0]["quarantined_rows"] == 1
-
-
 def _two_vessel_log(tmp_path: Path) -> Path:
     lines = ["time_s,water_c,power_w,vessel,run"]
     for t in range(400):  # two vessels, interleaved; urn-2 labels its runs
@@ -326,6 +300,25 @@ def _two_vessel_log(tmp_path: Path) -> Path:
     return log
 
 
+def test_the_streamed_replay_gives_what_replaying_the_whole_log_gives(tmp_path) -> None:
+    """Issue 16: replay reads a log as a stream, run by run; the runs, their order and
+    their figures are those of splitting the whole log (split_runs, replay_run)."""
+    from monitor.runs.logs import read_log
+    from monitor.runs.replay import replay_run
+
+    log = _two_vessel_log(tmp_path)
+    whole, _ = split_runs(read_log(log))
+    expected = [replay_run(run) for run in whole]
+    streamed = replay([str(log)])["runs"]
+    assert [(r["vessel"], r["run"]) for r in streamed] == [(r.vessel, r.label) for r in whole]
+    assert [(r["vessel"], r["run"]) for r in streamed] == [
+        ("kettle-a", "1"), ("urn-2", "A"), ("urn-2", "B"), ("kettle-a", "2")]  # fmt: skip
+    for got, want in zip(streamed, expected, strict=True):
+        got = {k: v for k, v in got.items() if k != "drift"}
+        assert got == want
+    assert streamed[0]["quarantined_rows"] == 1
+
+
 def test_one_run_is_found_and_replayed_from_a_stream_as_the_whole_replay_gives_it(
     tmp_path,
 ) -> None:
@@ -333,7 +326,8 @@ def test_one_run_is_found_and_replayed_from_a_stream_as_the_whole_replay_gives_i
     without holding its rows, and replay_streamed replays one run of it alone, with the
     summary the whole replay gives that run and every row and estimate told."""
     from monitor.runs.logs import read_log
-    from monitor.runs.replay import replay_run, replay_streamed, run_spans
+    from monitor.runs.replay import replay_run, replay_streamed
+    from monitor.runs.streams import run_spans
 
     log = _two_vessel_log(tmp_path)
     whole, _ = split_runs(read_log(log))
@@ -382,3 +376,30 @@ def test_the_streamed_envelope_keeps_the_points_the_whole_one_keeps() -> None:
         assert got[0] == want[0]
         assert [v if v == v else "nan" for v in got[1]] == [
             v if v == v else "nan" for v in want[1]]  # fmt: skip
+
+
+def test_one_run_exported_from_a_stream_is_the_run_the_whole_split_gives(tmp_path) -> None:
+    """Issue 16: export_run_csv (the board's /export.csv) reads the log as a stream; the
+    file it writes is the one written from the run of the whole log's split."""
+    from monitor.records.interchange import iso_utc, write_csv
+    from monitor.runs.logs import nan_as_blank, read_log
+    from monitor.runs.streams import export_run_csv, run_rows, run_spans
+
+    log = _two_vessel_log(tmp_path)
+    whole, _ = split_runs(read_log(log))
+    spans = run_spans(str(log))
+    assert len(spans) == len(whole) == 4
+    for span, run in zip(spans, whole, strict=True):
+        assert [r.time_s for r in run_rows(str(log), span.vessel, span.number)] == [
+            r.time_s for r in run.rows]  # fmt: skip
+        got = io.StringIO()
+        written = export_run_csv(log, got, run.vessel, run.label)
+        metadata = dict(run.log.metadata)
+        if run.log.start_epoch_s is not None:
+            metadata["start_utc"] = iso_utc(run.log.start_epoch_s)
+        metadata["exported_from"] = f"two.csv, run {run.label}"
+        want = io.StringIO()
+        assert written == write_csv(want, nan_as_blank(run.rows), metadata, run.log.channels)
+        assert got.getvalue() == want.getvalue()
+    with pytest.raises(LogFormatError, match="its runs: A, B"):
+        export_run_csv(log, io.StringIO(), "urn-2", "C")
