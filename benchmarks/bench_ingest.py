@@ -4,6 +4,8 @@ Run from the repository root (Debian's ``mosquitto`` must be installed):
 
     .venv/bin/python benchmarks/bench_ingest.py                    # 100 and 1000 vessels
     .venv/bin/python benchmarks/bench_ingest.py --vessels 50 --seconds 10   # a quick look
+    .venv/bin/python benchmarks/bench_ingest.py --vessels 1000 --fleet heaters \
+        --estimate-interval-s 10    # a building's fleet, estimates recorded every 10 s
 
 For each fleet size a fresh broker starts on 127.0.0.1 (``max_queued_messages 0``,
 ``max_inflight_messages 0``: the README's settings for acknowledgement after commit),
@@ -92,7 +94,7 @@ def trajectories(seconds: int, fleet: str) -> list[list[dict[str, float]]]:
     return out
 
 
-def config_text(url: str, vessels: list[str], fleet: str) -> str:
+def config_text(url: str, vessels: list[str], fleet: str, estimate_interval_s: float = 0.0) -> str:
     """Return the rig configuration: every vessel reports on MQTT."""
     lines = [
         "[mqtt]",
@@ -103,6 +105,7 @@ def config_text(url: str, vessels: list[str], fleet: str) -> str:
         "[recorder]",
         "commit_interval_s = 1.0",
         "queue_samples = 200000",
+        f"estimate_interval_s = {estimate_interval_s}",
     ]
     for v in vessels:
         lines += ["[[vessels]]", f'id = "{v}"']
@@ -250,7 +253,9 @@ def bench_bare(n: int, seconds: int, warmup_s: int, fleet: str) -> dict[str, obj
                 client.communicate(timeout=60)
 
 
-def bench(n: int, seconds: int, warmup_s: int, fleet: str) -> dict[str, object]:
+def bench(
+    n: int, seconds: int, warmup_s: int, fleet: str, estimate_interval_s: float = 0.0
+) -> dict[str, object]:
     vessels = [f"v{i:04d}" for i in range(n)]
     with tempfile.TemporaryDirectory(prefix="ebullio-ingest-") as tmp:
         work = Path(tmp)
@@ -258,7 +263,8 @@ def bench(n: int, seconds: int, warmup_s: int, fleet: str) -> dict[str, object]:
         # let that many wait unacknowledged, as the README's broker settings say
         with MosquittoBroker(work / "broker", extra_config=("max_inflight_messages 0",)) as broker:
             cfg = work / "rig.toml"
-            cfg.write_text(config_text(broker.url, vessels, fleet), encoding="utf-8")
+            text = config_text(broker.url, vessels, fleet, estimate_interval_s)
+            cfg.write_text(text, encoding="utf-8")
             log = work / "ingest.sqlite"
             service = subprocess.Popen(
                 [sys.executable, "-m", "monitor.cli", "run", "--config", str(cfg),
@@ -283,6 +289,7 @@ def bench(n: int, seconds: int, warmup_s: int, fleet: str) -> dict[str, object]:
                 {
                     "vessels": n,
                     "fleet": fleet,
+                    "estimate_interval_s": estimate_interval_s,
                     "seconds": seconds,
                     "exit_code": service.returncode,
                     "recorded_samples": recorded,
@@ -325,6 +332,10 @@ def main() -> None:
         "thermostat (a building's usual load)",
     )  # fmt: skip
     parser.add_argument("--no-bare", action="store_true", help="skip the bare client's run")
+    parser.add_argument(
+        "--estimate-interval-s", type=float, default=0.0,
+        help="the service's [recorder] estimate_interval_s (0: every estimate recorded)",
+    )  # fmt: skip
     parser.add_argument("--bare-client", metavar="URL", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.bare_client:
@@ -338,7 +349,7 @@ def main() -> None:
             print(f"bench_ingest: bare client, {n} vessels", file=sys.stderr, flush=True)
             bare = bench_bare(n, args.seconds, args.warmup_s, args.fleet)
         print(f"bench_ingest: {n} vessels for {args.seconds} s", file=sys.stderr, flush=True)
-        result = bench(n, args.seconds, args.warmup_s, args.fleet)
+        result = bench(n, args.seconds, args.warmup_s, args.fleet, args.estimate_interval_s)
         result["bare_client"] = bare
         result["issue_16_targets"] = issue_16_targets(result, bare)
         results.append(result)

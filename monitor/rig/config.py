@@ -23,6 +23,7 @@ An example, with every table::
     commit_interval_s = 1.0           # readings are acknowledged after each commit
     key_env = "EBULLIO_LOG_KEY"       # optional: signs the chain head kept beside the log
     queue_samples = 100000            # the bounded queue between sources and consumers
+    estimate_interval_s = 0.0         # an estimate row per vessel at most this often (0: all)
 
     [[instruments]]                   # a serial line logger
     url = "serial:///dev/ttyUSB0?baud=9600"
@@ -157,6 +158,9 @@ class RigConfig:
     vessels: tuple[VesselSpec, ...]
     commit_interval_s: float = 1.0
     queue_samples: int = 100_000
+    #: record a vessel's estimate at most this often, besides each change of its phase
+    #: or flags (``[recorder] estimate_interval_s``; 0: every estimate)
+    estimate_interval_s: float = 0.0
     #: signs the log's chain head (HMAC-SHA-256), from ``[recorder] key_env``; never logged
     log_key: bytes | None = field(default=None, repr=False)
 
@@ -185,11 +189,12 @@ def parse_config(text: str, file: str, environ: Mapping[str, str]) -> RigConfig:
     pressure_kpa = _site(top.table("site"))
     mqtt = _mqtt(top.table("mqtt"), environ)
     recorder = top.table("recorder")
-    commit_interval_s, queue_samples = 1.0, 100_000
+    commit_interval_s, queue_samples, estimate_interval_s = 1.0, 100_000, 0.0
     log_key: bytes | None = None
     if recorder is not None:
         commit_interval_s = recorder.number("commit_interval_s", 1.0, lo=0.05, hi=60.0)
         queue_samples = int(recorder.number("queue_samples", 100_000, lo=100, hi=1e8))
+        estimate_interval_s = recorder.number("estimate_interval_s", 0.0, lo=0.0, hi=3600.0)
         key_env = recorder.string("key_env")
         if key_env is not None:
             if not environ.get(key_env):
@@ -231,6 +236,7 @@ def parse_config(text: str, file: str, environ: Mapping[str, str]) -> RigConfig:
         vessels=tuple(vessels),
         commit_interval_s=commit_interval_s,
         queue_samples=queue_samples,
+        estimate_interval_s=estimate_interval_s,
         log_key=log_key,
     )
 

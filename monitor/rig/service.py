@@ -41,7 +41,9 @@ Shape (all in one asyncio loop, except the recorder's SQLite writes)::
 * **Publisher.** The latest estimate of each vessel, and its flags when they change,
   are published retained on ``<prefix>/<vessel>/estimate`` and ``.../flags``. When the
   broker is slower than the estimates, only the newest estimate per vessel is sent
-  (``estimates_coalesced`` counts the ones skipped); every estimate is still recorded.
+  (``estimates_coalesced`` counts the ones skipped); every estimate is still recorded,
+  or with ``[recorder] estimate_interval_s`` one per vessel per interval and each whose
+  phase or flags changed (``estimates_not_recorded`` counts the others).
 * **Stopping.** :meth:`Service.stop` (SIGINT or SIGTERM from ``ebullio run``) cancels
   the sources (their drivers close), drains the queue, steps the last instants,
   commits the last block and closes the log.
@@ -129,6 +131,7 @@ class Stats:
     estimates: int = 0
     published: int = 0
     estimates_coalesced: int = 0
+    estimates_not_recorded: int = 0  # left out of the log by [recorder] estimate_interval_s
     reconnects: int = 0
     link_losses: int = 0
     backpressure_waits: int = 0
@@ -384,6 +387,8 @@ class Service:
         self._estimate_rows: list[dict[str, object]] = []
         self._flag_rows: list[dict[str, object]] = []
         self._flags_sent: dict[str, tuple[str, ...]] = {}
+        # each vessel's last estimate in the log: (time, phase, flags)
+        self._recorded: dict[str, tuple[float, str, tuple[str, ...]]] = {}
         self._head_to_publish: dict[str, object] | None = None  # the newest chain head
         self._publish_ready = asyncio.Event()
         self._faulted: set[str] = set()  # vessels whose failure has been logged in full
@@ -556,8 +561,11 @@ class Service:
         self.stats.estimates += 1
         # one flat form: published as it is, and the recorder's estimates row
         record = flatten_estimate(e, vessel=vessel.vessel, run=str(vessel.run_number), t=step.t)
-        self._estimate_rows.append(record)
         names = tuple(sorted(f.name for f in e.flags))
+        if self._to_record(vessel.vessel, step.t, str(e.phase), names):
+            self._estimate_rows.append(record)
+        else:
+            self.stats.estimates_not_recorded += 1
         if names != self._flags_sent.get(vessel.vessel):
             self._flags_sent[vessel.vessel] = names
             self._flag_rows += [flag_record(step.t, vessel.vessel, f) for f in e.flags]
@@ -568,6 +576,19 @@ class Service:
         self._publish_ready.set()
         if self.on_estimate is not None:
             self.on_estimate(record)
+
+    def _to_record(self, vessel: str, t: float, phase: str, flags: tuple[str, ...]) -> bool:
+        """Return whether this estimate of ``vessel`` goes in the log: every one, or with
+        ``[recorder] estimate_interval_s`` one per interval and each whose phase or flags
+        differ from the last recorded (so no change of either is missing from the log)."""
+        interval = self.config.estimate_interval_s
+        if not interval:
+            return True
+        last = self._recorded.get(vessel)
+        if last is not None and t - last[0] < interval and last[1] == phase and last[2] == flags:
+            return False
+        self._recorded[vessel] = (t, phase, flags)
+        return True
 
     async def _consume(self) -> None:
         while True:

@@ -82,6 +82,10 @@ def test_a_good_configuration_loads_with_everything_in_place(tmp_path) -> None:
     assert cfg.mqtt.prefix == "ebullio"
     assert "s3cret" not in repr(cfg.mqtt)
     assert cfg.commit_interval_s == 0.5
+    assert cfg.estimate_interval_s == 0.0  # every estimate recorded unless asked
+    fewer = parse_config(_with("commit_interval_s = 0.5", "estimate_interval_s = 30"),
+                         "rig.toml", ENV)  # fmt: skip
+    assert fewer.estimate_interval_s == 30.0
     urn, heater = cfg.vessels
     assert urn.metadata["target_c"] == 95.0
     assert urn.metadata["element_sensor"] == "no"
@@ -160,6 +164,10 @@ def _with(old: str, new: str) -> str:
             "instruments[0]: csv framing needs fields",
         ),
         (_with("element_sensor = true", "element_sensor = 1"), "vessels[1].element_sensor"),
+        (
+            _with("commit_interval_s = 0.5", "commit_interval_s = 0.5\nestimate_interval_s = -1"),
+            "recorder.estimate_interval_s",
+        ),
     ],
 )
 def test_mistakes_name_file_key_and_reason(text: str, needle: str) -> None:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import itertools
 import os
 import random
 from dataclasses import replace
@@ -116,6 +117,41 @@ def test_samples_are_recorded_and_estimated_as_a_replay_would(tmp_path) -> None:
     assert len(replayed) == len(live)
     assert [t - t0 for t, _, _ in live] == pytest.approx([t for t, _, _ in replayed], abs=1e-6)
     assert [(w, ua) for _, w, ua in live] == [(w, ua) for _, w, ua in replayed]
+
+
+def test_an_estimate_interval_records_fewer_rows_and_every_change_of_phase_or_flags(
+    tmp_path,
+) -> None:
+    """[recorder] estimate_interval_s: one estimate row per vessel per interval, and every
+    estimate whose phase or flags differ from the last recorded; all are still made."""
+    vessel, samples, meta = kettle()
+    logs = {}
+    for interval in (0.0, 10.0):
+        log = logs[interval] = tmp_path / f"every-{interval:g}.sqlite"
+        config = replace(config_for(vessel, meta), estimate_interval_s=interval)
+        service = Service(config, str(log),
+                          extra_sources={"rig": lambda: ListDriver(samples, False)})  # fmt: skip
+        stats = asyncio.run(run_until(service, lambda s=service: s.stats.samples >= len(samples)))
+        assert stats.estimates > 500
+        if interval:
+            assert stats.estimates_not_recorded > 0.8 * stats.estimates
+        else:
+            assert stats.estimates_not_recorded == 0
+    every = list(read_estimates(logs[0.0]))
+    some = list(read_estimates(logs[10.0]))
+    assert len(every) > 500
+    assert len(some) < len(every) / 5
+    times = {r["t"] for r in every}
+    assert {r["t"] for r in some} <= times  # the same estimates, fewer of them
+    by_t = {r["t"]: r for r in some}
+    last = None
+    for r in every:  # each change of phase or flags is in the thinned log, at its instant
+        mark = (r["phase"], tuple(sorted(f["name"] for f in r.get("flags") or [])))
+        if mark != last:
+            assert r["t"] in by_t, (r["t"], mark)
+        last = mark
+    gaps = [b["t"] - a["t"] for a, b in itertools.pairwise(some)]
+    assert max(gaps) <= 10.0 + 1.5  # at most the interval (and the step it lands on)
 
 
 def test_a_lost_link_is_retried_and_the_gap_recorded(tmp_path) -> None:
