@@ -165,27 +165,35 @@ def chart_data(
 def replay_csv(path: str) -> dict[str, object]:
     """Replay a CSV log: per vessel its last run's series, estimates and latest; run state.
 
-    A CSV log does not change, so the board asks for this once per file (see
-    :class:`dashboard.app.Memo`).
+    Read as a stream: once to split it into runs, then once per vessel to replay its
+    runs (the last one's charts gathered as they come), so the board holds no more of
+    a long log than of a short one. A CSV log does not change, so the board asks for
+    this once per file (see :class:`dashboard.app.Memo`).
     """
-    from monitor.records.interchange import read_csv
     from monitor.runs.drift import drift_over_runs
-    from monitor.runs.run import split_runs
+    from monitor.runs.replay import replay_vessel
+    from monitor.runs.streams import run_spans
 
-    log = read_csv(path)
-    runs, _ = split_runs([log])
+    spans = run_spans(path)
     vessels: dict[str, dict[str, object]] = {}
-    summaries = []
-    for run in runs:
-        detail = replay_one(run)
-        summaries.append(detail.pop("summary"))
-        vessels[run.vessel] = detail
-    flags = drift_over_runs(summaries, {r.vessel: r.log.metadata for r in runs})
-    start = log.start_epoch_s or 0.0
-    rows = [{"vessel": s["vessel"], "run": s["run"], "start_t": start + (s["start_s"] or 0.0),
-             "end_t": start + (s["end_s"] or 0.0),
+    found: dict[tuple[str, int], dict[str, object]] = {}
+    metadata: dict[str, Mapping[str, object]] = {}
+    for vessel in dict.fromkeys(s.vessel for s in spans):
+        last = [s for s in spans if s.vessel == vessel][-1]
+        charts = _RunCharts(last)
+        done = replay_vessel(path, vessel, last.number, charts.take, charts.keep)
+        found.update(((vessel, number), summary) for number, summary in done.summaries.items())
+        metadata[vessel] = done.chosen_log.metadata if done.chosen_log is not None else {}
+        detail = charts.detail(done.summaries[last.number])
+        detail.pop("summary")
+        vessels[vessel] = detail
+    summaries = [found[(s.vessel, s.number)] for s in spans]
+    flags = drift_over_runs(summaries, metadata)
+    rows = [{"vessel": s["vessel"], "run": s["run"],
+             "start_t": span.start_epoch_s + (s["start_s"] or 0.0),
+             "end_t": span.start_epoch_s + (s["end_s"] or 0.0),
              "summary": {**s, "drift": [f.as_dict() for f in f_]}}
-            for s, f_ in zip(summaries, flags, strict=True)]  # fmt: skip
+            for span, s, f_ in zip(spans, summaries, flags, strict=True)]  # fmt: skip
     return {"vessels": vessels, "runs": run_state(rows), "summaries": [r["summary"] for r in rows]}
 
 
@@ -219,43 +227,63 @@ def replay_one(
     return _run_detail(run.vessel, run.label, start, thinned.items(), series, summary)
 
 
+class _RunCharts:
+    """One run's charts gathered as its rows (:meth:`take`) and estimates (:meth:`keep`)
+    pass: every n-th estimate (:class:`monitor.reports.plots.Thinned`) and each series
+    thinned as it comes (:class:`monitor.reports.plots.EnvelopeStream`), from the counts
+    of its :class:`monitor.runs.streams.RunSpan`."""
+
+    def __init__(
+        self, span, progress: Callable[[float], None] | None = None,
+        max_points: int = MAX_POINTS,
+    ) -> None:  # fmt: skip
+        from monitor.reports.plots import EnvelopeStream
+
+        self.span, self.progress = span, progress
+        self.start = span.start_epoch_s
+        self.total = max(span.steps, 1)
+        self.thinned = Thinned(self.total, max_points)
+        self.lines = {c: EnvelopeStream(*span.points.get(c, (0, 0)), max_points)
+                      for c in CHANNELS}  # fmt: skip
+
+    def keep(self, e) -> None:
+        thinned = self.thinned
+        thinned.add(e)
+        if self.progress is not None and thinned.count % 2000 == 0:
+            self.progress(thinned.count / self.total)
+
+    def take(self, row) -> None:
+        t = self.start + row.time_s
+        values = row.values
+        for channel, line in self.lines.items():
+            value = values.get(channel)
+            if value is not None:
+                line.add(t, value)
+
+    def detail(self, summary: dict[str, object]) -> dict[str, object]:
+        series = {channel: line.points() for channel, line in self.lines.items()}
+        span = self.span
+        return _run_detail(span.vessel, span.label, self.start, self.thinned.items(), series,
+                           summary)  # fmt: skip
+
+
 def replay_streamed_run(
     path: str, span, progress: Callable[[float], None] | None = None,
     max_points: int = MAX_POINTS,
 ) -> dict[str, object]:  # fmt: skip
     """Replay one run of a log (a :class:`monitor.runs.streams.RunSpan` of it) as
     :func:`replay_one` does, reading the log as a stream: the memory it takes does not
-    grow with the run or the log (the series are thinned as they come,
-    :class:`monitor.reports.plots.EnvelopeStream`). Raises LogFormatError when the log
-    has no such run.
+    grow with the run or the log. Raises LogFormatError when the log has no such run.
     """
     from drivers.errors import LogFormatError
-    from monitor.reports.plots import EnvelopeStream
     from monitor.runs.replay import replay_streamed
 
-    start = span.start_epoch_s
-    total = max(span.steps, 1)
-    thinned = Thinned(total, max_points)
-    lines = {c: EnvelopeStream(*span.points.get(c, (0, 0)), max_points) for c in CHANNELS}
-
-    def keep(e) -> None:
-        thinned.add(e)
-        if progress is not None and thinned.count % 2000 == 0:
-            progress(thinned.count / total)
-
-    def take(row) -> None:
-        t = start + row.time_s
-        values = row.values
-        for channel, line in lines.items():
-            value = values.get(channel)
-            if value is not None:
-                line.add(t, value)
-
-    summary = replay_streamed(path, span.vessel, span.number, on_row=take, on_estimate=keep)
+    charts = _RunCharts(span, progress, max_points)
+    summary = replay_streamed(path, span.vessel, span.number, on_row=charts.take,
+                              on_estimate=charts.keep)  # fmt: skip
     if summary is None:
         raise LogFormatError(f"{path}: vessel {span.vessel!r} has no run {span.label!r}")
-    series = {channel: line.points() for channel, line in lines.items()}
-    return _run_detail(span.vessel, span.label, start, thinned.items(), series, summary)
+    return charts.detail(summary)
 
 
 def _run_detail(

@@ -596,3 +596,30 @@ def test_the_scrub_box_says_its_unit() -> None:
 
     text = str(layout(["a.sqlite"]))
     assert "s from its start (marks in minutes)" in text
+
+
+def test_a_csv_log_on_the_board_is_read_as_a_stream_with_the_whole_replays_figures(
+    tmp_path,
+) -> None:
+    """Issue 16: the board's snapshot of a CSV log (replay_csv) reads it as a stream; each
+    vessel's last run is drawn as replay_one draws it read whole, and the summaries and
+    drift are ebullio replay's."""
+    from dashboard.data import replay_csv, replay_one
+    from monitor.runs.logs import read_log
+    from monitor.runs.replay import replay
+    from monitor.runs.run import split_runs
+
+    lines = ["time_s,water_c,power_w,vessel,run"]
+    for t in range(400):  # two vessels, interleaved; urn-2 labels its runs (our own)
+        lines.append(f"{t},{min(20 + t * 0.4, 99.0):.2f},{2000 if t < 200 else 0},kettle-a,")
+        lines.append(f"{t},{15 + t * 0.05:.2f},1500,urn-2,{'A' if t < 250 else 'B'}")
+    path = tmp_path / "two.csv"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    board = replay_csv(str(path))
+    runs, _ = split_runs(read_log(path))
+    for vessel in ("kettle-a", "urn-2"):
+        whole = replay_one([r for r in runs if r.vessel == vessel][-1])
+        whole.pop("summary")
+        assert board["vessels"][vessel] == whole
+    assert board["summaries"] == replay([str(path)])["runs"]
+    assert [s["run"] for s in board["summaries"]] == ["1", "A", "B"]
