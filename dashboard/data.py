@@ -48,7 +48,7 @@ def _columns(rows: Sequence[Mapping[str, object]], phase: bool = False) -> dict[
     """Return flat estimates as the charts' columns (:data:`CHART_KEYS`); the phase only
     when asked for (the replay view's cards show it, the live charts do not).
 
-    The caller thins the rows first (:func:`replay_one`; the recorder's reader gives
+    The caller thins the rows first (:class:`_RunCharts`; the recorder's reader gives
     :func:`chart_data` its columns thinned already).
     """
     return {k: [r.get(k) for r in rows] for k in CHART_KEYS if phase or k != "phase"}
@@ -197,36 +197,6 @@ def replay_csv(path: str) -> dict[str, object]:
     return {"vessels": vessels, "runs": run_state(rows), "summaries": [r["summary"] for r in rows]}
 
 
-def replay_one(
-    run, progress: Callable[[float], None] | None = None, max_points: int = MAX_POINTS
-) -> dict[str, object]:
-    """Replay one run held in memory (monitor.runs.run.Run, of a CSV log the board has
-    read whole): its series, estimates, latest, and summary.
-
-    Every estimate is computed; every n-th is kept for the charts (at most about
-    ``max_points``, and always the last), so a week-long run does not hold a week of
-    estimate rows. ``progress(fraction)`` is told how far the replay has got.
-    """
-    from monitor.runs.replay import replay_run
-
-    start = run.log.start_epoch_s or 0.0
-    total = max(len(run.rows), 1)
-    thinned = Thinned(total, max_points)
-
-    def keep(_run, e) -> None:
-        thinned.add(e)
-        if progress is not None and thinned.count % 2000 == 0:
-            progress(thinned.count / total)
-
-    summary = replay_run(run, on_estimate=keep)
-    series = {}
-    for channel in CHANNELS:
-        pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]
-        pts = [p for p in pts if p[1] is not None]
-        series[channel] = envelope([p[0] for p in pts], [p[1] for p in pts], max_points)
-    return _run_detail(run.vessel, run.label, start, thinned.items(), series, summary)
-
-
 class _RunCharts:
     """One run's charts gathered as its rows (:meth:`take`) and estimates (:meth:`keep`)
     pass: every n-th estimate (:class:`monitor.reports.plots.Thinned`) and each series
@@ -271,9 +241,10 @@ def replay_streamed_run(
     path: str, span, progress: Callable[[float], None] | None = None,
     max_points: int = MAX_POINTS,
 ) -> dict[str, object]:  # fmt: skip
-    """Replay one run of a log (a :class:`monitor.runs.streams.RunSpan` of it) as
-    :func:`replay_one` does, reading the log as a stream: the memory it takes does not
-    grow with the run or the log. Raises LogFormatError when the log has no such run.
+    """Replay one run of a log (a :class:`monitor.runs.streams.RunSpan` of it) for the
+    replay view: its series, thinned estimates, latest and summary, reading the log as
+    a stream, so the memory it takes does not grow with the run or the log. Raises
+    LogFormatError when the log has no such run.
     """
     from drivers.errors import LogFormatError
     from monitor.runs.replay import replay_streamed
@@ -295,19 +266,6 @@ def _run_detail(
     return {"series": {c: {"t": t, "y": y} for c, (t, y) in series.items()},
             "estimates": _columns(rows, phase=True),
             "latest": _latest(rows[-1]) if rows else None, "summary": summary}  # fmt: skip
-
-
-def split_log(path: str, vessel: str | None = None) -> list:
-    """Return the runs of a log as the replay splits them (monitor.runs.replay.Run objects),
-    rows and all.
-
-    Reads the whole log, or of a recorder log only ``vessel``'s samples (the same path
-    as ``ebullio replay``; a fleet's log is not read whole to replay one vessel).
-    """
-    from monitor.runs.logs import read_log
-    from monitor.runs.run import split_runs
-
-    return split_runs(read_log(path, vessel))[0]
 
 
 def list_runs(path: str, spans: list | None = None) -> list[dict[str, object]]:

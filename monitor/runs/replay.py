@@ -40,20 +40,18 @@ from monitor import __version__
 from monitor.estimation.contracts import Estimate, Level
 from monitor.estimation.settings import EstimatorSettings, VesselConfig
 from monitor.records.interchange import InterchangeLog, LogRow
-from monitor.records.recorder import is_recorder_log
 from monitor.records.schema import ESTIMATE_CSV_COLUMNS, estimate_csv_row, flatten_estimate
 from monitor.runs.drift import VERDICT_TEXT, verdict_of
-from monitor.runs.logs import log_integrity, stream_log
+from monitor.runs.logs import log_integrity
 from monitor.runs.run import (
     NO_FIGURES,
     OpenRun,
     Run,
     RunEvent,
     RunFeed,
-    check_columns,
     has_element_sensor,
 )
-from monitor.runs.streams import read_ahead, vessel_stream, with_vessels
+from monitor.runs.streams import vessel_stream
 
 _log = logging.getLogger("ebullio.replay")
 
@@ -313,7 +311,7 @@ def replay(
     """Return the replay result of the logs at ``paths`` (the ``--json`` contract).
 
     The logs are read and replayed as a stream, run by run, so the memory it takes does
-    not grow with a log's length (:func:`monitor.runs.logs.stream_log`); the runs are
+    not grow with a log's length (:func:`monitor.runs.streams.vessel_stream`); the runs are
     those :func:`monitor.runs.run.split_runs` finds and the figures those of
     :func:`replay_run`. Writes per-step estimates to ``estimates_out`` when given, and
     a progress line to ``progress`` every :data:`PROGRESS_STEPS` steps.
@@ -342,10 +340,8 @@ def replay(
     metadata: dict[str, Mapping[str, object]] = {}
     logs: list[InterchangeLog] = []
     for path in paths:
-        seen, items = stream_log(path)
-        if not is_recorder_log(path):
-            check_columns(seen[0])
-        for log, vessel, row in with_vessels(read_ahead(items)):
+        seen, items = vessel_stream(path, None)
+        for log, vessel, row in items:
             feed = vessels.get(vessel)
             if feed is None:
                 feed = vessels[vessel] = _VesselReplay(

@@ -30,13 +30,13 @@ _T = TypeVar("_T")
 READ_AHEAD_ROWS = 2048
 
 
-def read_ahead(items: Iterator[_T]) -> Iterator[_T]:
+def _read_ahead(items: Iterator[_T]) -> Iterator[_T]:
     """Yield ``items`` as they come, read :data:`READ_AHEAD_ROWS` at a time."""
     while block := list(islice(items, READ_AHEAD_ROWS)):
         yield from block
 
 
-def with_vessels(
+def _with_vessels(
     items: Iterator[tuple[InterchangeLog, LogRow]],
 ) -> Iterator[tuple[InterchangeLog, str, LogRow]]:
     """Yield (header log, vessel, row): a row that names no vessel is its header log's
@@ -84,7 +84,7 @@ def vessel_stream(
     seen, items = stream_log(path, vessel)
     if not is_recorder_log(path):
         check_columns(seen[0])
-    rows = with_vessels(read_ahead(items))
+    rows = _with_vessels(_read_ahead(items))
     if vessel is None:
         return seen, rows
     return seen, ((log, name, row) for log, name, row in rows if name == vessel)

@@ -344,10 +344,36 @@ def test_the_board_serves_the_audit_report_of_a_run(live_log) -> None:
     assert "kettle-a" in exported.get_data(as_text=True)
 
 
+def _split_whole(path: str) -> list:
+    """The runs of a log read whole (the reference the streamed paths are held to)."""
+    from monitor.runs.logs import read_log
+    from monitor.runs.run import split_runs
+
+    return split_runs(read_log(path))[0]
+
+
+def _drawn_whole(run) -> dict:
+    """A run held whole, drawn as the board draws a run (the streamed paths' reference):
+    every estimate made, every n-th kept and the last, each series through envelope()."""
+    from dashboard.data import CHANNELS, _run_detail
+    from monitor.reports.plots import Thinned, envelope
+    from monitor.runs.replay import replay_run
+
+    start = run.log.start_epoch_s or 0.0
+    thinned = Thinned(max(len(run.rows), 1))
+    summary = replay_run(run, on_estimate=lambda _run, e: thinned.add(e))
+    series = {}
+    for channel in CHANNELS:
+        pts = [(start + r.time_s, r.values.get(channel)) for r in run.rows]
+        pts = [p for p in pts if p[1] is not None]
+        series[channel] = envelope([p[0] for p in pts], [p[1] for p in pts])
+    return _run_detail(run.vessel, run.label, start, thinned.items(), series, summary)
+
+
 def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) -> None:
     from dash import Patch
 
-    from dashboard.data import list_runs, replay_detail, replay_one, split_log
+    from dashboard.data import list_runs, replay_detail
     from dashboard.views.replay import latest_at, parse_choice, run_options, scrub, show_run
     from monitor.runs.streams import run_spans
 
@@ -357,7 +383,7 @@ def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) ->
     assert [(r["vessel"], r["run"]) for r in split] == [(r["vessel"], r["run"]) for r in runs]
     assert [r["steps"] for r in runs] == [r["steps"] for r in split] == [301, 301]
     # the streamed split gives what the whole log's split gives, run for run
-    whole_runs = split_log(str(live_log))
+    whole_runs = _split_whole(str(live_log))
     assert [(r.vessel, r.label, len(r.rows), r.rows[0].time_s, r.rows[-1].time_s)
             for r in whole_runs] == [(s.vessel, s.label, s.steps, s.start_s, s.end_s)
                                      for s in run_spans(str(live_log))]  # fmt: skip
@@ -371,7 +397,7 @@ def test_replay_view_lists_runs_replays_one_and_scrubs_with_a_patch(live_log) ->
     assert detail["run"] == "1"  # found by its time span, named by the replay's label
     # streamed, it read only kettle-a's samples; the whole log read and replayed in
     # memory gives the same run, estimates and series
-    whole = replay_one(next(r for r in whole_runs if r.vessel == vessel))
+    whole = _drawn_whole(next(r for r in whole_runs if r.vessel == vessel))
     assert whole["estimates"] == detail["estimates"]
     assert whole["series"] == detail["series"]
     assert whole["latest"] == detail["latest"]
@@ -406,12 +432,13 @@ def test_the_board_exports_one_run_as_csv(live_log) -> None:
 
 
 def test_a_long_replay_keeps_every_nth_estimate_and_the_last(live_log) -> None:
-    from dashboard.data import replay_one, split_log
+    from dashboard.data import replay_streamed_run
+    from monitor.runs.streams import run_spans
 
-    run = split_log(str(live_log))[0]
+    span = run_spans(str(live_log))[0]
     told: list[float] = []
-    thin = replay_one(run, told.append, max_points=50)
-    whole = replay_one(run)
+    thin = replay_streamed_run(str(live_log), span, told.append, max_points=50)
+    whole = replay_streamed_run(str(live_log), span)
     t_thin, t_whole = thin["estimates"]["t"], whole["estimates"]["t"]
     every = math.ceil(301 / 50)  # 301 steps of our 300 s scenario
     assert len(t_thin) == len(range(0, 301, every)) + 1 <= 50  # every 7th, and the last
@@ -602,9 +629,9 @@ def test_a_csv_log_on_the_board_is_read_as_a_stream_with_the_whole_replays_figur
     tmp_path,
 ) -> None:
     """Issue 16: the board's snapshot of a CSV log (replay_csv) reads it as a stream; each
-    vessel's last run is drawn as replay_one draws it read whole, and the summaries and
+    vessel's last run is drawn as _drawn_whole draws it read whole, and the summaries and
     drift are ebullio replay's."""
-    from dashboard.data import replay_csv, replay_one
+    from dashboard.data import replay_csv
     from monitor.runs.logs import read_log
     from monitor.runs.replay import replay
     from monitor.runs.run import split_runs
@@ -618,7 +645,7 @@ def test_a_csv_log_on_the_board_is_read_as_a_stream_with_the_whole_replays_figur
     board = replay_csv(str(path))
     runs, _ = split_runs(read_log(path))
     for vessel in ("kettle-a", "urn-2"):
-        whole = replay_one([r for r in runs if r.vessel == vessel][-1])
+        whole = _drawn_whole([r for r in runs if r.vessel == vessel][-1])
         whole.pop("summary")
         assert board["vessels"][vessel] == whole
     assert board["summaries"] == replay([str(path)])["runs"]
