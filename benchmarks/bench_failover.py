@@ -15,9 +15,11 @@ Figures per run
     ``killed_worker_take_over_s``: from the kill to the newest new lease of the killed
     worker's partitions. ``after_node_kill_all_held_s``: from the node's kill until every
     partition's lease names a live worker; ``..._renewed_s``: and has been renewed since
-    (null: not within the wait). ``readings_lost``: readings published that the
-    workers' final states do not cover. ``vessels_equal``: vessels whose every estimate
-    (the digest chained over them) equals a one-process replay of the stream.
+    (null: not within the wait). ``readings_lost``: messages of the stream that the
+    workers' final states do not cover. ``deliveries_lost``: gaps in a consumer's
+    deliveries the workers saw (messages lost on the way, each stretch read again from
+    a new consumer). ``vessels_equal``: vessels whose every estimate (the digest chained
+    over them) equals a one-process replay of the stream.
     ``machine_busy_cores``: the whole machine's busy cores over the run (the cluster
     and the workers use about one; more is other work, which stretches every wait).
 """
@@ -47,6 +49,7 @@ KEPT = (
     "vessels_equal",
     "set_aside",
     "publisher_reconnects",
+    "deliveries_lost",
     "killed_node",
 )
 

@@ -25,8 +25,12 @@ Shape (docs/engine.md has the subjects, buckets and formats)::
   ephemeral pull consumer filtered on the partition's subjects. A message a vessel's
   state already covers is skipped (:class:`~monitor.engine.partition.Partition`). If
   the consumer fails (a node gone, a leader moving) a new one starts after the last
-  message taken. Every ``checkpoint_every_s`` the vessels stepped since the last
-  checkpoint are saved, then the index.
+  message taken. The consumer acknowledges nothing, so the server never sends a
+  message again: a message it delivered that was lost on the way (a node's link cut
+  while it was in flight) shows as a gap in the consumer's own delivery sequence,
+  and a new consumer then starts after the last message taken. Every
+  ``checkpoint_every_s`` the vessels stepped since the last checkpoint are saved, then
+  the index.
 * **Out.** After each batch the newest estimate of each vessel stepped goes to the
   estimates bucket under the vessel's id (:func:`read_estimates` reads them for the
   board's fleet view); input set aside goes to the set-aside stream with its reason,
@@ -118,6 +122,7 @@ class WorkerStats:
     partitions_handed_back: int = 0
     partitions_lost: int = 0
     consumer_restarts: int = 0
+    deliveries_lost: int = 0  # gaps in a consumer's delivery sequence (each restarts it)
     taken_at: dict[int, float] = field(default_factory=dict)  # partition -> Unix s taken
 
     def as_dict(self) -> dict[str, object]:
@@ -494,6 +499,7 @@ class Worker:
         number = lease.partition
         saved_at = time.monotonic()
         subscription = None
+        delivered = 0  # the consumer's delivery sequence of the last message it gave
         idle_since: float | None = None  # since when fetches have come back empty
         while True:
             if lease.hand_back.is_set():
@@ -503,6 +509,7 @@ class Worker:
                 try:
                     subscription = await self._subscribe(number, next_seq)
                     holder[:] = [subscription]
+                    delivered = 0
                 except NATS_ERRORS as exc:
                     if self._nc.is_closed:
                         return
@@ -537,6 +544,7 @@ class Worker:
                 subscription = None
                 continue
             aside: list[tuple[int, Quarantined]] = []
+            lost_on_the_way = False
             slice_began = time.perf_counter()
             for msg in batch:
                 if time.perf_counter() - slice_began > SLICE_S:
@@ -545,6 +553,19 @@ class Worker:
                     await asyncio.sleep(0)
                     slice_began = time.perf_counter()
                 seq = msg.metadata.sequence.stream
+                order = msg.metadata.sequence.consumer
+                if order <= delivered:
+                    continue  # the same delivery twice
+                if order != delivered + 1:
+                    # a delivery between was lost on the way: take nothing after it
+                    # from this consumer, start a new one after the last message taken
+                    log.warning("%s: partition %d: deliveries %d to %d were lost in transit;"
+                                " a new consumer from stream seq %d", self.name, number,
+                                delivered + 1, order - 1, next_seq)  # fmt: skip
+                    self.stats.deliveries_lost += 1
+                    lost_on_the_way = True
+                    break
+                delivered = order
                 if seq < next_seq:
                     continue  # delivered again
                 stamp_s = msg.metadata.timestamp.timestamp()
@@ -552,6 +573,9 @@ class Worker:
                     aside.append((seq, q))
                 next_seq = seq + 1
                 self.stats.messages += 1
+            if lost_on_the_way:
+                await self._retire(subscription, holder)
+                subscription = None
             await self._send(part, aside, lease)
             if time.monotonic() - saved_at >= self.settings.checkpoint_every_s and part.dirty:
                 await self._checkpoint(part, next_seq - 1, lease)

@@ -13,7 +13,10 @@ import math
 import struct
 import threading
 import zlib
+from datetime import UTC, datetime
+from types import SimpleNamespace
 
+import nats.errors
 import numpy as np
 import pytest
 
@@ -21,7 +24,7 @@ from drivers.payloads import parse_message
 from monitor.engine import checkpoint
 from monitor.engine.checkpoint import CheckpointError
 from monitor.engine.partition import EngineLayout, Message, Partition, replay_messages
-from monitor.engine.worker import EngineError, Worker, WorkerSettings
+from monitor.engine.worker import EngineError, Worker, WorkerSettings, _Lease
 from monitor.records.schema import flatten_estimate
 from monitor.runs.live import LiveVessel, steps_from_samples
 from tests.support.fleet import START_EPOCH_S, fleet_config, kettle_readings, kettle_spec
@@ -280,3 +283,76 @@ def test_a_worker_told_to_stop_while_it_connects_stops_at_once(kettle):
 
     stats = asyncio.run(stop_soon())
     assert stats.partitions_taken == 0
+
+
+class _Delivered:
+    """A message as a pull consumer hands it over: what the worker reads of one."""
+
+    def __init__(self, message: Message, order: int) -> None:
+        self.subject, self.data = message.subject, message.payload
+        stamp = datetime.fromtimestamp(message.stamp_s, tz=UTC)
+        self.metadata = SimpleNamespace(
+            sequence=SimpleNamespace(stream=message.seq, consumer=order), timestamp=stamp
+        )
+
+
+class _LossyConsumer:
+    """A pull consumer over ``messages`` from ``start_seq`` whose first one loses the
+    deliveries numbered in ``lost`` on the way (a node's link cut while they flew); at
+    the end of the stream it asks the partition to be handed back."""
+
+    def __init__(self, messages, start_seq, lost, batch, lease) -> None:
+        wanted = [m for m in messages if m.seq >= start_seq]
+        self.queue = [_Delivered(m, k + 1) for k, m in enumerate(wanted) if k + 1 not in lost]
+        self.batch, self.lease = batch, lease
+
+    async def fetch(self, batch, timeout):  # noqa: ARG002 (the client's signature)
+        if not self.queue:
+            self.lease.hand_back.set()
+            raise nats.errors.TimeoutError
+        out, self.queue = self.queue[: self.batch], self.queue[self.batch :]
+        return out
+
+    async def unsubscribe(self):
+        self.queue = []
+
+
+@pytest.mark.parametrize("lost", [{5}, {4, 9, 10}, {1}])
+def test_a_delivery_lost_on_the_way_is_read_again_from_a_new_consumer(kettle, lost):
+    """Issue 16, seen once in CI: with a node killed, a message the server had delivered
+    to a worker never arrived, the consumer (which asks no acknowledgement) went on, and
+    two vessels each missed a reading. A gap in the consumer's delivery sequence now
+    starts a new consumer after the last message taken: every message is taken once and
+    the figures equal one uninterrupted replay."""
+    spec, payloads = kettle
+    messages = _messages(spec.id, payloads[:40], first_seq=11)
+    worker = Worker(["nats://127.0.0.1:1"], {spec.id: spec}, LAYOUT, "w", WorkerSettings())
+    worker._nc = SimpleNamespace(is_closed=False)
+    lease = _Lease(2, revision=1, until=math.inf, since=0.0)
+    consumers, saved = [], []
+
+    async def subscribe(_number, start_seq):
+        consumer = _LossyConsumer(messages, start_seq, lost if not consumers else set(), 4, lease)
+        consumers.append(start_seq)
+        return consumer
+
+    async def send(part, _aside, _lease):
+        part.fresh.clear()
+
+    async def save(_part, covered, _lease):
+        saved.append(covered)
+
+    worker._subscribe, worker._send, worker._checkpoint = subscribe, send, save
+    part = Partition(LAYOUT, 2, {spec.id: spec}, "test")
+    asyncio.run(worker._serve_from(lease, part, 11, []))
+
+    reference, _ = replay_messages(LAYOUT, {spec.id: spec}, messages, "test")
+    got, want = part.streams[spec.id], reference[spec.id]
+    assert (got.messages, got.seq) == (40, 50)
+    assert got.digest == want.digest
+    assert got.estimates == want.estimates
+    assert worker.stats.deliveries_lost == 1
+    assert worker.stats.consumer_restarts == 1
+    assert consumers == [11, 10 + min(lost)]  # the new one starts at the first lost
+    assert worker.stats.messages == 40
+    assert saved == [50]

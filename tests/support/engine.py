@@ -92,8 +92,9 @@ async def estimates(js: Any, layout: EngineLayout, vessels: Sequence[str]) -> di
 async def read_stream(js: Any, layout: EngineLayout, patience_s: float = 60.0) -> list[Message]:
     """Return every message of the readings stream, in stream order.
 
-    A consumer that fails or falls silent (after a node's loss one can) is replaced by
-    a new one from the next sequence, as the workers do, for up to ``patience_s``.
+    A consumer that fails, falls silent (after a node's loss one can) or skips a delivery
+    (lost in transit) is replaced by a new one from the next sequence, as the workers
+    do, for up to ``patience_s``.
     """
     last = (await js.stream_info(layout.stream)).state.last_seq
     messages: list[Message] = []
@@ -106,8 +107,13 @@ async def read_stream(js: Any, layout: EngineLayout, patience_s: float = 60.0) -
         try:
             sub = await js.pull_subscribe(layout.readings_subjects, stream=layout.stream,
                                           config=config)  # fmt: skip
+            delivered = 0
             while not messages or messages[-1].seq < last:
                 for msg in await sub.fetch(2000, timeout=5.0):
+                    if msg.metadata.sequence.consumer != delivered + 1:
+                        # lost in transit (the worker's rule): a new consumer
+                        raise nats.errors.Error("a delivery was lost on the way")
+                    delivered += 1
                     seq = msg.metadata.sequence.stream
                     if messages and seq <= messages[-1].seq:
                         continue
