@@ -178,8 +178,9 @@ class Partition:
         self.fresh: set[str] = set()  # vessels with a new estimate since the last hand-over
         self.unknown = 0  # messages set aside for their subject or vessel
         self.faulted: set[str] = set()  # vessels whose processing failed (logged once each)
-        #: the stream sequence of each vessel's estimate in the estimates bucket (a worker's)
-        self.shown: dict[str, int] = {}
+        #: each vessel's entry in the estimates bucket as a worker last saw it: the stream
+        #: sequence it covers and its revision (None: no entry)
+        self.shown: dict[str, tuple[int, int | None]] = {}
 
     def take(self, message: Message) -> list[Quarantined]:
         """Take one message; return what was set aside (never raises for bad input)."""

@@ -618,66 +618,30 @@ class Worker:
 
     async def _send(self, part: Partition, aside: list[tuple[int, Quarantined]],
                     lease: _Lease) -> None:  # fmt: skip
-        """Put the newest estimates of the vessels stepped and keep what was set aside,
-        trying again while the cluster is moving."""
+        """Put the newest estimates of the vessels stepped, only forwards, and keep what
+        was set aside, trying again while the cluster is moving."""
         fresh, part.fresh = part.fresh, set()
-        for vessel in fresh - part.shown.keys():
-            part.shown[vessel] = await self._shown_seq(vessel)
         # after a take-over the stretch since the checkpoint is stepped again: its
-        # estimates are older than those the bucket holds, and are not put back
-        fresh = {v for v in fresh if part.streams[v].seq > part.shown[v]}
-        puts = [(v, _estimate_value(part.streams[v], self.name, part.number)) for v in fresh]
+        # estimates are older than those the bucket holds, and are not put back (nor
+        # those of a worker whose lease lapsed, still stepping for a moment)
+        fresh = {v for v in fresh if part.streams[v].seq > part.shown.get(v, (0, None))[0]}
+        puts = [(v, part.streams[v].seq, _estimate_value(part.streams[v], self.name, part.number))
+                for v in sorted(fresh)]  # fmt: skip
         self.stats.set_aside += len(aside)
+
+        async def put(vessel: str, seq: int, value: bytes) -> None:
+            part.shown[vessel] = await _forward(
+                self._estimates, vessel, seq, value, _estimate_seq, part.shown.get(vessel)
+            )
+
         if puts:
             await self._until_done("estimates", lambda: asyncio.gather(
-                *(self._estimates.put(v, value) for v, value in puts)), lease)  # fmt: skip
-            part.shown.update({v: part.streams[v].seq for v in fresh})
+                *(put(v, seq, value) for v, seq, value in puts)), lease)  # fmt: skip
         for seq, q in aside:
             headers = {"Nats-Msg-Id": f"{part.number}-{seq}-{q.where}"[:250]}
             subject, value = self.layout.set_aside_subject(part.number), _set_aside_value(q)
             await self._until_done("set-aside input", lambda s=subject, v=value, h=headers:
                                    self._js.publish(s, v, headers=h), lease)  # fmt: skip
-
-    async def _forward(self, key: str, seq: int, value: bytes) -> None:
-        """Write a checkpoint key only forwards: unless it already holds a state at ``seq``
-        or later, by compare-and-set on the revision read.
-
-        Two workers can serve a partition for a moment (the one whose lease lapsed during
-        an election has not yet seen its renewal fail). Both make the same states, but
-        the late one's older state must not overwrite the newer one after the index has
-        moved past it: the next holder would skip the messages in between. A vessel's
-        value starts with ``<seq>\n``; the index is JSON with ``seq``.
-        """
-        for _ in range(10):
-            try:
-                entry = await self._checkpoints.get(key)
-            except MISSING:
-                entry = None
-            if entry is not None:
-                head = bytes(entry.value)
-                held = (json.loads(head)["seq"] if key.startswith("i.")
-                        else int(head.partition(b"\n")[0]))  # fmt: skip
-                if held >= seq:
-                    return
-            try:
-                if entry is None:
-                    await self._checkpoints.create(key, value)
-                else:
-                    await self._checkpoints.update(key, value, last=entry.revision)
-                return
-            except nats.js.errors.KeyWrongLastSequenceError:
-                continue  # written meanwhile: read it again
-        raise EngineError(f"checkpoint {key}: ten writers in a row got in first")
-
-    async def _shown_seq(self, vessel: str) -> int:
-        """Return the stream sequence of the estimate the bucket holds for ``vessel`` (0: none)."""
-        try:
-            entry = await self._estimates.get(vessel)
-            return int(json.loads(entry.value).get("seq", 0))
-        except MISSING:
-            return 0
-        except (*NATS_ERRORS, ValueError, AttributeError):
-            return 0  # unknown: put whatever comes next
 
     async def _checkpoint(self, part: Partition, covered: int, lease: _Lease) -> None:
         """Save the vessels stepped since the last checkpoint, then the partition's index."""
@@ -691,12 +655,72 @@ class Worker:
         index = json.dumps({"seq": covered, "vessels": sorted(part.streams)}).encode()
 
         async def write() -> None:
-            await asyncio.gather(*(self._forward(key, seq, data) for key, seq, data in states))
-            await self._forward(f"i.{part.number}", covered, index)
+            await asyncio.gather(*(_forward(self._checkpoints, key, seq, data, _state_seq)
+                                   for key, seq, data in states))  # fmt: skip
+            await _forward(self._checkpoints, f"i.{part.number}", covered, index, _index_seq)
 
         if await self._until_done("checkpoint", write, lease):
             part.dirty.clear()
             self.stats.checkpoints += 1
+
+
+Held = tuple[int, int | None]  # what a key holds: (stream seq covered, revision or None)
+
+
+async def _forward(kv: Any, key: str, seq: int, value: bytes, held_seq: Callable[[bytes], int],
+                   known: Held | None = None) -> Held:  # fmt: skip
+    """Write ``value``, which covers the stream up to ``seq``, to a bucket's key only
+    forwards: unless the key already holds a value at ``seq`` or later, by
+    compare-and-set on the revision. Return what the key holds now: (seq, revision).
+
+    Two workers can serve a partition for a moment (the one whose lease lapsed during
+    an election has not yet seen its renewal fail). Both make the same figures, but the
+    late one's older value must not overwrite a newer one: an older checkpoint under an
+    index that has moved past it makes the next holder skip the messages between, and
+    an older estimate left last in the estimates bucket shows a vessel behind for good.
+    ``held_seq`` reads the sequence a stored value covers; ``known`` is the (seq,
+    revision) this worker last saw at the key, saving a read when it is still so.
+    """
+    for _ in range(10):
+        if known is None:
+            try:
+                entry = await kv.get(key)
+                known = (_held(held_seq, entry.value), entry.revision)
+            except MISSING:
+                known = (0, None)
+        held, revision = known
+        if held >= seq:
+            return known
+        try:
+            if revision is None:
+                return (seq, await kv.create(key, value))
+            return (seq, await kv.update(key, value, last=revision))
+        except nats.js.errors.KeyWrongLastSequenceError:
+            known = None  # written meanwhile: read it again
+    raise EngineError(f"{key}: ten writers in a row got in first")
+
+
+def _held(held_seq: Callable[[bytes], int], value: bytes) -> int:
+    """Return the sequence a stored value covers; 0 for one that cannot be read."""
+    try:
+        return held_seq(bytes(value))
+    except (ValueError, TypeError, KeyError, AttributeError):
+        return 0
+
+
+def _state_seq(value: bytes) -> int:
+    """A vessel's checkpoint: ``<seq>\n`` then the state."""
+    return int(value.partition(b"\n")[0])
+
+
+def _index_seq(value: bytes) -> int:
+    """A partition's checkpoint index: JSON with ``seq``."""
+    return int(json.loads(value)["seq"])
+
+
+def _estimate_seq(value: bytes) -> int:
+    """An entry of the estimates bucket: JSON with ``seq``."""
+    return int(json.loads(value)["seq"])
 
 
 def _estimate_value(stream: VesselStream, worker: str, partition: int) -> bytes:

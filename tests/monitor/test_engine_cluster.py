@@ -50,7 +50,7 @@ def test_three_workers_on_three_nodes_survive_a_worker_and_a_node_killed(tmp_pat
     assert renewed_s <= 1.5 * LIVENESS_S, logs
     assert report["published"] == report["published_expected"]
     assert report["stream_matches_published"], "the stream is not what the instruments sent"
-    assert report["readings_lost"] == 0, report["short"]
+    assert report["readings_lost"] == 0, (report["short"], report["unequal"], logs)
     assert report["short"] == {}  # nor any taken twice
     assert report["vessels_equal"] == len(VESSELS), report["unequal"]
     assert report["fleet_view_same"]

@@ -17,6 +17,7 @@ from datetime import UTC, datetime
 from types import SimpleNamespace
 
 import nats.errors
+import nats.js.errors
 import numpy as np
 import pytest
 
@@ -24,7 +25,14 @@ from drivers.payloads import parse_message
 from monitor.engine import checkpoint
 from monitor.engine.checkpoint import CheckpointError
 from monitor.engine.partition import EngineLayout, Message, Partition, replay_messages
-from monitor.engine.worker import EngineError, Worker, WorkerSettings, _Lease
+from monitor.engine.worker import (
+    EngineError,
+    Worker,
+    WorkerSettings,
+    _estimate_seq,
+    _forward,
+    _Lease,
+)
 from monitor.records.schema import flatten_estimate
 from monitor.runs.live import LiveVessel, steps_from_samples
 from tests.support.fleet import START_EPOCH_S, fleet_config, kettle_readings, kettle_spec
@@ -356,3 +364,57 @@ def test_a_delivery_lost_on_the_way_is_read_again_from_a_new_consumer(kettle, lo
     assert consumers == [11, 10 + min(lost)]  # the new one starts at the first lost
     assert worker.stats.messages == 40
     assert saved == [50]
+
+
+class _Bucket:
+    """A key-value bucket in memory with the compare-and-set rules of JetStream's."""
+
+    def __init__(self) -> None:
+        self.entries: dict[str, tuple[bytes, int]] = {}
+        self.revision = 0
+
+    async def get(self, key):
+        if key not in self.entries:
+            raise nats.js.errors.KeyNotFoundError
+        value, revision = self.entries[key]
+        return SimpleNamespace(value=value, revision=revision)
+
+    async def create(self, key, value):
+        return await self.update(key, value, last=0)
+
+    async def update(self, key, value, last):
+        if self.entries.get(key, (b"", 0))[1] != last:
+            raise nats.js.errors.KeyWrongLastSequenceError
+        self.revision += 1
+        self.entries[key] = (value, self.revision)
+        return self.revision
+
+
+def _entry(seq: int, worker: str) -> bytes:
+    return json.dumps({"seq": seq, "worker": worker}).encode()
+
+
+def test_estimates_and_checkpoints_are_written_only_forwards():
+    """Issue 16: after a take-over in an election two workers serve a partition for a
+    moment; the one behind must not put its older estimate over the newer one (a vessel
+    would show behind for good: seen in a fail-over run on 2026-12-05), whatever
+    revision it last saw."""
+    bucket = _Bucket()
+
+    async def scenario():
+        new = await _forward(bucket, "kettle-1", 10, _entry(10, "new"), _estimate_seq)
+        stale = await _forward(bucket, "kettle-1", 8, _entry(8, "stale"), _estimate_seq)
+        assert new == stale == (10, 1)  # the older one read what is there and stopped
+        # a writer that last saw revision 1 and is behind: its update fails, it reads
+        later = await _forward(bucket, "kettle-1", 12, _entry(12, "new"), _estimate_seq, new)
+        behind = await _forward(bucket, "kettle-1", 11, _entry(11, "stale"), _estimate_seq, new)
+        assert later == behind == (12, 2)
+        # an ack lost on the way: the retry finds its own value there and stops
+        again = await _forward(bucket, "kettle-1", 12, _entry(12, "new"), _estimate_seq, new)
+        assert again == (12, 2)
+        # a value that cannot be read is overwritten
+        bucket.entries["kettle-2"] = (b"not json", 7)
+        assert await _forward(bucket, "kettle-2", 3, _entry(3, "new"), _estimate_seq) == (3, 3)
+
+    asyncio.run(scenario())
+    assert json.loads(bucket.entries["kettle-1"][0]) == {"seq": 12, "worker": "new"}
