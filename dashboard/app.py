@@ -148,6 +148,70 @@ class IntegrityWatch:
             return integrity_warnings(self._checks)
 
 
+def _board(source: str, first: dict, views: list, poll_ms: int, poll: bool = True) -> Dash:
+    """Return a Dash app with the board's page around ``views``: the header naming the
+    ``source``, the integrity banner, the caution, the store holding ``first`` and the
+    poll (off when ``poll`` is False)."""
+    app = Dash(__name__, title="ebullio board", update_title=None, compress=True)
+    app.index_string = app.index_string.replace("{%css%}", "{%css%}<style>" + STYLE + "</style>")
+    app.layout = html.Div([
+        html.Header([html.H1("ebullio board"), html.Span(source, id=ids.LOG_NAME)]),
+        html.Div(id=ids.INTEGRITY, className="integrity-failed", hidden=True),
+        html.Main(views),
+        html.Footer([html.B("Caution. "), SAFETY_TEXT]),
+        dcc.Store(id=ids.STORE, data=first),
+        dcc.Interval(id=ids.POLL, interval=poll_ms, disabled=not poll),
+    ])  # fmt: skip
+    return app
+
+
+#: What the board over the engine says of what it shows and what it cannot.
+ENGINE_NOTE = (
+    "Figures from the NATS engine: each vessel's newest estimate as its worker put it in "
+    "the estimates bucket. The charts hold the estimates this board has seen since it "
+    "started (the filtered temperatures and the power, not the raw readings). Run "
+    "history, drift checks and replay need a log, which the engine does not write yet: "
+    "the readings stay in the engine's stream (docs/engine.md)."
+)
+
+
+def create_engine_app(servers: list[str], poll_ms: int = 2000,
+                      watch: data.EngineWatch | None = None) -> Dash:  # fmt: skip
+    """Return the board over the NATS engine's estimates bucket at ``servers``: the fleet
+    and the vessel view, from a :class:`dashboard.data.EngineWatch` reading the bucket
+    every ``poll_ms`` ms in its own thread (``watch`` given: that one)."""
+    watch = watch or data.EngineWatch(servers, every_s=poll_ms / 1000.0)
+    watch.wait_read(timeout_s=5.0)  # the first page shows the fleet when the engine answers
+    first = watch.snapshot()
+    ranked = fleet.fleet_rows(first)
+    if ranked:
+        first = {**first, "chosen": ranked[0]["vessel"]}
+    note = html.Section([html.P(ENGINE_NOTE, className="status")], className="view")
+    app = _board(f"engine: {watch.source}", first,
+                 [fleet.layout(), vessel.layout(first), note], poll_ms)  # fmt: skip
+
+    @app.callback(
+        Output(ids.STORE, "data"), Input(ids.POLL, "n_intervals"), Input(ids.VESSEL_PICK, "value")
+    )
+    def poll(_n: int | None, chosen: str | None) -> dict:
+        return watch.snapshot(chosen)
+
+    @app.callback(
+        Output(ids.INTEGRITY, "children"), Output(ids.INTEGRITY, "hidden"),
+        Input(ids.STORE, "data"),
+    )  # fmt: skip
+    def trouble(snapshot: dict | None) -> tuple[list, bool]:
+        problem = (snapshot or {}).get("problem")
+        if not problem:
+            return [], True
+        return [html.P(f"The engine's estimates bucket could not be read ({problem}): the "
+                       "figures shown are the last read, and may be old.")], False  # fmt: skip
+
+    fleet.register(app)
+    vessel.register(app, watch.chart_data)
+    return app
+
+
 def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = ()) -> Dash:
     """Return the board over the log at ``log_path``, refreshing every ``poll_ms`` ms.
 
@@ -168,20 +232,11 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         first = {**first, "chosen": ranked[0]["vessel"]}
     for extra in more_logs:
         data.load_snapshot(extra, csv_replay=csv_replay)
-    app = Dash(__name__, title="ebullio board", update_title=None, compress=True)
-    app.index_string = app.index_string.replace("{%css%}", "{%css%}<style>" + STYLE + "</style>")
-    app.layout = html.Div([
-        html.Header([html.H1("ebullio board"), html.Span(f"log: {first['log']}",
-                                                         id=ids.LOG_NAME)]),
-        html.Div(id=ids.INTEGRITY, className="integrity-failed", hidden=True),
-        html.Main([fleet.layout(), vessel.layout(first),
-                   maintenance.layout(list(first.get("vessels") or [])),
-                   replay.layout([Path(p).name for p in logs])]),
-        html.Footer([html.B("Caution. "), SAFETY_TEXT]),
-        dcc.Store(id=ids.STORE, data=first),
-        # a CSV log does not change: read once, poll only a live log
-        dcc.Interval(id=ids.POLL, interval=poll_ms, disabled=first["kind"] == "csv"),
-    ])  # fmt: skip
+    app = _board(f"log: {first['log']}", first, [
+        fleet.layout(), vessel.layout(first),
+        maintenance.layout(list(first.get("vessels") or [])),
+        replay.layout([Path(p).name for p in logs]),
+    ], poll_ms, poll=first["kind"] != "csv")  # a CSV log does not change: read once  # fmt: skip
 
     @app.callback(
         Output(ids.STORE, "data"), Input(ids.POLL, "n_intervals"), Input(ids.VESSEL_PICK, "value")

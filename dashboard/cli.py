@@ -23,10 +23,13 @@ LOOPBACK = ("127.0.0.1", "localhost", "::1")
 
 
 def serve_board(
-    log_path: str, host: str, port: int, poll_ms: int = 2000, auth=None, more_logs=(),
-    access_log: str | None = None,
+    log_path: str | None, host: str, port: int, poll_ms: int = 2000, auth=None, more_logs=(),
+    access_log: str | None = None, engine: list[str] | None = None,
 ):  # fmt: skip
     """Start the board over ``log_path`` in a thread; return the (werkzeug) server.
+
+    With ``engine`` (NATS server URLs) and no log: the board over the NATS engine's
+    estimates bucket (:func:`dashboard.app.create_engine_app`).
 
     ``auth`` is (user, password) for basic auth, or None; ``more_logs`` are offered in
     the replay view too. The web server's request lines go to the file ``access_log``,
@@ -45,9 +48,13 @@ def serve_board(
     else:
         requests.setLevel(logging.WARNING)  # errors still reach the handlers, if any
 
-    from dashboard.app import create_app
+    from dashboard.app import create_app, create_engine_app
 
-    app = create_app(log_path, poll_ms=poll_ms, more_logs=tuple(more_logs))
+    if engine:
+        app = create_engine_app(engine, poll_ms=poll_ms)
+    else:
+        assert log_path is not None
+        app = create_app(log_path, poll_ms=poll_ms, more_logs=tuple(more_logs))
     if auth is not None:
         _require_login(app, *auth)
     try:
@@ -92,10 +99,21 @@ def _login_for(host: str, no_auth: bool) -> tuple[str, str] | None:
 
 def cmd_board(args: argparse.Namespace) -> int:
     """Serve the board over a log (read-only) until Ctrl-C or SIGTERM."""
+    engine = None
+    if args.engine is not None:
+        from monitor.engine.worker import engine_servers
+
+        if args.log is not None:
+            raise EbullioError("give a log or --engine, not both")
+        engine = engine_servers(args.engine)
+    elif args.log is None:
+        raise EbullioError("give a log to show (or --engine nats://HOST:PORT)")
     auth = _login_for(args.host, args.no_auth)
     server = serve_board(args.log, args.host, args.port, int(args.poll_s * 1000), auth,
-                         more_logs=args.more, access_log=args.access_log)  # fmt: skip
-    print(f"ebullio board: http://{args.host}:{server.server_port}/ over {args.log} "
+                         more_logs=args.more, access_log=args.access_log,
+                         engine=engine)  # fmt: skip
+    shown = args.log if engine is None else "the engine at " + ",".join(engine)
+    print(f"ebullio board: http://{args.host}:{server.server_port}/ over {shown} "
           "(Ctrl-C stops it)", file=sys.stderr, flush=True)  # fmt: skip
     try:
         asyncio.run(until_signalled())
@@ -160,9 +178,10 @@ def extend(verbs, parsers) -> None:
         "writing (read-only; new data appears by itself), or over a recorded SQLite or CSV "
         "log. It binds to 127.0.0.1 by default. Another host needs EBULLIO_BOARD_USER and "
         "EBULLIO_BOARD_PASSWORD (basic auth), or --no-auth on purpose.",
-        epilog="example: ebullio board out/demo.sqlite --port 8050",
+        epilog="examples: ebullio board out/demo.sqlite --port 8050; "
+        "ebullio board --engine nats://127.0.0.1:4222",
     )
-    brd.add_argument("log", metavar="LOG", help="recorder (SQLite) or CSV log")
+    brd.add_argument("log", metavar="LOG", nargs="?", help="recorder (SQLite) or CSV log")
     brd.add_argument("more", metavar="MORE", nargs="*",
                      help="further logs to offer in the replay view")  # fmt: skip
     brd.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1)")
@@ -174,6 +193,11 @@ def extend(verbs, parsers) -> None:
         help="refresh every N s (default 2)",
     )
     brd.add_argument("--no-auth", action="store_true", help="no login even beyond loopback")
+    brd.add_argument(
+        "--engine", metavar="NATS_URLS",
+        help="instead of a log, show the NATS engine's fleet from its estimates bucket "
+        "(nats://HOST:PORT, several comma-separated; docs/engine.md)",
+    )  # fmt: skip
     brd.add_argument("--access-log", metavar="FILE",
                      help="write the web requests here (default: not kept)")  # fmt: skip
     brd.set_defaults(func=cmd_board)

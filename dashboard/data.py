@@ -434,3 +434,141 @@ def _recorded_summaries(path: str) -> list[dict[str, object]]:
             found[source].append({**summary, "vessel": row["vessel"], "start_utc": start,
                                   "start_t": row["start_t"], "end_t": row["end_t"]})  # fmt: skip
     return found["replay"] or found["live"]
+
+
+#: How much of an engine vessel's estimates the board keeps for its charts (s of their time).
+ENGINE_WINDOW_S = 3 * 3600.0
+#: The estimates bucket's entries by vessel (:func:`monitor.engine.worker.read_estimates`).
+BucketEntries = Mapping[str, Mapping[str, object]]
+
+
+class EngineWatch:
+    """The NATS engine's estimates bucket, read in a thread of its own every ``every_s``.
+
+    The workers keep each vessel's newest estimate in the bucket (docs/engine.md); this
+    reads it (:func:`monitor.engine.worker.read_estimates`, every key) and keeps each
+    vessel's estimates as they come, the last ``window_s`` of them, so the fleet, the
+    vessel's figures and its charts are answered from memory (no I/O in a callback).
+    The charts hold what this board has seen since it started: the bucket keeps only
+    the newest estimate, and the stream holds the readings. A read that fails (a node
+    down, a leader being elected) is said in :meth:`snapshot` and tried again; what was
+    kept stays. ``read`` stands in for the bucket's reader in tests.
+    """
+
+    def __init__(self, servers: Sequence[str], every_s: float = 2.0,
+                 window_s: float = ENGINE_WINDOW_S,
+                 read: Callable[[], BucketEntries] | None = None) -> None:  # fmt: skip
+        import threading
+
+        self.source = "nats://" + ",".join(s.split("://")[-1].split("@")[-1] for s in servers)
+        self._servers = list(servers)
+        self._every_s, self._window_s = every_s, window_s
+        self._read = read or self._read_bucket
+        self._kept: dict[str, list[dict[str, object]]] = {}
+        self._problem: str | None = None
+        self._reads = 0
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="board-engine", daemon=True)
+        self._thread.start()
+
+    def _read_bucket(self) -> BucketEntries:
+        import asyncio
+
+        from monitor.engine.worker import read_estimates
+
+        return asyncio.run(read_estimates(self._servers, timeout_s=max(self._every_s, 2.0)))
+
+    def _run(self) -> None:
+        while True:
+            try:
+                entries = self._read()
+                problem = None
+            except Exception as exc:  # said on the board; the next read may succeed
+                entries, problem = {}, f"{type(exc).__name__}: {exc}".rstrip(": ")
+            with self._lock:
+                self.take(entries)
+                self._problem = problem
+                self._reads += 1
+            if self._stop.wait(self._every_s):
+                return
+
+    def take(self, entries: BucketEntries) -> None:
+        """Keep each vessel's estimate from the bucket's entries if it is newer than the
+        last kept (call with the lock held, or before the thread has read)."""
+        for vessel, entry in entries.items():
+            estimate = entry.get("estimate") if isinstance(entry, Mapping) else None
+            if not isinstance(estimate, dict) or not isinstance(estimate.get("t"), int | float):
+                continue
+            kept = self._kept.setdefault(str(vessel), [])
+            t = float(estimate["t"])  # type: ignore[arg-type]
+            if kept and t <= float(kept[-1]["t"]):  # type: ignore[arg-type]
+                continue  # the same estimate as last time (or an older one)
+            kept.append(estimate)
+            first = 0
+            while t - float(kept[first]["t"]) > self._window_s:  # type: ignore[arg-type]
+                first += 1
+            del kept[:first]
+
+    def wait_read(self, count: int = 1, timeout_s: float = 10.0) -> bool:
+        """Wait until the bucket has been read ``count`` times; True if it has."""
+        import time
+
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            with self._lock:
+                if self._reads >= count:
+                    return True
+            time.sleep(0.02)
+        return False
+
+    def close(self) -> None:
+        """Stop reading (the thread ends after its current read)."""
+        self._stop.set()
+
+    def snapshot(self, vessel: str | None = None) -> dict[str, object]:
+        """Return what the fleet and the vessel figures show, as :func:`load_snapshot`
+        does for a log (``kind`` "engine", no run history), and ``problem``: why the
+        last read failed, or None."""
+        with self._lock:
+            latest = {v: _latest(kept[-1]) for v, kept in self._kept.items() if kept}
+            problem = self._problem
+        names = sorted(latest)
+        last = [float(e["t"]) for e in latest.values() if e is not None]  # type: ignore[arg-type]
+        chosen = vessel if vessel in names else (names[0] if names else None)
+        return {"log": self.source, "kind": "engine", "last_t": max(last, default=None),
+                "vessels": names, "latest": latest, "runs": {}, "chosen": chosen,
+                "problem": problem}  # fmt: skip
+
+    def chart_data(self, vessel: str | None, after: dict | None = None) -> dict[str, object]:
+        """Return a vessel's charts as :func:`chart_data` does for a log, from the
+        estimates kept: the filtered water and element temperatures, the room's and the
+        power stand for the readings. With ``after`` only what is newer."""
+        empty = {"vessel": vessel, "series": {}, "estimates": {}, "latest": None, "cursor": None}
+        if vessel is None:
+            return empty
+        with self._lock:
+            rows = list(self._kept.get(vessel) or ())
+        if not rows:
+            return {**empty, "cursor": after}
+        newest = rows[-1]
+        if after is not None:
+            rows = [r for r in rows if float(r["t"]) > float(after["est_t"])]  # type: ignore[arg-type]
+        elif len(rows) > MAX_POINTS:  # every nth and the newest, as the replay view thins
+            step = -(-len(rows) // MAX_POINTS)
+            rows = [*rows[: len(rows) - 1 : step], rows[-1]]
+        ts = [r["t"] for r in rows]
+        series = {}
+        for channel, key in (("water", "water_c"), ("element", "element_c"),
+                             ("ambient", "ambient_c"), ("power", "power_w")):  # fmt: skip
+            ys = [r.get(key) for r in rows]
+            if any(y is not None for y in ys):  # a one-node vessel has no element
+                series[channel] = {"t": ts, "y": ys}
+        t = float(newest["t"])  # type: ignore[arg-type]
+        return {
+            "vessel": vessel,
+            "series": series,
+            "estimates": _columns(rows),
+            "latest": _latest(newest),
+            "cursor": {"t": t, "est_t": t},
+        }

@@ -262,11 +262,15 @@ def _run_engine_worker(config, args: argparse.Namespace) -> int:
     import signal
     import socket
 
-    from monitor.engine.worker import Worker, WorkerSettings, engine_layout, engine_vessels
+    from monitor.engine.worker import (
+        Worker,
+        WorkerSettings,
+        engine_layout,
+        engine_servers,
+        engine_vessels,
+    )
 
-    servers = [url.strip() for url in args.engine.split(",") if url.strip()]
-    if not servers or not all(url.startswith(("nats://", "tls://")) for url in servers):
-        raise EbullioError(f"--engine {args.engine!r}: give nats://HOST:PORT[,nats://...]")
+    servers = engine_servers(args.engine)
     name = args.worker or f"{socket.gethostname()}-{os.getpid()}"
     stamped = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
     for handler in logging.getLogger().handlers:  # a fleet's workers' logs are read side by side

@@ -75,8 +75,8 @@ from monitor.engine.partition import EngineLayout, Message, Partition, VesselStr
 from monitor.rig.config import RigConfig, VesselSpec
 
 __all__ = [
-    "EngineError", "Worker", "WorkerSettings", "WorkerStats", "engine_layout", "engine_vessels",
-    "read_estimates",
+    "EngineError", "Worker", "WorkerSettings", "WorkerStats", "engine_layout", "engine_servers",
+    "engine_vessels", "read_estimates",
 ]  # fmt: skip
 
 log = logging.getLogger("ebullio.engine")
@@ -770,6 +770,15 @@ async def read_estimates(servers: Sequence[str], layout: EngineLayout | None = N
         return out
     finally:
         await nc.close()
+
+
+def engine_servers(text: str) -> list[str]:
+    """Return the NATS server URLs of an ``--engine`` option (comma-separated); raise
+    EngineError naming the option when one is not ``nats://`` or ``tls://``."""
+    servers = [url.strip() for url in text.split(",") if url.strip()]
+    if not servers or not all(url.startswith(("nats://", "tls://")) for url in servers):
+        raise EngineError(f"--engine {text!r}: give nats://HOST:PORT[,nats://...]")
+    return servers
 
 
 def engine_vessels(config: RigConfig) -> dict[str, VesselSpec]:

@@ -254,7 +254,8 @@ def test_board_help_and_refusing_an_open_host_without_a_login(live_log) -> None:
 
     proc = subprocess.run([sys.executable, "-m", "dashboard.cli", "board", "--help"],
                           capture_output=True, text=True, timeout=60, check=True)  # fmt: skip
-    assert "example: ebullio board" in proc.stdout
+    assert "examples: ebullio board" in proc.stdout
+    assert "--engine" in proc.stdout
     env = {k: v for k, v in os.environ.items() if not k.startswith("EBULLIO_BOARD_")}
     proc = subprocess.run(
         [sys.executable, "-m", "dashboard.cli", "board", str(live_log), "--host", "0.0.0.0"],
