@@ -343,7 +343,8 @@ def cmd_verify(args: argparse.Namespace) -> int:
 def cmd_export(args: argparse.Namespace) -> int:
     """Write one vessel of a log as a CSV interchange file, and/or a recorder log's
     readings and estimates as Parquet."""
-    from monitor.runs.logs import export_csv, log_integrity
+    from monitor.runs.logs import log_integrity
+    from monitor.runs.streams import export_csv
 
     if not (args.csv or args.parquet or args.estimates_parquet):
         print("ebullio export: say what to write: --csv, --parquet and/or --estimates-parquet",

@@ -1,4 +1,4 @@
-"""Read any log ebullio writes, CSV interchange or the recorder's SQLite, and export to CSV.
+"""Read any log ebullio writes, CSV interchange or the recorder's SQLite, as a whole or a stream.
 
 A recorder log holds samples in arrival order; :func:`read_log` turns them into
 one :class:`~monitor.records.interchange.InterchangeLog` per vessel and session (a process of
@@ -15,17 +15,13 @@ import time
 from collections.abc import Iterable, Iterator, Mapping
 from itertools import groupby
 from pathlib import Path
-from typing import TextIO
 
 from drivers.channels import Quarantined
 from drivers.errors import LogFormatError
 from monitor.records.interchange import (
-    CHANNEL_COLUMNS,
     InterchangeLog,
     LogRow,
-    iso_utc,
     stream_csv,
-    write_csv,
 )
 from monitor.records.recorder import (
     is_recorder_log,
@@ -34,7 +30,6 @@ from monitor.records.recorder import (
     read_vessels,
 )
 from monitor.runs.live import rows_of_steps, settle_channels, steps_from_samples
-from monitor.runs.run import split_runs
 
 
 def _rejected(path: str) -> list[Quarantined]:
@@ -150,46 +145,6 @@ def nan_as_blank(rows: Iterable[LogRow]) -> Iterator[LogRow]:
             values = {k: v for k, v in r.values.items() if not math.isnan(v)}
             r = LogRow(r.line, r.time_s, values, r.vessel, r.run)
         yield r
-
-
-def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> int:
-    """Write one vessel of a log as a CSV interchange file to ``out``; return rows written.
-
-    ``vessel`` may be left out when the log holds one vessel. Raises LogFormatError
-    naming the vessels when it is needed, or when the vessel is not in the log.
-    """
-    logs = [g for g in read_log(log_path) if g.rows]
-    names = list(dict.fromkeys(str(g.metadata.get("vessel", "")) for g in logs))
-    if vessel is None:
-        if len(names) != 1:
-            raise LogFormatError(
-                f"{log_path}: holds vessels {', '.join(names) or '(none)'}; say which with --vessel"
-            )
-        vessel = names[0]
-    elif vessel not in names:
-        raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(names)}")
-    mine = [g for g in logs if str(g.metadata.get("vessel", "")) == vessel]
-    chosen = mine[0]
-    metadata = dict(mine[-1].metadata)
-    if chosen.start_epoch_s is not None:
-        metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
-    metadata["exported_from"] = Path(str(log_path)).name
-    if len(mine) == 1:
-        return write_csv(out, nan_as_blank(chosen.rows), metadata, chosen.channels)
-    # several sessions of the service: one time axis, and each row's run written out so
-    # the file splits into the same runs (a refill's first cold reading goes once, with
-    # the run it ends)
-    runs, _ = split_runs(mine)
-    base = chosen.start_epoch_s or 0.0
-    rows: dict[int, LogRow] = {}
-    for run in runs:
-        shift = (run.log.start_epoch_s or 0.0) - base
-        for r in run.rows:
-            key = id(r)
-            if key not in rows:
-                rows[key] = LogRow(r.line, r.time_s + shift, r.values, vessel, run.label)
-    channels = [c for c in CHANNEL_COLUMNS if any(c in g.channels for g in mine)]
-    return write_csv(out, nan_as_blank(list(rows.values())), metadata, channels, with_vessel=True)
 
 
 def record_summaries(paths: list[str], result: dict[str, object]) -> int:

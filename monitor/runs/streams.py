@@ -1,6 +1,7 @@
 """A log read as a stream, run by run, holding none of it: each vessel's runs split as
 the replay splits them (their spans, :func:`run_spans`), one run's rows
-(:func:`run_rows`) and one run written out as CSV (:func:`export_run_csv`).
+(:func:`run_rows`), one run written out as CSV (:func:`export_run_csv`) and one vessel
+(:func:`export_csv`).
 
 :mod:`monitor.runs.replay` replays runs from these streams; the board and the audit
 report find and draw a run through them (docs: DEVELOPERS.md, issue 16).
@@ -16,8 +17,15 @@ from pathlib import Path
 from typing import TextIO, TypeVar
 
 from drivers.errors import LogFormatError
-from monitor.records.interchange import InterchangeLog, LogRow, iso_utc, write_csv
+from monitor.records.interchange import (
+    CHANNEL_COLUMNS,
+    InterchangeLog,
+    LogRow,
+    iso_utc,
+    write_csv,
+)
 from monitor.records.recorder import is_recorder_log
+from monitor.runs.live import settle_channels
 from monitor.runs.logs import nan_as_blank, stream_log
 from monitor.runs.run import RunEvent, RunFeed, check_columns
 
@@ -248,3 +256,79 @@ def export_run_csv(log_path: str | Path, out: TextIO, vessel: str, run_label: st
     metadata["exported_from"] = f"{Path(path).name}, run {run_label}"
     rows = nan_as_blank(run_rows(path, vessel, span.number))
     return write_csv(out, rows, metadata, log.channels)
+
+
+def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> int:
+    """Write one vessel of a log as a CSV interchange file to ``out``; return rows written.
+
+    ``vessel`` may be left out when the log holds one vessel. The log is read as a
+    stream twice (to find the vessel's sessions and channels, then to write its rows
+    as they come), holding none of it. A vessel recorded over several sessions of the
+    service gets one time axis, from its first session's start, and each row's run
+    written out, so the file splits into the same runs. Raises LogFormatError naming
+    the vessels when ``vessel`` is needed, or when the log does not hold it.
+    """
+    path = str(log_path)
+    found: dict[str, dict[int, InterchangeLog]] = {}  # each vessel's header logs, in order
+    for log, name, _ in vessel_stream(path, None)[1]:
+        logs = found.get(name)
+        if logs is None:
+            logs = found[name] = {}
+        if id(log) not in logs:
+            logs[id(log)] = log
+    names = list(found)
+    if vessel is None:
+        if len(names) != 1:
+            raise LogFormatError(
+                f"{log_path}: holds vessels {', '.join(names) or '(none)'}; say which with --vessel"
+            )
+        vessel = names[0]
+    elif vessel not in names:
+        raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(names)}")
+    mine = list(found[vessel].values())  # one per session of a recorder log; a CSV's one
+    recorder = is_recorder_log(path)
+    if recorder:
+        for log in mine:
+            settle_channels(log)
+    chosen = mine[0]
+    metadata = dict(mine[-1].metadata)
+    if len(names) > 1:
+        metadata["vessel"] = vessel  # the file holds this vessel alone
+    if chosen.start_epoch_s is not None:
+        metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
+    metadata["exported_from"] = Path(path).name
+    rows = (row for _, _, row in vessel_stream(path, vessel)[1])
+    if len(mine) == 1:
+        return write_csv(out, nan_as_blank(rows), metadata, chosen.channels)
+    channels = [c for c in CHANNEL_COLUMNS if any(c in log.channels for log in mine)]
+    labelled = _labelled(vessel_stream(path, vessel)[1], vessel, chosen.start_epoch_s or 0.0)
+    return write_csv(out, nan_as_blank(labelled), metadata, channels, with_vessel=True)
+
+
+def _labelled(
+    items: Iterator[tuple[InterchangeLog, str, LogRow]], vessel: str, base_epoch_s: float
+) -> Iterator[LogRow]:
+    """Yield one vessel's rows on one time axis (Unix ``base_epoch_s`` at 0), each with
+    its run's label, split as the replay splits them (:class:`RunFeed` hands each row
+    on once: a refill's first cold reading to the run it begins)."""
+    feed = RunFeed()
+    current: InterchangeLog | None = None
+    label, shift = "", 0.0
+
+    def out(events: list[RunEvent]) -> Iterator[LogRow]:
+        nonlocal label, shift
+        for kind, row, begun in events:
+            if kind == "begin":
+                assert begun is not None
+                assert current is not None
+                label, shift = begun, (current.start_epoch_s or 0.0) - base_epoch_s
+            elif kind == "row" and row is not None:
+                yield LogRow(row.line, row.time_s + shift, row.values, vessel, label)
+
+    for log, _, row in items:
+        if log is not current:
+            yield from out(feed.restart())
+            current = log
+        events = feed.take(row)
+        yield from out(events if events is not None else [("row", row, None)])
+    yield from out(feed.finish())

@@ -146,3 +146,54 @@ def test_a_restart_splits_the_replay_as_it_split_the_live_runs(tmp_path, vessel_
     assert [r["run"] for r in read_runs(log)] == ["1", "2"]
     # 60 s apart, far under the 900 s gap: only the restart splits them
     assert runs[1].rows[0].time_s == 0.0
+
+
+def _export_whole(log_path, out, vessel):
+    """The whole-vessel CSV export as it was made from the whole log read into memory
+    (before issue 16's stream): the reference :func:`streams.export_csv` is held to."""
+    from pathlib import Path
+
+    from monitor.records.interchange import CHANNEL_COLUMNS, LogRow, iso_utc, write_csv
+    from monitor.runs.logs import nan_as_blank, read_log
+    from monitor.runs.run import split_runs
+
+    mine = [g for g in read_log(log_path) if g.rows and g.metadata.get("vessel") == vessel]
+    chosen, metadata = mine[0], dict(mine[-1].metadata)
+    metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
+    metadata["exported_from"] = Path(str(log_path)).name
+    if len(mine) == 1:
+        return write_csv(out, nan_as_blank(chosen.rows), metadata, chosen.channels)
+    runs, _ = split_runs(mine)
+    base = chosen.start_epoch_s or 0.0
+    rows: dict[int, LogRow] = {}
+    for run in runs:
+        shift = (run.log.start_epoch_s or 0.0) - base
+        for r in run.rows:
+            rows.setdefault(id(r), LogRow(r.line, r.time_s + shift, r.values, vessel, run.label))
+    channels = [c for c in CHANNEL_COLUMNS if any(c in g.channels for g in mine)]
+    return write_csv(out, nan_as_blank(list(rows.values())), metadata, channels, with_vessel=True)
+
+
+def test_a_vessel_exported_from_a_stream_is_the_file_the_whole_log_gave(tmp_path) -> None:
+    """Issue 16: ``ebullio export --csv`` reads the log as a stream. On a log of two
+    sessions (a restart at mid heat-up) with a refill, the file is byte for byte the one
+    made from the whole log, and it splits into the same runs again."""
+    import io
+
+    from monitor.records.interchange import read_csv
+    from monitor.runs.logs import read_log
+    from monitor.runs.run import split_runs
+    from monitor.runs.streams import export_csv
+
+    log, _ = _recorded_log(tmp_path)
+    got, want = io.StringIO(), io.StringIO()
+    written = export_csv(log, got)
+    assert written == _export_whole(log, want, SCENARIO.vessel)
+    assert got.getvalue() == want.getvalue()
+    path = tmp_path / "exported.csv"
+    path.write_text(got.getvalue(), encoding="utf-8")
+    again, _ = split_runs([read_csv(path)])
+    recorded, _ = split_runs(read_log(log))
+    assert len(recorded) == 10  # nine runs, one cut in two by the restart
+    assert [r.label for r in again] == [r.label for r in recorded]
+    assert [len(r.rows) for r in again] == [len(r.rows) for r in recorded]

@@ -403,3 +403,25 @@ def test_one_run_exported_from_a_stream_is_the_run_the_whole_split_gives(tmp_pat
         assert got.getvalue() == want.getvalue()
     with pytest.raises(LogFormatError, match="its runs: A, B"):
         export_run_csv(log, io.StringIO(), "urn-2", "C")
+
+
+def test_one_vessel_of_a_csv_log_of_several_is_exported_alone(tmp_path) -> None:
+    """Issue 16: the whole-vessel export reads the log as a stream; of a CSV log holding
+    two vessels it writes the one asked for, named in the metadata (it wrote every
+    vessel's rows, or refused, when the log was read whole)."""
+    from monitor.records.interchange import read_csv
+    from monitor.runs.streams import export_csv
+
+    log = _two_vessel_log(tmp_path)
+    with pytest.raises(LogFormatError, match="holds vessels kettle-a, urn-2; say which"):
+        export_csv(log, io.StringIO())
+    with pytest.raises(LogFormatError, match="no vessel 'urn-3'; it holds kettle-a, urn-2"):
+        export_csv(log, io.StringIO(), "urn-3")
+    out = tmp_path / "urn.csv"
+    with out.open("w", encoding="utf-8", newline="") as handle:
+        assert export_csv(log, handle, "urn-2") == 400
+    exported = read_csv(out)
+    assert exported.metadata["vessel"] == "urn-2"
+    assert exported.metadata["exported_from"] == "two.csv"
+    assert [r.time_s for r in exported.rows] == [float(t) for t in range(400)]
+    assert exported.rows[-1].values["water"] == pytest.approx(15 + 399 * 0.05)
