@@ -6,8 +6,11 @@ nothing else; ``monitor/`` depends on this contract, never on a transport.
 
 from __future__ import annotations
 
+import functools
 import math
 import re
+import sys
+import types
 from collections.abc import Mapping
 from dataclasses import dataclass
 from enum import StrEnum
@@ -98,6 +101,22 @@ OTHER_RANGES: dict[str, tuple[float, float]] = {
 }
 
 
+#: The range of a channel without one of its own: any finite value.
+ANY_FINITE = (-sys.float_info.max, sys.float_info.max)
+
+
+@functools.lru_cache(maxsize=64)
+def _ranges(max_power_w: float, power_noise_w: float) -> Mapping[str, tuple[float, float]]:
+    """Return :attr:`ReadingLimits.ranges` for these limits (made once, then shared)."""
+    # a temperature at or below absolute zero is none: the lowest allowed is the
+    # float just above it
+    above_zero_c = math.nextafter(ABSOLUTE_ZERO_C, math.inf)
+    ranges = dict.fromkeys(TEMPERATURE_CHANNELS, (above_zero_c, HIGHEST_SENSOR_C))
+    ranges["power"] = (-power_noise_w, max_power_w)
+    ranges.update(OTHER_RANGES)
+    return types.MappingProxyType(ranges)
+
+
 @dataclass(frozen=True, slots=True)
 class ReadingLimits:
     """What one vessel's readings may physically be; anything outside is no reading.
@@ -110,6 +129,13 @@ class ReadingLimits:
 
     max_power_w: float = MAX_POWER_UNRATED_W
     power_noise_w: float = 50.0
+
+    @property
+    def ranges(self) -> Mapping[str, tuple[float, float]]:
+        """Each channel's lowest and highest reading, both allowed: a value ``v`` is a
+        reading of a channel when ``lo <= v <= hi`` (so never NaN or infinite); a channel
+        not in it takes any finite value (:data:`ANY_FINITE`). Do not change it."""
+        return _ranges(self.max_power_w, self.power_noise_w)
 
     @classmethod
     def from_metadata(cls, metadata: Mapping[str, object]) -> ReadingLimits:
@@ -129,22 +155,18 @@ class ReadingLimits:
 
     def problem(self, channel: str, value: float) -> str | None:
         """Return why ``value`` cannot be a reading of ``channel``, or None when it can."""
+        lo, hi = self.ranges.get(channel, ANY_FINITE)
+        if lo <= value <= hi:
+            return None
         if not math.isfinite(value):
             return f"{channel} = {value!r} is not a finite number"
         if channel in TEMPERATURE_CHANNELS:
-            if value <= ABSOLUTE_ZERO_C:
+            if value < lo:
                 return f"{channel} = {value!r} °C is at or below absolute zero"
-            if value > HIGHEST_SENSOR_C:
-                return f"{channel} = {value!r} °C is above any thermocouple's range"
-            return None
+            return f"{channel} = {value!r} °C is above any thermocouple's range"
         if channel == "power":
-            if value < -self.power_noise_w:
+            if value < lo:
                 return f"power = {value!r} W is below -{self.power_noise_w:g} W"
-            if value > self.max_power_w:
-                return f"power = {value!r} W is above the vessel's {self.max_power_w:g} W"
-            return None
-        span = OTHER_RANGES.get(channel)
-        if span is not None and not span[0] <= value <= span[1]:
-            unit = CHANNEL_UNITS[channel]
-            return f"{channel} = {value!r} {unit} is outside {span[0]:g} to {span[1]:g} {unit}"
-        return None
+            return f"power = {value!r} W is above the vessel's {self.max_power_w:g} W"
+        unit = CHANNEL_UNITS[channel]
+        return f"{channel} = {value!r} {unit} is outside {lo:g} to {hi:g} {unit}"

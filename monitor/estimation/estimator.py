@@ -89,7 +89,7 @@ from typing import Any
 
 import numpy as np
 
-from drivers.sample import ReadingLimits
+from drivers.sample import ANY_FINITE, ReadingLimits
 from monitor.estimation import batchfit
 from monitor.estimation.contracts import (
     Estimate,
@@ -516,9 +516,11 @@ class VesselEstimator:
         if self.core is not None and not t_s > self.t_s:
             raise ValueError(f"time went from {self.t_s} to {t_s} s: not forward")
         limits = self._limits
+        ranges = limits.ranges  # ReadingLimits.problem's rule, read once a step
         bad = False
         for k, v in readings.items():
-            if v != v or limits.problem(k, v) is not None:
+            lo, hi = ranges.get(k, ANY_FINITE)
+            if not lo <= v <= hi:
                 bad = True
                 break
         if bad:

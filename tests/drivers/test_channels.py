@@ -114,7 +114,7 @@ def test_parse_number_accepts_numbers_and_padded_text() -> None:
 
 
 def test_reading_limits_know_what_no_instrument_could_give() -> None:
-    from drivers.sample import ReadingLimits
+    from drivers.sample import ANY_FINITE, ReadingLimits
 
     # our own limits (judgement): 4x the rating by default, a noise band of 2 % of that
     limits = ReadingLimits.from_metadata({"rated_power_w": 2000})
@@ -140,3 +140,18 @@ def test_reading_limits_know_what_no_instrument_could_give() -> None:
         is None
     )
     assert ReadingLimits.from_metadata({}).max_power_w == 1.0e6
+    # the edges, as the rule has them (a temperature at absolute zero is none; the top
+    # of the range and the bottom of the noise band are readings), and the ranges the
+    # estimator checks with are that rule's
+    import math
+
+    for channel, value, fine in [
+        ("water", -273.15, False), ("water", math.nextafter(-273.15, 0.0), True),
+        ("element", 1820.0, True), ("element", math.nextafter(1820.0, 2000.0), False),
+        ("power", -160.0, True), ("power", 8000.0, True), ("power", 8000.5, False),
+        ("energy", 0.0, True), ("voltage", 2000.5, False),
+        ("mystery", 1e300, True), ("mystery", math.inf, False), ("mystery", -math.inf, False),
+    ]:  # fmt: skip
+        assert (limits.problem(channel, value) is None) is fine, (channel, value)
+        lo, hi = limits.ranges.get(channel, ANY_FINITE)
+        assert (lo <= value <= hi) is fine, (channel, value)
