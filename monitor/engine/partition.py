@@ -54,6 +54,7 @@ class EngineLayout:
     partitions: int = 8
     stream: str = "EBULLIO_READINGS"
     set_aside_stream: str = "EBULLIO_SET_ASIDE"
+    runs_stream: str = "EBULLIO_RUNS"
     leases_bucket: str = "ebullio-leases"
     checkpoints_bucket: str = "ebullio-checkpoints"
     estimates_bucket: str = "ebullio-estimates"
@@ -79,6 +80,10 @@ class EngineLayout:
         """Return the subject where a partition's set-aside input is kept."""
         return f"{self.prefix}-set-aside.{partition}"
 
+    def runs_subject(self, vessel: str) -> str:
+        """Return the subject where a vessel's ended runs' summaries are kept."""
+        return f"{self.prefix}-runs.{vessel}"
+
     def server_config(self) -> str:
         """Return the ``mappings`` block of a nats-server configuration for this layout."""
         source, destination = self.mapping()
@@ -103,8 +108,14 @@ class VesselStream:
     the messages taken, ``set_aside`` those set aside, ``estimates`` the estimates made,
     ``digest`` a SHA-256 chained over every estimate's flat form (so two processings of
     a vessel that end with the same digest made the same figures at every step) and
-    ``latest`` the newest flat estimate. The whole object is what a checkpoint saves.
+    ``latest`` the newest flat estimate. ``unsent_runs`` are the summaries of the runs
+    that have ended (their drift flags included, as the live service records them) and
+    that the worker has not yet put in the runs stream. The whole object is what a
+    checkpoint saves.
     """
+
+    #: a state saved before runs were kept has none (a class default, never changed)
+    unsent_runs: list[dict[str, object]] = []  # noqa: RUF012
 
     def __init__(self, spec: VesselSpec) -> None:
         # no fit budget: a budget defers fits by CPU time, and the figures must not
@@ -118,13 +129,16 @@ class VesselStream:
         self.digest = hashlib.sha256(spec.id.encode()).hexdigest()
         self.latest: dict[str, object] | None = None
         self.runs_ended = 0
+        self.unsent_runs = []
 
     def _steps(self, steps: list[Step]) -> None:
         live = self.live
         for step in steps:
             estimate = live.step(step)
-            self.runs_ended += len(live.ended)
-            live.ended.clear()  # run summaries: not kept by the engine yet (docs/engine.md)
+            if live.ended:  # the worker puts them in the runs stream (docs/engine.md)
+                self.runs_ended += len(live.ended)
+                self.unsent_runs = [*self.unsent_runs, *live.ended]
+                live.ended.clear()
             live.begun.clear()
             if estimate is None:
                 continue
@@ -176,6 +190,8 @@ class Partition:
         self.streams: dict[str, VesselStream] = dict(streams or {})
         self.dirty: set[str] = set()  # vessels stepped since the last checkpoint
         self.fresh: set[str] = set()  # vessels with a new estimate since the last hand-over
+        #: vessels with ended runs not yet in the runs stream
+        self.ended: set[str] = {v for v, s in self.streams.items() if s.unsent_runs}
         self.unknown = 0  # messages set aside for their subject or vessel
         self.faulted: set[str] = set()  # vessels whose processing failed (logged once each)
         #: each vessel's entry in the estimates bucket as a worker last saw it: the stream
@@ -214,6 +230,8 @@ class Partition:
             kept = [self._aside(message, reason)]
         if stream.estimates != before:
             self.fresh.add(vessel)
+        if stream.unsent_runs:
+            self.ended.add(vessel)
         return kept
 
     def _aside(self, message: Message, reason: str) -> Quarantined:

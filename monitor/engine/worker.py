@@ -76,7 +76,7 @@ from monitor.rig.config import RigConfig, VesselSpec
 
 __all__ = [
     "EngineError", "Worker", "WorkerSettings", "WorkerStats", "engine_layout", "engine_servers",
-    "engine_vessels", "read_estimates",
+    "engine_vessels", "read_estimates", "read_runs",
 ]  # fmt: skip
 
 log = logging.getLogger("ebullio.engine")
@@ -93,6 +93,10 @@ MISSING = (nats.js.errors.KeyNotFoundError, nats.js.errors.KeyDeletedError)
 SLICE_S = 0.02
 #: After this long (s) of empty fetches a worker asks its consumer whether it is stuck.
 IDLE_CHECK_S = 2.0
+#: How long (s) the runs stream remembers a summary's message id: a run ended again by
+#: the worker that takes a partition over (it steps again from the last checkpoint,
+#: seconds before) is kept once.
+RUNS_DUPLICATE_WINDOW_S = 3600.0
 
 
 class EngineError(EbullioError, RuntimeError):
@@ -123,6 +127,7 @@ class WorkerStats:
     partitions_lost: int = 0
     consumer_restarts: int = 0
     deliveries_lost: int = 0  # gaps in a consumer's delivery sequence (each restarts it)
+    runs_sent: int = 0  # vessels' ended runs put in the runs stream (once per hand-over)
     taken_at: dict[int, float] = field(default_factory=dict)  # partition -> Unix s taken
 
     def as_dict(self) -> dict[str, object]:
@@ -237,6 +242,11 @@ class Worker:
                     name=layout.set_aside_stream, subjects=[layout.set_aside_subject("*")],
                     num_replicas=replicas, storage=StorageType.FILE,
                     duplicate_window=600.0, discard=DiscardPolicy.OLD,
+                ))  # fmt: skip
+                await self._ensure_stream(StreamConfig(
+                    name=layout.runs_stream, subjects=[layout.runs_subject("*")],
+                    num_replicas=replicas, storage=StorageType.FILE,
+                    duplicate_window=RUNS_DUPLICATE_WINDOW_S,
                 ))  # fmt: skip
                 self._leases = await self._bucket(layout.leases_bucket)
                 self._checkpoints = await self._bucket(layout.checkpoints_bucket)
@@ -642,6 +652,20 @@ class Worker:
             subject, value = self.layout.set_aside_subject(part.number), _set_aside_value(q)
             await self._until_done("set-aside input", lambda s=subject, v=value, h=headers:
                                    self._js.publish(s, v, headers=h), lease)  # fmt: skip
+        for vessel in sorted(part.ended):
+            stream = part.streams[vessel]
+            for summary in stream.unsent_runs:
+                # a run is kept once, however often it is ended again after a take-over
+                headers = {"Nats-Msg-Id": _run_id(summary)}
+                subject, value = self.layout.runs_subject(vessel), encode_json(summary)
+                if not await self._until_done("run summary", lambda s=subject, v=value,
+                                              h=headers: self._js.publish(s, v, headers=h),
+                                              lease):  # fmt: skip
+                    return  # kept in the state: the next holder sends it
+            self.stats.runs_sent += len(stream.unsent_runs)
+            stream.unsent_runs = []
+            part.dirty.add(vessel)  # the checkpoint must say they were sent
+        part.ended.clear()
 
     async def _checkpoint(self, part: Partition, covered: int, lease: _Lease) -> None:
         """Save the vessels stepped since the last checkpoint, then the partition's index."""
@@ -732,11 +756,35 @@ def _estimate_value(stream: VesselStream, worker: str, partition: int) -> bytes:
     })  # fmt: skip
 
 
+def _run_id(summary: Mapping[str, object]) -> str:
+    """Return a run summary's message id in the runs stream: its vessel, run label and
+    first step's time, which every worker that ends the run gives alike."""
+    return f"{summary.get('vessel')}/{summary.get('run')}/{summary.get('start_t')!r}"[:250]
+
+
 def _set_aside_value(q: Quarantined) -> bytes:
     return encode_json({
         "t": q.t, "source": q.source, "where": q.where, "reason": q.reason,
         "raw": q.raw.decode("utf-8", errors="backslashreplace"),
     })  # fmt: skip
+
+
+async def _quiet(_error: Exception) -> None:
+    """Say nothing of a connection error: the reader raises its own, in one line."""
+
+
+async def _connect_once(servers: Sequence[str], timeout_s: float) -> Any:
+    """Connect to one of ``servers`` for a short read, trying each twice at most (the
+    client's default retries for minutes); raise EngineError when none answers."""
+    try:
+        return await asyncio.wait_for(nats.connect(
+            servers=list(servers), connect_timeout=timeout_s, max_reconnect_attempts=1,
+            reconnect_time_wait=0.2, allow_reconnect=False, error_cb=_quiet,
+        ), 2 * timeout_s + 1.0)  # fmt: skip
+    except NATS_ERRORS as exc:
+        shown = ",".join(s.split("://")[-1].split("@")[-1] for s in servers)
+        raise EngineError(f"cannot reach the NATS server at {shown}: "
+                          f"{exc or type(exc).__name__}") from exc  # fmt: skip
 
 
 async def read_estimates(servers: Sequence[str], layout: EngineLayout | None = None,
@@ -750,7 +798,7 @@ async def read_estimates(servers: Sequence[str], layout: EngineLayout | None = N
     election. A vessel without an entry is left out.
     """
     layout = layout or EngineLayout()
-    nc = await nats.connect(servers=list(servers), connect_timeout=timeout_s)
+    nc = await _connect_once(servers, timeout_s)
     try:
         js = nc.jetstream(timeout=timeout_s)
         try:
@@ -767,6 +815,50 @@ async def read_estimates(servers: Sequence[str], layout: EngineLayout | None = N
             with contextlib.suppress(*MISSING):
                 entry = await kv.get(key)
                 out[key] = json.loads(entry.value)
+        return out
+    finally:
+        await nc.close()
+
+
+async def read_runs(servers: Sequence[str], layout: EngineLayout | None = None,
+                    after_seq: int = 0, timeout_s: float = 5.0,
+                    ) -> list[tuple[int, dict[str, Any]]]:  # fmt: skip
+    """Return the run summaries in the runs stream after sequence ``after_seq``, in the
+    order they were put, each with its sequence: ``[(seq, summary), ...]`` ([] when the
+    stream is not there yet). A summary is the live service's (docs/run-summary.md),
+    with its ``drift`` flags; :func:`monitor.records.schema.run_record` makes it a row of
+    a fleet's run history."""
+    layout = layout or EngineLayout()
+    nc = await _connect_once(servers, timeout_s)
+    try:
+        js = nc.jetstream(timeout=timeout_s)
+        try:
+            last = (await js.stream_info(layout.runs_stream)).state.last_seq
+        except nats.js.errors.NotFoundError:
+            return []
+        out: list[tuple[int, dict[str, Any]]] = []
+        if last <= after_seq:
+            return out
+        config = ConsumerConfig(deliver_policy=DeliverPolicy.BY_START_SEQUENCE,
+                                opt_start_seq=after_seq + 1, ack_policy=AckPolicy.NONE,
+                                inactive_threshold=30.0)  # fmt: skip
+        sub = await js.pull_subscribe(layout.runs_subject("*"), stream=layout.runs_stream,
+                                      config=config)  # fmt: skip
+        try:
+            seq, delivered = after_seq, 0
+            while seq < last:
+                for msg in await sub.fetch(256, timeout=timeout_s):
+                    delivered += 1
+                    if msg.metadata.sequence.consumer != delivered:
+                        return out  # one lost on the way: the next read starts after seq
+                    seq = msg.metadata.sequence.stream
+                    with contextlib.suppress(ValueError):
+                        summary = json.loads(msg.data)
+                        if isinstance(summary, dict):
+                            out.append((seq, summary))
+        finally:
+            with contextlib.suppress(*NATS_ERRORS):
+                await sub.unsubscribe()
         return out
     finally:
         await nc.close()

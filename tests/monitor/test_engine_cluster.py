@@ -26,7 +26,7 @@ import nats
 import pytest
 
 from monitor.engine.partition import EngineLayout
-from monitor.engine.worker import Worker, WorkerSettings, read_estimates
+from monitor.engine.worker import EngineError, Worker, WorkerSettings, read_estimates
 from monitor.rig.config import load_config
 from tests.support.engine import estimates, read_stream, reference_figures
 from tests.support.failover import BAD_INPUT, LAYOUT, VESSELS, run_failover, wait_for
@@ -133,3 +133,71 @@ async def _stream_exists(js, layout) -> bool:
     except nats.js.errors.NotFoundError:
         return False
     return True
+
+
+def test_each_ended_run_reaches_the_runs_stream_once_across_a_crash(tmp_path):
+    """Issue 16: the engine keeps run summaries. One node, workers in this process: the
+    first takes two runs of three kettles and dies without a checkpoint; the second
+    steps it all again (ending each first run again) and the runs stream holds each
+    vessel's ended run once, equal to one uninterrupted replay's, drift flags and all."""
+    from monitor.engine.worker import read_runs
+    from tests.monitor.test_engine_partition import _two_runs
+
+    layout = EngineLayout(partitions=2)
+    vessels = ["kettle-a", "kettle-b", "kettle-c"]
+    payloads = {v: _two_runs(v, i) for i, v in enumerate(vessels)}
+    with NatsCluster(tmp_path / "nats", nodes=1, layout=layout) as server:
+        config_path = tmp_path / "fleet.toml"
+        config_path.write_text(fleet_config(vessels, server.mqtt_ports[0]))
+        specs = {v.id: v for v in load_config(config_path).vessels}
+        report = asyncio.run(_crash_and_redo(server.urls, layout, specs, payloads))
+        runs = asyncio.run(read_runs(server.urls, layout))
+        # read from the middle: only what came after
+        after = asyncio.run(read_runs(server.urls, layout, runs[1][0]))
+    with pytest.raises(EngineError, match="cannot reach the NATS server"):
+        asyncio.run(read_runs(server.urls, layout, timeout_s=1.0))  # it has stopped
+    assert after == runs[2:]
+    assert report["first_runs_sent"] == 3
+    assert report["second_runs_sent"] == 3  # sent again, kept once
+    summaries = [summary for _, summary in runs]
+    assert sorted(s["vessel"] for s in summaries) == vessels
+    want = {v: stream.unsent_runs for v, stream in report["reference"].items()}
+    for summary in summaries:
+        assert json.dumps([summary]) == json.dumps(want[summary["vessel"]])
+
+
+async def _crash_and_redo(urls, layout, specs, payloads) -> dict[str, object]:
+    nc = await nats.connect(urls[0])
+    js = nc.jetstream(timeout=5.0)
+    total = sum(len(p) for p in payloads.values())
+    out: dict[str, object] = {}
+    try:
+        # no checkpoint but at a hand-back, which a crash never makes
+        first = Worker(urls, specs, layout, "first", WorkerSettings(checkpoint_every_s=1e9))
+        task = asyncio.create_task(first.run())
+        await wait_for(lambda: _stream_exists(js, layout), 20.0)
+        for k in range(max(len(p) for p in payloads.values())):
+            for vessel, p in payloads.items():
+                if k < len(p):
+                    await nc.publish(f"ebullio.{vessel}.reading", p[k])
+        await nc.flush()
+
+        async def done(worker):
+            return worker.stats.messages >= total and worker.stats.runs_sent >= 3
+
+        ok, _ = await wait_for(lambda: done(first), 60.0)
+        assert ok, f"the first worker took {first.stats.messages} of {total} in 60 s"
+        task.cancel()  # dies: no checkpoint, its leases left to run out
+        await asyncio.wait([task])
+        out["first_runs_sent"] = first.stats.runs_sent
+        second = Worker(urls, specs, layout, "second", WorkerSettings(checkpoint_every_s=1.0))
+        task = asyncio.create_task(second.run())
+        ok, _ = await wait_for(lambda: done(second), 60.0)
+        second.stop()
+        await asyncio.wait_for(task, 30.0)
+        assert ok, f"the second worker took {second.stats.messages} of {total} in 60 s"
+        out["second_runs_sent"] = second.stats.runs_sent
+        out["reference"] = reference_figures(layout, specs, await read_stream(js, layout))
+    finally:
+        await nc.close()
+    return out

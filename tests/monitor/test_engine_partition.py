@@ -418,3 +418,35 @@ def test_estimates_and_checkpoints_are_written_only_forwards():
 
     asyncio.run(scenario())
     assert json.loads(bucket.entries["kettle-1"][0]) == {"seq": 12, "worker": "new"}
+
+
+def _two_runs(vessel: str, seed: int) -> list[bytes]:
+    """A kettle's heat-up, then another an hour later (a new run: the gap is past 900 s)."""
+    first = kettle_readings(vessel, seed=seed, duration_s=300.0)
+    later = kettle_readings(vessel, seed=seed + 50, duration_s=300.0,
+                            start_epoch_s=START_EPOCH_S + 3600.0)  # fmt: skip
+    return first + later
+
+
+def test_a_run_that_ends_is_kept_for_the_runs_stream_with_its_drift_flags(kettle) -> None:
+    """Issue 16: the engine keeps each ended run's summary (the live service's, drift
+    flags and all) until the worker has put it in the runs stream; a checkpoint carries
+    one not yet sent, and a state saved before runs were kept loads with none."""
+    spec, _ = kettle
+    payloads = _two_runs(spec.id, 7)
+    part, aside = _run(_messages(spec.id, payloads), spec)
+    assert aside == []
+    stream = part.streams[spec.id]
+    assert stream.runs_ended == 1
+    assert part.ended == {spec.id}
+    (summary,) = stream.unsent_runs
+    assert summary["vessel"] == spec.id
+    assert summary["run"] == "1"
+    assert summary["source"] == "live"
+    assert isinstance(summary["drift"], list)
+    assert summary["water_mass_kg"]["value"] == pytest.approx(1.2, rel=0.05)
+    again = checkpoint.loads(checkpoint.dumps(stream))
+    assert json.dumps(again.unsent_runs) == json.dumps(stream.unsent_runs)
+    assert Partition(LAYOUT, 2, {spec.id: spec}, "test", {spec.id: again}).ended == {spec.id}
+    del again.__dict__["unsent_runs"]  # as a state saved before
+    assert again.unsent_runs == []
