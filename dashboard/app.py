@@ -168,10 +168,11 @@ def _board(source: str, first: dict, views: list, poll_ms: int, poll: bool = Tru
 #: What the board over the engine says of what it shows and what it cannot.
 ENGINE_NOTE = (
     "Figures from the NATS engine: each vessel's newest estimate as its worker put it in "
-    "the estimates bucket. The charts hold the estimates this board has seen since it "
-    "started (the filtered temperatures and the power, not the raw readings). Run "
-    "history, drift checks and replay need a log, which the engine does not write yet: "
-    "the readings stay in the engine's stream (docs/engine.md)."
+    "the estimates bucket, and the summaries of the runs that have ended, with their "
+    "drift checks, from the runs stream. The charts hold the estimates this board has "
+    "seen since it started (the filtered temperatures and the power, not the raw "
+    "readings). Replaying a run and its audit report need a log, which the engine does "
+    "not write yet: the readings stay in the engine's stream (docs/engine.md)."
 )
 
 
@@ -187,8 +188,10 @@ def create_engine_app(servers: list[str], poll_ms: int = 2000,
     if ranked:
         first = {**first, "chosen": ranked[0]["vessel"]}
     note = html.Section([html.P(ENGINE_NOTE, className="status")], className="view")
-    app = _board(f"engine: {watch.source}", first,
-                 [fleet.layout(), vessel.layout(first), note], poll_ms)  # fmt: skip
+    app = _board(f"engine: {watch.source}", first, [
+        fleet.layout(), vessel.layout(first),
+        maintenance.layout(list(first.get("vessels") or [])), note,
+    ], poll_ms)  # fmt: skip
 
     @app.callback(
         Output(ids.STORE, "data"), Input(ids.POLL, "n_intervals"), Input(ids.VESSEL_PICK, "value")
@@ -209,6 +212,7 @@ def create_engine_app(servers: list[str], poll_ms: int = 2000,
 
     fleet.register(app)
     vessel.register(app, watch.chart_data)
+    maintenance.register(app, watch.history, reports=False)
     return app
 
 

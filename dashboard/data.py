@@ -398,8 +398,6 @@ def run_history(
     board has run already) when given. Otherwise, or when the table holds none with
     figures, the whole log is replayed (the figures come from the full data).
     """
-    from monitor.runs.drift import RULES, baselines_of, verdict_of
-
     if is_recorder_log(path):
         runs = _recorded_summaries(path)
     elif csv_replay is not None:
@@ -410,6 +408,14 @@ def run_history(
         from monitor.runs.replay import replay
 
         runs = [r for r in replay([path])["runs"] if isinstance(r, dict)]  # type: ignore[union-attr]
+    return history_of(runs, vessel)
+
+
+def history_of(runs: Sequence[Mapping[str, object]], vessel: str | None) -> dict[str, object]:
+    """Return :func:`run_history`'s answer from run summaries at hand (with their
+    ``drift``), in the order the runs began."""
+    from monitor.runs.drift import RULES, baselines_of, verdict_of
+
     names = sorted({str(r["vessel"]) for r in runs})
     chosen = vessel if vessel in names else (names[0] if names else None)
     mine = [r for r in runs if r["vessel"] == chosen]
@@ -440,31 +446,41 @@ def _recorded_summaries(path: str) -> list[dict[str, object]]:
 ENGINE_WINDOW_S = 3 * 3600.0
 #: The estimates bucket's entries by vessel (:func:`monitor.engine.worker.read_estimates`).
 BucketEntries = Mapping[str, Mapping[str, object]]
+#: Run summaries with their sequence in the runs stream (:func:`monitor.engine.worker.read_runs`).
+RunEntries = Sequence[tuple[int, Mapping[str, object]]]
 
 
 class EngineWatch:
-    """The NATS engine's estimates bucket, read in a thread of its own every ``every_s``.
+    """The NATS engine's estimates bucket and runs stream, read in a thread of its own
+    every ``every_s``.
 
-    The workers keep each vessel's newest estimate in the bucket (docs/engine.md); this
-    reads it (:func:`monitor.engine.worker.read_estimates`, every key) and keeps each
-    vessel's estimates as they come, the last ``window_s`` of them, so the fleet, the
-    vessel's figures and its charts are answered from memory (no I/O in a callback).
+    The workers keep each vessel's newest estimate in the bucket and each ended run's
+    summary in the runs stream (docs/engine.md); this reads the bucket
+    (:func:`monitor.engine.worker.read_estimates`, every key) and the runs put since the
+    last read (:func:`monitor.engine.worker.read_runs`), and keeps each vessel's
+    estimates as they come, the last ``window_s`` of them, and every run summary, so
+    the fleet (last run, verdict, drift flags, scaling index), the vessel's figures and
+    charts and the maintenance history are answered from memory (no I/O in a callback).
     The charts hold what this board has seen since it started: the bucket keeps only
     the newest estimate, and the stream holds the readings. A read that fails (a node
     down, a leader being elected) is said in :meth:`snapshot` and tried again; what was
-    kept stays. ``read`` stands in for the bucket's reader in tests.
+    kept stays. ``read`` and ``read_runs`` stand in for the readers in tests.
     """
 
     def __init__(self, servers: Sequence[str], every_s: float = 2.0,
                  window_s: float = ENGINE_WINDOW_S,
-                 read: Callable[[], BucketEntries] | None = None) -> None:  # fmt: skip
+                 read: Callable[[], BucketEntries] | None = None,
+                 read_runs: Callable[[int], RunEntries] | None = None) -> None:  # fmt: skip
         import threading
 
         self.source = "nats://" + ",".join(s.split("://")[-1].split("@")[-1] for s in servers)
         self._servers = list(servers)
         self._every_s, self._window_s = every_s, window_s
         self._read = read or self._read_bucket
+        self._read_runs = read_runs or self._read_runs_stream
         self._kept: dict[str, list[dict[str, object]]] = {}
+        self._runs: list[dict[str, object]] = []  # every run summary read, in order
+        self._runs_seq = 0  # the runs stream's sequence read up to
         self._problem: str | None = None
         self._reads = 0
         self._lock = threading.Lock()
@@ -479,15 +495,26 @@ class EngineWatch:
 
         return asyncio.run(read_estimates(self._servers, timeout_s=max(self._every_s, 2.0)))
 
+    def _read_runs_stream(self, after_seq: int) -> RunEntries:
+        import asyncio
+
+        from monitor.engine.worker import read_runs
+
+        return asyncio.run(read_runs(self._servers, after_seq=after_seq,
+                                     timeout_s=max(self._every_s, 2.0)))  # fmt: skip
+
     def _run(self) -> None:
         while True:
             try:
                 entries = self._read()
+                runs = self._read_runs(self._runs_seq)
                 problem = None
             except Exception as exc:  # said on the board; the next read may succeed
-                entries, problem = {}, f"{type(exc).__name__}: {exc}".rstrip(": ")
+                entries, runs = {}, []
+                problem = f"{type(exc).__name__}: {exc}".rstrip(": ")
             with self._lock:
                 self.take(entries)
+                self.take_runs(runs)
                 self._problem = problem
                 self._reads += 1
             if self._stop.wait(self._every_s):
@@ -510,6 +537,20 @@ class EngineWatch:
                 first += 1
             del kept[:first]
 
+    def take_runs(self, runs: RunEntries) -> None:
+        """Keep the run summaries read after the last (call with the lock held)."""
+        for seq, summary in runs:
+            if seq > self._runs_seq and isinstance(summary, dict) and summary.get("vessel"):
+                self._runs.append(summary)
+                self._runs_seq = seq
+
+    def history(self, vessel: str | None) -> dict[str, object]:
+        """Return the maintenance view's history of a vessel (:func:`run_history`'s
+        answer) from the run summaries read so far."""
+        with self._lock:
+            runs = list(self._runs)
+        return history_of(runs, vessel)
+
     def wait_read(self, count: int = 1, timeout_s: float = 10.0) -> bool:
         """Wait until the bucket has been read ``count`` times; True if it has."""
         import time
@@ -530,15 +571,18 @@ class EngineWatch:
         """Return what the fleet and the vessel figures show, as :func:`load_snapshot`
         does for a log (``kind`` "engine", no run history), and ``problem``: why the
         last read failed, or None."""
+        from monitor.records.schema import run_record
+
         with self._lock:
             latest = {v: _latest(kept[-1]) for v, kept in self._kept.items() if kept}
             problem = self._problem
-        names = sorted(latest)
+            rows = [run_record(summary) for summary in self._runs]
+        names = sorted({*latest, *(str(r["vessel"]) for r in rows)})
         last = [float(e["t"]) for e in latest.values() if e is not None]  # type: ignore[arg-type]
         chosen = vessel if vessel in names else (names[0] if names else None)
         return {"log": self.source, "kind": "engine", "last_t": max(last, default=None),
-                "vessels": names, "latest": latest, "runs": {}, "chosen": chosen,
-                "problem": problem}  # fmt: skip
+                "vessels": names, "latest": latest, "runs": run_state(rows),
+                "chosen": chosen, "problem": problem}  # fmt: skip
 
     def chart_data(self, vessel: str | None, after: dict | None = None) -> dict[str, object]:
         """Return a vessel's charts as :func:`chart_data` does for a log, from the

@@ -31,8 +31,10 @@ def history_figure(history: dict | None) -> go.Figure:
                                 uirevision="maintenance")  # fmt: skip
 
 
-def report_links(history: dict | None) -> html.Ul:
-    """Return a link to the audit report of every run of the vessel."""
+def report_links(history: dict | None, reports: bool = True) -> html.Ul:
+    """Return a link to the audit report of every run of the vessel (with ``reports``
+    False, as over the engine, which keeps no log to report from: each run and its
+    verdict, without a link)."""
     history = history or {}
     vessel = history.get("chosen")
     items = []
@@ -45,10 +47,11 @@ def report_links(history: dict | None) -> html.Ul:
         verdict = r.get("verdict") or {}
         doubtful = verdict.get("status") == "doubtful"
         why = " ".join(str(x) for x in verdict.get("reasons") or [])
+        when = r.get("start_utc") or "time not recorded"
         items.append(html.Li([
-            html.A(f"audit report of run {r.get('run')} "
-                   f"({r.get('start_utc') or 'time not recorded'})",
-                   href=f"/report?{query}", target="_blank"),
+            html.A(f"audit report of run {r.get('run')} ({when})",
+                   href=f"/report?{query}", target="_blank")
+            if reports else html.Span(f"run {r.get('run')} ({when})"),
             html.Span(f" {verdict_mark(verdict)}" + (f": {why}" if doubtful and why else ""),
                       className=f"verdict-{verdict.get('status', 'unknown')}",
                       style={"fontWeight": 700} if doubtful else {}),
@@ -67,11 +70,12 @@ def layout(vessels: list[str]) -> html.Section:
     ], className="view")  # fmt: skip
 
 
-def register(app: Dash, load_history: Callable[[str | None], dict]) -> None:
-    """Attach the view's callback; ``load_history(vessel)`` reads the log (the app's I/O)."""
+def register(app: Dash, load_history: Callable[[str | None], dict], reports: bool = True) -> None:
+    """Attach the view's callback; ``load_history(vessel)`` reads the log (the app's I/O);
+    ``reports`` False: no audit report links (:func:`report_links`)."""
 
     @app.callback(Output(ids.MAINT_CHART, "figure"), Output(ids.MAINT_REPORTS, "children"),
                   Input(ids.MAINT_PICK, "value"))  # fmt: skip
     def show(vessel: str | None):
         history = load_history(vessel)
-        return history_figure(history), report_links(history)
+        return history_figure(history), report_links(history, reports)

@@ -30,7 +30,7 @@ from monitor.engine.worker import EngineError, Worker, WorkerSettings, read_esti
 from monitor.rig.config import load_config
 from tests.support.engine import estimates, read_stream, reference_figures
 from tests.support.failover import BAD_INPUT, LAYOUT, VESSELS, run_failover, wait_for
-from tests.support.fleet import fleet_config, kettle_readings
+from tests.support.fleet import fleet_config, kettle_readings, two_kettle_runs
 from tests.support.nats import NatsCluster
 
 #: Liveness bounds (s): a take-over that has not happened by then has not happened.
@@ -141,11 +141,10 @@ def test_each_ended_run_reaches_the_runs_stream_once_across_a_crash(tmp_path):
     steps it all again (ending each first run again) and the runs stream holds each
     vessel's ended run once, equal to one uninterrupted replay's, drift flags and all."""
     from monitor.engine.worker import read_runs
-    from tests.monitor.test_engine_partition import _two_runs
 
     layout = EngineLayout(partitions=2)
     vessels = ["kettle-a", "kettle-b", "kettle-c"]
-    payloads = {v: _two_runs(v, i) for i, v in enumerate(vessels)}
+    payloads = {v: two_kettle_runs(v, i) for i, v in enumerate(vessels)}
     with NatsCluster(tmp_path / "nats", nodes=1, layout=layout) as server:
         config_path = tmp_path / "fleet.toml"
         config_path.write_text(fleet_config(vessels, server.mqtt_ports[0]))

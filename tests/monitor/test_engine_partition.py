@@ -35,7 +35,13 @@ from monitor.engine.worker import (
 )
 from monitor.records.schema import flatten_estimate
 from monitor.runs.live import LiveVessel, steps_from_samples
-from tests.support.fleet import START_EPOCH_S, fleet_config, kettle_readings, kettle_spec
+from tests.support.fleet import (
+    START_EPOCH_S,
+    fleet_config,
+    kettle_readings,
+    kettle_spec,
+    two_kettle_runs,
+)
 from tests.support.mosquitto import free_port
 
 LAYOUT = EngineLayout(partitions=4)
@@ -420,20 +426,12 @@ def test_estimates_and_checkpoints_are_written_only_forwards():
     assert json.loads(bucket.entries["kettle-1"][0]) == {"seq": 12, "worker": "new"}
 
 
-def _two_runs(vessel: str, seed: int) -> list[bytes]:
-    """A kettle's heat-up, then another an hour later (a new run: the gap is past 900 s)."""
-    first = kettle_readings(vessel, seed=seed, duration_s=300.0)
-    later = kettle_readings(vessel, seed=seed + 50, duration_s=300.0,
-                            start_epoch_s=START_EPOCH_S + 3600.0)  # fmt: skip
-    return first + later
-
-
 def test_a_run_that_ends_is_kept_for_the_runs_stream_with_its_drift_flags(kettle) -> None:
     """Issue 16: the engine keeps each ended run's summary (the live service's, drift
     flags and all) until the worker has put it in the runs stream; a checkpoint carries
     one not yet sent, and a state saved before runs were kept loads with none."""
     spec, _ = kettle
-    payloads = _two_runs(spec.id, 7)
+    payloads = two_kettle_runs(spec.id, 7)
     part, aside = _run(_messages(spec.id, payloads), spec)
     assert aside == []
     stream = part.streams[spec.id]

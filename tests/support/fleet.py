@@ -40,6 +40,15 @@ def kettle_readings(vessel: str, seed: int, duration_s: float = 900.0,
     return payloads
 
 
+def two_kettle_runs(vessel: str, seed: int) -> list[bytes]:
+    """Return a kettle's 300 s heat-up, then another an hour later: two runs, since the
+    gap is past the run splitter's 900 s."""
+    first = kettle_readings(vessel, seed=seed, duration_s=300.0)
+    later = kettle_readings(vessel, seed=seed + 50, duration_s=300.0,
+                            start_epoch_s=START_EPOCH_S + 3600.0)  # fmt: skip
+    return first + later
+
+
 def kettle_spec(vessel: str, seed: int, duration_s: float = 900.0,
                 start_epoch_s: float = START_EPOCH_S) -> VesselSpec:  # fmt: skip
     """Return the configured vessel that :func:`kettle_readings` simulates."""
