@@ -473,7 +473,9 @@ class EngineWatch:
                  read_runs: Callable[[int], RunEntries] | None = None) -> None:  # fmt: skip
         import threading
 
-        self.source = "nats://" + ",".join(s.split("://")[-1].split("@")[-1] for s in servers)
+        from monitor.engine.worker import shown_servers
+
+        self.source = shown_servers(servers)
         self._servers = list(servers)
         self._every_s, self._window_s = every_s, window_s
         self._read = read or self._read_bucket

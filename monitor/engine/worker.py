@@ -76,7 +76,7 @@ from monitor.rig.config import RigConfig, VesselSpec
 
 __all__ = [
     "EngineError", "Worker", "WorkerSettings", "WorkerStats", "engine_layout", "engine_servers",
-    "engine_vessels", "read_estimates", "read_runs",
+    "engine_vessels", "read_estimates", "read_runs", "shown_servers",
 ]  # fmt: skip
 
 log = logging.getLogger("ebullio.engine")
@@ -169,7 +169,8 @@ class Worker:
         self.settings = settings or WorkerSettings()
         self.clock = clock
         self.stats = WorkerStats()
-        self.source = "nats://" + ",".join(s.split("://")[-1].split("@")[-1] for s in servers)
+        self.source = shown_servers(servers)
+        self._last_said = ""  # the connection's last error, logged once in a row
         self._stop = asyncio.Event()
         self._held: dict[int, _Lease] = {}
         self._nc: Any = None
@@ -211,17 +212,33 @@ class Worker:
                     await self._nc.close()
         return self.stats
 
+    async def _connection_error(self, exc: Exception) -> None:
+        """Log the connection's errors in one line each (a node gone, a reconnect
+        refused), once in a row, instead of the client's tracebacks."""
+        said = _said(exc)
+        if said != self._last_said:
+            log.warning("%s: NATS connection: %s", self.name, said)
+            self._last_said = said
+
+    async def _reconnected(self) -> None:
+        url = self._nc.connected_url if self._nc is not None else None
+        log.info("%s: NATS connection back (%s)", self.name,
+                 f"{url.hostname}:{url.port}" if url is not None else "?")  # fmt: skip
+        self._last_said = ""
+
     async def _start(self) -> None:
         """Connect (bounded: the client retries for ever once connected) and set up."""
         try:
             self._nc = await asyncio.wait_for(nats.connect(
                 servers=self.servers, name=self.name, max_reconnect_attempts=-1,
                 reconnect_time_wait=0.25, connect_timeout=2, allow_reconnect=True,
+                error_cb=self._connection_error, reconnected_cb=self._reconnected,
             ), self.settings.setup_patience_s)  # fmt: skip
         except NATS_ERRORS as exc:
+            why = self._last_said or _said(exc)
             raise EngineError(
                 f"cannot reach the NATS server at {self.source} in "
-                f"{self.settings.setup_patience_s:g} s: {exc or type(exc).__name__}"
+                f"{self.settings.setup_patience_s:g} s: {why}"
             ) from exc
         self._js = self._nc.jetstream(timeout=2.0)
         await self._set_up()
@@ -769,22 +786,34 @@ def _set_aside_value(q: Quarantined) -> bytes:
     })  # fmt: skip
 
 
-async def _quiet(_error: Exception) -> None:
-    """Say nothing of a connection error: the reader raises its own, in one line."""
+def shown_servers(servers: Sequence[str]) -> str:
+    """Return server URLs as they may be shown: hosts and ports, no credentials."""
+    return "nats://" + ",".join(s.split("://")[-1].split("@")[-1] for s in servers)
+
+
+def _said(exc: BaseException) -> str:
+    """Return an error of the NATS client in one line."""
+    return str(exc).strip() or type(exc).__name__
 
 
 async def _connect_once(servers: Sequence[str], timeout_s: float) -> Any:
     """Connect to one of ``servers`` for a short read, trying each twice at most (the
-    client's default retries for minutes); raise EngineError when none answers."""
+    client's default retries for minutes); raise EngineError saying why when none will
+    (refused, a certificate not trusted, a wrong password)."""
+    seen: list[BaseException] = []
+
+    async def keep(exc: Exception) -> None:  # instead of the client's traceback
+        seen.append(exc)
+
     try:
         return await asyncio.wait_for(nats.connect(
             servers=list(servers), connect_timeout=timeout_s, max_reconnect_attempts=1,
-            reconnect_time_wait=0.2, allow_reconnect=False, error_cb=_quiet,
+            reconnect_time_wait=0.2, allow_reconnect=False, error_cb=keep,
         ), 2 * timeout_s + 1.0)  # fmt: skip
     except NATS_ERRORS as exc:
-        shown = ",".join(s.split("://")[-1].split("@")[-1] for s in servers)
-        raise EngineError(f"cannot reach the NATS server at {shown}: "
-                          f"{exc or type(exc).__name__}") from exc  # fmt: skip
+        why = _said(seen[-1]) if seen else _said(exc)
+        where = shown_servers(servers)
+        raise EngineError(f"cannot reach the NATS server at {where}: {why}") from exc
 
 
 async def read_estimates(servers: Sequence[str], layout: EngineLayout | None = None,

@@ -33,10 +33,12 @@ class NatsCluster:
     """``nodes`` nats-server processes on 127.0.0.1 with JetStream, MQTT and, when
     there are several, cluster routes between them."""
 
-    def __init__(self, workdir: Path, nodes: int = 3, layout: EngineLayout | None = None) -> None:
+    def __init__(self, workdir: Path, nodes: int = 3, layout: EngineLayout | None = None,
+                 extra: str = "") -> None:  # fmt: skip
         self.workdir = Path(workdir)
         self.nodes = nodes
         self.layout = layout or EngineLayout()
+        self.extra = extra  # more configuration for every node (TLS, authorization)
         self.ports = [free_port() for _ in range(nodes)]
         self.mqtt_ports = [free_port() for _ in range(nodes)]
         self.cluster_ports = [free_port() for _ in range(nodes)]
@@ -60,6 +62,7 @@ class NatsCluster:
             + (f", stream_replicas: {min(self.nodes, 3)}" if self.nodes > 1 else "")
             + " }",
             self.layout.server_config(),
+            self.extra,
         ]
         if self.nodes > 1:
             routes = ", ".join(
@@ -139,3 +142,25 @@ class NatsCluster:
         tb: TracebackType | None,
     ) -> None:
         self.stop()
+
+
+def make_certificates(folder: Path) -> tuple[Path, Path, Path]:
+    """Make a certificate authority of our own and a server certificate it signed for
+    127.0.0.1 (the ``openssl`` command, Debian's); return (CA, certificate, key) files."""
+    folder.mkdir(parents=True, exist_ok=True)
+    ca_key, ca, key, request, cert = (folder / n for n in (
+        "ca.key", "ca.pem", "server.key", "server.csr", "server.pem"))  # fmt: skip
+    extensions = folder / "server.ext"
+    extensions.write_text("subjectAltName = IP:127.0.0.1\n", encoding="utf-8")
+    steps = [
+        ["req", "-x509", "-newkey", "rsa:2048", "-nodes", "-keyout", ca_key, "-out", ca,
+         "-days", "2", "-subj", "/CN=ebullio test authority"],
+        ["req", "-newkey", "rsa:2048", "-nodes", "-keyout", key, "-out", request,
+         "-subj", "/CN=127.0.0.1"],
+        ["x509", "-req", "-in", request, "-CA", ca, "-CAkey", ca_key, "-CAcreateserial",
+         "-out", cert, "-days", "2", "-extfile", extensions],
+    ]  # fmt: skip
+    for step in steps:
+        subprocess.run(["openssl", *map(str, step)], check=True, capture_output=True,
+                       timeout=60)  # fmt: skip
+    return ca, cert, key
