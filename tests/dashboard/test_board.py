@@ -13,7 +13,6 @@ from pathlib import Path
 
 import plotly.graph_objects as go
 import pytest
-from werkzeug.serving import make_server
 
 from dashboard.app import create_app
 from dashboard.data import chart_data, envelope, load_snapshot
@@ -23,6 +22,7 @@ from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.rig.config import RigConfig, VesselSpec
 from monitor.rig.service import Service
 from tests.monitor.test_service import ListDriver, run_until
+from tests.support.browser import render_board
 from tests.support.tamper import change_one_reading
 
 
@@ -183,25 +183,7 @@ def test_fleet_puts_the_vessels_that_need_attention_first() -> None:
 
 
 def test_the_board_renders_in_headless_chromium(live_log) -> None:
-    browser = shutil.which("chromium")
-    assert browser, "chromium is not installed (scripts/test-all installs it)"
-    app = create_app(str(live_log), poll_ms=60_000)
-    server = make_server("127.0.0.1", 0, app.server, threaded=True)
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
-    url = f"http://127.0.0.1:{server.server_port}/"
-    try:
-        common = [browser, "--headless=new", "--no-sandbox", "--disable-gpu",
-                  "--virtual-time-budget=10000", "--window-size=1280,800"]  # fmt: skip
-        dom = subprocess.run([*common, "--dump-dom", url], capture_output=True, text=True,
-                             timeout=90, check=True).stdout  # fmt: skip
-        artifacts = Path(__file__).resolve().parents[2] / "out" / "test-artifacts"
-        artifacts.mkdir(parents=True, exist_ok=True)
-        subprocess.run([*common, f"--screenshot={artifacts / 'board.png'}", url],
-                       capture_output=True, timeout=90, check=True)  # fmt: skip
-    finally:
-        server.shutdown()
-        thread.join(timeout=10)
+    dom = render_board(create_app(str(live_log), poll_ms=60_000), "board.png")
     assert dom.count('class="main-svg"') >= 2  # both charts drawn
     assert "kettle-a" in dom
     assert "kettle-b" in dom
@@ -450,7 +432,6 @@ def test_a_long_replay_keeps_every_nth_estimate_and_the_last(live_log) -> None:
 
 
 def test_jobs_answer_at_once_with_progress_then_the_answer_or_the_failure() -> None:
-    import threading
 
     from dashboard.jobs import Jobs
 
@@ -559,7 +540,6 @@ def test_a_csv_logs_history_reuses_the_boards_replay_and_matches_a_fresh_one(tmp
 
 
 def test_jobs_once_closed_take_no_more_work_and_do_not_hold_the_process() -> None:
-    import threading
 
     from dashboard.jobs import Jobs
 

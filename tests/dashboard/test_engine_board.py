@@ -10,15 +10,9 @@ from __future__ import annotations
 
 import asyncio
 import json
-import shutil
-import subprocess
-import threading
-from pathlib import Path
 
-import nats
 import plotly.graph_objects as go
 import pytest
-from werkzeug.serving import make_server
 
 from dashboard.app import ENGINE_NOTE, create_engine_app
 from dashboard.cli import main as board_main
@@ -26,9 +20,9 @@ from dashboard.data import LATEST_KEYS, EngineWatch
 from dashboard.views.fleet import fleet_rows, render_fleet
 from dashboard.views.vessel import chart_update
 from monitor.engine.partition import EngineLayout
-from monitor.engine.worker import Worker, WorkerSettings, read_estimates
 from monitor.rig.config import load_config
-from tests.support.failover import wait_for
+from tests.support.browser import render_board
+from tests.support.engine import take_with_one_worker
 from tests.support.fleet import fleet_config, two_kettle_runs
 from tests.support.nats import NatsCluster
 
@@ -129,8 +123,6 @@ def test_the_board_shows_the_engines_fleet_from_its_estimates_bucket(tmp_path) -
     """A worker takes three kettles' readings into the bucket; the board over the engine
     shows every vessel with the bucket's newest figures, its charts, and renders in
     headless Chromium with the caution and what it cannot show."""
-    browser = shutil.which("chromium")
-    assert browser, "chromium is not installed (scripts/test-all installs it)"
     layout = EngineLayout(partitions=2)
     vessels = ["kettle-a", "kettle-b", "kettle-c"]
     payloads = {v: two_kettle_runs(v, i) for i, v in enumerate(vessels)}
@@ -138,14 +130,15 @@ def test_the_board_shows_the_engines_fleet_from_its_estimates_bucket(tmp_path) -
         config = tmp_path / "fleet.toml"
         config.write_text(fleet_config(vessels, server.mqtt_ports[0]))
         specs = {v.id: v for v in load_config(config).vessels}
-        bucket = asyncio.run(_fill(server.urls, layout, specs, payloads))
+        bucket = asyncio.run(take_with_one_worker(server.urls, layout, specs, payloads,
+                                                  runs=len(vessels)))  # fmt: skip
         watch = EngineWatch(server.urls, every_s=0.5)
         app = create_engine_app(server.urls, poll_ms=500, watch=watch)
         try:
             snap = watch.snapshot()
             chart = watch.chart_data("kettle-b")
             history = watch.history("kettle-c")
-            dom = _render(browser, app)
+            dom = render_board(app, "board-engine.png")
         finally:
             watch.close()
     assert snap["vessels"] == vessels
@@ -174,60 +167,3 @@ def test_the_board_shows_the_engines_fleet_from_its_estimates_bucket(tmp_path) -
     assert "Maintenance" in dom
     assert "run 1 (20" in dom  # a run listed with its start, without a report link
     assert "/report?" not in dom
-
-
-async def _fill(urls, layout, specs, payloads) -> dict:
-    """Publish the readings, let one worker take them all; return the bucket's entries."""
-    nc = await nats.connect(urls[0])
-    js = nc.jetstream(timeout=5.0)
-    worker = Worker(urls, specs, layout, "w0", WorkerSettings(checkpoint_every_s=0.5))
-    task = asyncio.create_task(worker.run())
-    try:
-
-        async def ready():
-            try:
-                await js.stream_info(layout.stream)
-            except nats.js.errors.NotFoundError:
-                return False
-            return True
-
-        await wait_for(ready, 20.0)
-        for k in range(max(len(p) for p in payloads.values())):
-            for vessel, p in payloads.items():
-                await nc.publish(f"ebullio.{vessel}.reading", p[k])
-        await nc.flush()
-
-        async def taken():
-            got = await read_estimates(urls, layout, list(payloads))
-            done = len(got) == len(payloads) and all(
-                e["messages"] == len(payloads[v]) for v, e in got.items()
-            )
-            return got if done and worker.stats.runs_sent == len(payloads) else None
-
-        got, _ = await wait_for(taken, 30.0)
-        assert got, "the worker did not take the readings in 30 s"
-        return got
-    finally:
-        worker.stop()
-        await asyncio.wait_for(task, 30.0)
-        await nc.close()
-
-
-def _render(browser: str, app) -> str:
-    server = make_server("127.0.0.1", 0, app.server, threaded=True)
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
-    url = f"http://127.0.0.1:{server.server_port}/"
-    try:
-        common = [browser, "--headless=new", "--no-sandbox", "--disable-gpu",
-                  "--virtual-time-budget=10000", "--window-size=1280,800"]  # fmt: skip
-        dom = subprocess.run([*common, "--dump-dom", url], capture_output=True, text=True,
-                             timeout=90, check=True).stdout  # fmt: skip
-        artifacts = Path(__file__).resolve().parents[2] / "out" / "test-artifacts"
-        artifacts.mkdir(parents=True, exist_ok=True)
-        subprocess.run([*common, f"--screenshot={artifacts / 'board-engine.png'}", url],
-                       capture_output=True, timeout=90, check=True)  # fmt: skip
-    finally:
-        server.shutdown()
-        thread.join(timeout=10)
-    return dom

@@ -28,8 +28,14 @@ import pytest
 from monitor.engine.partition import EngineLayout
 from monitor.engine.worker import EngineError, Worker, WorkerSettings, read_estimates
 from monitor.rig.config import load_config
-from tests.support.engine import estimates, read_stream, reference_figures
-from tests.support.failover import BAD_INPUT, LAYOUT, VESSELS, run_failover, wait_for
+from tests.support.engine import (
+    estimates,
+    read_stream,
+    reference_figures,
+    stream_exists,
+    wait_for,
+)
+from tests.support.failover import BAD_INPUT, LAYOUT, VESSELS, run_failover
 from tests.support.fleet import fleet_config, kettle_readings, two_kettle_runs
 from tests.support.nats import NatsCluster
 
@@ -100,7 +106,7 @@ async def _hand_on(urls, layout, specs, payloads) -> dict[str, object]:
     try:
         first = Worker(urls, specs, layout, "first", settings)
         task = asyncio.create_task(first.run())
-        await wait_for(lambda: _stream_exists(js, layout), 20.0)  # the worker sets it up
+        await wait_for(lambda: stream_exists(js, layout), 20.0)  # the worker sets it up
         await publish(0, 200)
         ok, _ = await wait_for(lambda: taken(200), 30.0)
         first.stop()
@@ -125,14 +131,6 @@ async def _hand_on(urls, layout, specs, payloads) -> dict[str, object]:
     finally:
         await nc.close()
     return out
-
-
-async def _stream_exists(js, layout) -> bool:
-    try:
-        await js.stream_info(layout.stream)
-    except nats.js.errors.NotFoundError:
-        return False
-    return True
 
 
 def test_each_ended_run_reaches_the_runs_stream_once_across_a_crash(tmp_path):
@@ -174,7 +172,7 @@ async def _crash_and_redo(urls, layout, specs, payloads) -> dict[str, object]:
         # no checkpoint but at a hand-back, which a crash never makes
         first = Worker(urls, specs, layout, "first", WorkerSettings(checkpoint_every_s=1e9))
         task = asyncio.create_task(first.run())
-        await wait_for(lambda: _stream_exists(js, layout), 20.0)
+        await wait_for(lambda: stream_exists(js, layout), 20.0)
         for k in range(max(len(p) for p in payloads.values())):
             for vessel, p in payloads.items():
                 if k < len(p):

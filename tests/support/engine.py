@@ -13,6 +13,7 @@ import os
 import signal
 import subprocess
 import sys
+import time
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -21,6 +22,7 @@ import nats
 from nats.js.api import AckPolicy, ConsumerConfig, DeliverPolicy
 
 from monitor.engine.partition import EngineLayout, Message, VesselStream, replay_messages
+from monitor.engine.worker import Worker, WorkerSettings, read_estimates
 from monitor.rig.config import VesselSpec
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -131,3 +133,58 @@ def reference_figures(layout: EngineLayout, vessels: dict[str, VesselSpec],
     """Return each vessel after one uninterrupted process took every message."""
     streams, _ = replay_messages(layout, vessels, messages)
     return streams
+
+
+async def wait_for(condition, limit_s: float, step_s: float = 0.2):
+    """Await ``condition()`` until it returns something true; return (it, seconds taken)."""
+    begun = time.monotonic()
+    while True:
+        result = await condition()
+        if result:
+            return result, time.monotonic() - begun
+        if time.monotonic() - begun > limit_s:
+            return result, time.monotonic() - begun
+        await asyncio.sleep(step_s)
+
+
+async def stream_exists(js: Any, layout: EngineLayout) -> bool:
+    """Return whether the readings stream is there (a worker sets it up)."""
+    try:
+        await js.stream_info(layout.stream)
+    except nats.js.errors.NotFoundError:
+        return False
+    return True
+
+
+async def take_with_one_worker(servers: Sequence[str], layout: EngineLayout,
+                               specs: dict[str, VesselSpec], payloads: dict[str, list[bytes]],
+                               runs: int = 0) -> dict[str, Any]:  # fmt: skip
+    """Start one worker in this process, publish every vessel's readings over the same
+    URLs (TLS and passwords as they say), wait until the estimates bucket shows every
+    reading taken and ``runs`` ended runs sent, stop it; return the bucket's entries."""
+    nc = await nats.connect(servers=list(servers))
+    js = nc.jetstream(timeout=5.0)
+    worker = Worker(servers, specs, layout, "w0", WorkerSettings(checkpoint_every_s=0.5))
+    task = asyncio.create_task(worker.run())
+    try:
+        await wait_for(lambda: stream_exists(js, layout), 20.0)
+        for k in range(max(len(p) for p in payloads.values())):
+            for vessel, p in payloads.items():
+                if k < len(p):
+                    await nc.publish(f"{layout.prefix}.{vessel}.reading", p[k])
+        await nc.flush()
+
+        async def taken():
+            got = await read_estimates(servers, layout, list(payloads))
+            done = len(got) == len(payloads) and all(
+                e["messages"] == len(payloads[v]) for v, e in got.items()
+            )
+            return got if done and worker.stats.runs_sent >= runs else None
+
+        got, _ = await wait_for(taken, 30.0)
+        assert got, "the worker did not take the readings in 30 s"
+        return got
+    finally:
+        worker.stop()
+        await asyncio.wait_for(task, 30.0)
+        await nc.close()

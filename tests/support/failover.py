@@ -28,7 +28,14 @@ import nats
 from monitor.engine.partition import EngineLayout
 from monitor.engine.worker import read_estimates
 from monitor.rig.config import load_config
-from tests.support.engine import WorkerProcess, estimates, leases, read_stream, reference_figures
+from tests.support.engine import (
+    WorkerProcess,
+    estimates,
+    leases,
+    read_stream,
+    reference_figures,
+    wait_for,
+)
 from tests.support.fleet import fleet_config, kettle_readings
 from tests.support.nats import NatsCluster
 
@@ -75,18 +82,6 @@ async def publish_readings(port: int, payloads: dict[str, list[bytes]], report: 
             retries += 1
             await asyncio.sleep(0.5)
     report["publisher_reconnects"] = retries
-
-
-async def wait_for(condition, limit_s: float, step_s: float = 0.2):
-    """Await ``condition()`` until it returns something true; return (it, seconds taken)."""
-    begun = time.monotonic()
-    while True:
-        result = await condition()
-        if result:
-            return result, time.monotonic() - begun
-        if time.monotonic() - begun > limit_s:
-            return result, time.monotonic() - begun
-        await asyncio.sleep(step_s)
 
 
 def run_failover(tmp_path: Path) -> tuple[dict[str, object], list, dict[str, str]]:
