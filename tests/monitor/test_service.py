@@ -81,7 +81,11 @@ def config_for(vessel: str, meta: dict, queue_samples: int = 100_000) -> RigConf
     )
 
 
-async def run_until(service: Service, done, timeout_s: float = 20.0):
+async def run_until(service: Service, done, timeout_s: float = 90.0):
+    """Run the service until ``done()``, then stop it; return its stats. ``timeout_s`` is
+    a bound on liveness, not a timing: on a fresh clone the first service of the session
+    compiles the numba kernels (15 s, more on a busy machine; a clean-clone CI run on
+    2026-12-05 went past the 20 s this was)."""
     task = asyncio.create_task(service.run())
     async with asyncio.timeout(timeout_s):
         while not done():
