@@ -212,7 +212,7 @@ def create_engine_app(servers: list[str], poll_ms: int = 2000,
 
     fleet.register(app)
     vessel.register(app, watch.chart_data)
-    maintenance.register(app, watch.history, reports=False)
+    maintenance.register(app, watch.history, reports=False, follow=True)
     return app
 
 

@@ -14,7 +14,7 @@ from collections.abc import Callable
 from urllib.parse import urlencode
 
 import plotly.graph_objects as go
-from dash import Dash, Input, Output, dcc, html
+from dash import Dash, Input, Output, State, dcc, html
 
 from dashboard import ids
 from dashboard.theme import verdict_mark
@@ -70,9 +70,23 @@ def layout(vessels: list[str]) -> html.Section:
     ], className="view")  # fmt: skip
 
 
-def register(app: Dash, load_history: Callable[[str | None], dict], reports: bool = True) -> None:
+def picker(snapshot: dict | None, chosen: str | None) -> tuple[list[dict[str, str]], str | None]:
+    """Return the vessel picker's options from a snapshot, and its value: the one
+    chosen while it is still there, else the first (a fleet met after the page opened,
+    as over the engine)."""
+    vessels = list((snapshot or {}).get("vessels") or [])
+    value = chosen if chosen in vessels else (vessels[0] if vessels else None)
+    return [{"label": v, "value": v} for v in vessels], value
+
+
+def register(app: Dash, load_history: Callable[[str | None], dict], reports: bool = True,
+             follow: bool = False) -> None:  # fmt: skip
     """Attach the view's callback; ``load_history(vessel)`` reads the log (the app's I/O);
-    ``reports`` False: no audit report links (:func:`report_links`)."""
+    ``reports`` False: no audit report links (:func:`report_links`); ``follow``: the
+    picker's vessels follow the store's (:func:`picker`), for a fleet that changes."""
+    if follow:
+        app.callback(Output(ids.MAINT_PICK, "options"), Output(ids.MAINT_PICK, "value"),
+                     Input(ids.STORE, "data"), State(ids.MAINT_PICK, "value"))(picker)  # fmt: skip
 
     @app.callback(Output(ids.MAINT_CHART, "figure"), Output(ids.MAINT_REPORTS, "children"),
                   Input(ids.MAINT_PICK, "value"))  # fmt: skip

@@ -18,6 +18,7 @@ from dashboard.app import ENGINE_NOTE, create_engine_app
 from dashboard.cli import main as board_main
 from dashboard.data import LATEST_KEYS, EngineWatch
 from dashboard.views.fleet import fleet_rows, render_fleet
+from dashboard.views.maintenance import picker
 from dashboard.views.vessel import chart_update
 from monitor.engine.partition import EngineLayout
 from monitor.rig.config import load_config
@@ -89,6 +90,13 @@ def test_the_watch_keeps_each_vessels_new_estimates_and_says_when_the_bucket_fai
     history = watch.history("kettle-a")
     assert [r["run"] for r in history["runs"]] == ["1", "2"]
     assert history["vessels"] == ["kettle-a"]
+    # the maintenance picker follows a fleet met after the page opened
+    assert picker({"vessels": []}, None) == ([], None)
+    options, value = picker(snap, None)
+    assert [o["value"] for o in options] == ["kettle-a", "kettle-b"]
+    assert value == "kettle-a"
+    assert picker(snap, "kettle-b")[1] == "kettle-b"
+    assert picker(snap, "gone")[1] == "kettle-a"
     # kettle-a: 100 then 104 (its repeated 100 kept once); a 3 s window drops the 100
     whole = watch.chart_data("kettle-a")
     assert whole["estimates"]["t"] == [104.0]
