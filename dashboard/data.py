@@ -54,10 +54,14 @@ def _columns(rows: Sequence[Mapping[str, object]], phase: bool = False) -> dict[
     return {k: [r.get(k) for r in rows] for k in CHART_KEYS if phase or k != "phase"}
 
 
-def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
+def run_state(
+    runs: Sequence[Mapping[str, object]], into: dict[str, dict[str, object]] | None = None
+) -> dict[str, dict[str, object]]:
     """Return, per vessel, its last recorded run and the state of its drift checks.
 
-    ``runs`` are the log's run rows in order (summaries parsed). Each vessel gets its
+    ``runs`` are the log's run rows in order (summaries parsed); ``into`` is a state
+    made of the runs before them, which takes these too (the board over the engine
+    keeps one as the runs come). Each vessel gets its
     last run's label and times, that run's own flags, its drift flags, its status (the
     worst level of the two, as ``ebullio fleet`` gives it) and verdict
     (:func:`monitor.runs.drift.verdict_of`: trusted, or doubtful and not judged, with the
@@ -66,7 +70,7 @@ def run_state(runs: list[dict[str, object]]) -> dict[str, dict[str, object]]:
     """
     from monitor.runs.drift import verdict_of, worst_level
 
-    out: dict[str, dict[str, object]] = {}
+    out: dict[str, dict[str, object]] = {} if into is None else into
     for row in runs:
         summary = row.get("summary") if isinstance(row.get("summary"), dict) else {}
         assert isinstance(summary, dict)
@@ -482,6 +486,7 @@ class EngineWatch:
         self._read_runs = read_runs or self._read_runs_stream
         self._kept: dict[str, list[dict[str, object]]] = {}
         self._runs: list[dict[str, object]] = []  # every run summary read, in order
+        self._run_state: dict[str, dict[str, object]] = {}  # run_state of them, kept up
         self._runs_seq = 0  # the runs stream's sequence read up to
         self._problem: str | None = None
         self._reads = 0
@@ -540,11 +545,17 @@ class EngineWatch:
             del kept[:first]
 
     def take_runs(self, runs: RunEntries) -> None:
-        """Keep the run summaries read after the last (call with the lock held)."""
+        """Keep the run summaries read after the last, and the fleet's run state with
+        them (call with the lock held)."""
+        from monitor.records.schema import run_record
+
+        new = []
         for seq, summary in runs:
             if seq > self._runs_seq and isinstance(summary, dict) and summary.get("vessel"):
-                self._runs.append(summary)
+                new.append(summary)
                 self._runs_seq = seq
+        self._runs += new
+        run_state([run_record(summary) for summary in new], self._run_state)
 
     def history(self, vessel: str | None) -> dict[str, object]:
         """Return the maintenance view's history of a vessel (:func:`run_history`'s
@@ -571,19 +582,17 @@ class EngineWatch:
 
     def snapshot(self, vessel: str | None = None) -> dict[str, object]:
         """Return what the fleet and the vessel figures show, as :func:`load_snapshot`
-        does for a log (``kind`` "engine", no run history), and ``problem``: why the
+        does for a log (``kind`` "engine", ``runs`` from the runs stream), and ``problem``: why the
         last read failed, or None."""
-        from monitor.records.schema import run_record
-
         with self._lock:
             latest = {v: _latest(kept[-1]) for v, kept in self._kept.items() if kept}
             problem = self._problem
-            rows = [run_record(summary) for summary in self._runs]
-        names = sorted({*latest, *(str(r["vessel"]) for r in rows)})
+            runs = {v: dict(state) for v, state in self._run_state.items()}
+        names = sorted({*latest, *runs})
         last = [float(e["t"]) for e in latest.values() if e is not None]  # type: ignore[arg-type]
         chosen = vessel if vessel in names else (names[0] if names else None)
         return {"log": self.source, "kind": "engine", "last_t": max(last, default=None),
-                "vessels": names, "latest": latest, "runs": run_state(rows),
+                "vessels": names, "latest": latest, "runs": runs,
                 "chosen": chosen, "problem": problem}  # fmt: skip
 
     def chart_data(self, vessel: str | None, after: dict | None = None) -> dict[str, object]:
@@ -600,9 +609,11 @@ class EngineWatch:
         newest = rows[-1]
         if after is not None:
             rows = [r for r in rows if float(r["t"]) > float(after["est_t"])]  # type: ignore[arg-type]
-        elif len(rows) > MAX_POINTS:  # every nth and the newest, as the replay view thins
-            step = -(-len(rows) // MAX_POINTS)
-            rows = [*rows[: len(rows) - 1 : step], rows[-1]]
+        else:  # every n-th and the newest, as the replay view thins
+            thinned = Thinned(len(rows))
+            for row in rows:
+                thinned.add(row)
+            rows = thinned.items()
         ts = [r["t"] for r in rows]
         series = {}
         for channel, key in (("water", "water_c"), ("element", "element_c"),

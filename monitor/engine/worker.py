@@ -658,7 +658,7 @@ class Worker:
 
         async def put(vessel: str, seq: int, value: bytes) -> None:
             part.shown[vessel] = await _forward(
-                self._estimates, vessel, seq, value, _estimate_seq, part.shown.get(vessel)
+                self._estimates, vessel, seq, value, _json_seq, part.shown.get(vessel)
             )
 
         if puts:
@@ -698,7 +698,7 @@ class Worker:
         async def write() -> None:
             await asyncio.gather(*(_forward(self._checkpoints, key, seq, data, _state_seq)
                                    for key, seq, data in states))  # fmt: skip
-            await _forward(self._checkpoints, f"i.{part.number}", covered, index, _index_seq)
+            await _forward(self._checkpoints, f"i.{part.number}", covered, index, _json_seq)
 
         if await self._until_done("checkpoint", write, lease):
             part.dirty.clear()
@@ -754,13 +754,9 @@ def _state_seq(value: bytes) -> int:
     return int(value.partition(b"\n")[0])
 
 
-def _index_seq(value: bytes) -> int:
-    """A partition's checkpoint index: JSON with ``seq``."""
-    return int(json.loads(value)["seq"])
-
-
-def _estimate_seq(value: bytes) -> int:
-    """An entry of the estimates bucket: JSON with ``seq``."""
+def _json_seq(value: bytes) -> int:
+    """A partition's checkpoint index, or an entry of the estimates bucket: JSON with
+    ``seq``."""
     return int(json.loads(value)["seq"])
 
 

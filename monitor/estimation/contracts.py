@@ -84,7 +84,6 @@ class Flag:
 
 
 @quick_init
-@quick_init
 @dataclass(frozen=True, slots=True)
 class Estimated:
     """A value with its standard deviation, in the unit its name carries."""

@@ -286,8 +286,7 @@ def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> 
     elif vessel not in names:
         raise LogFormatError(f"{log_path}: no vessel {vessel!r}; it holds {', '.join(names)}")
     mine = list(found[vessel].values())  # one per session of a recorder log; a CSV's one
-    recorder = is_recorder_log(path)
-    if recorder:
+    if is_recorder_log(path):
         for log in mine:
             settle_channels(log)
     chosen = mine[0]
@@ -297,11 +296,12 @@ def export_csv(log_path: str | Path, out: TextIO, vessel: str | None = None) -> 
     if chosen.start_epoch_s is not None:
         metadata["start_utc"] = iso_utc(chosen.start_epoch_s)
     metadata["exported_from"] = Path(path).name
-    rows = (row for _, _, row in vessel_stream(path, vessel)[1])
+    items = vessel_stream(path, vessel)[1]
     if len(mine) == 1:
+        rows = (row for _, _, row in items)
         return write_csv(out, nan_as_blank(rows), metadata, chosen.channels)
     channels = [c for c in CHANNEL_COLUMNS if any(c in log.channels for log in mine)]
-    labelled = _labelled(vessel_stream(path, vessel)[1], vessel, chosen.start_epoch_s or 0.0)
+    labelled = _labelled(items, vessel, chosen.start_epoch_s or 0.0)
     return write_csv(out, nan_as_blank(labelled), metadata, channels, with_vessel=True)
 
 

@@ -30,6 +30,7 @@ from monitor.engine.worker import EngineError, Worker, WorkerSettings, read_esti
 from monitor.rig.config import load_config
 from tests.support.engine import (
     estimates,
+    publish_readings,
     read_stream,
     reference_figures,
     stream_exists,
@@ -90,12 +91,6 @@ async def _hand_on(urls, layout, specs, payloads) -> dict[str, object]:
     settings = WorkerSettings(checkpoint_every_s=0.5)
     out: dict[str, object] = {}
 
-    async def publish(first: int, last: int) -> None:
-        for k in range(first, last):
-            for vessel, p in payloads.items():
-                await nc.publish(f"ebullio.{vessel}.reading", p[k])
-        await nc.flush()
-
     async def taken(count: int):
         try:
             got = await estimates(js, layout, list(payloads))
@@ -107,13 +102,13 @@ async def _hand_on(urls, layout, specs, payloads) -> dict[str, object]:
         first = Worker(urls, specs, layout, "first", settings)
         task = asyncio.create_task(first.run())
         await wait_for(lambda: stream_exists(js, layout), 20.0)  # the worker sets it up
-        await publish(0, 200)
+        await publish_readings(nc, layout, payloads, 0, 200)
         ok, _ = await wait_for(lambda: taken(200), 30.0)
         first.stop()
         await asyncio.wait_for(task, 30.0)
         assert ok, "the first worker did not take the readings in 30 s"
         out["first"] = first.stats.as_dict()
-        await publish(200, 301)  # while no worker runs
+        await publish_readings(nc, layout, payloads, 200, 301)  # while no worker runs
         second = Worker(urls, specs, layout, "second", settings)
         task = asyncio.create_task(second.run())
         ok, _ = await wait_for(lambda: taken(301), 30.0)
@@ -173,11 +168,7 @@ async def _crash_and_redo(urls, layout, specs, payloads) -> dict[str, object]:
         first = Worker(urls, specs, layout, "first", WorkerSettings(checkpoint_every_s=1e9))
         task = asyncio.create_task(first.run())
         await wait_for(lambda: stream_exists(js, layout), 20.0)
-        for k in range(max(len(p) for p in payloads.values())):
-            for vessel, p in payloads.items():
-                if k < len(p):
-                    await nc.publish(f"ebullio.{vessel}.reading", p[k])
-        await nc.flush()
+        await publish_readings(nc, layout, payloads)
 
         async def done(worker):
             return worker.stats.messages >= total and worker.stats.runs_sent >= 3

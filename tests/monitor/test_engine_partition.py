@@ -29,8 +29,8 @@ from monitor.engine.worker import (
     EngineError,
     Worker,
     WorkerSettings,
-    _estimate_seq,
     _forward,
+    _json_seq,
     _Lease,
 )
 from monitor.records.schema import flatten_estimate
@@ -408,19 +408,19 @@ def test_estimates_and_checkpoints_are_written_only_forwards():
     bucket = _Bucket()
 
     async def scenario():
-        new = await _forward(bucket, "kettle-1", 10, _entry(10, "new"), _estimate_seq)
-        stale = await _forward(bucket, "kettle-1", 8, _entry(8, "stale"), _estimate_seq)
+        new = await _forward(bucket, "kettle-1", 10, _entry(10, "new"), _json_seq)
+        stale = await _forward(bucket, "kettle-1", 8, _entry(8, "stale"), _json_seq)
         assert new == stale == (10, 1)  # the older one read what is there and stopped
         # a writer that last saw revision 1 and is behind: its update fails, it reads
-        later = await _forward(bucket, "kettle-1", 12, _entry(12, "new"), _estimate_seq, new)
-        behind = await _forward(bucket, "kettle-1", 11, _entry(11, "stale"), _estimate_seq, new)
+        later = await _forward(bucket, "kettle-1", 12, _entry(12, "new"), _json_seq, new)
+        behind = await _forward(bucket, "kettle-1", 11, _entry(11, "stale"), _json_seq, new)
         assert later == behind == (12, 2)
         # an ack lost on the way: the retry finds its own value there and stops
-        again = await _forward(bucket, "kettle-1", 12, _entry(12, "new"), _estimate_seq, new)
+        again = await _forward(bucket, "kettle-1", 12, _entry(12, "new"), _json_seq, new)
         assert again == (12, 2)
         # a value that cannot be read is overwritten
         bucket.entries["kettle-2"] = (b"not json", 7)
-        assert await _forward(bucket, "kettle-2", 3, _entry(3, "new"), _estimate_seq) == (3, 3)
+        assert await _forward(bucket, "kettle-2", 3, _entry(3, "new"), _json_seq) == (3, 3)
 
     asyncio.run(scenario())
     assert json.loads(bucket.entries["kettle-1"][0]) == {"seq": 12, "worker": "new"}

@@ -156,6 +156,18 @@ async def stream_exists(js: Any, layout: EngineLayout) -> bool:
     return True
 
 
+async def publish_readings(nc: Any, layout: EngineLayout, payloads: dict[str, list[bytes]],
+                           first: int = 0, last: int | None = None) -> None:  # fmt: skip
+    """Publish every vessel's ``reading`` payloads from index ``first`` to ``last`` over
+    NATS, instant by instant (a vessel with fewer has none past its end), then flush."""
+    last = max(len(p) for p in payloads.values()) if last is None else last
+    for k in range(first, last):
+        for vessel, p in payloads.items():
+            if k < len(p):
+                await nc.publish(f"{layout.prefix}.{vessel}.reading", p[k])
+    await nc.flush()
+
+
 async def take_with_one_worker(servers: Sequence[str], layout: EngineLayout,
                                specs: dict[str, VesselSpec], payloads: dict[str, list[bytes]],
                                runs: int = 0) -> dict[str, Any]:  # fmt: skip
@@ -168,11 +180,7 @@ async def take_with_one_worker(servers: Sequence[str], layout: EngineLayout,
     task = asyncio.create_task(worker.run())
     try:
         await wait_for(lambda: stream_exists(js, layout), 20.0)
-        for k in range(max(len(p) for p in payloads.values())):
-            for vessel, p in payloads.items():
-                if k < len(p):
-                    await nc.publish(f"{layout.prefix}.{vessel}.reading", p[k])
-        await nc.flush()
+        await publish_readings(nc, layout, payloads)
 
         async def taken():
             got = await read_estimates(servers, layout, list(payloads))
