@@ -142,7 +142,10 @@ def test_reading_limits_know_what_no_instrument_could_give() -> None:
     assert ReadingLimits.from_metadata({}).max_power_w == 1.0e6
     # the edges, as the rule has them (a temperature at absolute zero is none; the top
     # of the range and the bottom of the noise band are readings), and the ranges the
-    # estimator checks with are that rule's
+    # estimator checks with are that rule's. Absolute zero, -273.15 °C: the kelvin's
+    # definition (common practice, no source); 1820 °C, the top of type B's range in the
+    # ITS-90 thermocouple tables (from memory, as drivers/sample.py says); the power
+    # limits are our own judgement (4x and 2 % of 2000 W)
     import math
 
     for channel, value, fine in [

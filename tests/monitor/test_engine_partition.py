@@ -442,6 +442,7 @@ def test_a_run_that_ends_is_kept_for_the_runs_stream_with_its_drift_flags(kettle
     assert summary["run"] == "1"
     assert summary["source"] == "live"
     assert isinstance(summary["drift"], list)
+    # the simulated kettle holds 1.2 kg (our own scenario, drivers/simworld)
     assert summary["water_mass_kg"]["value"] == pytest.approx(1.2, rel=0.05)
     again = checkpoint.loads(checkpoint.dumps(stream))
     assert json.dumps(again.unsent_runs) == json.dumps(stream.unsent_runs)
