@@ -174,7 +174,7 @@ class World:
             taus.append(lid.heat_capacity_j_per_k / (lid.to_water_w_per_k + lid.to_room_w_per_k))
         #: RK4 sub-step, s: well inside the stability limit of the stiffest node
         #: (sensor lags are stepped exactly, so they do not limit it).
-        self.substep_s = min(s.sample_interval_s, 0.25 * min(taus))
+        self.substep_s = min(s.sample_interval_s, s.substep_s or 0.25 * min(taus))
 
     @property
     def boiling_point_c(self) -> float:

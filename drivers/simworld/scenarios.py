@@ -172,6 +172,9 @@ class Scenario:
     sensors: dict[str, SensorSpec] = field(default_factory=_default_sensors)
     cold_junction_offset_k: float = 3.0  # terminal block above the room, for raw mV sensors
     lid: LidSpec | None = None  # a lid or second wall part with its own lag (None: none)
+    #: the RK4 sub-step, s (None: a quarter of the stiffest node's time constant with the
+    #: boiling film; a vessel kept well below the boil may take the plain film's)
+    substep_s: float | None = None
 
     def __post_init__(self) -> None:
         checks = {

@@ -102,6 +102,13 @@ VESSEL_NUMBERS = (
 )
 
 
+def toml_value(value: object) -> str:
+    """Return a string or a number written as a TOML value (a number as a float)."""
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    return repr(float(value))  # type: ignore[arg-type]
+
+
 @dataclass(frozen=True)
 class MqttSettings:
     """The broker: where, the topic prefix, credentials (from the environment), session."""

@@ -49,7 +49,7 @@ from drivers.sample import Sample
 from drivers.simworld import PacedClock, Scenario, SimulatedRig, scenario_metadata
 from monitor.records.interchange import iso_utc
 from monitor.records.recorder import last_sample_t
-from monitor.rig.config import VESSEL_NUMBERS, RigConfig, parse_config
+from monitor.rig.config import VESSEL_NUMBERS, RigConfig, parse_config, toml_value
 from monitor.rig.service import Service, Stats
 
 #: Channels the simulated logger prints; the rest of the rig's readings go to the meter.
@@ -94,12 +94,6 @@ def demo_scenario(scenario: Scenario) -> Scenario:
     return replace(scenario, sensors=sensors)
 
 
-def _toml_value(value: object) -> str:
-    if isinstance(value, str):
-        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    return repr(float(value))  # type: ignore[arg-type]
-
-
 def demo_config_text(
     scenario: Scenario, seed: int, serial_port: str, meter_url: str, poll_s: float
 ) -> str:
@@ -134,7 +128,7 @@ def demo_config_text(
         "[[vessels]]",
         f'id = "{scenario.vessel}"',
     ]
-    lines += [f"{key} = {_toml_value(meta[key])}" for key in numbers if key in meta]
+    lines += [f"{key} = {toml_value(meta[key])}" for key in numbers if key in meta]
     channels = [
         (serial_url, "water_mv", "water", "mV", "K"),
         (serial_url, "element_mv", "element", "mV", "K"),
@@ -151,7 +145,7 @@ def demo_config_text(
             lines += [f'thermocouple = "{tc}"', 'cold_junction = "cj_c"']
     lines += ["", "[vessels.metadata]"]
     own = {*numbers, "vessel", "pressure_kpa", "altitude_m"}
-    lines += [f"{k} = {_toml_value(v)}" for k, v in meta.items() if k not in own]
+    lines += [f"{k} = {toml_value(v)}" for k, v in meta.items() if k not in own]
     return "\n".join(lines) + "\n"
 
 

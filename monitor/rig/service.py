@@ -61,9 +61,9 @@ import queue
 import random
 import threading
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Protocol
 from urllib.parse import urlsplit, urlunsplit
 
 from drivers.channels import Acknowledge, Quarantined
@@ -205,6 +205,31 @@ async def supervise(
             await asyncio.sleep(wait_s)
 
 
+def row_adders(
+    rec: Recorder, redelivering: frozenset[str] = frozenset()
+) -> dict[str, Callable[[Any], object]]:
+    """Return how each kind of rows the service hands over (:meth:`RecorderThread.put`)
+    goes into ``rec``: the one rule, for the live recorder thread and for a history
+    written flat out (:mod:`monitor.rig.history`)."""
+    return {
+        # a reading a source may deliver again (MQTT, acknowledged after the commit)
+        # is recorded once; every other source's samples are all kept
+        "samples": lambda rows: rec.add_samples(rows, once_from=redelivering),
+        "quarantined": rec.add_quarantined,
+        "estimates": rec.add_estimates,
+        "flags": rec.add_flags,
+        "event": lambda e: rec.add_event(*e),
+        "runs": lambda runs: [rec.add_run(**r) for r in runs],
+    }
+
+
+class RowSink(Protocol):
+    """Where the service hands the rows it records: :class:`RecorderThread`, or a list
+    kept for a history written flat out."""
+
+    def put(self, kind: str, rows: Any) -> None: ...
+
+
 class RecorderThread:
     """The recorder in its own thread: rows go in through a queue, a block every interval."""
 
@@ -244,15 +269,8 @@ class RecorderThread:
     def _run(self) -> None:
         rec = self._recorder
         adders = {
-            # a reading a source may deliver again (MQTT, acknowledged after the commit)
-            # is recorded once; every other source's samples are all kept
-            "samples": lambda rows: rec.add_samples(rows, once_from=self.redelivering),
+            **row_adders(rec, self.redelivering),
             "acks": lambda acks: self._acks.extend(acks),  # self._acks is replaced on send
-            "quarantined": rec.add_quarantined,
-            "estimates": rec.add_estimates,
-            "flags": rec.add_flags,
-            "event": lambda e: rec.add_event(*e),
-            "runs": lambda runs: [rec.add_run(**r) for r in runs],
         }
         deadline = time.monotonic() + self._interval_s
         try:
@@ -351,14 +369,16 @@ class Service:
         clock: Callable[[], float] = time.time,
         extra_sources: Mapping[str, DriverFactory] | None = None,
         on_estimate: Callable[[dict[str, object]], None] | None = None,
+        fits_on_time: bool = False,
     ) -> None:
         self.config = config
         self.log_path = log_path
         self.clock = clock
         self.stats = Stats()
         self.fit_budget = FitBudget(FIT_CPU_SHARE)
+        budget = None if fits_on_time else self.fit_budget
         self.vessels = {
-            v.id: LiveVessel(v.id, v.metadata, v.has_element_sensor, fit_budget=self.fit_budget)
+            v.id: LiveVessel(v.id, v.metadata, v.has_element_sensor, fit_budget=budget)
             for v in config.vessels
         }
         #: what each vessel's readings may physically be (drivers.sample.ReadingLimits)
@@ -714,13 +734,7 @@ class Service:
                 while not self._queue.empty():
                     leftovers.append(self._queue.get_nowait())
                 self._take(leftovers)
-                for vessel in self.vessels.values():  # as a replay ends: nothing left waiting
-                    self._isolated(
-                        vessel, None, lambda v=vessel: self._steps(v, v.assembler.finish())
-                    )
-                self._flush_to_recorder()
-                self._tell_quarantine([], everything=True)
-                self._record_runs()
+                self._finish_vessels()
                 await self._flush_publish(publisher)
         finally:
             gc.unfreeze()
@@ -729,6 +743,31 @@ class Service:
             self._event(self.clock(), "stop", "service", repr(self.stats.as_dict()))
             await asyncio.to_thread(self._recorder.close)
         return self.stats
+
+    def _finish_vessels(self) -> None:
+        """Step what each vessel still holds and record the runs open at the stop."""
+        for vessel in self.vessels.values():  # as a replay ends: nothing left waiting
+            self._isolated(vessel, None, lambda v=vessel: self._steps(v, v.assembler.finish()))
+        self._flush_to_recorder()
+        self._tell_quarantine([], everything=True)
+        self._record_runs()
+
+    def process_flat_out(self, batches: Iterable[list[Sample]], sink: RowSink) -> None:
+        """Process recorded-to-be readings with no loop, no sources and no clock, and hand
+        every row the live service would record to ``sink`` (``put(kind, rows)``), runs
+        ended at the end as at a stop: a simulated history written at full speed
+        (:mod:`monitor.rig.history`) is what this service would have recorded live.
+
+        Call it on a fresh service, once. Fits are made when due only if the service was
+        built with ``fits_on_time`` (else the live budget may put some off).
+        """
+        self._recorder = sink  # type: ignore[assignment]
+        try:
+            for batch in batches:
+                self._take(batch)  # type: ignore[arg-type]
+            self._finish_vessels()
+        finally:
+            self._recorder = None
 
     def _record_runs(self) -> None:
         """Record the run each vessel is in as the service stops (ended runs are in already)."""
