@@ -120,9 +120,71 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
+#: The site demo's history session, said in its recorded configuration.
+SITE_HISTORY_NOTE = (
+    "ebullio demo: the simulated history of an invented site (a test rig and a building's\n"
+    "storage water heaters), written at full speed. No instrument or broker was read in\n"
+    "this session: every reading was simulated. The [mqtt] table is only the form."
+)
+
+
+async def _site_demo(args: argparse.Namespace) -> int:
+    """The full demo: the site's weeks of history, then the rig's scaled kettle live."""
+    from drivers.simworld.site import HISTORY_DAYS, demo_site
+    from monitor.rig.demo import run_demo
+    from monitor.rig.history import History, site_config_text, write_history
+
+    plans = tuple(demo_site())
+    out_path = Path(args.out)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    print(SAFETY_NOTE)
+    print(
+        f"demo: an invented site, simulated: {sum(p.kind == 'kettle' for p in plans)} kettles "
+        f"on a test rig and {sum(p.kind != 'kettle' for p in plans)} storage water heaters in a "
+        f"building. First {HISTORY_DAYS} days of their history are simulated at full speed "
+        f"into {out_path}, then a kettle heats live through the real drivers.",
+        flush=True,
+    )
+    on_started = getattr(args, "on_started", None)  # set by the board's command line
+    text = site_config_text(plans, "mqtt://127.0.0.1:1883", SITE_HISTORY_NOTE)
+    # the history ends where the live part's readings begin (they are stamped in the
+    # past too, ending as the demo does; demo_start_s)
+    live = next(p for p in plans if p.kind == "kettle" and p.fault is not None)
+    scenario = live.scenario(float(HISTORY_DAYS), 0.0, len(live.run_days))
+    history = History(plans, text, end_s=time.time(), days=HISTORY_DAYS)
+    figures = await asyncio.to_thread(
+        write_history, str(out_path), history, say=lambda line: print(line, flush=True),
+        on_open=on_started,
+    )  # fmt: skip
+    print(f"demo: the history is written: {figures['rows']} rows in {figures['seconds']} s",
+          flush=True)  # fmt: skip
+    print(f"demo: now {live.vessel} ({live.place}, its element scaling) heats live at "
+          f"{args.speed:g}x real time: a simulated thermocouple logger on a pseudo-terminal "
+          "and a simulated Modbus TCP meter on 127.0.0.1", flush=True)  # fmt: skip
+    print(
+        f"{'time s':>7} {'phase':>8} {'water °C':>8} {'power W':>7} "
+        f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>12}"
+    )
+    stats, _ = await run_demo(
+        scenario, live.seed, str(out_path), args.speed, args.every_s,
+        say=lambda line: print(line, flush=True), metadata=live.metadata(),
+    )  # fmt: skip
+    print(
+        f"demo: recorded {stats.samples} live samples and {stats.estimates} estimates to "
+        f"{out_path}; check it with: ebullio verify {out_path}; see the fleet with: "
+        f"ebullio fleet {out_path}"
+    )
+    after = getattr(args, "after_demo", None)
+    if after is not None:
+        await after()
+    return 0
+
+
 async def _demo(args: argparse.Namespace) -> int:
     from monitor.rig.demo import run_demo
 
+    if not args.quick:
+        return await _site_demo(args)
     scenario = _scenario_from(args)
     print(SAFETY_NOTE)
     print(
@@ -164,6 +226,20 @@ def _demo_log(args: argparse.Namespace) -> str:
     from monitor.records.recorder import last_sample_t
     from monitor.rig.demo import demo_start_s
 
+    if not args.quick:  # the site demo writes weeks of history: always a new log
+        if args.out is not None:
+            if Path(args.out).exists():
+                raise EbullioError(
+                    f"{args.out} exists: the site demo writes weeks of history into a new "
+                    "log; give another --out (or --quick to add a kettle run to it)"
+                )
+            return str(args.out)
+        base, n = Path(DEMO_LOG), 1
+        path = base
+        while path.exists():
+            n += 1
+            path = base.with_name(f"{base.stem}-{n}{base.suffix}")
+        return str(path)
     if args.out is not None:
         return str(args.out)
     base = Path(DEMO_LOG)
@@ -460,15 +536,25 @@ def build_parser(extend=None) -> argparse.ArgumentParser:
 
     demo = verbs.add_parser(
         "demo",
-        help="run the simulated rig live and record it",
-        description="The embedded default: a simulated kettle heated to the boil, read through "
+        help="run a simulated site with its history, and a kettle live, and record it",
+        description="The embedded default, an invented site, all simulated: two kettles on a "
+        "test rig and eight storage water heaters in a building, with weeks of past runs "
+        "(some vessels scaling, losing insulation, weakening or under-filled) written into a "
+        "new SQLite log at full speed, then the scaled kettle heated to the boil live through "
         "the real drivers (a thermocouple logger on a pseudo-terminal, a Modbus TCP power "
-        "meter on 127.0.0.1), with the live estimator's figures (phase, time to boil with its "
-        "90 % interval, water mass, UA, element conductance) shown in the terminal, and "
-        "everything recorded to an SQLite log.",
-        epilog="example: ebullio demo --speed 20 --out out/demo.sqlite",
+        "meter on 127.0.0.1), its live figures (phase, time to boil with its 90 % interval, "
+        "water mass, UA, element conductance) shown in the terminal. --quick runs one vessel "
+        "live, without the history.",
+        epilog="example: ebullio demo (or, one kettle without the history: ebullio demo --quick "
+        "--speed 20 --out out/kettle.sqlite)",
     )
     _add_scenario_options(demo, seed=7)
+    demo.add_argument(
+        "--quick",
+        action="store_true",
+        help="only one simulated vessel, live (the scenario options above choose it), without "
+        "the site's history: for tests and slow machines",
+    )
     demo.add_argument(
         "--speed",
         type=number_option(0.0, above=True),

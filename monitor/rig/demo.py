@@ -95,10 +95,15 @@ def demo_scenario(scenario: Scenario) -> Scenario:
 
 
 def demo_config_text(
-    scenario: Scenario, seed: int, serial_port: str, meter_url: str, poll_s: float
-) -> str:
-    """Return the TOML rig configuration of the demo (recorded in the log like any other)."""
-    meta = scenario_metadata(scenario, seed)
+    scenario: Scenario, seed: int, serial_port: str, meter_url: str, poll_s: float,
+    metadata: dict[str, str | float] | None = None,
+) -> str:  # fmt: skip
+    """Return the TOML rig configuration of the demo (recorded in the log like any other).
+
+    ``metadata`` replaces the simulated log's own description (its ``truth_`` keys
+    included) with what a user would configure: the site demo's vessels.
+    """
+    meta = scenario_metadata(scenario, seed) if metadata is None else metadata
     numbers = VESSEL_NUMBERS
     serial_url = f"serial://{serial_port}?baud=115200"
     lines = [
@@ -184,6 +189,7 @@ async def run_demo(
     every_s: float = 10.0,
     say: Callable[[str], None] = print,
     on_started: Callable[[], None] | None = None,
+    metadata: dict[str, str | float] | None = None,
 ) -> tuple[Stats, RigConfig]:
     """Run the demo to the end of the scenario (or SIGINT/SIGTERM); return counters and config."""
     scenario = demo_scenario(scenario)
@@ -234,7 +240,7 @@ async def run_demo(
     last_said = -1e18
     try:
         async with PowerMeterEmulator("modbus+tcp://127.0.0.1:0", on_read=energy_now) as meter:
-            text = demo_config_text(scenario, seed, slave_path, meter.url, poll_s)
+            text = demo_config_text(scenario, seed, slave_path, meter.url, poll_s, metadata)
             config = parse_config(text, "<demo configuration>", {})
 
             def on_estimate(m: dict[str, object]) -> None:

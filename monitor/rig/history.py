@@ -116,12 +116,14 @@ def write_history(
     *,
     workers: int | None = None,
     say: Callable[[str], None] = print,
+    on_open: Callable[[], None] | None = None,
 ) -> dict[str, object]:
     """Write ``history`` into a new session of ``log_path``; return what it took.
 
     Vessels are processed ``workers`` at a time (default: the machine's cores) in
     worker processes; their rows are written here as each vessel is done, the vessels'
-    metadata first. ``say`` hears the progress, a line per vessel.
+    metadata first. ``say`` hears the progress, a line per vessel. ``on_open`` is
+    called once the log holds the vessels (a board may open it then).
     """
     began = time.monotonic()
     config = parse_config(history.config_text, "<demo history>", {})
@@ -132,6 +134,8 @@ def write_history(
         for v in config.vessels:
             rec.add_vessel(v.id, dict(v.metadata))
         rec.commit()
+        if on_open is not None:
+            on_open()
         adders = row_adders(rec)
         order = [p.vessel for p in sorted(history.plans, key=_cost, reverse=True)]
         # spawn: the board's server thread may already run in this process

@@ -199,8 +199,9 @@ def test_demo_serves_the_board_and_stops_on_sigint(tmp_path) -> None:
 
     out = tmp_path / "demo.sqlite"
     proc = subprocess.Popen(
-        [sys.executable, "-m", "dashboard.cli", "demo", "--speed", "60", "--duration-s", "60",
-         "--board-port", "0", "--out", str(out), "--access-log", str(tmp_path / "web.log")],
+        [sys.executable, "-m", "dashboard.cli", "demo", "--quick", "--speed", "60",
+         "--duration-s", "60", "--board-port", "0", "--out", str(out),
+         "--access-log", str(tmp_path / "web.log")],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
     )  # fmt: skip
     try:

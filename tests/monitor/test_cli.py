@@ -69,11 +69,22 @@ def test_bad_input_gives_a_clear_error_and_exit_code(tmp_path, capsys):
     assert "--mass-kg: -1 must be above 0" in capsys.readouterr().err
 
 
+def test_the_site_demo_never_writes_its_history_into_an_existing_log(tmp_path, capsys):
+    out = tmp_path / "kept.sqlite"
+    out.write_bytes(b"someone's log")
+    assert main(["demo", "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "exists" in err
+    assert "--quick" in err
+    assert "Traceback" not in err
+    assert out.read_bytes() == b"someone's log"
+
+
 def test_demo_runs_live_through_the_real_drivers_and_records(tmp_path):
     out = tmp_path / "demo.sqlite"
     proc = subprocess.run(
-        [sys.executable, "-m", "monitor.cli", "demo", "--speed", "30", "--duration-s", "300",
-         "--every-s", "60", "--out", str(out)],
+        [sys.executable, "-m", "monitor.cli", "demo", "--quick", "--speed", "30",
+         "--duration-s", "300", "--every-s", "60", "--out", str(out)],
         capture_output=True,
         text=True,
         timeout=90,
@@ -218,7 +229,7 @@ def test_replay_fleet_report_and_export_say_when_a_log_was_altered(tmp_path, cap
 
 
 def _demo(out: Path | None, duration_s: int, cwd: Path | None = None) -> str:
-    command = [sys.executable, "-m", "monitor.cli", "demo", "--speed", "30",
+    command = [sys.executable, "-m", "monitor.cli", "demo", "--quick", "--speed", "30",
                "--duration-s", str(duration_s), "--every-s", "600"]  # fmt: skip
     if out is not None:
         command += ["--out", str(out)]
