@@ -15,7 +15,9 @@ import json
 import logging
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from drivers.errors import EbullioError
 from monitor import __version__
@@ -23,6 +25,9 @@ from monitor.physics.water import boiling_point_c, pressure_at_altitude_kpa
 from monitor.records.interchange import rows_from_samples, write_csv
 from monitor.reports.safety import SAFETY_NOTE
 from monitor.runs.replay import replay, summary_table
+
+if TYPE_CHECKING:
+    from drivers.simworld import Scenario
 
 log = logging.getLogger("ebullio")
 
@@ -120,6 +125,34 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
+async def _live(
+    args: argparse.Namespace, scenario: Scenario, seed: int, out_path: Path, *,
+    on_started: Callable[[], None] | None = None,
+    metadata: dict[str, str | float] | None = None,
+) -> None:  # fmt: skip
+    """Run one demo vessel live into ``out_path`` with its table in the terminal, then
+    what the board's command line asked to do after (``args.after_demo``)."""
+    from monitor.rig.demo import run_demo
+
+    print(
+        f"{'time s':>7} {'phase':>8} {'water °C':>8} {'power W':>7} "
+        f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>12}"
+    )
+    stats, _ = await run_demo(
+        scenario, seed, str(out_path), args.speed, args.every_s,
+        say=lambda line: print(line, flush=True), on_started=on_started, metadata=metadata,
+    )  # fmt: skip
+    print(
+        f"demo: recorded {stats.samples} samples and {stats.estimates} estimates "
+        f"({stats.quarantined} inputs quarantined) to {out_path}; "
+        f"check it with: ebullio verify {out_path}; replay it with: ebullio replay {out_path}; "
+        f"see the fleet with: ebullio fleet {out_path}"
+    )
+    after = getattr(args, "after_demo", None)
+    if after is not None:
+        await after()
+
+
 #: The site demo's history session, said in its recorded configuration.
 SITE_HISTORY_NOTE = (
     "ebullio demo: the simulated history of an invented site (a test rig and a building's\n"
@@ -131,7 +164,6 @@ SITE_HISTORY_NOTE = (
 async def _site_demo(args: argparse.Namespace) -> int:
     """The full demo: the site's weeks of history, then the rig's scaled kettle live."""
     from drivers.simworld.site import HISTORY_DAYS, demo_site
-    from monitor.rig.demo import run_demo
     from monitor.rig.history import History, site_config_text, write_history
 
     plans = tuple(demo_site())
@@ -161,28 +193,11 @@ async def _site_demo(args: argparse.Namespace) -> int:
     print(f"demo: now {live.vessel} ({live.place}, its element scaling) heats live at "
           f"{args.speed:g}x real time: a simulated thermocouple logger on a pseudo-terminal "
           "and a simulated Modbus TCP meter on 127.0.0.1", flush=True)  # fmt: skip
-    print(
-        f"{'time s':>7} {'phase':>8} {'water °C':>8} {'power W':>7} "
-        f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>12}"
-    )
-    stats, _ = await run_demo(
-        scenario, live.seed, str(out_path), args.speed, args.every_s,
-        say=lambda line: print(line, flush=True), metadata=live.metadata(),
-    )  # fmt: skip
-    print(
-        f"demo: recorded {stats.samples} live samples and {stats.estimates} estimates to "
-        f"{out_path}; check it with: ebullio verify {out_path}; see the fleet with: "
-        f"ebullio fleet {out_path}"
-    )
-    after = getattr(args, "after_demo", None)
-    if after is not None:
-        await after()
+    await _live(args, scenario, live.seed, out_path, metadata=live.metadata())
     return 0
 
 
 async def _demo(args: argparse.Namespace) -> int:
-    from monitor.rig.demo import run_demo
-
     if not args.quick:
         return await _site_demo(args)
     scenario = _scenario_from(args)
@@ -193,25 +208,10 @@ async def _demo(args: argparse.Namespace) -> int:
         f"{scenario.pressure_kpa:.2f} kPa, {args.speed:g}x real time; a simulated thermocouple "
         "logger on a pseudo-terminal and a simulated Modbus TCP meter on 127.0.0.1"
     )
-    print(
-        f"{'time s':>7} {'phase':>8} {'water °C':>8} {'power W':>7} "
-        f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>12}"
-    )
     out_path = Path(args.out)
     out_path.parent.mkdir(parents=True, exist_ok=True)
     on_started = getattr(args, "on_started", None)  # set by the board's command line
-    stats, _ = await run_demo(
-        scenario, args.seed, str(out_path), args.speed, args.every_s,
-        say=lambda line: print(line, flush=True), on_started=on_started,
-    )  # fmt: skip
-    print(
-        f"demo: recorded {stats.samples} samples and {stats.estimates} estimates "
-        f"({stats.quarantined} inputs quarantined) to {out_path}; "
-        f"check it with: ebullio verify {out_path}; replay it with: ebullio replay {out_path}"
-    )
-    after = getattr(args, "after_demo", None)
-    if after is not None:
-        await after()
+    await _live(args, scenario, args.seed, out_path, on_started=on_started)
     return 0
 
 
