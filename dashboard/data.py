@@ -62,13 +62,14 @@ def run_state(
     ``runs`` are the log's run rows in order (summaries parsed); ``into`` is a state
     made of the runs before them, which takes these too (the board over the engine
     keeps one as the runs come). Each vessel gets its
-    last run's label and times, that run's own flags, its drift flags, its status (the
-    worst level of the two, as ``ebullio fleet`` gives it) and verdict
+    last run's label and times, that run's own flags, the drift flags that stand after
+    it (:func:`monitor.runs.drift.standing_drift`: a doubtful run keeps the latest judged
+    run's), its status (the worst level of the two, as ``ebullio fleet`` gives it) and verdict
     (:func:`monitor.runs.drift.verdict_of`: trusted, or doubtful and not judged, with the
     reasons), and the scaling index (1 - G/G0) of the latest scaling flag among all
     its runs, if any.
     """
-    from monitor.runs.drift import verdict_of, worst_level
+    from monitor.runs.drift import standing_drift, verdict_of, worst_level
 
     out: dict[str, dict[str, object]] = {} if into is None else into
     for row in runs:
@@ -82,9 +83,11 @@ def run_state(
             if f.get("name") == "scaling":
                 state["scaling_index"] = (f.get("evidence") or {}).get("scaling_index")
         flags = [f for f in summary.get("flags") or [] if isinstance(f, dict)]
+        verdict = verdict_of(summary)
+        standing, judged = standing_drift(state.get("judged_drift") or [], drift, verdict)
         state.update(run=row["run"], start_t=row["start_t"], end_t=row.get("end_t"),
-                     drift=drift, flags=flags, verdict=verdict_of(summary),
-                     status=worst_level([*flags, *drift]))  # fmt: skip
+                     drift=standing, judged_drift=judged, flags=flags, verdict=verdict,
+                     status=worst_level([*flags, *standing]))  # fmt: skip
     return out
 
 

@@ -652,11 +652,30 @@ def worst_level(flags: Iterable[Mapping[str, object]] | None) -> str:
     return {3: "alarm", 2: "warning", 1: "notice"}.get(best, "ok")
 
 
+def standing_drift(
+    judged: list[Mapping[str, object]],
+    drift: list[Mapping[str, object]],
+    verdict: Mapping[str, object],
+) -> tuple[list[Mapping[str, object]], list[Mapping[str, object]]]:
+    """Return (the drift flags that stand after a run, the judged flags to carry on).
+
+    ``judged`` are the drift flags of the vessel's latest judged (trusted) run before
+    this one, ``drift`` and ``verdict`` this run's. A trusted run's flags stand as they
+    are. A doubtful run's drift part is only its not-judged notice: the flags of the
+    latest judged run stand beside it, so a run that could not be judged neither
+    clears a standing warning nor raises one (the fleet views, live and replayed).
+    """
+    if verdict.get("status") == "doubtful":
+        return [*judged, *drift], judged
+    return list(drift), list(drift)
+
+
 def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
     """Return one row per vessel from a replay result, worst first.
 
-    Each row: vessel, status (the worst level among its last run's flags and drift
-    flags, or ``ok``), the names of those flags, the latest scaling index (1 - G/G0)
+    Each row: vessel, status (the worst level among its last run's flags and the
+    drift flags that stand after it, :func:`standing_drift`, or ``ok``), the names of
+    those flags, the latest scaling index (1 - G/G0)
     where there is a baseline, the last run's label, start and verdict (``trusted`` or
     ``doubtful``, with the reasons), the runs so far, the trusted runs since the
     baseline was complete, and how many runs were not judged (doubtful).
@@ -667,7 +686,12 @@ def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
     rows = []
     for vessel, runs in by_vessel.items():
         last = runs[-1]
-        flags = [*last.get("flags", []), *last.get("drift", [])]  # type: ignore[misc]
+        judged: list[Mapping[str, object]] = []
+        standing: list[Mapping[str, object]] = []
+        for run in runs:
+            drift = list(run.get("drift", []))  # type: ignore[call-overload]
+            standing, judged = standing_drift(judged, drift, verdict_of(run))
+        flags = [*last.get("flags", []), *standing]  # type: ignore[misc]
         scaling = None
         for run in runs:
             for f in run.get("drift", []):  # type: ignore[union-attr]

@@ -15,7 +15,7 @@ import plotly.graph_objects as go
 import pytest
 
 from dashboard.app import create_app
-from dashboard.data import chart_data, envelope, load_snapshot
+from dashboard.data import chart_data, envelope, load_snapshot, run_state
 from dashboard.views.fleet import fleet_rows, render_fleet
 from dashboard.views.vessel import chart_update, figures, render_vessel, vessel_options
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
@@ -180,6 +180,34 @@ def test_fleet_puts_the_vessels_that_need_attention_first() -> None:
     assert "last run's verdict" in table
     assert "✓ trusted" in table
     assert "✕ doubtful: not judged" in table
+
+
+def test_a_doubtful_last_run_keeps_the_standing_warning_in_the_fleet() -> None:
+    # made-up run rows: a trusted run warns of scaling, the next could not be judged
+    warned = {
+        "name": "scaling",
+        "level": "warning",
+        "message": "scaling",
+        "evidence": {"scaling_index": 0.3},
+    }
+    rows = [
+        {"vessel": "h1", "run": "6", "start_t": 1.0, "summary": {
+            "drift": [warned], "verdict": {"status": "trusted", "reasons": []}}},
+        {"vessel": "h1", "run": "7", "start_t": 2.0, "summary": {
+            "drift": [{"name": "not_judged", "level": "notice", "message": "not judged"}],
+            "verdict": {"status": "doubtful", "reasons": ["Too few readings."]}}},
+    ]  # fmt: skip
+    state = run_state(rows)["h1"]
+    assert state["run"] == "7"
+    assert [f["name"] for f in state["drift"]] == ["scaling", "not_judged"]
+    assert state["status"] == "warning"
+    (row,) = fleet_rows({"vessels": ["h1"], "latest": {}, "runs": {"h1": state}})
+    assert row["status"] == "warning"
+    assert row["last_verdict"] == "doubtful"
+    # a trusted run with nothing to say clears it
+    rows.append({"vessel": "h1", "run": "8", "start_t": 3.0, "summary": {
+        "drift": [], "verdict": {"status": "trusted", "reasons": []}}})  # fmt: skip
+    assert run_state(rows)["h1"]["status"] == "ok"
 
 
 def test_the_board_renders_in_headless_chromium(live_log) -> None:

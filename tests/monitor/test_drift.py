@@ -12,6 +12,7 @@ from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
 from monitor.estimation.contracts import Level
 from monitor.records.interchange import InterchangeLog, rows_from_samples
 from monitor.runs.drift import (
+    LEVEL_RANK,
     RULES,
     Cusum,
     VesselDrift,
@@ -23,6 +24,7 @@ from monitor.runs.drift import (
     make_baseline,
     run_verdict,
     scale_thickness_range_mm,
+    standing_drift,
 )
 from monitor.runs.replay import replay_run
 from monitor.runs.run import split_runs
@@ -278,6 +280,25 @@ def test_fleet_text_and_rows_show_a_doubtful_last_run() -> None:
     text = fleet_table([row])
     assert "DOUBTFUL (not judged)" in text
     assert "why not judged: The element-to-water conductance G is known only to ±25%" in text
+
+
+def test_a_doubtful_last_run_neither_clears_nor_raises_a_standing_warning() -> None:
+    # made-up figures: G falls by a third after five runs, then one run cannot be judged
+    runs = synthetic_runs([1.0] * 5 + [0.66] * 3, seed=5)
+    runs.append(diverge(runs[-1]))
+    flags = drift_over_runs(runs)
+    assert "scaling" in [f.name for f in flags[7]]
+    assert [f.name for f in flags[8]] == ["not_judged"]
+    result = {"runs": [{**r, "flags": [], "drift": [f.as_dict() for f in fl]}
+                       for r, fl in zip(runs, flags, strict=True)]}  # fmt: skip
+    (row,) = fleet_rows(result)
+    assert row["last_verdict"] == "doubtful"
+    assert set(row["flags"]) == {"scaling", "not_judged"}
+    assert row["status"] == max((f.level.value for f in flags[7]), key=LEVEL_RANK.get)
+    # a trusted run after it speaks for itself again
+    shown, judged = standing_drift([{"name": "scaling", "level": "warning"}], [],
+                                   {"status": "trusted"})  # fmt: skip
+    assert (shown, judged) == ([], [])
 
 
 def test_rising_ua_raises_insulation() -> None:
