@@ -59,6 +59,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from drivers.emulators.line_logger import logger_bindings, open_pty_pair  # noqa: E402
+from drivers.emulators.mosquitto import MosquittoBroker  # noqa: E402
 from drivers.serial_line import SerialLineDriver  # noqa: E402
 from monitor.records.recorder import (  # noqa: E402
     head_path,
@@ -69,7 +70,6 @@ from monitor.records.recorder import (  # noqa: E402
 )
 from monitor.rig.config import parse_config  # noqa: E402
 from monitor.rig.service import Service  # noqa: E402
-from tests.support.mosquitto import MosquittoBroker  # noqa: E402
 
 PREFIX = "fault"
 #: Estimates must come again this soon (s) after a broker that was down 1 s is back: the

@@ -48,6 +48,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from drivers.emulators.mosquitto import MosquittoBroker  # noqa: E402
 from drivers.simworld import (  # noqa: E402
     Scenario,
     SimulatedRig,
@@ -55,7 +56,6 @@ from drivers.simworld import (  # noqa: E402
     water_heater_scenario,
 )
 from monitor.records.recorder import verify  # noqa: E402
-from tests.support.mosquitto import MosquittoBroker  # noqa: E402
 
 PREFIX = "bench"
 TRAJECTORIES = 10

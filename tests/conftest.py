@@ -6,7 +6,7 @@ from collections.abc import Iterator
 
 import pytest
 
-from tests.support.mosquitto import MosquittoBroker
+from drivers.emulators.mosquitto import MosquittoBroker
 
 #: The one account of the password-protected broker (test values, no source).
 AUTH_USER = "meter-1"

@@ -36,15 +36,18 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import heapq
+import json
 import os
 import signal
 import time
-from collections.abc import Callable
-from dataclasses import replace
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, replace
 
 from drivers.emulators.line_logger import LineLoggerEmulator, open_pty_pair, render_line
 from drivers.emulators.power_meter import PowerMeterEmulator
 from drivers.errors import EbullioError
+from drivers.payloads import CHANNEL_COLUMNS
 from drivers.sample import Sample
 from drivers.simworld import PacedClock, Scenario, SimulatedRig, scenario_metadata
 from monitor.records.interchange import iso_utc
@@ -94,33 +97,89 @@ def demo_scenario(scenario: Scenario) -> Scenario:
     return replace(scenario, sensors=sensors)
 
 
+@dataclass(frozen=True)
+class DemoVessel:
+    """One vessel the demo runs live, and how its readings reach the service.
+
+    ``via``: ``"bench"``, a thermocouple line logger on a pseudo-terminal (raw type K)
+    and a Modbus TCP power meter on 127.0.0.1 of its own; ``"logger"``, one line logger
+    printing all its channels; ``"mqtt"``, a reading message per instant on the demo's
+    broker. ``metadata`` replaces the simulated log's own description (its ``truth_``
+    keys included) with what a user would configure (None: that description).
+    """
+
+    scenario: Scenario
+    seed: int
+    via: str = "bench"
+    metadata: dict[str, str | float] | None = None
+
+    def __post_init__(self) -> None:
+        if self.via not in ("bench", "logger", "mqtt"):
+            raise ValueError(f"unknown way in {self.via!r}")
+
+
 def demo_config_text(
-    scenario: Scenario, seed: int, serial_port: str, meter_url: str, poll_s: float,
-    metadata: dict[str, str | float] | None = None,
-) -> str:  # fmt: skip
+    vessels: list[DemoVessel],
+    serial_ports: dict[int, str],
+    meter_urls: dict[int, str],
+    poll_s: float,
+    mqtt_url: str | None = None,
+) -> str:
     """Return the TOML rig configuration of the demo (recorded in the log like any other).
 
-    ``metadata`` replaces the simulated log's own description (its ``truth_`` keys
-    included) with what a user would configure: the site demo's vessels.
+    ``serial_ports`` and ``meter_urls`` are the pseudo-terminal and the meter of each
+    vessel (by its index) that has them; ``mqtt_url`` the demo's broker.
     """
-    meta = scenario_metadata(scenario, seed) if metadata is None else metadata
-    numbers = VESSEL_NUMBERS
-    serial_url = f"serial://{serial_port}?baud=115200"
-    lines = [
-        "# ebullio demo: a simulated rig behind a serial line logger and a Modbus meter",
-        "[site]",
-        f"pressure_kpa = {scenario.pressure_kpa!r}",
-        "",
-        "[recorder]",
-        "commit_interval_s = 1.0",
-        "",
+    lines = ["# ebullio demo: simulated vessels behind simulated instruments (line loggers "
+             "on pseudo-terminals, Modbus TCP meters, MQTT)", "[site]",
+             f"pressure_kpa = {vessels[0].scenario.pressure_kpa!r}", "", "[recorder]",
+             "commit_interval_s = 1.0", ""]  # fmt: skip
+    if mqtt_url is not None:
+        lines += ["[mqtt]", f"url = {toml_value(mqtt_url)}", f"prefix = {toml_value(MQTT_PREFIX)}",
+                  "inflight_window = 0", ""]  # fmt: skip
+    tables: list[str] = []
+    for i, v in enumerate(vessels):
+        meta = scenario_metadata(v.scenario, v.seed) if v.metadata is None else v.metadata
+        serial_url = f"serial://{serial_ports[i]}?baud=115200" if i in serial_ports else None
+        meter_url = meter_urls.get(i)
+        if serial_url is not None:
+            lines += ["[[instruments]]", f'url = "{serial_url}"', 'framing = "keyvalue"',
+                      'time_field = "t"', ""]  # fmt: skip
+        if meter_url is not None:
+            lines += _meter_table(meter_url, poll_s)
+        tables += ["[[vessels]]", f'id = "{v.scenario.vessel}"']
+        if v.via == "mqtt":
+            tables.append("element_sensor = true")
+        tables += [f"{key} = {toml_value(meta[key])}" for key in VESSEL_NUMBERS if key in meta]
+        channels = [
+            (serial_url, "water_mv", "water", "mV", "K"),
+            (serial_url, "element_mv", "element", "mV", "K"),
+            (serial_url, "ambient_c", "ambient", "degC", None),
+        ]
+        on_meter = meter_url if v.via == "bench" else serial_url
+        channels += [(on_meter, field, role, unit, None) for field, role, unit in (
+            ("power" if v.via == "bench" else "power_w", "power", "W"),
+            ("energy" if v.via == "bench" else "energy_wh", "energy", "Wh"),
+            ("voltage" if v.via == "bench" else "voltage_v", "voltage", "V"),
+            ("current" if v.via == "bench" else "current_a", "current", "A"),
+        )]  # fmt: skip
+        for url, field_, role, unit, tc in channels if v.via != "mqtt" else []:
+            tables += ["", "[[vessels.channels]]", f'instrument = "{url}"', f'field = "{field_}"',
+                       f'role = "{role}"', f'unit = "{unit}"']  # fmt: skip
+            if tc:
+                tables += [f'thermocouple = "{tc}"', 'cold_junction = "cj_c"']
+        tables += ["", "[vessels.metadata]"]
+        own = {*VESSEL_NUMBERS, "vessel", "pressure_kpa", "altitude_m"}
+        tables += [f"{k} = {toml_value(val)}" for k, val in meta.items() if k not in own]
+        tables.append("")
+    return "\n".join(lines + tables)
+
+
+def _meter_table(url: str, poll_s: float) -> list[str]:
+    """Return the ``[[instruments]]`` table of a demo power meter at ``url``."""
+    return [
         "[[instruments]]",
-        f'url = "{serial_url}"',
-        'framing = "keyvalue"',
-        'time_field = "t"',
-        "",
-        "[[instruments]]",
-        f'url = "{meter_url}"',
+        f'url = "{url}"',
         f"poll_s = {poll_s!r}",
         "registers = [",
         '  { name = "power", address = 0, type = "float32", unit = "W" },',
@@ -130,28 +189,7 @@ def demo_config_text(
         'word_order = "little" },',
         "]",
         "",
-        "[[vessels]]",
-        f'id = "{scenario.vessel}"',
     ]
-    lines += [f"{key} = {toml_value(meta[key])}" for key in numbers if key in meta]
-    channels = [
-        (serial_url, "water_mv", "water", "mV", "K"),
-        (serial_url, "element_mv", "element", "mV", "K"),
-        (serial_url, "ambient_c", "ambient", "degC", None),
-        (meter_url, "power", "power", "W", None),
-        (meter_url, "energy", "energy", "Wh", None),
-        (meter_url, "voltage", "voltage", "V", None),
-        (meter_url, "current", "current", "A", None),
-    ]
-    for url, field, role, unit, tc in channels:
-        lines += ["", "[[vessels.channels]]", f'instrument = "{url}"', f'field = "{field}"']
-        lines += [f'role = "{role}"', f'unit = "{unit}"']
-        if tc:
-            lines += [f'thermocouple = "{tc}"', 'cold_junction = "cj_c"']
-    lines += ["", "[vessels.metadata]"]
-    own = {*numbers, "vessel", "pressure_kpa", "altitude_m"}
-    lines += [f"{k} = {toml_value(v)}" for k, v in meta.items() if k not in own]
-    return "\n".join(lines) + "\n"
 
 
 def _line(elapsed_s: float, m: dict[str, object]) -> str:
@@ -191,10 +229,35 @@ async def run_demo(
     on_started: Callable[[], None] | None = None,
     metadata: dict[str, str | float] | None = None,
 ) -> tuple[Stats, RigConfig]:
-    """Run the demo to the end of the scenario (or SIGINT/SIGTERM); return counters and config."""
-    scenario = demo_scenario(scenario)
+    """Run one vessel on a bench (a line logger and a meter) to the end of its scenario."""
+    vessels = [DemoVessel(scenario, seed, "bench", metadata)]
+    return await run_live(vessels, log_path, speed, every_s, say, on_started)
+
+
+async def run_live(
+    vessels: list[DemoVessel],
+    log_path: str,
+    speed: float,
+    every_s: float = 10.0,
+    say: Callable[[str], None] = print,
+    on_started: Callable[[], None] | None = None,
+    mqtt_url: str | None = None,
+) -> tuple[Stats, RigConfig]:
+    """Run the demo's vessels live to the end of the longest scenario (or SIGINT/SIGTERM);
+    return the service's counters and configuration.
+
+    The first vessel's figures are said every ``every_s`` simulated seconds. Every
+    vessel's scenario starts at the same instant; ``mqtt_url`` is the broker of the
+    vessels that come ``via`` MQTT.
+    """
+    common = vessels[0].scenario.start_epoch_s
+    vessels = [replace(v, scenario=replace(demo_scenario(v.scenario) if v.via != "mqtt"
+                                           else v.scenario, start_epoch_s=common))
+               for v in vessels]  # fmt: skip
+    duration_s = max(v.scenario.duration_s for v in vessels)
+    step_s = min(v.scenario.sample_interval_s for v in vessels)
     last_t = await asyncio.to_thread(last_sample_t, log_path)
-    start_s, capped = demo_start_s(time.time(), scenario.duration_s, speed, last_t)
+    start_s, capped = demo_start_s(time.time(), duration_s, speed, last_t)
     if start_s > time.time():
         raise EbullioError(
             f"{log_path}: its newest reading ({iso_utc(last_t or 0.0)}) is later than now, "
@@ -205,15 +268,14 @@ async def run_demo(
         say(f"demo: {log_path} has readings up to {iso_utc(last_t or 0.0)}, so this run starts "
             "after them and runs no faster than real time until it is behind the clock "
             "(for full speed give another --log)")  # fmt: skip
-    # simulated time starts when the rig does, once the service is listening; until
-    # then the clock stands at the start (the meter reads zeros)
+    # simulated time starts when the rigs do, once the service is listening; until
+    # then the clock stands at the start (the meters read zeros)
     base = {"wall": start_s, "mono": time.monotonic(), "speed": 0.0}
-    # Once the rig runs, the clock follows the logger: it is the simulated time of the
+    # Once the rigs run, the clock follows the loggers: it is the simulated time of the
     # instant last written plus the real time since then at speed, but never past the
-    # next instant. A busy machine that makes the logger late makes the clock late
-    # too, so the meter's readings keep their place between the logger's lines.
+    # next instant. A busy machine that makes the loggers late makes the clock late
+    # too, so the meters' readings keep their place between the loggers' lines.
     written: dict[str, float] = {}
-    step_s = scenario.sample_interval_s
 
     def sim_now() -> float:
         if "t" in written:
@@ -223,33 +285,53 @@ async def run_demo(
             now = base["wall"] + (time.monotonic() - base["mono"]) * base["speed"]
         return min(now, time.time())  # never ahead of the wall clock
 
-    # A real meter's energy counter climbs through an interval, so the counter is
-    # set at each read from the power of the interval under way (not held as a step).
-    ramp: dict[str, float] = {}
+    # A real meter's energy counter climbs through an interval, so each counter is set
+    # at each read from the power of the interval under way (not held as a step).
+    ramps: dict[int, dict[str, float]] = {}
 
-    def energy_now(meter: PowerMeterEmulator) -> None:
-        if "end_t" in ramp:
-            to_go_s = min(max(ramp["end_t"] - sim_now(), 0.0), step_s)
-            meter.update(energy_wh=ramp["end_wh"] - ramp["power_w"] * to_go_s / 3600.0)
+    def energy_now(i: int) -> Callable[[PowerMeterEmulator], None]:
+        def read(meter: PowerMeterEmulator) -> None:
+            ramp = ramps.get(i, {})
+            if "end_t" in ramp:
+                interval_s = vessels[i].scenario.sample_interval_s
+                to_go_s = min(max(ramp["end_t"] - sim_now(), 0.0), interval_s)
+                meter.update(energy_wh=ramp["end_wh"] - ramp["power_w"] * to_go_s / 3600.0)
 
-    rig = SimulatedRig(scenario, seed=seed, source="demo")
-    master_fd, slave_path = open_pty_pair()
+        return read
+
+    rigs = [SimulatedRig(v.scenario, seed=v.seed, source="demo") for v in vessels]
+    ptys = {i: open_pty_pair() for i, v in enumerate(vessels) if v.via != "mqtt"}
     # four polls per sample interval: one always lands well inside each interval, away
     # from the instants where the line is written and the meter changes
-    poll_s = scenario.sample_interval_s / speed / 4.0
+    poll_s = step_s / speed / 4.0
     last_said = -1e18
     try:
-        async with PowerMeterEmulator("modbus+tcp://127.0.0.1:0", on_read=energy_now) as meter:
-            text = demo_config_text(scenario, seed, slave_path, meter.url, poll_s, metadata)
+        async with contextlib.AsyncExitStack() as stack:
+            meters = {
+                i: await stack.enter_async_context(
+                    PowerMeterEmulator("modbus+tcp://127.0.0.1:0", on_read=energy_now(i))
+                )
+                for i, v in enumerate(vessels)
+                if v.via == "bench"
+            }
+            ports = {i: path for i, (_, path) in ptys.items()}
+            urls = {i: m.url for i, m in meters.items()}
+            text = demo_config_text(vessels, ports, urls, poll_s, mqtt_url)
             config = parse_config(text, "<demo configuration>", {})
+            watched = vessels[0].scenario.vessel
 
             def on_estimate(m: dict[str, object]) -> None:
                 nonlocal last_said
+                if m.get("vessel") != watched:
+                    return
                 elapsed = float(m["t"]) - base["wall"]  # type: ignore[arg-type]
                 if elapsed - last_said >= every_s:
                     last_said = elapsed
                     say(_line(elapsed, m))
 
+            publish = None
+            if mqtt_url is not None:
+                publish = await stack.enter_async_context(_ReadingPublisher(mqtt_url))
             service = Service(config, log_path, clock=sim_now, on_estimate=on_estimate)
             loop = asyncio.get_running_loop()
             stopping = asyncio.Event()
@@ -260,44 +342,85 @@ async def run_demo(
                 await service.started.wait()
                 if on_started is not None:
                     on_started()  # the log exists now: the board can open it
-                await asyncio.sleep(0.5)  # let the serial driver open the port first
+                await asyncio.sleep(0.5)  # let the serial drivers open their ports first
                 clock = PacedClock(speed)
-                logger = LineLoggerEmulator(rig, master_fd, clock)
+                loggers = {i: LineLoggerEmulator(rigs[i], fd, clock) for i, (fd, _) in ptys.items()}
                 base.update(wall=sim_now(), mono=time.monotonic(), speed=speed)
-                logger.time_shift_s = base["wall"] - scenario.start_epoch_s
+                shift_s = base["wall"] - common
                 # The rig's power sample at an instant is the mean over the interval that
-                # ends there; a meter shows the power flowing now. So at each instant the
+                # ends there; a meter shows the power flowing now. So at each instant a
                 # meter is given the next instant's power (the interval now starting),
                 # and a poll inside an interval reads that interval's power.
-                instants = rig.run()
-                batch = next(instants)
-                for upcoming in (*instants, None):
-                    at_s = batch[0].t - scenario.start_epoch_s if batch else 0.0
+                streams = [_instants(i, rig) for i, rig in enumerate(rigs)]
+                for at_s, i, batch, upcoming in heapq.merge(*streams, key=lambda e: e[:2]):
                     await clock.wait_until(at_s)
                     ahead_s = base["wall"] + at_s - time.time()
                     if ahead_s > 0.0:  # never a reading stamped ahead of the wall clock
                         await asyncio.sleep(ahead_s)
-                    clock.slip(at_s)  # a stall pauses the rig rather than bunching its lines
+                    clock.slip(at_s)  # a stall pauses the rigs rather than bunching lines
                     if stopping.is_set() or task.done():
                         break
-                    line = [s for s in batch if s.channel in LOGGER_CHANNELS]
-                    if line:
-                        await logger.write(render_line(line, "keyvalue", logger.time_shift_s))
-                    if batch:
-                        written.update(t=batch[0].t + logger.time_shift_s, mono=time.monotonic())
-                    if upcoming is not None:
-                        _feed(upcoming, meter, ramp, logger.time_shift_s)
-                    batch = upcoming
-                await asyncio.sleep(max(0.3, 3 * poll_s))  # the last line and poll get through
+                    via = vessels[i].via
+                    if via == "mqtt" and publish is not None and batch:
+                        await publish.reading(batch, shift_s)
+                    elif via != "mqtt":
+                        line = [s for s in batch if via == "logger" or s.channel in LOGGER_CHANNELS]
+                        if line:
+                            await loggers[i].write(render_line(line, "keyvalue", shift_s))
+                    written.update(t=common + at_s + shift_s, mono=time.monotonic())
+                    if via == "bench" and upcoming is not None:
+                        _feed(upcoming, meters[i], ramps.setdefault(i, {}), shift_s)
+                await asyncio.sleep(max(0.3, 3 * poll_s))  # the last lines and polls get through
             finally:
                 service.stop()
                 stats = await task
                 for signum in (signal.SIGINT, signal.SIGTERM):
                     loop.remove_signal_handler(signum)
     finally:
-        with contextlib.suppress(OSError):
-            os.close(master_fd)
+        for fd, _ in ptys.values():
+            with contextlib.suppress(OSError):
+                os.close(fd)
     return stats, config
+
+
+def _instants(
+    index: int, rig: SimulatedRig
+) -> Iterator[tuple[float, int, list[Sample], list[Sample] | None]]:
+    """Yield (simulated s, ``index``, the instant's samples, the next instant's or None)."""
+    instants = ((rig.elapsed_s, batch) for batch in rig.run())
+    at_s, batch = next(instants)
+    for next_at_s, upcoming in instants:
+        yield at_s, index, batch, upcoming
+        at_s, batch = next_at_s, upcoming
+    yield at_s, index, batch, None
+
+
+#: The topic prefix of the demo's own broker.
+MQTT_PREFIX = "ebullio-demo"
+
+
+class _ReadingPublisher:
+    """Publishes a simulated instrument's instants as ``reading`` messages (QoS 1)."""
+
+    def __init__(self, url: str) -> None:
+        import aiomqtt
+
+        host, port = url.removeprefix("mqtt://").rsplit(":", 1)
+        self._client = aiomqtt.Client(host, int(port), identifier="ebullio-demo-heaters")
+        self._client.pending_calls_threshold = 10_000
+
+    async def __aenter__(self) -> _ReadingPublisher:
+        await self._client.__aenter__()
+        return self
+
+    async def __aexit__(self, *exc: object) -> None:
+        await self._client.__aexit__(*exc)  # type: ignore[arg-type]
+
+    async def reading(self, batch: list[Sample], shift_s: float) -> None:
+        payload = {"t": batch[0].t + shift_s}
+        payload |= {CHANNEL_COLUMNS[s.channel]: s.value for s in batch if s.value == s.value}
+        topic = f"{MQTT_PREFIX}/{batch[0].vessel}/reading"
+        await self._client.publish(topic, json.dumps(payload).encode(), qos=1)
 
 
 def _feed(

@@ -13,11 +13,11 @@ import aiomqtt
 import pytest
 
 from drivers.channels import Quarantined
+from drivers.emulators.mosquitto import MosquittoBroker, free_port
 from drivers.errors import ConfigError, DriverError
 from drivers.mqtt import MqttDriver, MqttPublisher, encode_json, parse_mqtt_url
 from drivers.sample import Quality, Sample
 from tests.conftest import AUTH_PASSWORD, AUTH_USER
-from tests.support.mosquitto import MosquittoBroker, free_port
 
 # A fixed receipt clock: 2025-01-01T00:00:00Z in Unix seconds (from memory).
 RECEIVED_T = 1_735_689_600.0

@@ -21,6 +21,7 @@ import nats.js.errors
 import numpy as np
 import pytest
 
+from drivers.emulators.mosquitto import free_port
 from drivers.payloads import parse_message
 from monitor.engine import checkpoint
 from monitor.engine.checkpoint import CheckpointError
@@ -42,7 +43,6 @@ from tests.support.fleet import (
     kettle_spec,
     two_kettle_runs,
 )
-from tests.support.mosquitto import free_port
 
 LAYOUT = EngineLayout(partitions=4)
 STAMP_S = START_EPOCH_S + 7200.0  # the stream's time stamps: after every reading's t

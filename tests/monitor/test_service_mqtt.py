@@ -7,6 +7,7 @@ import json
 
 import aiomqtt
 
+from drivers.emulators.mosquitto import MosquittoBroker
 from monitor.records.recorder import (
     read_estimates,
     read_events,
@@ -16,7 +17,6 @@ from monitor.records.recorder import (
 )
 from monitor.rig.config import parse_config
 from monitor.rig.service import Service
-from tests.support.mosquitto import MosquittoBroker
 
 T0 = 1_767_225_600.0
 

@@ -22,8 +22,8 @@ import time
 from pathlib import Path
 from types import TracebackType
 
+from drivers.emulators.mosquitto import HOST, accepts, end_process, free_port
 from monitor.engine.partition import EngineLayout
-from tests.support.mosquitto import HOST, accepts, end_process, free_port
 
 #: Seconds to wait for a node to accept TCP connections.
 START_DEADLINE_S = 15.0

@@ -1,4 +1,4 @@
-"""A real Mosquitto broker on 127.0.0.1 for tests and benchmarks.
+"""A real Mosquitto broker on 127.0.0.1, for the demo, tests and benchmarks.
 
 ``MosquittoBroker(workdir)`` writes its own configuration into ``workdir`` and runs
 Debian's ``mosquitto`` in the foreground as a child process::
@@ -39,6 +39,11 @@ STOP_DEADLINE_S = 5.0
 _POLL_S = 0.01
 # Attempts with a fresh port when a port chosen by free_port() was taken meanwhile.
 _PORT_ATTEMPTS = 3
+
+
+def mosquitto_program() -> str | None:
+    """Return the path of Debian's ``mosquitto`` (on PATH or in /usr/sbin), or None."""
+    return shutil.which("mosquitto") or shutil.which("mosquitto", path="/usr/sbin:/sbin")
 
 
 def free_port() -> int:
@@ -171,7 +176,7 @@ class MosquittoBroker:
         self._write_config()
         with self.log_path.open("ab") as log:
             self._process = subprocess.Popen(
-                ["mosquitto", "-c", str(self.config_path)],
+                [mosquitto_program() or "mosquitto", "-c", str(self.config_path)],
                 stdin=subprocess.DEVNULL,
                 stdout=log,
                 stderr=subprocess.STDOUT,
