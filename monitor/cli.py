@@ -27,7 +27,7 @@ from monitor.reports.safety import SAFETY_NOTE
 from monitor.runs.replay import replay, summary_table
 
 if TYPE_CHECKING:
-    from drivers.simworld import Scenario
+    from monitor.rig.demo import DemoVessel
 
 log = logging.getLogger("ebullio")
 
@@ -126,21 +126,20 @@ def cmd_simulate(args: argparse.Namespace) -> int:
 
 
 async def _live(
-    args: argparse.Namespace, scenario: Scenario, seed: int, out_path: Path, *,
-    on_started: Callable[[], None] | None = None,
-    metadata: dict[str, str | float] | None = None,
+    args: argparse.Namespace, vessels: list[DemoVessel], out_path: Path, *,
+    on_started: Callable[[], None] | None = None, mqtt_url: str | None = None,
 ) -> None:  # fmt: skip
-    """Run one demo vessel live into ``out_path`` with its table in the terminal, then
-    what the board's command line asked to do after (``args.after_demo``)."""
-    from monitor.rig.demo import run_demo
+    """Run the demo's vessels live into ``out_path`` with the first one's table in the
+    terminal, then what the board's command line asked to do after (``args.after_demo``)."""
+    from monitor.rig.demo import run_live
 
     print(
         f"{'time s':>7} {'phase':>8} {'water °C':>8} {'power W':>7} "
         f"{'time to target (90 %)':>20} {'water kg':>12} {'UA W/K':>12} {'G W/K':>12}"
     )
-    stats, _ = await run_demo(
-        scenario, seed, str(out_path), args.speed, args.every_s,
-        say=lambda line: print(line, flush=True), on_started=on_started, metadata=metadata,
+    stats, _ = await run_live(
+        vessels, str(out_path), args.speed, args.every_s,
+        say=lambda line: print(line, flush=True), on_started=on_started, mqtt_url=mqtt_url,
     )  # fmt: skip
     print(
         f"demo: recorded {stats.samples} samples and {stats.estimates} estimates "
@@ -162,27 +161,30 @@ SITE_HISTORY_NOTE = (
 
 
 async def _site_demo(args: argparse.Namespace) -> int:
-    """The full demo: the site's weeks of history, then the rig's scaled kettle live."""
+    """The full demo: the site's weeks of history, then every vessel live."""
+    import contextlib
+    import tempfile
+    from dataclasses import replace
+
+    from drivers.emulators.mosquitto import MosquittoBroker, mosquitto_program
     from drivers.simworld.site import HISTORY_DAYS, demo_site
+    from monitor.rig.demo import DemoVessel
     from monitor.rig.history import History, site_config_text, write_history
 
     plans = tuple(demo_site())
     out_path = Path(args.out)
     out_path.parent.mkdir(parents=True, exist_ok=True)
     print(SAFETY_NOTE)
+    kettles = [p for p in plans if p.kind == "kettle"]
+    heaters = [p for p in plans if p.kind != "kettle"]
     print(
-        f"demo: an invented site, simulated: {sum(p.kind == 'kettle' for p in plans)} kettles "
-        f"on a test rig and {sum(p.kind != 'kettle' for p in plans)} storage water heaters in a "
-        f"building. First {HISTORY_DAYS} days of their history are simulated at full speed "
-        f"into {out_path}, then a kettle heats live through the real drivers.",
+        f"demo: an invented site, all simulated: {len(kettles)} kettles on a test rig and "
+        f"{len(heaters)} storage water heaters in a building. First their last {HISTORY_DAYS} "
+        f"days are simulated at full speed into {out_path}; then they all run live.",
         flush=True,
     )
     on_started = getattr(args, "on_started", None)  # set by the board's command line
     text = site_config_text(plans, "mqtt://127.0.0.1:1883", SITE_HISTORY_NOTE)
-    # the history ends where the live part's readings begin (they are stamped in the
-    # past too, ending as the demo does; demo_start_s)
-    live = next(p for p in plans if p.kind == "kettle" and p.fault is not None)
-    scenario = live.scenario(float(HISTORY_DAYS), 0.0, len(live.run_days))
     history = History(plans, text, end_s=time.time(), days=HISTORY_DAYS)
     figures = await asyncio.to_thread(
         write_history, str(out_path), history, say=lambda line: print(line, flush=True),
@@ -190,10 +192,40 @@ async def _site_demo(args: argparse.Namespace) -> int:
     )  # fmt: skip
     print(f"demo: the history is written: {figures['rows']} rows in {figures['seconds']} s",
           flush=True)  # fmt: skip
-    print(f"demo: now {live.vessel} ({live.place}, its element scaling) heats live at "
-          f"{args.speed:g}x real time: a simulated thermocouple logger on a pseudo-terminal "
-          "and a simulated Modbus TCP meter on 127.0.0.1", flush=True)  # fmt: skip
-    await _live(args, scenario, live.seed, out_path, metadata=live.metadata())
+    # the live part: the scaling kettle first (its figures go to the terminal), every
+    # run as long as a kettle's (the heaters' recovery runs cut to it)
+    kettles.sort(key=lambda p: p.fault is None)
+    span_s = kettles[0].base.duration_s
+    with contextlib.ExitStack() as stack:
+        broker = None
+        if mosquitto_program() is not None:
+            workdir = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix="ebullio-")))
+            broker = await asyncio.to_thread(MosquittoBroker(workdir).start)
+            stack.callback(broker.stop)
+            print(f"demo: the heaters publish over MQTT to the demo's own Mosquitto at "
+                  f"{broker.url} (stopped with the demo)", flush=True)  # fmt: skip
+        else:
+            print("demo: Mosquitto is not installed (apt-get install mosquitto), so the heaters "
+                  "come in through simulated line loggers on pseudo-terminals instead of MQTT",
+                  flush=True)  # fmt: skip
+        live = [
+            DemoVessel(p.scenario(float(HISTORY_DAYS), 0.0, len(p.run_days)), p.seed, "bench",
+                       p.metadata())
+            for p in kettles
+        ]  # fmt: skip
+        live += [
+            DemoVessel(replace(p.scenario(float(HISTORY_DAYS), 0.0, len(p.run_days)),
+                               duration_s=span_s), p.seed, "mqtt" if broker else "logger",
+                       p.metadata())
+            for p in heaters
+        ]  # fmt: skip
+        watched = kettles[0]
+        print(f"demo: now live at {args.speed:g}x real time: {watched.vessel} ({watched.place}, "
+              "its element scaling) heats to the boil, shown below; the other kettle and the "
+              "heaters are on the board. Each kettle has a simulated thermocouple logger on a "
+              "pseudo-terminal and a simulated Modbus TCP meter on 127.0.0.1",
+              flush=True)  # fmt: skip
+        await _live(args, live, out_path, mqtt_url=broker.url if broker else None)
     return 0
 
 
@@ -211,7 +243,9 @@ async def _demo(args: argparse.Namespace) -> int:
     out_path = Path(args.out)
     out_path.parent.mkdir(parents=True, exist_ok=True)
     on_started = getattr(args, "on_started", None)  # set by the board's command line
-    await _live(args, scenario, args.seed, out_path, on_started=on_started)
+    from monitor.rig.demo import DemoVessel
+
+    await _live(args, [DemoVessel(scenario, args.seed)], out_path, on_started=on_started)
     return 0
 
 

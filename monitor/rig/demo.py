@@ -324,7 +324,7 @@ async def run_live(
                 nonlocal last_said
                 if m.get("vessel") != watched:
                     return
-                elapsed = float(m["t"]) - base["wall"]  # type: ignore[arg-type]
+                elapsed = max(float(m["t"]) - base["wall"], 0.0)  # type: ignore[arg-type]
                 if elapsed - last_said >= every_s:
                     last_said = elapsed
                     say(_line(elapsed, m))

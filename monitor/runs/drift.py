@@ -661,12 +661,15 @@ def standing_drift(
 
     ``judged`` are the drift flags of the vessel's latest judged (trusted) run before
     this one, ``drift`` and ``verdict`` this run's. A trusted run's flags stand as they
-    are. A doubtful run's drift part is only its not-judged notice: the flags of the
-    latest judged run stand beside it, so a run that could not be judged neither
+    are. A doubtful run's drift part is its not-judged notice and its own run checks
+    (``fill``, ``sensor``): the flags of the latest judged run stand beside them (one of
+    a name the run raised itself gives way to it), so a run that could not be judged neither
     clears a standing warning nor raises one (the fleet views, live and replayed).
     """
     if verdict.get("status") == "doubtful":
-        return [*judged, *drift], judged
+        # its own run checks (fill, sensor) are newer than the judged run's of that name
+        own = {f.get("name") for f in drift}
+        return [*(f for f in judged if f.get("name") not in own), *drift], judged
     return list(drift), list(drift)
 
 

@@ -295,6 +295,22 @@ def test_a_doubtful_last_run_neither_clears_nor_raises_a_standing_warning() -> N
     assert row["last_verdict"] == "doubtful"
     assert set(row["flags"]) == {"scaling", "not_judged"}
     assert row["status"] == max((f.level.value for f in flags[7]), key=LEVEL_RANK.get)
+    # a doubtful run's own fill check stands for that name (not twice)
+    judged = [
+        {"name": "fill", "level": "alarm", "message": "old"},
+        {"name": "scaling", "level": "warning", "message": "s"},
+    ]
+    own = [
+        {"name": "not_judged", "level": "notice"},
+        {"name": "fill", "level": "alarm", "message": "new"},
+    ]
+    shown, kept = standing_drift(judged, own, {"status": "doubtful"})
+    assert [(f["name"], f.get("message")) for f in shown] == [
+        ("scaling", "s"),
+        ("not_judged", None),
+        ("fill", "new"),
+    ]
+    assert kept == judged
     # a trusted run after it speaks for itself again
     shown, judged = standing_drift([{"name": "scaling", "level": "warning"}], [],
                                    {"status": "trusted"})  # fmt: skip
