@@ -190,7 +190,7 @@ def create_engine_app(servers: list[str], poll_ms: int = 2000,
     note = html.Section([html.P(ENGINE_NOTE, className="status")], className="view")
     app = _board(f"engine: {watch.source}", first, [
         fleet.layout(), vessel.layout(first),
-        maintenance.layout(list(first.get("vessels") or [])), note,
+        maintenance.layout(list(first.get("vessels") or []), first.get("chosen")), note,
     ], poll_ms)  # fmt: skip
 
     @app.callback(
@@ -238,7 +238,7 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         data.load_snapshot(extra, csv_replay=csv_replay)
     app = _board(f"log: {first['log']}", first, [
         fleet.layout(), vessel.layout(first),
-        maintenance.layout(list(first.get("vessels") or [])),
+        maintenance.layout(list(first.get("vessels") or []), first.get("chosen")),
         replay.layout([Path(p).name for p in logs]),
     ], poll_ms, poll=first["kind"] != "csv")  # a CSV log does not change: read once  # fmt: skip
 

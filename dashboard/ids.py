@@ -15,6 +15,7 @@ INTEGRITY = "log-integrity"  # the banner shown when a log fails its integrity c
 MAINT_PICK = "maintenance-pick"
 MAINT_CHART = "maintenance-chart"
 MAINT_REPORTS = "maintenance-reports"
+MAINT_STANDING = "maintenance-standing"
 VESSEL_CURSOR = "vessel-chart-cursor"
 REPLAY_LOG = "replay-log"
 REPLAY_RUN = "replay-run"

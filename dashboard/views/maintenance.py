@@ -17,7 +17,7 @@ import plotly.graph_objects as go
 from dash import Dash, Input, Output, State, dcc, html
 
 from dashboard import ids
-from dashboard.theme import verdict_mark
+from dashboard.theme import LEVEL_MARK, verdict_mark
 from monitor.reports import plots
 
 
@@ -29,6 +29,31 @@ def history_figure(history: dict | None) -> go.Figure:
     history = history or {}
     return plots.history_figure(history.get("runs") or [], history.get("baselines") or {},
                                 uirevision="maintenance")  # fmt: skip
+
+
+def standing(history: dict | None) -> html.Div:
+    """Return what stands against the vessel after its runs: each warning of its latest
+    judged run (:func:`monitor.runs.drift.standing_drift`; a scaling warning says the
+    equivalent scale thickness range when the element's area is known), and a
+    not-judged last run; or that nothing does."""
+    from monitor.runs.drift import standing_drift, verdict_of
+
+    judged: list = []
+    flags: list = []
+    for run in (history or {}).get("runs") or []:
+        flags, judged = standing_drift(judged, list(run.get("drift") or []), verdict_of(run))
+    items = []
+    for f in flags:
+        if f.get("level") not in ("warning", "alarm") and f.get("name") != "not_judged":
+            continue
+        text = str(f.get("message") or f.get("name"))  # scaling's gives the scale thickness
+        level = str(f.get("level"))
+        mark = html.Span(LEVEL_MARK.get(level, level), className=f"level-{level}")
+        items.append(html.Li([mark, " " + text]))
+    if not items:
+        return html.Div([html.P("Nothing stands against this vessel: no drift warning on its "
+                                "latest judged run.")])  # fmt: skip
+    return html.Div([html.H3("Where it stands"), html.Ul(items)])
 
 
 def report_links(history: dict | None, reports: bool = True) -> html.Ul:
@@ -59,12 +84,14 @@ def report_links(history: dict | None, reports: bool = True) -> html.Ul:
     return html.Ul(items or [html.Li("No runs yet.")])
 
 
-def layout(vessels: list[str]) -> html.Section:
-    """Return the maintenance view's layout."""
+def layout(vessels: list[str], chosen: str | None = None) -> html.Section:
+    """Return the maintenance view's layout, open on ``chosen`` (else the first vessel)."""
     return html.Section([
         html.H2("Maintenance"),
         dcc.Dropdown(id=ids.MAINT_PICK, options=[{"label": v, "value": v} for v in vessels],
-                     value=vessels[0] if vessels else None, clearable=False),
+                     value=chosen if chosen in vessels else (vessels[0] if vessels else None),
+                     clearable=False),
+        html.Div(id=ids.MAINT_STANDING),
         dcc.Loading(dcc.Graph(id=ids.MAINT_CHART, config={"displaylogo": False})),
         html.Div(id=ids.MAINT_REPORTS),
     ], className="view")  # fmt: skip
@@ -88,8 +115,9 @@ def register(app: Dash, load_history: Callable[[str | None], dict], reports: boo
         app.callback(Output(ids.MAINT_PICK, "options"), Output(ids.MAINT_PICK, "value"),
                      Input(ids.STORE, "data"), State(ids.MAINT_PICK, "value"))(picker)  # fmt: skip
 
-    @app.callback(Output(ids.MAINT_CHART, "figure"), Output(ids.MAINT_REPORTS, "children"),
+    @app.callback(Output(ids.MAINT_STANDING, "children"), Output(ids.MAINT_CHART, "figure"),
+                  Output(ids.MAINT_REPORTS, "children"),
                   Input(ids.MAINT_PICK, "value"))  # fmt: skip
     def show(vessel: str | None):
         history = load_history(vessel)
-        return history_figure(history), report_links(history, reports)
+        return standing(history), history_figure(history), report_links(history, reports)

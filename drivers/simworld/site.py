@@ -101,6 +101,7 @@ class VesselPlan:
             "rated_voltage_v": s.element.rated_voltage_v,
             "vessel_heat_capacity_j_per_k": s.vessel_heat_capacity_j_per_k,
             "element_heat_capacity_j_per_k": s.element.heat_capacity_j_per_k,
+            "element_area_m2": s.element.area_m2,  # the maker's data sheet gives it
             "fill_kg": s.water_mass_kg,
             "place": self.place,
             "simulated": "yes: an invented demo vessel, not a real one",

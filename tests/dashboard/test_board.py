@@ -210,6 +210,24 @@ def test_a_doubtful_last_run_keeps_the_standing_warning_in_the_fleet() -> None:
     assert run_state(rows)["h1"]["status"] == "ok"
 
 
+def test_the_maintenance_view_says_what_stands_against_the_vessel() -> None:
+    from dashboard.views.maintenance import standing
+
+    # made-up runs: a scaling warning, then a run that could not be judged
+    warned = {"name": "scaling", "level": "warning",
+              "message": "G is 30 % down. That is as much as 0.10-0.55 mm of scale."}
+    runs = [{"run": "6", "drift": [warned], "verdict": {"status": "trusted", "reasons": []}},
+            {"run": "7", "drift": [{"name": "not_judged", "level": "notice",
+                                    "message": "Run 7 was not judged."}],
+             "verdict": {"status": "doubtful", "reasons": ["Too few readings."]}}]  # fmt: skip
+    text = str(standing({"runs": runs}))
+    assert "0.10-0.55 mm of scale" in text
+    assert "● warning" in text
+    assert "Run 7 was not judged." in text
+    clean = [{"run": "8", "drift": [], "verdict": {"status": "trusted", "reasons": []}}]
+    assert "Nothing stands against this vessel" in str(standing({"runs": runs + clean}))
+
+
 def test_the_board_renders_in_headless_chromium(live_log) -> None:
     dom = render_board(create_app(str(live_log), poll_ms=60_000), "board.png")
     assert dom.count('class="main-svg"') >= 2  # both charts drawn
