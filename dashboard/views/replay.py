@@ -14,7 +14,7 @@ from bisect import bisect_right
 from collections.abc import Callable
 from urllib.parse import urlencode
 
-from dash import Dash, Input, Output, Patch, State, dcc, html, no_update
+from dash import Dash, Input, Output, Patch, State, ctx, dcc, html, no_update
 
 from dashboard import ids
 from dashboard.theme import iso_minutes
@@ -156,11 +156,16 @@ def register(
     (the replay runs in a child process of the board's; the view polls until it is done)."""
 
     @app.callback(Output(ids.REPLAY_RUN, "options"), Output(ids.REPLAY_RUN, "value"),
-                  Input(ids.REPLAY_LOG, "value"))  # fmt: skip
-    def pick_log(log_index: int | None):
-        runs = list_runs(int(log_index or 0))
-        options = run_options(runs)
-        return options, options[-1]["value"] if options else None
+                  Input(ids.REPLAY_LOG, "value"), Input(ids.POLL, "n_intervals"),
+                  State(ids.REPLAY_RUN, "options"), State(ids.REPLAY_RUN, "value"))  # fmt: skip
+    def pick_log(log_index: int | None, _n: int | None, shown: list | None, chosen: str | None):
+        # runs that end while the page is open join the list; the one picked stays picked
+        options = run_options(list_runs(int(log_index or 0)))
+        if options == shown and ctx.triggered_id == ids.POLL:
+            return no_update, no_update
+        values = [o["value"] for o in options]
+        keep = chosen in values and ctx.triggered_id == ids.POLL
+        return options, chosen if keep else (values[-1] if values else None)
 
     @app.callback(
         Output(ids.REPLAY_READINGS, "figure"),

@@ -214,8 +214,11 @@ def test_the_maintenance_view_says_what_stands_against_the_vessel() -> None:
     from dashboard.views.maintenance import standing
 
     # made-up runs: a scaling warning, then a run that could not be judged
-    warned = {"name": "scaling", "level": "warning",
-              "message": "G is 30 % down. That is as much as 0.10-0.55 mm of scale."}
+    warned = {
+        "name": "scaling",
+        "level": "warning",
+        "message": "G is 30 % down. That is as much as 0.10-0.55 mm of scale.",
+    }
     runs = [{"run": "6", "drift": [warned], "verdict": {"status": "trusted", "reasons": []}},
             {"run": "7", "drift": [{"name": "not_judged", "level": "notice",
                                     "message": "Run 7 was not judged."}],
