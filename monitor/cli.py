@@ -190,8 +190,8 @@ async def _site_demo(args: argparse.Namespace) -> int:
         write_history, str(out_path), history, say=lambda line: print(line, flush=True),
         on_open=on_started,
     )  # fmt: skip
-    print(f"demo: the history is written: {figures['rows']} rows in {figures['seconds']} s",
-          flush=True)  # fmt: skip
+    print(f"demo: the history is written: {figures['rows']} rows in {figures['seconds']} s "
+          f"(the workers' CPU: {figures['worker_cpu_s']} s)", flush=True)  # fmt: skip
     # the live part: the scaling kettle first (its figures go to the terminal), every
     # run as long as a kettle's (the heaters' recovery runs cut to it)
     kettles.sort(key=lambda p: p.fault is None)

@@ -8,7 +8,7 @@ describes a real building, product or person). :func:`demo_site` returns it:
 * **the building** (``flat-01`` … ``flat-08``): eight storage water heaters of
   80-150 L. Every :data:`RUN_EVERY_DAYS` days each logs a recovery run: from a
   minute before its thermostat switches the element on after the morning's
-  draw-off (the water at 38-48 °C), through the reheat to the setpoint, and
+  draw-off (the water at 40-50 °C), through the reheat to the setpoint, and
   :data:`STANDBY_S` of standby after it. Four carry a fault that grows over the
   weeks, from its ``onset_day`` on; the rest stay healthy:
 
@@ -42,9 +42,9 @@ from drivers.simworld.scenarios import (
 #: Days of history before the live part.
 HISTORY_DAYS = 60
 #: A heater logs a recovery run every this many days.
-RUN_EVERY_DAYS = 3
+RUN_EVERY_DAYS = 4
 #: Standby logged after a heater's thermostat first switches off, s.
-STANDBY_S = 2400.0
+STANDBY_S = 1500.0
 #: Seconds a recovery run is logged before the thermostat switches on (a rest: the
 #: estimator takes the element thermocouple's offset from it).
 REST_S = 60.0
@@ -133,7 +133,7 @@ class VesselPlan:
                 water_mass_kg=float(rng.uniform(0.95, 1.05)) * s.water_mass_kg,
             )
         else:
-            start_c = float(rng.uniform(38.0, 48.0))
+            start_c = float(rng.uniform(40.0, 50.0))
             run = replace(
                 s,
                 start_water_c=start_c,
