@@ -236,7 +236,10 @@ def create_app(log_path: str, poll_ms: int = 2000, more_logs: tuple[str, ...] = 
         first = {**first, "chosen": ranked[0]["vessel"]}
     for extra in more_logs:
         data.load_snapshot(extra, csv_replay=csv_replay)
-    app = _board(f"log: {first['log']}", first, [
+    shown = f"log: {first['log']}"
+    if data.simulated_vessels(log_path):
+        shown += " · simulated data: invented demo vessels, not real ones"
+    app = _board(shown, first, [
         fleet.layout(), vessel.layout(first),
         maintenance.layout(list(first.get("vessels") or []), first.get("chosen")),
         replay.layout([Path(p).name for p in logs]),

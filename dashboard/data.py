@@ -91,6 +91,17 @@ def run_state(
     return out
 
 
+def simulated_vessels(path: str) -> list[str]:
+    """Return the vessels of a recorder log that say they are simulated (metadata
+    ``simulated``, or a ``sim://`` source: the demo's), so the board can say so."""
+    if not is_recorder_log(path):
+        return []
+    from monitor.records.recorder import read_vessels
+
+    return [name for name, meta in read_vessels(path).items()
+            if "simulated" in meta or str(meta.get("source", "")).startswith("sim://")]  # fmt: skip
+
+
 def _sqlite_snapshot(path: str, vessel: str | None) -> dict[str, object]:
     with LogReader(path) as log:
         names = log.vessels()

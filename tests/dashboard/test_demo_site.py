@@ -118,6 +118,7 @@ def test_the_default_demo_walks_through_its_four_views(demo, browser) -> None:
     wait_for(lambda: len(browser.find_elements(By.CSS_SELECTOR, "#fleet-table tbody tr"))
              == len(plans), timeout_s=60.0, what="every vessel in the fleet view")  # fmt: skip
     _rest_of_output(demo, "the history is written")
+    assert "simulated data" in browser.find_element(By.ID, "log-name").text
 
     def rows() -> dict[str, str]:
         def read() -> dict[str, str]:
