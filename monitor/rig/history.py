@@ -130,6 +130,7 @@ def write_history(
     workers = workers or os.cpu_count() or 1
     cpu_s = 0.0
     rows_written = 0
+    failed: list[str] = []
     with Recorder(log_path, version=__version__, config_text=history.config_text) as rec:
         for v in config.vessels:
             rec.add_vessel(v.id, dict(v.metadata))
@@ -141,9 +142,15 @@ def write_history(
         # spawn: the board's server thread may already run in this process
         context = multiprocessing.get_context("spawn")
         with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
-            futures = [pool.submit(process_vessel, history, vessel) for vessel in order]
+            futures = {pool.submit(process_vessel, history, vessel): vessel for vessel in order}
             for done, future in enumerate(as_completed(futures), 1):
-                vessel, items, spent_s = future.result()
+                try:
+                    vessel, items, spent_s = future.result()
+                except Exception as exc:  # one vessel's history lost, the others go on
+                    failed.append(futures[future])
+                    say(f"demo: the history of {futures[future]} could not be made "
+                        f"({type(exc).__name__}: {exc}); the other vessels go on")  # fmt: skip
+                    continue
                 cpu_s += spent_s
                 pending = 0
                 for kind, rows in items:
@@ -162,6 +169,7 @@ def write_history(
         "rows": rows_written,
         "seconds": round(time.monotonic() - began, 2),
         "worker_cpu_s": round(cpu_s, 2),
+        "failed": failed,
     }
 
 

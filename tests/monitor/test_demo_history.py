@@ -96,3 +96,23 @@ def test_history_readings_say_they_were_simulated(history_log):
 
     first = next(iter(read_samples(path)))
     assert first.source == HISTORY_SOURCE
+
+
+def test_a_vessel_whose_history_fails_is_said_and_the_others_go_on(tmp_path):
+    from dataclasses import replace
+
+    good, other = (p for p in demo_site() if p.kind == "kettle")
+    good = replace(good, run_days=(58.0, 59.0))
+    # made-up: a fault kind the site does not know, so its scenario cannot be made
+    bad = replace(other, run_days=(59.0,), fault="bogus", onset_day=0.0, severity=1.0)
+    plans = (good, bad)
+    text = site_config_text(plans, "mqtt://127.0.0.1:1883", "test: one history fails")
+    history = History(plans, text, end_s=time.time() - 3600.0, days=HISTORY_DAYS)
+    path = tmp_path / "partial.sqlite"
+    said: list[str] = []
+    figures = write_history(str(path), history, workers=1, say=said.append)
+    assert figures["failed"] == [bad.vessel]
+    assert any(bad.vessel in line and "could not be made" in line for line in said)
+    assert "Traceback" not in "".join(said)
+    assert verify(path)["ok"] is True
+    assert [r["vessel"] for r in read_runs(path)] == [good.vessel, good.vessel]
