@@ -6,7 +6,9 @@ one clear line, the password never shown, no traceback logged."""
 from __future__ import annotations
 
 import asyncio
+import gc
 import logging
+import warnings
 
 import pytest
 
@@ -18,6 +20,22 @@ from tests.support.fleet import fleet_config, kettle_readings
 from tests.support.nats import NatsCluster, make_certificates
 
 USER, PASSWORD = "ebullio", "s3cret-pw"
+
+
+@pytest.fixture(autouse=True)
+def _tls_leftovers_collected_here():
+    """Collect what this module's TLS connections leave behind before the next test.
+
+    nats-py's TLS transport can outlive its closed client and its event loop (its
+    protocol says "returning true from eof_received() has no effect when using ssl").
+    Found by a clean-clone CI run (2026-12-05): the transport's "unclosed" warnings
+    surfaced in a later, unrelated test (test_estimator) when the collector reached them
+    there. Not reproduced on demand; collected here with those warnings ignored.
+    """
+    yield
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ResourceWarning)
+        gc.collect()
 
 
 @pytest.mark.timeout(120)
