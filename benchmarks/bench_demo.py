@@ -27,7 +27,6 @@ import argparse
 import json
 import os
 import re
-import shutil
 import signal
 import subprocess
 import sys
@@ -39,18 +38,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from drivers.simworld.site import demo_site  # noqa: E402
-
-
-def _browser():
-    from selenium import webdriver
-    from selenium.webdriver.chrome.service import Service as DriverService
-
-    options = webdriver.ChromeOptions()
-    options.binary_location = shutil.which("chromium") or "chromium"
-    for arg in ("--headless=new", "--no-sandbox", "--disable-gpu", "--window-size=1280,900"):
-        options.add_argument(arg)
-    driver = shutil.which("chromedriver") or "chromedriver"
-    return webdriver.Chrome(options=options, service=DriverService(executable_path=driver))
+from tests.support.browser import chromium_driver  # noqa: E402
 
 
 def measure(cold: bool, speed: float) -> dict[str, object]:
@@ -59,7 +47,7 @@ def measure(cold: bool, speed: float) -> dict[str, object]:
 
     plans = demo_site()
     faulty = [p.vessel for p in plans if p.fault]
-    web = _browser()  # started before the clock: a user's browser is already open
+    web = chromium_driver()  # started before the clock: a user's browser is already open
     times: dict[str, object] = {"cold_numba_cache": cold, "speed": speed}
     with tempfile.TemporaryDirectory(prefix="ebullio-bench-demo-") as tmp:
         env = dict(os.environ)

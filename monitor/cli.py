@@ -208,17 +208,15 @@ async def _site_demo(args: argparse.Namespace) -> int:
             print("demo: Mosquitto is not installed (apt-get install mosquitto), so the heaters "
                   "come in through simulated line loggers on pseudo-terminals instead of MQTT",
                   flush=True)  # fmt: skip
-        live = [
-            DemoVessel(p.scenario(float(HISTORY_DAYS), 0.0, len(p.run_days)), p.seed, "bench",
-                       p.metadata())
-            for p in kettles
-        ]  # fmt: skip
-        live += [
-            DemoVessel(replace(p.scenario(float(HISTORY_DAYS), 0.0, len(p.run_days)),
-                               duration_s=span_s), p.seed, "mqtt" if broker else "logger",
-                       p.metadata())
-            for p in heaters
-        ]  # fmt: skip
+        live = []
+        for p in (*kettles, *heaters):
+            scenario = p.scenario(float(HISTORY_DAYS), 0.0, len(p.run_days))
+            if p.kind == "kettle":
+                live.append(DemoVessel(scenario, p.seed, "bench", p.metadata()))
+            else:
+                via = "mqtt" if broker else "logger"
+                scenario = replace(scenario, duration_s=span_s)
+                live.append(DemoVessel(scenario, p.seed, via, p.metadata()))
         watched = kettles[0]
         print(f"demo: now live at {args.speed:g}x real time: {watched.vessel} ({watched.place}, "
               "its element scaling) heats to the boil, shown below; the other kettle and the "
@@ -230,6 +228,8 @@ async def _site_demo(args: argparse.Namespace) -> int:
 
 
 async def _demo(args: argparse.Namespace) -> int:
+    from monitor.rig.demo import DemoVessel
+
     if not args.quick:
         return await _site_demo(args)
     scenario = _scenario_from(args)
@@ -243,8 +243,6 @@ async def _demo(args: argparse.Namespace) -> int:
     out_path = Path(args.out)
     out_path.parent.mkdir(parents=True, exist_ok=True)
     on_started = getattr(args, "on_started", None)  # set by the board's command line
-    from monitor.rig.demo import DemoVessel
-
     await _live(args, [DemoVessel(scenario, args.seed)], out_path, on_started=on_started)
     return 0
 
@@ -252,6 +250,16 @@ async def _demo(args: argparse.Namespace) -> int:
 #: Where the demo records when no --out is given (the next free demo-N.sqlite beside it
 #: when this one holds readings too recent for a demo at speed to follow).
 DEMO_LOG = "out/demo.sqlite"
+
+
+def _first_free(taken: Callable[[Path], bool]) -> Path:
+    """Return :data:`DEMO_LOG`, or the first ``demo-N.sqlite`` beside it not ``taken``."""
+    base = path = Path(DEMO_LOG)
+    n = 1
+    while taken(path):
+        n += 1
+        path = base.with_name(f"{base.stem}-{n}{base.suffix}")
+    return path
 
 
 def _demo_log(args: argparse.Namespace) -> str:
@@ -268,20 +276,14 @@ def _demo_log(args: argparse.Namespace) -> str:
                     "log; give another --out (or --quick to add a kettle run to it)"
                 )
             return str(args.out)
-        base, n = Path(DEMO_LOG), 1
-        path = base
-        while path.exists():
-            n += 1
-            path = base.with_name(f"{base.stem}-{n}{base.suffix}")
-        return str(path)
+        return str(_first_free(Path.exists))
     if args.out is not None:
         return str(args.out)
     base = Path(DEMO_LOG)
-    path, n = base, 1
     duration_s = _scenario_from(args).duration_s
-    while demo_start_s(time.time(), duration_s, args.speed, last_sample_t(path))[1]:
-        n += 1
-        path = base.with_name(f"{base.stem}-{n}{base.suffix}")
+    path = _first_free(
+        lambda p: demo_start_s(time.time(), duration_s, args.speed, last_sample_t(p))[1]
+    )
     if path != base:
         print(f"demo: {base} holds readings from a demo a few minutes ago, so this one records "
               f"to {path} and runs at full speed (--out {base} adds to it, no faster than "

@@ -33,15 +33,12 @@ def history_figure(history: dict | None) -> go.Figure:
 
 def standing(history: dict | None) -> html.Div:
     """Return what stands against the vessel after its runs: each warning of its latest
-    judged run (:func:`monitor.runs.drift.standing_drift`; a scaling warning says the
+    judged run (:func:`monitor.runs.drift.standing_after`; a scaling warning says the
     equivalent scale thickness range when the element's area is known), and a
     not-judged last run; or that nothing does."""
-    from monitor.runs.drift import standing_drift, verdict_of
+    from monitor.runs.drift import standing_after
 
-    judged: list = []
-    flags: list = []
-    for run in (history or {}).get("runs") or []:
-        flags, judged = standing_drift(judged, list(run.get("drift") or []), verdict_of(run))
+    flags = standing_after((history or {}).get("runs") or [])
     items = []
     for f in flags:
         if f.get("level") not in ("warning", "alarm") and f.get("name") != "not_judged":

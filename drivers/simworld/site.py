@@ -53,38 +53,32 @@ HEATER_INTERVAL_S = 10.0
 #: Daily test runs of each rig kettle in the history.
 KETTLE_RUNS = 12
 
-#: What each fault kind is, in words a maintenance team uses.
-FAULTS = {
-    "scaling": "limescale building on the element",
-    "insulation": "insulation failing",
-    "element": "element weakening",
-    "fill": "under-filled",
-}
-#: The drift or run check that should flag each fault kind
-#: (:mod:`monitor.runs.drift`).
-FAULT_FLAGS = {"scaling": "scaling", "insulation": "insulation", "element": "element",
-               "fill": "fill"}  # fmt: skip
-
 
 @dataclass(frozen=True)
 class VesselPlan:
     """One demo vessel: what it is, where it stands, its fault and its runs.
 
-    ``base`` is the healthy vessel; ``fault`` one of :data:`FAULTS` (None: healthy)
+    ``base`` is the healthy vessel (its ``vessel`` is the id); ``fault`` is ``scaling``,
+    ``insulation``, ``element`` or ``fill``, each named after the drift or run check
+    that flags it (:mod:`monitor.runs.drift`), or None (healthy); it
     grows linearly from ``onset_day`` to the end of the history, to ``severity`` (the
     fault's own measure: scale mm, UA factor, power fraction lost, fill fraction
     missing). ``run_days`` are the days (from the history's start) of its past runs.
     """
 
-    vessel: str
+    base: Scenario
     place: str
     kind: str  # "kettle" or "storage heater"
-    base: Scenario
     run_days: tuple[float, ...]
     fault: str | None = None
     onset_day: float = 0.0
     severity: float = 0.0
     seed: int = 0
+
+    @property
+    def vessel(self) -> str:
+        """The vessel's id (its scenario's)."""
+        return self.base.vessel
 
     def fault_share(self, day: float) -> float:
         """Return how far the fault has grown by ``day`` (0 before its onset, 1 at the end)."""
@@ -104,6 +98,7 @@ class VesselPlan:
             "element_area_m2": s.element.area_m2,  # the maker's data sheet gives it
             "fill_kg": s.water_mass_kg,
             "place": self.place,
+            "kind": self.kind,
             "simulated": "yes: an invented demo vessel, not a real one",
         }
         for role in ("water", "element"):
@@ -218,10 +213,9 @@ def demo_site() -> list[VesselPlan]:
     ]
     plans = [
         VesselPlan(
-            vessel=f"flat-{i:02d}",
+            base=_heater(i, volume, power, lagging),
             place=place,
             kind="storage heater",
-            base=_heater(i, volume, power, lagging),
             run_days=heater_days,
             fault=fault,
             onset_day=onset,
@@ -232,9 +226,9 @@ def demo_site() -> list[VesselPlan]:
     ]
     kettle = kettle_scenario()
     plans[:0] = [
-        VesselPlan("bench-a", "test rig, bench A", "kettle", replace(kettle, vessel="bench-a"),
+        VesselPlan(replace(kettle, vessel="bench-a"), "test rig, bench A", "kettle",
                    kettle_days, seed=2001),
-        VesselPlan("bench-b", "test rig, bench B", "kettle", replace(kettle, vessel="bench-b"),
+        VesselPlan(replace(kettle, vessel="bench-b"), "test rig, bench B", "kettle",
                    kettle_days, fault="scaling", onset_day=HISTORY_DAYS - 7.0, severity=0.25,
                    seed=2002),
     ]  # fmt: skip

@@ -109,6 +109,24 @@ def toml_value(value: object) -> str:
     return repr(float(value))  # type: ignore[arg-type]
 
 
+def vessel_table(
+    vessel: str, metadata: Mapping[str, object], element_sensor: bool | None = None
+) -> list[str]:
+    """Return one ``[[vessels]]`` table as TOML lines: the id, ``element_sensor`` when
+    given, the numbers a vessel takes as keys of its own (:data:`VESSEL_NUMBERS`), and the
+    rest of ``metadata`` under ``[vessels.metadata]`` (the site's pressure and altitude
+    and the vessel's own name left out: they have places of their own). The vessel's
+    ``[[vessels.channels]]`` tables may follow."""
+    lines = ["[[vessels]]", f"id = {toml_value(vessel)}"]
+    if element_sensor is not None:
+        lines.append(f"element_sensor = {'true' if element_sensor else 'false'}")
+    lines += [f"{k} = {toml_value(metadata[k])}" for k in VESSEL_NUMBERS if k in metadata]
+    own = {*VESSEL_NUMBERS, "vessel", "pressure_kpa", "altitude_m"}
+    lines += ["", "[vessels.metadata]"]
+    lines += [f"{k} = {toml_value(v)}" for k, v in metadata.items() if k not in own]
+    return [*lines, ""]
+
+
 @dataclass(frozen=True)
 class MqttSettings:
     """The broker: where, the topic prefix, credentials (from the environment), session."""

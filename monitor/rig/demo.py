@@ -52,7 +52,7 @@ from drivers.sample import Sample
 from drivers.simworld import PacedClock, Scenario, SimulatedRig, scenario_metadata
 from monitor.records.interchange import iso_utc
 from monitor.records.recorder import last_sample_t
-from monitor.rig.config import VESSEL_NUMBERS, RigConfig, parse_config, toml_value
+from monitor.rig.config import RigConfig, parse_config, toml_value, vessel_table
 from monitor.rig.service import Service, Stats
 
 #: Channels the simulated logger prints; the rest of the rig's readings go to the meter.
@@ -147,10 +147,7 @@ def demo_config_text(
                       'time_field = "t"', ""]  # fmt: skip
         if meter_url is not None:
             lines += _meter_table(meter_url, poll_s)
-        tables += ["[[vessels]]", f'id = "{v.scenario.vessel}"']
-        if v.via == "mqtt":
-            tables.append("element_sensor = true")
-        tables += [f"{key} = {toml_value(meta[key])}" for key in VESSEL_NUMBERS if key in meta]
+        tables += vessel_table(v.scenario.vessel, meta, True if v.via == "mqtt" else None)
         channels = [
             (serial_url, "water_mv", "water", "mV", "K"),
             (serial_url, "element_mv", "element", "mV", "K"),
@@ -168,9 +165,6 @@ def demo_config_text(
                        f'role = "{role}"', f'unit = "{unit}"']  # fmt: skip
             if tc:
                 tables += [f'thermocouple = "{tc}"', 'cold_junction = "cj_c"']
-        tables += ["", "[vessels.metadata]"]
-        own = {*VESSEL_NUMBERS, "vessel", "pressure_kpa", "altitude_m"}
-        tables += [f"{k} = {toml_value(val)}" for k, val in meta.items() if k not in own]
         tables.append("")
     return "\n".join(lines + tables)
 
@@ -405,8 +399,10 @@ class _ReadingPublisher:
     def __init__(self, url: str) -> None:
         import aiomqtt
 
-        host, port = url.removeprefix("mqtt://").rsplit(":", 1)
-        self._client = aiomqtt.Client(host, int(port), identifier="ebullio-demo-heaters")
+        from drivers.mqtt import parse_mqtt_url
+
+        broker = parse_mqtt_url(url)
+        self._client = aiomqtt.Client(broker.host, broker.port, identifier="ebullio-demo-heaters")
         self._client.pending_calls_threshold = 10_000
 
     async def __aenter__(self) -> _ReadingPublisher:

@@ -32,7 +32,7 @@ from drivers.simworld.rig import SimulatedRig
 from drivers.simworld.site import VesselPlan
 from monitor import __version__
 from monitor.records.recorder import Recorder
-from monitor.rig.config import VESSEL_NUMBERS, parse_config, toml_value
+from monitor.rig.config import parse_config, toml_value, vessel_table
 from monitor.rig.service import Service, row_adders
 
 #: The source of every simulated history reading.
@@ -69,12 +69,7 @@ def site_config_text(plans: tuple[VesselPlan, ...], mqtt_url: str, note: str) ->
     lines += ["[site]", "pressure_kpa = 101.325", "", "[mqtt]", f"url = {toml_value(mqtt_url)}",
               'prefix = "ebullio-demo"', ""]  # fmt: skip
     for plan in plans:
-        meta = plan.metadata()
-        lines += ["[[vessels]]", f"id = {toml_value(plan.vessel)}", "element_sensor = true"]
-        lines += [f"{k} = {toml_value(v)}" for k, v in meta.items() if k in VESSEL_NUMBERS]
-        lines += ["", "[vessels.metadata]"]
-        lines += [f"{k} = {toml_value(v)}" for k, v in meta.items() if k not in VESSEL_NUMBERS]
-        lines += [f"kind = {toml_value(plan.kind)}", ""]
+        lines += vessel_table(plan.vessel, plan.metadata(), element_sensor=True)
     return "\n".join(lines)
 
 
@@ -98,16 +93,15 @@ class _Kept:
         self.items.append((kind, rows))
 
 
-def process_vessel(history: History, vessel: str) -> tuple[str, list[tuple[str, Any]], float]:
-    """Return (vessel, the rows the service would have recorded, CPU s) of one vessel's
-    history: run in a worker process."""
+def process_vessel(history: History, plan: VesselPlan) -> tuple[list[tuple[str, Any]], float]:
+    """Return (the rows the service would have recorded, CPU s) of one vessel's history:
+    run in a worker process."""
     began = time.process_time()
-    (plan,) = [p for p in history.plans if p.vessel == vessel]
     config = parse_config(history.config_text, "<demo history>", {})
     service = Service(config, os.devnull, fits_on_time=True)
     kept = _Kept()
     service.process_flat_out(vessel_batches(history, plan), kept)
-    return vessel, kept.items, time.process_time() - began
+    return kept.items, time.process_time() - began
 
 
 def write_history(
@@ -138,17 +132,18 @@ def write_history(
         if on_open is not None:
             on_open()
         adders = row_adders(rec)
-        order = [p.vessel for p in sorted(history.plans, key=_cost, reverse=True)]
+        order = sorted(history.plans, key=_cost, reverse=True)
         # spawn: the board's server thread may already run in this process
         context = multiprocessing.get_context("spawn")
         with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
-            futures = {pool.submit(process_vessel, history, vessel): vessel for vessel in order}
+            futures = {pool.submit(process_vessel, history, p): p.vessel for p in order}
             for done, future in enumerate(as_completed(futures), 1):
+                vessel = futures[future]
                 try:
-                    vessel, items, spent_s = future.result()
+                    items, spent_s = future.result()
                 except Exception as exc:  # one vessel's history lost, the others go on
-                    failed.append(futures[future])
-                    say(f"demo: the history of {futures[future]} could not be made "
+                    failed.append(vessel)
+                    say(f"demo: the history of {vessel} could not be made "
                         f"({type(exc).__name__}: {exc}); the other vessels go on")  # fmt: skip
                     continue
                 cpu_s += spent_s

@@ -673,6 +673,17 @@ def standing_drift(
     return list(drift), list(drift)
 
 
+def standing_after(runs: Iterable[Mapping[str, object]]) -> list[Mapping[str, object]]:
+    """Return the drift flags that stand after a vessel's runs, oldest first
+    (:func:`standing_drift` taken run by run)."""
+    judged: list[Mapping[str, object]] = []
+    standing: list[Mapping[str, object]] = []
+    for run in runs:
+        drift = list(run.get("drift") or [])  # type: ignore[call-overload]
+        standing, judged = standing_drift(judged, drift, verdict_of(run))
+    return standing
+
+
 def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
     """Return one row per vessel from a replay result, worst first.
 
@@ -689,12 +700,7 @@ def fleet_rows(result: Mapping[str, object]) -> list[dict[str, object]]:
     rows = []
     for vessel, runs in by_vessel.items():
         last = runs[-1]
-        judged: list[Mapping[str, object]] = []
-        standing: list[Mapping[str, object]] = []
-        for run in runs:
-            drift = list(run.get("drift", []))  # type: ignore[call-overload]
-            standing, judged = standing_drift(judged, drift, verdict_of(run))
-        flags = [*last.get("flags", []), *standing]  # type: ignore[misc]
+        flags = [*last.get("flags", []), *standing_after(runs)]  # type: ignore[misc]
         scaling = None
         for run in runs:
             for f in run.get("drift", []):  # type: ignore[union-attr]

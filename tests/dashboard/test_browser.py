@@ -8,11 +8,9 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import shutil
 import threading
 import time
 from dataclasses import replace
-from pathlib import Path
 
 import pytest
 from werkzeug.serving import make_server
@@ -22,8 +20,7 @@ from drivers.simworld import kettle_scenario, run_series, scenario_metadata
 from monitor.rig.config import RigConfig, VesselSpec
 from monitor.rig.service import Service
 from tests.monitor.test_service import ListDriver, run_until
-
-ARTIFACTS = Path(__file__).resolve().parents[2] / "out" / "test-artifacts"
+from tests.support.browser import chromium_driver, read_settled, severe, shot, wait_for
 
 
 class PacedDriver(ListDriver):
@@ -45,18 +42,7 @@ class PacedDriver(ListDriver):
 
 @pytest.fixture
 def browser():
-    from selenium import webdriver
-    from selenium.webdriver.chrome.service import Service as DriverService
-
-    chromium, driver = shutil.which("chromium"), shutil.which("chromedriver")
-    assert chromium, "chromium is not installed (scripts/test-all installs it)"
-    assert driver, "chromedriver is not installed (Debian's chromium-driver)"
-    options = webdriver.ChromeOptions()
-    options.binary_location = chromium
-    for arg in ("--headless=new", "--no-sandbox", "--disable-gpu", "--window-size=1280,800"):
-        options.add_argument(arg)
-    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    web = webdriver.Chrome(options=options, service=DriverService(executable_path=driver))
+    web = chromium_driver()
     yield web
     web.quit()
 
@@ -74,51 +60,10 @@ def serve(app):
         thread.join(timeout=10)
 
 
-def shot(web, name: str) -> None:
-    """Save a screenshot of the page as a test artifact."""
-    ARTIFACTS.mkdir(parents=True, exist_ok=True)
-    web.save_screenshot(str(ARTIFACTS / f"{name}.png"))
-
-
-def wait_for(check, timeout_s: float = 60.0, what: str = "") -> None:
-    """Wait until ``check()`` is true; an element not there yet counts as not yet."""
-    from selenium.common.exceptions import WebDriverException
-
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        try:
-            if check():
-                return
-        except WebDriverException:
-            pass  # the page is still loading (Dash renders the layout after its scripts)
-        time.sleep(0.25)
-    raise AssertionError(f"timed out waiting for {what}")
-
-
-def read_settled(read, tries: int = 40):
-    """Return ``read()``, tried again while the board re-renders what it reads.
-
-    The board polls, so an element found a moment ago can be replaced before its text
-    is read (a stale element); that is a re-render, not a failure.
-    """
-    from selenium.common.exceptions import StaleElementReferenceException
-
-    for _ in range(tries - 1):
-        try:
-            return read()
-        except StaleElementReferenceException:
-            time.sleep(0.1)
-    return read()
-
-
 def one_kettle(vessel: str, meta: dict) -> RigConfig:
     """A rig configuration of one kettle with an element thermocouple (our own)."""
     return RigConfig("browser-test", "# one kettle\n", 101.325, None, (),
                      (VesselSpec(vessel, meta, True, False),), 0.05)  # fmt: skip
-
-
-def severe(web) -> list[str]:
-    return [e["message"] for e in web.get_log("browser") if e["level"] == "SEVERE"]
 
 
 def test_live_board_updates_and_flags_scaling_as_the_rig_runs(tmp_path, browser) -> None:

@@ -21,10 +21,9 @@ from dashboard.views.fleet import fleet_rows, render_fleet
 from dashboard.views.maintenance import picker
 from dashboard.views.vessel import chart_update
 from monitor.engine.partition import EngineLayout
-from monitor.rig.config import load_config
 from tests.support.browser import render_board
 from tests.support.engine import take_with_one_worker
-from tests.support.fleet import fleet_config, two_kettle_runs
+from tests.support.fleet import fleet_specs, two_kettle_runs
 from tests.support.nats import NatsCluster
 
 
@@ -135,9 +134,7 @@ def test_the_board_shows_the_engines_fleet_from_its_estimates_bucket(tmp_path) -
     vessels = ["kettle-a", "kettle-b", "kettle-c"]
     payloads = {v: two_kettle_runs(v, i) for i, v in enumerate(vessels)}
     with NatsCluster(tmp_path / "nats", nodes=1, layout=layout) as server:
-        config = tmp_path / "fleet.toml"
-        config.write_text(fleet_config(vessels, server.mqtt_ports[0]))
-        specs = {v.id: v for v in load_config(config).vessels}
+        specs = fleet_specs(tmp_path, vessels, server.mqtt_ports[0])
         bucket = asyncio.run(take_with_one_worker(server.urls, layout, specs, payloads,
                                                   runs=len(vessels)))  # fmt: skip
         watch = EngineWatch(server.urls, every_s=0.5)

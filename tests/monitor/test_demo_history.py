@@ -11,7 +11,7 @@ import time
 
 import pytest
 
-from drivers.simworld.site import FAULT_FLAGS, HISTORY_DAYS, RUN_EVERY_DAYS, demo_site
+from drivers.simworld.site import HISTORY_DAYS, RUN_EVERY_DAYS, demo_site
 from monitor.records.recorder import read_runs, read_vessels, verify
 from monitor.rig.history import HISTORY_SOURCE, History, site_config_text, write_history
 from monitor.runs.replay import replay
@@ -65,7 +65,7 @@ def test_a_replay_flags_each_fault_on_its_vessel_and_nothing_on_the_healthy(hist
         by_vessel.setdefault(run["vessel"], []).append(run)
     for plan in plans:
         last = by_vessel[plan.vessel][-1]
-        expected = {FAULT_FLAGS[plan.fault]} if plan.fault else set()
+        expected = {plan.fault} if plan.fault else set()  # named after its check
         assert _acted_on(last) == expected, (plan.vessel, last.get("drift"))
         # and every run of it was judged (a doubtful run would hide a drift)
         assert all(r["verdict"]["status"] == "trusted" for r in by_vessel[plan.vessel])

@@ -27,7 +27,6 @@ import pytest
 
 from monitor.engine.partition import EngineLayout
 from monitor.engine.worker import EngineError, Worker, WorkerSettings, read_estimates
-from monitor.rig.config import load_config
 from tests.support.engine import (
     estimates,
     publish_readings,
@@ -37,7 +36,7 @@ from tests.support.engine import (
     wait_for,
 )
 from tests.support.failover import BAD_INPUT, LAYOUT, VESSELS, run_failover
-from tests.support.fleet import fleet_config, kettle_readings, two_kettle_runs
+from tests.support.fleet import fleet_specs, kettle_readings, two_kettle_runs
 from tests.support.nats import NatsCluster
 
 #: Liveness bounds (s): a take-over that has not happened by then has not happened.
@@ -75,9 +74,7 @@ def test_a_worker_stopped_hands_its_state_on_to_the_next_one(tmp_path):
     vessels = ["kettle-a", "kettle-b", "kettle-c"]
     payloads = {v: kettle_readings(v, seed=i, duration_s=300.0) for i, v in enumerate(vessels)}
     with NatsCluster(tmp_path / "nats", nodes=1, layout=layout) as server:
-        config_path = tmp_path / "fleet.toml"
-        config_path.write_text(fleet_config(vessels, server.mqtt_ports[0]))
-        specs = {v.id: v for v in load_config(config_path).vessels}
+        specs = fleet_specs(tmp_path, vessels, server.mqtt_ports[0])
         report = asyncio.run(_hand_on(server.urls, layout, specs, payloads))
     assert report["first"]["partitions_handed_back"] == layout.partitions
     assert report["second_messages"] == 3 * 101  # only what came after the first stopped
@@ -139,9 +136,7 @@ def test_each_ended_run_reaches_the_runs_stream_once_across_a_crash(tmp_path):
     vessels = ["kettle-a", "kettle-b", "kettle-c"]
     payloads = {v: two_kettle_runs(v, i) for i, v in enumerate(vessels)}
     with NatsCluster(tmp_path / "nats", nodes=1, layout=layout) as server:
-        config_path = tmp_path / "fleet.toml"
-        config_path.write_text(fleet_config(vessels, server.mqtt_ports[0]))
-        specs = {v.id: v for v in load_config(config_path).vessels}
+        specs = fleet_specs(tmp_path, vessels, server.mqtt_ports[0])
         report = asyncio.run(_crash_and_redo(server.urls, layout, specs, payloads))
         runs = asyncio.run(read_runs(server.urls, layout))
         # read from the middle: only what came after

@@ -11,11 +11,12 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import replace
+from pathlib import Path
 
 from drivers.payloads import CHANNEL_COLUMNS
 from drivers.sample import Quality
 from drivers.simworld import SimulatedRig, kettle_scenario, scenario_metadata
-from monitor.rig.config import VesselSpec
+from monitor.rig.config import VesselSpec, load_config
 
 #: The simulated kettles' start (Unix s): 2026-12-01T00:00:00Z, so stream time stamps
 #: (now) are after every reading's ``t`` and the plausibility bound never refuses one.
@@ -74,3 +75,10 @@ def fleet_config(vessels: list[str], mqtt_port: int, prefix: str = "ebullio") ->
             "",
         ]
     return "\n".join(lines)
+
+
+def fleet_specs(folder: Path, vessels: list[str], mqtt_port: int) -> dict[str, VesselSpec]:
+    """Write :func:`fleet_config` as ``folder/fleet.toml`` and return its vessels' specs."""
+    path = Path(folder) / "fleet.toml"
+    path.write_text(fleet_config(vessels, mqtt_port))
+    return {v.id: v for v in load_config(path).vessels}
