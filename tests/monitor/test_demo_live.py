@@ -8,7 +8,7 @@ import asyncio
 from dataclasses import replace
 from itertools import pairwise
 
-from drivers.simworld.site import demo_site
+from drivers.simworld.site import HEATER_INTERVAL_S, demo_site
 from monitor.records.recorder import read_estimates, read_samples, read_vessels, verify
 from monitor.rig.demo import DemoVessel, run_live
 
@@ -39,9 +39,10 @@ def test_a_heater_through_a_line_logger_and_a_kettle_on_its_bench(tmp_path) -> N
         assert any(True for _ in read_estimates(log, vessel)), vessel
     assert stats.quarantined == 0
     assert said  # the first vessel's figures were said
-    # the heater's readings were stamped on its 10 s grid, as its logger printed them (a
-    # reading the simulated sensor dropped leaves a 20 s step)
+    # the heater's readings were stamped on its sample grid (our own scenario's 10 s), as
+    # its logger printed them (a reading the simulated sensor dropped leaves a double step)
     times = sorted({s.t for s in read_samples(log, "flat-01") if s.channel == "water"})
     assert len(times) >= 25
+    step_s = HEATER_INTERVAL_S
     steps = [b - a for a, b in pairwise(times)]
-    assert all(abs(d / 10.0 - round(d / 10.0)) < 1e-6 and d >= 10.0 - 1e-6 for d in steps)
+    assert all(abs(d / step_s - round(d / step_s)) < 1e-6 and d >= step_s - 1e-6 for d in steps)
